@@ -1,0 +1,81 @@
+"""The ``roikit`` command line: a thin shell over the Python API.
+
+Each command lives in its own module ``roikit.cli._<command>`` defining
+``add_parser(subparsers)`` (which registers the sub-command and its options) and
+``run(args) -> int``. Exit status: 0 ok, 1 data error (any :class:`RoikitError`),
+2 usage error (bad options, :class:`UsageError`). Errors are one line on stderr.
+"""
+
+from __future__ import annotations
+
+import argparse
+import importlib
+import importlib.util
+import sys
+import warnings
+
+from .. import __version__
+from ..errors import RoikitError, RoikitWarning, UsageError
+
+__all__ = ["main", "build_parser"]
+
+#: Sub-commands in the order ``roikit --help`` lists them.
+COMMANDS = ("demo", "regions", "extract", "stats", "report", "run", "bench")
+
+
+class _Parser(argparse.ArgumentParser):
+    """An argument parser whose usage errors print one line and exit 2."""
+
+    def error(self, message):  # noqa: D401 - argparse API
+        self.exit(2, f"{self.prog}: error: {message}\n")
+
+
+def build_parser() -> argparse.ArgumentParser:
+    parser = _Parser(
+        prog="roikit",
+        description="Region-of-interest group analysis of first-level contrast maps. "
+        "For research group analysis, not for clinical decisions about an individual patient.",
+    )
+    parser.add_argument("--version", action="version", version=f"roikit {__version__}")
+    sub = parser.add_subparsers(dest="command", metavar="COMMAND", parser_class=_Parser)
+    for name in COMMANDS:
+        module_name = f"roikit.cli._{name}"
+        if importlib.util.find_spec(module_name) is None:
+            continue
+        module = importlib.import_module(module_name)
+        module.add_parser(sub)
+    return parser
+
+
+def _format_warning(message, category, filename, lineno, line=None):
+    return f"roikit: warning: {message}\n"
+
+
+def main(argv: list[str] | None = None) -> int:
+    """Entry point of the ``roikit`` console script."""
+    parser = build_parser()
+    args = parser.parse_args(argv)
+    if args.command is None:
+        parser.print_help(sys.stderr)
+        return 2
+    previous = warnings.formatwarning
+    warnings.formatwarning = _format_warning
+    try:
+        with warnings.catch_warnings():
+            warnings.simplefilter("always", RoikitWarning)
+            return int(args.func(args) or 0)
+    except UsageError as exc:
+        print(f"roikit {args.command}: error: {exc}", file=sys.stderr)
+        return 2
+    except RoikitError as exc:
+        print(f"roikit {args.command}: error: {exc}", file=sys.stderr)
+        return 1
+    except KeyboardInterrupt:
+        print(f"roikit {args.command}: interrupted", file=sys.stderr)
+        return 130
+    finally:
+        warnings.formatwarning = previous
+
+
+if __name__ == "__main__":  # pragma: no cover
+    sys.exit(main())
