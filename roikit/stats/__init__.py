@@ -1,0 +1,161 @@
+"""Group statistics across regions: summary-statistics random effects, effect sizes, corrections.
+
+Participants are a random sample, so group inference rests on the between-participant variability of their
+first-level estimates. Every design runs on all regions at once (a region is a column).
+
+Examples
+--------
+>>> from roikit.stats import run_design
+>>> results = run_design(values, "one-sample", contrast="novel")          # doctest: +SKIP
+>>> results[["region", "estimate", "p", "p_holm", "effect_size"]]         # doctest: +SKIP
+"""
+
+from __future__ import annotations
+
+import os
+from typing import Sequence
+
+import numpy as np
+import pandas as pd
+
+from .._tables import read_table
+from .._typing import Seed
+from ..errors import UsageError
+from ._common import (
+    COLUMN_DESCRIPTIONS,
+    check_confidence,
+    check_values,
+    order_columns,
+)
+from ._registry import DESIGNS, PERMUTATIONS, available_designs, get_design, register
+from .corrections import CORRECTIONS, adjust, parse_corrections
+
+__all__ = ["run_design", "DESIGNS", "register", "available_designs", "COLUMN_DESCRIPTIONS"]
+
+
+def _participants_table(participants) -> pd.DataFrame | None:
+    if participants is None or isinstance(participants, pd.DataFrame):
+        return participants
+    if isinstance(participants, (str, os.PathLike)):
+        return read_table(participants, label_columns=("participant_id",))
+    raise UsageError(
+        f"participants must be a DataFrame or the path of participants.tsv, got {type(participants).__name__}"
+    )
+
+
+def _resolve_seed(seed: Seed) -> tuple[object, np.random.Generator]:
+    """(recorded seed, generator). ``None`` draws fresh entropy and records it so the run can be repeated."""
+    if isinstance(seed, np.random.Generator):
+        return "generator", seed
+    if seed is None:
+        entropy = int(np.random.SeedSequence().entropy % (2**63))
+        return entropy, np.random.default_rng(entropy)
+    if isinstance(seed, (bool, np.bool_)) or not isinstance(seed, (int, np.integer)) or seed < 0:
+        raise UsageError(f"seed must be a non-negative integer, a numpy Generator or None, got {seed!r}")
+    return int(seed), np.random.default_rng(int(seed))
+
+
+def run_design(
+    values: pd.DataFrame,
+    design: str,
+    *,
+    participants: pd.DataFrame | str | os.PathLike | None = None,
+    correct: str | Sequence[str] | None = ("holm", "fdr"),
+    permutations: int = 0,
+    seed: Seed = None,
+    confidence: float = 0.95,
+    **options,
+) -> pd.DataFrame:
+    """Run a group design on every region at once and correct across regions.
+
+    Parameters
+    ----------
+    values : DataFrame
+        Region values table (participant_id, [session_id], contrast, region, value, n_voxels, n_valid,
+        [variance]), as written by ``roikit extract``.
+    design : str
+        A registered design: ``one-sample``, ``paired``, ``two-group``, ``glm`` (and, when installed,
+        ``precision-weighted``, ``mixed``, ``fixed-effects``).
+    participants : DataFrame or path, optional
+        participants.tsv (keyed by participant_id), needed for groups and covariates.
+    correct : str or sequence of str
+        Corrections across regions within design and term: any of ``holm``, ``fdr`` (Benjamini-Hochberg),
+        ``bonferroni``. ``p_holm`` and ``p_fdr`` are always written; ``bonferroni`` adds ``p_bonferroni``.
+    permutations : int
+        Number of permutations for the max-statistic family-wise p (``p_fwe``); 0 for none. When the number of
+        distinct permutations is at most this, they are enumerated exactly.
+    seed : int, numpy Generator or None
+        Seed of the permutations; recorded in the ``seed`` column (drawn and recorded when None).
+    confidence : float
+        Confidence level of the intervals.
+    **options
+        Design options, as the command-line options in snake_case: contrast, versus, group, levels, welch,
+        formula, tau2, random, crossed.
+
+    Returns
+    -------
+    DataFrame
+        One row per region x term. Contract columns (region, design, term, n, estimate, se, df, statistic,
+        statistic_type, p, ci_low, ci_high, confidence, effect_size, effect_size_type, effect_size_ci_low,
+        effect_size_ci_high, p_holm, p_fdr, [p_fwe], [p_bonferroni]) followed by the choices and diagnostics
+        (contrast, versus, group_column, levels, formula, df_method, df1, family_size, correction, permutations,
+        seed, population_inference, excluded_ids, n_outliers, outlier_ids, shapiro_w, shapiro_p, n_low_coverage,
+        low_coverage_ids) and design-specific columns; see ``COLUMN_DESCRIPTIONS``.
+
+    Notes
+    -----
+    Corrections treat the regions of one design and term as the family; regions whose p is n/a are not counted
+    in ``family_size``. Holm and Benjamini-Hochberg are checked against statsmodels' ``multipletests``.
+    """
+    func = get_design(design)
+    confidence = check_confidence(confidence)
+    corrections = parse_corrections(correct)
+    if isinstance(permutations, (bool, np.bool_)) or not isinstance(permutations, (int, np.integer)) or permutations < 0:
+        raise UsageError(f"permutations must be a non-negative integer, got {permutations!r}")
+    permutations = int(permutations)
+    values = check_values(values)
+    participants = _participants_table(participants)
+    options = {k: v for k, v in options.items() if v is not None}
+
+    results = func(values, participants=participants, confidence=confidence, **options)
+    results = results.reset_index(drop=True)
+
+    # corrections across regions, per term (the design is constant within one call)
+    for column in ("p_holm", "p_fdr", "p_bonferroni"):
+        if column != "p_bonferroni" or "bonferroni" in corrections:
+            results[column] = np.nan
+    results["family_size"] = 0
+    for term, index in results.groupby("term", sort=False).groups.items():
+        p = results.loc[index, "p"].to_numpy(float)
+        results.loc[index, "family_size"] = int(np.sum(~np.isnan(p)))
+        results.loc[index, "p_holm"] = adjust(p, "holm")
+        results.loc[index, "p_fdr"] = adjust(p, "fdr")
+        if "bonferroni" in corrections:
+            results.loc[index, "p_bonferroni"] = adjust(p, "bonferroni")
+    applied = [c for c in CORRECTIONS if c in corrections]
+    if permutations:
+        applied.append("permutation-fwe")
+    results["correction"] = ",".join(applied) if applied else "none"
+
+    if permutations:
+        permute = PERMUTATIONS.get(design)
+        if permute is None:
+            raise UsageError(
+                f"design {design!r} does not support permutations; use permutations=0 (drop --permutations) or one "
+                f"of: {', '.join(d for d in available_designs() if d in PERMUTATIONS)}"
+            )
+        recorded_seed, rng = _resolve_seed(seed)
+        out = permute(values, participants=participants, permutations=permutations, rng=rng, **options)
+        results["p_fwe"] = np.nan
+        for term, index in results.groupby("term", sort=False).groups.items():
+            if term in out:
+                results.loc[index, "p_fwe"] = np.asarray(out[term], dtype=float)
+        results["permutations"] = int(out["_n_permutations"])
+        results["permutation_exact"] = bool(out["_exact"])
+        results["permutation_scheme"] = out.get("_scheme")
+        results["seed"] = None if out["_exact"] else recorded_seed
+    else:
+        results["permutations"] = 0
+    results["design"] = design
+    return order_columns(results)
+
