@@ -12,13 +12,14 @@ step of Fisher scoring is a batched matrix operation.
 from __future__ import annotations
 
 import warnings
-from typing import Literal
+from typing import Literal, Sequence
 
 import numpy as np
 import pandas as pd
 from scipy import stats as _st
 
-from ..errors import DesignError, DiagnosticWarning, UsageError
+from ..errors import ConvergenceError, DesignError, DiagnosticWarning, UsageError
+from ._registry import register
 
 __all__ = ["fit_precision_weighted", "precision_weighted", "TAU2_METHODS"]
 
@@ -256,3 +257,255 @@ def fit_precision_weighted(
         "df": df, "k": k, "tau2": tau2, "i2": i2, "q": q, "q_df": q_df, "q_p": q_p,
         "v_typical": v_typical, "boundary": boundary, "converged": converged,
     }
+
+
+# --------------------------------------------------------------------------- formulas (shared with mixed)
+def _formula_rhs(formula: str, *, parameter: str = "formula") -> str:
+    """Right-hand side of ``'value ~ rhs'`` (or of a bare ``'rhs'``); the left-hand side must be ``value``."""
+    if not isinstance(formula, str) or not formula.strip():
+        raise UsageError(f"{parameter}: expected a formula such as 'value ~ age + group', got {formula!r}")
+    if "~" in formula:
+        lhs, rhs = formula.split("~", 1)
+        if lhs.strip() not in ("", "value"):
+            raise UsageError(
+                f"{parameter}: the left-hand side must be 'value' (the region values column), found "
+                f"{lhs.strip()!r}; write e.g. 'value ~ {rhs.strip()}'"
+            )
+    else:
+        rhs = formula
+    if not rhs.strip():
+        raise UsageError(f"{parameter}: empty right-hand side in {formula!r}; write e.g. 'value ~ 1'")
+    return rhs.strip()
+
+
+def _required_variables(rhs: str, *, parameter: str = "formula") -> list[str]:
+    import formulaic
+
+    try:
+        return sorted(str(v) for v in formulaic.Formula(rhs).required_variables)
+    except Exception as exc:  # formulaic raises several parser errors
+        raise UsageError(f"{parameter}: cannot parse {rhs!r} ({exc}); write e.g. 'value ~ age + group'") from None
+
+
+def _centre_numeric(frame: pd.DataFrame, variables: Sequence[str]) -> tuple[pd.DataFrame, list[str]]:
+    """Mean-centre the numeric (non-boolean) variables; return the frame and the names centred."""
+    frame = frame.copy()
+    centred = []
+    for name in variables:
+        col = frame[name]
+        if pd.api.types.is_numeric_dtype(col) and not pd.api.types.is_bool_dtype(col):
+            frame[name] = col.astype(float) - col.astype(float).mean()
+            centred.append(name)
+    return frame, centred
+
+
+def _design_matrix(rhs: str, frame: pd.DataFrame, *, parameter: str = "formula"):
+    """Model matrix (ndarray), column names and term -> column indices for ``rhs`` on ``frame``."""
+    import formulaic
+
+    try:
+        mm = formulaic.model_matrix(rhs, frame, na_action="raise")
+    except Exception as exc:
+        raise DesignError(f"{parameter}: cannot build the model matrix of {rhs!r} ({exc}); check the column "
+                          "names and that categorical columns have at least two levels") from None
+    names = [str(c) for c in mm.columns]
+    terms = {str(t): list(idx) for t, idx in mm.model_spec.term_indices.items()}
+    return mm.to_numpy(dtype=float), names, terms
+
+
+def _participant_frame(ids, participants, variables, *, context):
+    """participants.tsv columns named in a formula, aligned to ``ids``; ids with a missing covariate listed."""
+    from ._common import join_participants
+
+    frame = join_participants(ids, participants, variables)
+    for name in variables:
+        col = frame[name]
+        numeric = pd.to_numeric(col, errors="coerce")
+        if col.notna().sum() and numeric.notna().sum() == col.notna().sum():
+            frame[name] = numeric.astype(float)
+        else:
+            frame[name] = col.astype(object).where(col.notna(), None)
+    missing = frame.isna().any(axis=1)
+    return frame, [str(i) for i in frame.index[missing.to_numpy()]]
+
+
+# --------------------------------------------------------------------------- the design
+_EXTRA_DESCRIPTIONS = {
+    "tau2_method": "estimator of tau2: reml, ml, dl (DerSimonian-Laird, truncated at 0) or pm (Paule-Mandel)",
+    "q": "Cochran's Q (fixed-effect weights 1/v) on k - p df",
+    "q_p": "p-value of Q (chi-square)",
+    "boundary": "true where the estimate of the between-participant variance is at its boundary (0)",
+    "converged": "true where the iterative fit converged",
+}
+
+
+@register("precision-weighted")
+def precision_weighted(
+    values: pd.DataFrame,
+    *,
+    participants: pd.DataFrame | None = None,
+    confidence: float = 0.95,
+    contrast: str | None = None,
+    formula: str | None = None,
+    tau2: Tau2Method = "reml",
+    df_method: Literal["knapp-hartung", "z"] = "knapp-hartung",
+    center: bool = True,
+) -> pd.DataFrame:
+    """Precision-weighted two-level design: first-level variances known, between-participant variance estimated.
+
+    Parameters
+    ----------
+    values : DataFrame
+        Region values table with a ``variance`` column (extract with ``--variance``).
+    participants : DataFrame, optional
+        participants.tsv, needed when ``formula`` names its columns.
+    confidence : float
+        Level of the confidence intervals.
+    contrast : str
+        The contrast to test.
+    formula : str, optional
+        Meta-regression on participants.tsv columns, e.g. ``"value ~ age + group"``; numeric covariates are
+        mean-centred (``center=False`` keeps them raw), so the intercept is the mean at the average covariate.
+        Without a formula the model is intercept-only and the single row has term ``mean``.
+    tau2 : {"reml", "ml", "dl", "pm"}
+        Estimator of the between-participant variance: restricted maximum likelihood (default), maximum
+        likelihood, DerSimonian-Laird (truncated at 0), Paule-Mandel.
+    df_method : {"knapp-hartung", "z"}
+        Knapp-Hartung t on n - p df (default, for small samples) or Wald z.
+    center : bool
+        Mean-centre numeric covariates of ``formula``.
+
+    Returns
+    -------
+    DataFrame
+        One row per region x coefficient with the contract's columns (region, design, term, n, estimate, se,
+        df, statistic, statistic_type, p, ci_low, ci_high, confidence, effect_size, effect_size_type,
+        effect_size_ci_low, effect_size_ci_high) and the common ones (contrast, formula, df_method, ...,
+        excluded_ids), plus ``tau2``, ``i2`` (percent), ``q``, ``q_p``, ``tau2_method``, ``boundary``,
+        ``converged``, ``centered``.
+
+    Notes
+    -----
+    Model per region: ``y_i = x_i b + u_i + e_i``, ``u_i ~ N(0, tau2)``, ``e_i ~ N(0, v_i)``; see
+    :func:`fit_precision_weighted` for the estimators and checks (BCG vaccine example of Viechtbauer 2010;
+    equal variances reduce to ``scipy.stats.ttest_1samp``).
+
+    Effect size: for the intercept-only model ``d_total = b / sqrt(tau2 + v_typical)``, the mean over the
+    model-implied SD of one participant's value (between-participant plus typical first-level variance,
+    ``v_typical`` as in I2). With equal first-level variances and tau2 > 0 it equals the one-sample ``d``
+    (REML then gives ``tau2 + v = SD^2``). It has no interval here (n/a). For meta-regression coefficients no
+    standardised effect is well defined without further choices, so ``effect_size`` and ``effect_size_type``
+    are n/a.
+
+    Examples
+    --------
+    >>> from roikit.stats import run_design
+    >>> run_design(values, "precision-weighted", contrast="novel", tau2="reml")   # doctest: +SKIP
+    """
+    from ._common import (check_minimum_n, join_ids, low_coverage, missing_by_region, pivot_contrast,
+                          region_order, result_rows, warn_exclusions, warn_low_coverage)
+    from .diagnostics import residual_diagnostics, warn_diagnostics
+
+    context = "precision-weighted"
+    if "variance" not in values.columns:
+        raise DesignError(
+            "precision-weighted: the region values table has no 'variance' column; this design needs the "
+            "first-level variances; extract with --variance PATTERN (variance maps) or use the one-sample design"
+        )
+    tau2 = str(tau2).strip().lower()
+    if "," in tau2:
+        raise UsageError(f"tau2: choose one estimator, got {tau2!r}; expected one of reml, ml, dl, pm "
+                         "(run the design once per estimator to compare them)")
+    if tau2 not in TAU2_METHODS:
+        raise UsageError(f"tau2: found {tau2!r}, expected one of reml, ml, dl, pm; fix: --tau2 reml")
+    if df_method not in ("knapp-hartung", "z"):
+        raise UsageError(f"df_method: found {df_method!r}, expected 'knapp-hartung' (default) or 'z'")
+    regions = region_order(values)
+    Y = pivot_contrast(values, contrast, regions=regions)
+    Vdf = pivot_contrast(values, contrast, column="variance", regions=regions)
+    ids = [str(i) for i in Y.index]
+    bad = np.argwhere(np.isfinite(Vdf.to_numpy()) & ~(Vdf.to_numpy() > 0))
+    if bad.size:
+        listed = ", ".join(f"{ids[i]} in {regions[j]} ({Vdf.iat[i, j]:g})" for i, j in bad[:5])
+        raise DesignError(
+            f"precision-weighted: non-positive first-level variance(s) for {len(bad)} participant-region value(s): "
+            f"{listed}{' ...' if len(bad) > 5 else ''}; variances must be > 0; check the variance maps"
+        )
+    y = Y.to_numpy(float)
+    v = Vdf.to_numpy(float)
+    mask = np.isfinite(y) & np.isfinite(v)
+
+    centred: list[str] = []
+    if formula is None:
+        X = np.ones((len(ids), 1))
+        names, formula_text = ["mean"], None
+    else:
+        rhs = _formula_rhs(formula)
+        variables = [c for c in _required_variables(rhs) if c != "value"]
+        if variables:
+            frame, miss_cov = _participant_frame(ids, participants, variables, context=context)
+        else:
+            frame, miss_cov = pd.DataFrame(index=ids), []
+        if miss_cov:
+            warn_exclusions(regions, [miss_cov] * len(regions), context=context,
+                            reason=f"covariate of the formula missing ({', '.join(variables)})")
+        keep = ~frame.index.isin(miss_cov)
+        frame_keep = frame[keep].reset_index(drop=True)
+        if center:
+            frame_keep, centred = _centre_numeric(frame_keep, variables)
+        Xk, names, _terms = _design_matrix(rhs, frame_keep)
+        X = np.zeros((len(ids), Xk.shape[1]))
+        X[keep] = Xk
+        mask &= keep[:, None]
+        formula_text = f"value ~ {rhs}"
+    p = X.shape[1]
+    k = mask.sum(0)
+    excluded = [[ids[i] for i in np.flatnonzero(~mask[:, j])] for j in range(len(regions))]
+    value_missing = [[ids[i] for i in np.flatnonzero(~(np.isfinite(y[:, j]) & np.isfinite(v[:, j])))]
+                     for j in range(len(regions))]
+    warn_exclusions(regions, value_missing, context=context, reason="value or variance missing")
+    check_minimum_n(k, regions, minimum=p + 2, context=context)
+    xtx = np.einsum("nr,np,nq->rpq", mask.astype(float), X, X)
+    rank = np.linalg.matrix_rank(xtx)
+    if np.any(rank < p):
+        bad_r = [regions[j] for j in np.flatnonzero(rank < p)]
+        raise DesignError(f"precision-weighted: the formula {formula_text!r} is not estimable (collinear or constant "
+                          f"predictors) in region(s) {', '.join(bad_r[:10])}; simplify the formula")
+
+    fit = fit_precision_weighted(y, v, X, mask=mask, tau2_method=tau2, test=df_method, confidence=confidence)
+    if not fit["converged"].all():
+        bad_r = [regions[j] for j in np.flatnonzero(~fit["converged"])]
+        raise ConvergenceError(f"precision-weighted: Fisher scoring for tau2 ({tau2}) did not converge in region(s) "
+                               f"{', '.join(bad_r[:10])}; try tau2='dl' or tau2='pm'")
+
+    resid = np.where(mask, (np.where(mask, y, 0) - X @ fit["b"].T) / np.sqrt(np.where(mask, v, 1) + fit["tau2"]),
+                     np.nan)
+    diag = residual_diagnostics(resid, ids)
+    coverage = low_coverage(values, contrast, regions=regions, ids=ids)
+    warn_low_coverage(regions, coverage, context=context)
+    frames = []
+    for c, name in enumerate(names):
+        if formula is None:
+            es = fit["b"][:, 0] / np.sqrt(fit["tau2"] + fit["v_typical"])
+            es_type = "d_total"
+        else:
+            es, es_type = np.nan, None
+        frames.append(result_rows(
+            regions, design="precision-weighted", term=name, confidence=confidence, n=k.astype(int),
+            estimate=fit["b"][:, c], se=fit["se"][:, c], df=fit["df"], statistic=fit["statistic"][:, c],
+            statistic_type="t" if df_method == "knapp-hartung" else "z", p=fit["p"][:, c],
+            ci_low=fit["ci_low"][:, c], ci_high=fit["ci_high"][:, c], effect_size=es, effect_size_type=es_type,
+            contrast=str(contrast), formula=formula_text, df_method=df_method, population_inference=True,
+            excluded_ids=[join_ids(e) for e in excluded], n_low_coverage=[len(cv) for cv in coverage],
+            low_coverage_ids=[join_ids(cv) for cv in coverage], **diag,
+            tau2=fit["tau2"], i2=fit["i2"], q=fit["q"], q_p=fit["q_p"], tau2_method=tau2,
+            boundary=fit["boundary"], converged=fit["converged"], centered=",".join(centred) if centred else None,
+        ))
+    out = pd.concat(frames, ignore_index=True)
+    if fit["boundary"].any():
+        n_b = int(fit["boundary"].sum())
+        warnings.warn(f"{context}: the between-participant variance tau2 is estimated at 0 (boundary) in {n_b} "
+                      f"region(s): {', '.join(r for r, b in zip(regions, fit['boundary']) if b)}; the test then "
+                      "weights participants by their first-level precision only", DiagnosticWarning, stacklevel=3)
+    warn_diagnostics(out, context=context)
+    return out
