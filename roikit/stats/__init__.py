@@ -29,6 +29,7 @@ from ._common import (
 )
 from ._registry import DESIGNS, PERMUTATIONS, available_designs, get_design, register
 from .corrections import CORRECTIONS, adjust, parse_corrections
+from . import designs  # noqa: F401 - registers one-sample, paired, two-group, glm
 
 __all__ = ["run_design", "DESIGNS", "register", "available_designs", "COLUMN_DESCRIPTIONS"]
 

@@ -233,7 +233,7 @@ def pivot_contrast(
     column : str
         Column to pivot (``value``, ``variance``, ``n_valid`` ...).
     regions : sequence of str, optional
-        Column order; default the regions of the whole table in order of first appearance.
+        Column order; default the regions this contrast has, in the table's order of first appearance.
 
     Returns
     -------
@@ -253,7 +253,8 @@ def pivot_contrast(
         )
     _single_session(sub, contrast)
     if regions is None:
-        regions = region_order(values)
+        present = set(sub["region"])
+        regions = [r for r in region_order(values) if r in present]
     dup = sub.duplicated(["participant_id", "region"], keep=False)
     if dup.any():
         first = sub[dup].iloc[0]
