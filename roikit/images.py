@@ -102,7 +102,8 @@ class Grid:
     @property
     def voxel_volume(self) -> float:
         """Volume of one voxel in mm3 (absolute determinant of the affine's 3x3 part)."""
-        return float(abs(np.linalg.det(self.affine[:3, :3])))
+        a, b, c = self.affine[:3, :3].T  # triple product: exact for axis-aligned affines, unlike an LU determinant
+        return float(abs(np.dot(a, np.cross(b, c))))
 
     def voxel_to_world(self, ijk) -> np.ndarray:
         """World mm of voxel indices, shape (..., 3)."""
@@ -226,16 +227,15 @@ def read_header(path) -> MapHeader:
     path = _check_file(path)
     img = _nib_load(path)
     grid, n_vol = _spatial(img, path)
-    hdr = img.header
-    slope, inter = hdr.get_slope_inter()
+    proxy = img.dataobj  # the array proxy knows the true data offset, type and scaling of the file
     return MapHeader(
         path=str(path),
         grid=grid,
         n_volumes=n_vol,
-        dtype=hdr.get_data_dtype(),
-        offset=int(hdr.get_data_offset()),
-        slope=1.0 if slope is None else float(slope),
-        inter=0.0 if inter is None else float(inter),
+        dtype=np.dtype(proxy.dtype),
+        offset=int(proxy.offset),
+        slope=float(proxy.slope),
+        inter=float(proxy.inter),
         compressed=str(path).endswith(".gz"),
     )
 
@@ -305,11 +305,9 @@ def _gunzip(raw: bytes, path, needed: int) -> bytes:
         out = lib.decompress(raw, 31, max(hint, needed, 1))
         if len(out) < needed:
             out = (_fast_gzip or gzip).decompress(raw)
-    except (zlib.error, OSError, EOFError) as exc:
+    except Exception as exc:  # zlib.error, EOFError, OSError, or isal's own IsalError
         kind = "truncated" if "truncated" in str(exc) or isinstance(exc, EOFError) else "corrupt"
         raise ImageFormatError(f"{path}: {kind} gzip data, cannot decompress ({exc})") from exc
-    except Exception as exc:  # isal raises its own IsalError (a subclass of OSError in recent versions)
-        raise ImageFormatError(f"{path}: corrupt gzip data, cannot decompress ({exc})") from exc
     return out
 
 

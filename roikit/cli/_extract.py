@@ -1,0 +1,62 @@
+"""`roikit extract`: per-participant region summaries of first-level maps."""
+
+from __future__ import annotations
+
+import argparse
+import sys
+
+from .._tables import check_output, sidecar_path
+from ..errors import UsageError
+from ..extraction import extract, find_maps, read_map_list, write_values
+from ._sources import add_region_options, region_set_from_args
+
+
+def add_parser(subparsers) -> None:
+    p = subparsers.add_parser(
+        "extract", help="summarise every map over every region into a region values table",
+        description="Read each first-level map once and summarise it over every region. Writes the region values "
+                    "table (TSV, n/a for missing) and a JSON sidecar with column descriptions and provenance.")
+    p.add_argument("--maps", metavar="PATTERN",
+                   help="path pattern with {subject}, optional {session}, and {contrast}, e.g. "
+                        "'maps/sub-{subject}_contrast-{contrast}_effect.nii.gz'")
+    p.add_argument("--map-list", metavar="TSV",
+                   help="instead of --maps: a table of participant_id, contrast, [session_id], path, "
+                        "[variance_path], [volume]")
+    p.add_argument("--variance", metavar="PATTERN", help="path pattern of the matching variance maps")
+    add_region_options(p)
+    p.add_argument("--out", required=True, metavar="VALUES.tsv", help="output table")
+    p.add_argument("--statistic", choices=["mean", "median", "trimmed-mean", "weighted-mean"], default="mean",
+                   help="summary over a region's valid voxels (default mean; trimmed-mean cuts 20%% per end; "
+                        "weighted-mean weights probability regions by probability)")
+    p.add_argument("--keep-zeros", action="store_true",
+                   help="treat voxels exactly 0 as data (default: as missing, as many packages write 0 outside "
+                        "their analysis mask)")
+    p.add_argument("--jobs", type=int, default=1, metavar="N", help="worker processes (default 1)")
+    p.add_argument("--quiet", action="store_true", help="no progress bar or summary")
+    p.add_argument("--overwrite", action="store_true", help="replace existing output files")
+    p.set_defaults(func=run)
+
+
+def run(args: argparse.Namespace) -> int:
+    if args.jobs < 1:
+        raise UsageError(f"--jobs must be at least 1, got {args.jobs}")
+    check_output(args.out, overwrite=args.overwrite)
+    check_output(sidecar_path(args.out), overwrite=args.overwrite)
+    if (args.maps is None) == (args.map_list is None):
+        raise UsageError("give exactly one of --maps PATTERN or --map-list TSV")
+    regions = region_set_from_args(args)
+    if args.maps is not None:
+        maps = find_maps(args.maps, variance=args.variance)
+    else:
+        if args.variance:
+            raise UsageError("--variance goes with --maps; with --map-list give a variance_path column")
+        maps = read_map_list(args.map_list)
+    values = extract(maps, regions, statistic=args.statistic, keep_zeros=args.keep_zeros, n_jobs=args.jobs,
+                     progress=False if args.quiet else None)
+    path = write_values(args.out, values, overwrite=args.overwrite)
+    if not args.quiet:
+        n_missing = int(values["value"].isna().sum())
+        sys.stderr.write(
+            f"roikit extract: {len(maps)} maps x {values['region'].nunique()} regions -> {path} "
+            f"({len(values)} rows, {n_missing} n/a)\n")
+    return 0

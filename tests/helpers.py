@@ -1,0 +1,21 @@
+"""Helpers shared by the tests: tiny synthetic NIfTI files with answers known by construction."""
+
+from __future__ import annotations
+
+import nibabel as nib
+import numpy as np
+
+#: A small grid, 2 mm voxels, x flipped as in MNI space (common practice).
+SMALL_AFFINE = np.array([[-2.0, 0, 0, 20.0], [0, 2.0, 0, -24.0], [0, 0, 2.0, -18.0], [0, 0, 0, 1]])
+SMALL_SHAPE = (20, 24, 18)
+
+# MNI152 2 mm template grid (common practice, from memory): 91 x 109 x 91, diag(-2, 2, 2), origin (90, -126, -72).
+MNI2_AFFINE = np.array([[-2.0, 0, 0, 90], [0, 2, 0, -126], [0, 0, 2, -72], [0, 0, 0, 1]])
+MNI2_SHAPE = (91, 109, 91)
+
+
+def save_nifti(path, data, affine=SMALL_AFFINE, dtype=np.float32):
+    img = nib.Nifti1Image(np.asarray(data, dtype=dtype), affine)
+    img.header.set_data_dtype(dtype)
+    nib.save(img, str(path))
+    return path
