@@ -1,0 +1,85 @@
+"""The `roikit extract` and `roikit regions` commands, run as a user would."""
+
+import json
+import subprocess
+import sys
+
+import numpy as np
+import pandas as pd
+import pytest
+
+from roikit.cli import main
+
+from helpers import save_nifti
+
+
+def _sources(study):
+    return ["--atlas", str(study["atlas"]), "--labels", str(study["labels"])]
+
+
+def test_extract_writes_the_contract_table_and_sidecar(tiny_study, tmp_path, capsys):
+    out = tmp_path / "values.tsv"
+    code = main(["extract", "--maps", tiny_study["pattern"], "--variance", tiny_study["variance"],
+                 *_sources(tiny_study), "--sphere", "prior peak=0,0,0,5", "--out", str(out), "--quiet"])
+    assert code == 0
+    table = pd.read_csv(out, sep="\t", dtype={"participant_id": str}, na_values="n/a", keep_default_na=False)
+    assert list(table.columns) == ["participant_id", "contrast", "region", "value", "n_voxels", "n_valid", "variance"]
+    assert len(table) == 4 * 2 * 4
+    assert table["region"].unique().tolist() == ["right caudate", "left caudate", "retrosplenial cortex", "prior peak"]
+    side = json.loads(out.with_suffix(".json").read_text())
+    assert side["provenance"]["statistic"] == "mean"
+    assert {r["region"] for r in side["provenance"]["regions"]} == set(table["region"])
+    assert all(len(i["sha256"]) == 64 for i in side["provenance"]["inputs"])
+
+
+def test_extract_refuses_to_overwrite_and_reports_one_line(tiny_study, tmp_path, capsys):
+    out = tmp_path / "values.tsv"
+    args = ["extract", "--maps", tiny_study["pattern"], *_sources(tiny_study), "--out", str(out), "--quiet"]
+    assert main(args) == 0
+    capsys.readouterr()
+    assert main(args) == 1
+    err = capsys.readouterr().err
+    assert err.count("\n") == 1 and "file exists; pass --overwrite" in err
+    assert main(args + ["--overwrite"]) == 0
+
+
+@pytest.mark.parametrize("args, code, message", [
+    (["--maps", "nowhere/sub-{subject}_{contrast}.nii.gz", "--sphere", "s=0,0,0,4"], 1, "matched no file"),
+    (["--maps", "x/{contrast}.nii.gz", "--sphere", "s=0,0,0,4"], 2, "no {subject} placeholder"),
+    (["--maps", "{pattern}", "--sphere", "bad=1,2,3"], 2, "expected NAME=X,Y,Z,RADIUS"),
+    (["--maps", "{pattern}", "--sphere", "far=900,0,0,5"], 1, "no voxel on the maps' grid"),
+    (["--maps", "{pattern}", "--atlas", "{atlas}"], 2, "--atlas and --labels go together"),
+    (["--maps", "{pattern}", "--mask", "m={root}/missing.nii.gz"], 1, "missing.nii.gz: file not found"),
+    (["--maps", "{pattern}", "--sphere", "s=0,0,0,4", "--jobs", "0"], 2, "--jobs must be at least 1"),
+    (["--sphere", "s=0,0,0,4"], 2, "exactly one of --maps PATTERN or --map-list"),
+])
+def test_extract_errors_are_one_clear_line(tiny_study, tmp_path, capsys, args, code, message):
+    fill = {"pattern": tiny_study["pattern"], "atlas": str(tiny_study["atlas"]), "root": str(tiny_study["root"])}
+    args = [fill[a[1:-1]] if a in ("{pattern}", "{atlas}") else a.replace("{root}", fill["root"]) for a in args]
+    assert main(["extract", *args, "--out", str(tmp_path / "v.tsv"), "--quiet"]) == code
+    err = capsys.readouterr().err.strip().splitlines()
+    assert len(err) == 1 and message in err[0] and err[0].startswith("roikit extract: error:")
+
+
+def test_regions_lists_name_voxels_volume_and_centre(tiny_study, tmp_path, capsys):
+    assert main(["regions", *_sources(tiny_study), "--sphere", "prior peak=0,0,0,5"]) == 0
+    out = capsys.readouterr().out
+    assert "4 regions on shape 20x24x18" in out
+    assert "right caudate" in out and "640.0" in out and "prior peak" in out
+    assert main(["regions", "--sphere", "prior peak=0,0,0,5"]) == 2  # spheres alone have no grid
+    assert "give --like MAP" in capsys.readouterr().err
+    like = tiny_study["maps"][("sub-01", "novel")][0]
+    assert main(["regions", "--sphere", "prior peak=0,0,0,5", "--like", str(like), "--out",
+                 str(tmp_path / "r.tsv")]) == 0
+    table = pd.read_csv(tmp_path / "r.tsv", sep="\t")
+    assert table.loc[0, "n_voxels"] == 81 and table.loc[0, ["x_mm", "y_mm", "z_mm"]].tolist() == [0, 0, 0]
+
+
+def test_console_script_entry_point_runs(tiny_study, tmp_path):
+    # the installed command, in a subprocess, as a user would call it
+    result = subprocess.run([sys.executable, "-m", "roikit", "regions", *_sources(tiny_study)],
+                            capture_output=True, text=True, check=False)
+    assert result.returncode == 0, result.stderr
+    assert "retrosplenial cortex" in result.stdout
+    bad = subprocess.run([sys.executable, "-m", "roikit", "extract", "--out", "x.tsv", "--bogus"], capture_output=True, text=True)
+    assert bad.returncode == 2 and "unrecognized arguments" in bad.stderr
