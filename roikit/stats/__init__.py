@@ -12,6 +12,7 @@ Examples
 
 from __future__ import annotations
 
+import inspect
 import os
 from typing import Sequence
 
@@ -42,6 +43,29 @@ def _participants_table(participants) -> pd.DataFrame | None:
     raise UsageError(
         f"participants must be a DataFrame or the path of participants.tsv, got {type(participants).__name__}"
     )
+
+
+def _check_options(func, design: str, options: dict) -> None:
+    """Raise :class:`UsageError` for an option the design does not take (named as on the command line)."""
+    parameters = inspect.signature(func).parameters
+    required = [n for n, p in parameters.items() if p.kind is inspect.Parameter.KEYWORD_ONLY
+                and p.default is inspect.Parameter.empty and n not in ("participants", "confidence")]
+    lacking = [n for n in required if n not in options]
+    if lacking:
+        raise UsageError(
+            f"design {design!r} needs {', '.join(n + '=' for n in lacking)} "
+            f"({', '.join('--' + n.replace('_', '-') for n in lacking)}); none was given"
+        )
+    if any(p.kind is inspect.Parameter.VAR_KEYWORD for p in parameters.values()):
+        return
+    accepted = [n for n, p in parameters.items() if p.kind is inspect.Parameter.KEYWORD_ONLY
+                and n not in ("participants", "confidence")]
+    unknown = [k for k in options if k not in accepted]
+    if unknown:
+        raise UsageError(
+            f"option(s) {', '.join('--' + k.replace('_', '-') for k in unknown)} do not apply to design {design!r}; "
+            f"it takes {', '.join('--' + k.replace('_', '-') for k in accepted) or 'no options'}"
+        )
 
 
 def _resolve_seed(seed: Seed) -> tuple[object, np.random.Generator]:
@@ -117,6 +141,7 @@ def run_design(
     values = check_values(values)
     participants = _participants_table(participants)
     options = {k: v for k, v in options.items() if v is not None}
+    _check_options(func, design, options)
 
     results = func(values, participants=participants, confidence=confidence, **options)
     results = results.reset_index(drop=True)

@@ -1,0 +1,102 @@
+"""`roikit stats`: group statistics across regions from a region values table."""
+
+from __future__ import annotations
+
+import argparse
+import sys
+from pathlib import Path
+
+from .. import __version__
+from .._tables import check_output, read_table, sha256_file, sidecar_path, write_table
+from ..errors import UsageError
+from ..stats import COLUMN_DESCRIPTIONS, available_designs, run_design
+
+#: Command-line design options, passed to the design in snake_case when given.
+_DESIGN_OPTIONS = ("contrast", "versus", "group", "levels", "welch", "formula", "tau2", "random", "crossed")
+
+
+def add_parser(subparsers) -> None:
+    p = subparsers.add_parser(
+        "stats",
+        help="group statistics (one-sample, paired, two-group, glm, ...) for every region",
+        description="Test a group design in every region of a region values table at once, correct across "
+        "regions within each design and term, and write RESULTS.tsv with a JSON sidecar describing every "
+        "column, the options, the seed and the SHA-256 of the inputs. Designs: " + ", ".join(available_designs()),
+    )
+    p.add_argument("values", metavar="VALUES.tsv", help="region values table written by `roikit extract`")
+    p.add_argument("--design", required=True, metavar="DESIGN", help="one of: " + ", ".join(available_designs()))
+    g = p.add_argument_group("design options")
+    g.add_argument("--contrast", metavar="C", help="contrast tested (paired: the first, A)")
+    g.add_argument("--versus", metavar="B", help="paired: the contrast subtracted (term 'A - B')")
+    g.add_argument("--group", metavar="COLUMN", help="two-group: participants.tsv column holding the groups")
+    g.add_argument("--levels", metavar="L1,L2", help="two-group: the two levels compared (term 'L1 - L2')")
+    g.add_argument("--welch", action="store_true", help="two-group: Welch's unequal-variance t-test")
+    g.add_argument("--formula", metavar="FORMULA", help="model formula, e.g. \"value ~ age + group\"")
+    g.add_argument("--tau2", metavar="METHOD", help="precision-weighted: between-participant variance estimator "
+                   "(reml, ml, dl, pm)")
+    g.add_argument("--random", metavar="TERMS", help="mixed: random terms per participant, e.g. \"1 + contrast\"")
+    g.add_argument("--crossed", metavar="COLUMN", help="mixed: crossed random intercept for this column")
+    p.add_argument("--participants", metavar="participants.tsv", help="participants table (groups, covariates)")
+    p.add_argument("--out", required=True, metavar="RESULTS.tsv", help="output table")
+    p.add_argument("--correct", default="holm,fdr", metavar="LIST",
+                   help="corrections across regions: comma-separated holm, fdr, bonferroni (default holm,fdr)")
+    p.add_argument("--permutations", type=int, default=0, metavar="N",
+                   help="permutations for the max-statistic family-wise p (p_fwe); default 0 (none)")
+    p.add_argument("--seed", type=int, default=None, metavar="S", help="seed of the permutations (recorded)")
+    p.add_argument("--confidence", type=float, default=0.95, metavar="LEVEL", help="confidence level (0.95)")
+    p.add_argument("--overwrite", action="store_true", help="replace existing output files")
+    p.set_defaults(func=run)
+
+
+def run(args: argparse.Namespace) -> int:
+    out = check_output(args.out, overwrite=args.overwrite)
+    check_output(sidecar_path(out), overwrite=args.overwrite)
+    if args.design not in available_designs():
+        raise UsageError(f"--design {args.design!r} is not available; expected one of: {', '.join(available_designs())}")
+    if args.permutations < 0:
+        raise UsageError(f"--permutations must be 0 or more, got {args.permutations}")
+    values = read_table(args.values)
+    participants = (
+        read_table(args.participants, label_columns=("participant_id",)) if args.participants else None
+    )
+    options = {name: getattr(args, name) for name in _DESIGN_OPTIONS}
+    options = {k: v for k, v in options.items() if v is not None and v is not False}
+    results = run_design(
+        values,
+        args.design,
+        participants=participants,
+        correct=args.correct,
+        permutations=args.permutations,
+        seed=args.seed,
+        confidence=args.confidence,
+        **options,
+    )
+    extra = results.attrs.get("column_descriptions", {}) if isinstance(results.attrs, dict) else {}
+    columns = {c: extra.get(c, COLUMN_DESCRIPTIONS.get(c, "design-specific column (see roikit.stats)"))
+               for c in results.columns}
+    inputs = {"values": {"path": str(Path(args.values)), "sha256": sha256_file(args.values)}}
+    if args.participants:
+        inputs["participants"] = {"path": str(Path(args.participants)), "sha256": sha256_file(args.participants)}
+    seeds = results["seed"].dropna().unique().tolist() if "seed" in results.columns else []
+    sidecar = {
+        "description": f"roikit group results: design {args.design}, one row per region x term",
+        "columns": columns,
+        "options": {
+            "design": args.design,
+            **options,
+            "correct": args.correct,
+            "permutations": args.permutations,
+            "seed": seeds[0] if seeds else args.seed,
+            "confidence": args.confidence,
+        },
+        "inputs": inputs,
+        "software": {"roikit": __version__},
+        "note": "p_holm and p_fdr adjust across the regions of the same design and term (family_size). "
+        "For research group analysis, not for clinical decisions.",
+    }
+    path = write_table(out, results, sidecar=sidecar, overwrite=args.overwrite)
+    sys.stderr.write(
+        f"roikit stats: {args.design}, {results['region'].nunique()} regions x {results['term'].nunique()} term(s) "
+        f"-> {path}\n"
+    )
+    return 0
