@@ -22,6 +22,7 @@ Two readers share one contract:
 from __future__ import annotations
 
 import gzip
+import io
 import os
 import struct
 import zlib
@@ -204,13 +205,12 @@ def _nib_load(path: Path):
         raise ImageFormatError(f"{path}: not a NIfTI image ({exc})") from exc
     except (OSError, EOFError, zlib.error, gzip.BadGzipFile, ValueError) as exc:
         raise ImageFormatError(f"{path}: cannot read the image header; the file is corrupt or truncated ({exc})") from exc
-    if not isinstance(img, (nib.Nifti1Image, nib.Nifti2Image)):
+    if not isinstance(img, (nib.Nifti1Image, nib.Nifti2Image, nib.Nifti1Pair, nib.Nifti2Pair)):
         raise ImageFormatError(f"{path}: a {type(img).__name__}, not a NIfTI image; convert it to NIfTI (.nii/.nii.gz)")
     return img
 
 
-def _spatial(img, path) -> tuple[Grid, int]:
-    shape = img.shape
+def _spatial_shape(shape, affine, path) -> tuple[Grid, int]:
     if len(shape) == 3:
         n_vol = 1
     elif len(shape) == 4:
@@ -218,25 +218,74 @@ def _spatial(img, path) -> tuple[Grid, int]:
     elif len(shape) > 4 and all(s == 1 for s in shape[4:]):
         n_vol = shape[3]
     else:
-        raise ImageFormatError(f"{path}: image has shape {shape}; expected a 3D map or a 4D file of 3D volumes")
-    return Grid(shape[:3], img.affine), int(n_vol)
+        raise ImageFormatError(f"{path}: image has shape {tuple(shape)}; expected a 3D map or a 4D file of 3D volumes")
+    return Grid(shape[:3], affine), int(n_vol)
+
+
+def _spatial(img, path) -> tuple[Grid, int]:
+    return _spatial_shape(img.shape, img.affine, path)
+
+
+def _parse_header_bytes(path: Path):
+    """Parse a NIfTI-1/2 header from the first bytes of the file (decompressing only those); None if unsure."""
+    with open(path, "rb") as fh:
+        head = fh.read(1 << 16)
+    if head[:2] == b"\x1f\x8b":
+        try:
+            head = zlib.decompressobj(31).decompress(head, 544)
+        except zlib.error:
+            return None
+    if len(head) < 348:
+        return None
+    for cls, size in ((nib.Nifti1Header, 348), (nib.Nifti2Header, 540)):
+        for order in ("<", ">"):
+            if struct.unpack(order + "i", head[:4])[0] == size and len(head) >= size:
+                try:
+                    header = cls.from_fileobj(io.BytesIO(head[:size] + b"\x00" * 4), check=False)
+                except Exception:  # noqa: BLE001 - fall back to nibabel's full loader and its message
+                    return None
+                magic = bytes(header["magic"])
+                if magic in (b"n+1", b"n+2") or magic.startswith((b"n+1", b"n+2")):
+                    return header
+                return None
+    return None
 
 
 def read_header(path) -> MapHeader:
-    """Parse a NIfTI header (about 0.1 ms); no voxel data are read."""
+    """Parse a NIfTI header (about 0.1 ms); no voxel data are read.
+
+    Single-file NIfTI-1/2 headers are parsed from the file's first bytes (decompressing only
+    those); anything else (pairs of .hdr/.img, unusual files) goes through nibabel's loader.
+    """
     path = _check_file(path)
+    header = _parse_header_bytes(path)
+    if header is not None:
+        shape = header.get_data_shape()
+        grid, n_vol = _spatial_shape(shape, header.get_best_affine(), path)
+        slope, inter = header.get_slope_inter()
+        return MapHeader(
+            path=str(path),
+            grid=grid,
+            n_volumes=n_vol,
+            dtype=np.dtype(header.get_data_dtype()),
+            offset=int(header.get_data_offset()),
+            slope=1.0 if slope is None else float(slope),
+            inter=0.0 if inter is None else float(inter),
+            compressed=str(path).endswith(".gz"),
+        )
     img = _nib_load(path)
     grid, n_vol = _spatial(img, path)
     proxy = img.dataobj  # the array proxy knows the true data offset, type and scaling of the file
+    image_file = str(img.file_map["image"].filename or path)  # the .img of a .hdr/.img pair
     return MapHeader(
-        path=str(path),
+        path=image_file,
         grid=grid,
         n_volumes=n_vol,
         dtype=np.dtype(proxy.dtype),
         offset=int(proxy.offset),
         slope=float(proxy.slope),
         inter=float(proxy.inter),
-        compressed=str(path).endswith(".gz"),
+        compressed=image_file.endswith(".gz"),
     )
 
 

@@ -133,3 +133,19 @@ def test_resampling_onto_a_grid_with_flipped_x():
     shifted[0, 3] = 12.0
     got = resample_nearest(labels, src, Grid((5, 4, 3), shifted), fill=-1)
     assert (got[:2] == -1).all() and (got[2:] == labels[::-1][:3]).all()
+
+
+def test_header_pairs_and_fast_header_agree_with_nibabel(tmp_path):
+    # a .hdr/.img pair goes through nibabel's loader; its voxels are read from the .img file
+    data = np.random.default_rng(1).normal(size=(6, 7, 8)).astype(np.float32)
+    nib.save(nib.Nifti1Pair(data, SMALL_AFFINE), tmp_path / "pair.img")
+    h = read_header(tmp_path / "pair.hdr")
+    assert h.path.endswith("pair.img")
+    np.testing.assert_array_equal(read_flat(h), data.ravel(order="F"))
+    for name in ("anatomical.nii", "example4d.nii.gz", "example_nifti2.nii.gz", "standard.nii.gz"):
+        path = os.path.join(NIBABEL_DATA, name)
+        img = nib.load(path)
+        h = read_header(path)
+        # reference library: nibabel's own affine, shape and data type
+        np.testing.assert_allclose(h.grid.affine, img.affine)
+        assert h.grid.shape == img.shape[:3] and h.dtype == img.get_data_dtype()
