@@ -1,0 +1,880 @@
+"""Generator of the invented wayfinding study: first-level maps with known answers.
+
+Everything written here is invented. The study ("wayfinding study": younger and older adults
+learning routes through virtual towns), its participants, its maps and its atlas are made up
+for demonstrating and testing roikit; no real person or scan stands behind any number. The
+generating model is documented in ``demo/README.md`` and recorded, with every drawn value, in
+``ground_truth.json`` beside the data.
+
+Only numpy and nibabel are used to make the data, so the generator does not depend on the
+parts of roikit it is meant to test.
+"""
+
+from __future__ import annotations
+
+import gzip
+import os
+import shutil
+import tempfile
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import nibabel as nib
+import numpy as np
+import pandas as pd
+from scipy import ndimage
+
+from .. import __version__
+from .._tables import write_json, write_table
+from .._typing import PathLike, Seed
+from ..errors import OutputExistsError, UsageError
+
+__all__ = [
+    "DEFAULT_SEED",
+    "SHAPE",
+    "AFFINE",
+    "CONTRASTS",
+    "TOWNS",
+    "REGION_NAMES",
+    "PRIOR_PEAK",
+    "DemoStudy",
+    "make_study",
+    "study_toml",
+]
+
+#: Seed used by ``roikit demo`` unless ``--seed`` says otherwise.
+DEFAULT_SEED = 2024
+
+#: Voxel grid: 3 mm isotropic, MNI-like orientation; voxel (30, 42, 24) is world (0, 0, 0).
+SHAPE = (61, 73, 61)
+AFFINE = np.array(
+    [
+        [-3.0, 0.0, 0.0, 90.0],
+        [0.0, 3.0, 0.0, -126.0],
+        [0.0, 0.0, 3.0, -72.0],
+        [0.0, 0.0, 0.0, 1.0],
+    ]
+)
+#: Smoothness of the first-level noise (full width at half maximum, mm).
+FWHM_MM = 8.0
+
+TOWNS = tuple(f"town{k}" for k in range(1, 7))
+CONTRASTS = ("novel", "familiar", "novel-vs-familiar") + TOWNS
+GROUPS = ("younger", "older")
+
+#: Multiplier of a participant's reference first-level variance per contrast: ``novel`` and
+#: ``familiar`` carry the reference variance; each town holds a sixth of the novel-route trials
+#: (six times the variance, so that ``novel`` -- the mean of the six town maps -- has the reference
+#: variance); ``novel-vs-familiar`` is the difference of two independent maps.
+VARIANCE_MULTIPLIER = {"novel": 1.0, "familiar": 1.0, "novel-vs-familiar": 2.0, **{t: 6.0 for t in TOWNS}}
+
+# The brain: an ellipsoid (world mm), zeros outside.
+_BRAIN_CENTER = (0.0, -17.0, 10.0)
+_BRAIN_SEMI_AXES = (68.0, 86.0, 62.0)
+
+# Reference first-level variance (voxel variance of a novel or familiar map for a participant
+# with the typical head motion) and the typical head motion it refers to.
+_V0 = 0.10
+_FD0 = 0.15
+
+
+@dataclass(frozen=True)
+class _RegionSpec:
+    name: str
+    abbreviation: str
+    center: tuple[float, float, float]  # world mm (MNI-like; approximate, from memory)
+    semi_axes: tuple[float, float, float]  # mm
+    novel: tuple[float, float]  # population mean (younger, older)
+    familiar: tuple[float, float]
+    sd_between: float  # between-participant SD of novel and of familiar
+    sd_town: float  # SD of the town (item) effects on novel routes
+
+
+# Region centres are plausible MNI-like coordinates written from memory, rounded; they are
+# not taken from any atlas. Effects are in invented percent-signal-change units.
+_REGIONS = (
+    _RegionSpec("left hippocampus", "lHC", (-28, -22, -14), (6, 14, 6), (0.60, 0.40), (0.20, 0.20), 0.35, 0.15),
+    _RegionSpec("right hippocampus", "rHC", (28, -22, -14), (6, 14, 6), (0.65, 0.45), (0.20, 0.22), 0.35, 0.15),
+    _RegionSpec("left parahippocampal gyrus", "lPHG", (-24, -46, -10), (5, 8, 5), (0.55, 0.45), (0.30, 0.28),
+                0.35, 0.15),
+    _RegionSpec("right parahippocampal gyrus", "rPHG", (24, -46, -10), (5, 8, 5), (0.60, 0.48), (0.30, 0.28),
+                0.35, 0.15),
+    _RegionSpec("retrosplenial cortex", "RSC", (0, -52, 12), (10, 6, 8), (0.70, 0.60), (0.50, 0.45), 0.35, 0.15),
+    _RegionSpec("medial prefrontal cortex", "mPFC", (0, 48, 2), (10, 10, 10), (0.15, 0.10), (0.15, 0.10), 0.30,
+                0.10),
+    _RegionSpec("left caudate", "lCAU", (-13, 12, 10), (4, 9, 7), (0.15, 0.15), (0.45, 0.40), 0.30, 0.10),
+    _RegionSpec("right caudate", "rCAU", (13, 12, 10), (4, 9, 7), (0.15, 0.15), (0.45, 0.40), 0.30, 0.10),
+    _RegionSpec("primary visual cortex", "V1", (0, -88, 4), (12, 8, 10), (1.20, 1.00), (1.20, 1.00), 0.40, 0.25),
+)
+REGION_NAMES = tuple(r.name for r in _REGIONS)
+_MTL = ("left hippocampus", "right hippocampus", "left parahippocampal gyrus", "right parahippocampal gyrus")
+_HIPPOCAMPI = ("left hippocampus", "right hippocampus")
+
+#: The sphere at an invented coordinate "from an earlier study" (near the right hippocampus).
+PRIOR_PEAK = {"name": "prior peak", "center": (30.0, -20.0, -14.0), "radius": 6.0}
+
+# Correlations of the participant deviations: between novel and familiar in a region, and
+# between regions (0.3 in general, 0.6 within the medial temporal lobe, 0.5 between the caudates).
+_RHO_CONDITION = 0.5
+_RHO_REGION = 0.3
+_RHO_MTL = 0.6
+_RHO_CAUDATE = 0.5
+# Participant-by-town deviations (SD before centring within participant).
+_SD_PARTICIPANT_TOWN = 0.10
+
+# route_accuracy (%) = 78 - 10 [older] + 5 * h / sd_h + N(0, 4^2), clipped to [0, 100],
+# with h the participant's deviation of novel-vs-familiar averaged over both hippocampi.
+_ACCURACY = {"intercept": 78.0, "older": -10.0, "per_sd_hippocampal_effect": 5.0, "residual_sd": 4.0}
+
+# Planted problems.
+_DROPOUT_CENTER = (-28.0, -16.0, -24.0)  # left ventral anterior temporal lobe
+_DROPOUT_SEMI_AXES = (16.0, 18.0, 14.0)
+_OUTLIER_SDS = 6.0  # the outlier's novel response is shifted by this many between-participant SDs ...
+_OUTLIER_REGIONS = _MTL + ("retrosplenial cortex",)  # ... in these regions (the navigation network)
+_LARGE_VARIANCE_MULTIPLIER = 10.0
+_LARGE_VARIANCE_FD = 0.9
+
+
+# --------------------------------------------------------------------------------------------------
+# Geometry
+# --------------------------------------------------------------------------------------------------
+
+
+def _world_coordinates() -> np.ndarray:
+    """World mm of every voxel centre, shape (n_voxels, 3), flat in Fortran order."""
+    ijk = np.indices(SHAPE).reshape(3, -1, order="F").astype(float)
+    return (AFFINE[:3, :3] @ ijk + AFFINE[:3, 3:]).T
+
+
+def _inside_ellipsoid(xyz: np.ndarray, center, semi_axes) -> np.ndarray:
+    d = (xyz - np.asarray(center, float)) / np.asarray(semi_axes, float)
+    return np.einsum("ij,ij->i", d, d) <= 1.0
+
+
+def _variance_profile(xyz: np.ndarray) -> np.ndarray:
+    """Relative first-level variance by position: 0.8 dorsally rising to 1.4 ventrally."""
+    return 0.8 + 0.6 / (1.0 + np.exp((xyz[:, 2] + 10.0) / 8.0))
+
+
+def _kernel_1d(sigma: float) -> np.ndarray:
+    """The 1-D weights scipy.ndimage.gaussian_filter uses (its impulse response)."""
+    radius = int(4.0 * sigma + 0.5)
+    impulse = np.zeros(2 * radius + 1)
+    impulse[radius] = 1.0
+    return ndimage.gaussian_filter1d(impulse, sigma, mode="constant", truncate=4.0)
+
+
+@dataclass
+class _Geometry:
+    xyz: np.ndarray
+    brain: np.ndarray  # bool, flat
+    brain_index: np.ndarray  # flat indices of brain voxels
+    labels: np.ndarray  # int, flat (0 outside regions)
+    sphere: np.ndarray  # bool, flat
+    profile: np.ndarray  # relative variance per voxel, flat
+    dropout: np.ndarray  # bool, flat
+    sigma: float  # noise kernel SD in voxels
+    kernel: np.ndarray
+    unit_scale: float  # divide filtered white noise by this to get unit variance
+
+
+def _geometry() -> _Geometry:
+    xyz = _world_coordinates()
+    brain = _inside_ellipsoid(xyz, _BRAIN_CENTER, _BRAIN_SEMI_AXES)
+    labels = np.zeros(len(xyz), dtype=np.int16)
+    for k, spec in enumerate(_REGIONS, start=1):
+        inside = _inside_ellipsoid(xyz, spec.center, spec.semi_axes)
+        if (labels[inside] != 0).any() or not brain[inside].all() or not inside.any():  # pragma: no cover
+            raise RuntimeError(f"demo atlas: region {spec.name!r} overlaps another or leaves the brain")
+        labels[inside] = k
+    d = xyz - np.asarray(PRIOR_PEAK["center"])
+    sphere = np.einsum("ij,ij->i", d, d) <= PRIOR_PEAK["radius"] ** 2
+    sigma = FWHM_MM / np.sqrt(8.0 * np.log(2.0)) / abs(AFFINE[0, 0])
+    kernel = _kernel_1d(sigma)
+    return _Geometry(
+        xyz=xyz,
+        brain=brain,
+        brain_index=np.flatnonzero(brain),
+        labels=labels,
+        sphere=sphere,
+        profile=_variance_profile(xyz),
+        dropout=brain & _inside_ellipsoid(xyz, _DROPOUT_CENTER, _DROPOUT_SEMI_AXES),
+        sigma=sigma,
+        kernel=kernel,
+        unit_scale=float(np.sqrt(np.sum(kernel**2) ** 3)),
+    )
+
+
+def _noise_factor(geo: _Geometry, voxels: np.ndarray) -> float:
+    """Variance of the region mean of the smooth noise, per unit of reference variance.
+
+    ``c = (1/n^2) sum_a sum_b sqrt(s_a s_b) rho(a - b)`` over the region's voxels, with ``s`` the
+    relative variance profile and ``rho`` the noise autocorrelation (a product over axes of the
+    normalised autocorrelation of the 1-D kernel). Without smoothness ``c`` would be ``mean(s)/n``.
+    """
+    ijk = np.stack(np.unravel_index(voxels, SHAPE, order="F"), axis=1)
+    k = geo.kernel
+    acf = np.correlate(k, k, mode="full") / np.sum(k**2)  # lags -(m-1)..(m-1)
+    centre = len(k) - 1
+    lag = ijk[:, None, :] - ijk[None, :, :]
+    inside = np.abs(lag) <= centre
+    rho = np.where(inside.all(axis=2), np.prod(acf[np.clip(lag + centre, 0, 2 * centre)], axis=2), 0.0)
+    s = np.sqrt(geo.profile[voxels])
+    return float(s @ rho @ s) / len(voxels) ** 2
+
+
+# --------------------------------------------------------------------------------------------------
+# The two-level model: participants, their true regional responses
+# --------------------------------------------------------------------------------------------------
+
+
+def _planted_ids(n_per_group: int) -> dict[str, str]:
+    def pid(i):
+        return f"sub-{i + 1:02d}"
+
+    return {
+        "dropout": pid(6 if n_per_group > 6 else 0),
+        "large_variance": pid(11 if n_per_group > 11 else n_per_group - 1),
+        "outlier": pid(n_per_group + (8 if n_per_group > 8 else n_per_group - 1)),
+    }
+
+
+def _deviation_covariance() -> np.ndarray:
+    """Covariance of (novel, familiar) deviations over regions: D (R_region kron R_condition) D."""
+    n = len(_REGIONS)
+    r_region = np.full((n, n), _RHO_REGION)
+    names = list(REGION_NAMES)
+    for a in _MTL:
+        for b in _MTL:
+            r_region[names.index(a), names.index(b)] = _RHO_MTL
+    i, j = names.index("left caudate"), names.index("right caudate")
+    r_region[i, j] = r_region[j, i] = _RHO_CAUDATE
+    np.fill_diagonal(r_region, 1.0)
+    r_condition = np.array([[1.0, _RHO_CONDITION], [_RHO_CONDITION, 1.0]])
+    sd = np.repeat([r.sd_between for r in _REGIONS], 2)  # order: (region, condition)
+    return np.kron(r_region, r_condition) * np.outer(sd, sd)
+
+
+def _draw_model(rng: np.random.Generator, n_per_group: int, problems: bool) -> dict:
+    """Draw everything but the voxel noise, in a fixed order."""
+    n = 2 * n_per_group
+    n_regions = len(_REGIONS)
+    ids = [f"sub-{i + 1:02d}" for i in range(n)]
+    group = np.array([GROUPS[0]] * n_per_group + [GROUPS[1]] * n_per_group)
+    older = group == "older"
+    age = np.where(older, rng.integers(60, 79, n), rng.integers(20, 36, n))
+    sex = rng.choice(np.array(["F", "M"]), n)
+    handedness = np.where(rng.random(n) < 0.1, "L", "R")
+    fd_median = np.where(older, 0.18, 0.12)
+    mean_fd = fd_median * np.exp(0.35 * rng.standard_normal(n))
+    variance = _V0 * (mean_fd / _FD0) ** 0.75 * np.exp(0.15 * rng.standard_normal(n))
+
+    cov = _deviation_covariance()
+    dev = rng.multivariate_normal(np.zeros(2 * n_regions), cov, size=n, method="cholesky")
+    dev = dev.reshape(n, n_regions, 2)
+    mu_novel = np.array([r.novel for r in _REGIONS]).T  # (group, region)
+    mu_familiar = np.array([r.familiar for r in _REGIONS]).T
+    g = older.astype(int)
+    novel = mu_novel[g] + dev[:, :, 0]
+    familiar = mu_familiar[g] + dev[:, :, 1]
+
+    # route_accuracy from the hippocampal novel-vs-familiar deviation
+    hc = [REGION_NAMES.index(h) for h in _HIPPOCAMPI]
+    h = (dev[:, hc, 0] - dev[:, hc, 1]).mean(axis=1)
+    w = np.zeros((n_regions, 2))
+    w[hc, 0], w[hc, 1] = 0.5, -0.5
+    sd_h = float(np.sqrt(w.ravel() @ cov @ w.ravel()))
+    accuracy = (
+        _ACCURACY["intercept"]
+        + _ACCURACY["older"] * older
+        + _ACCURACY["per_sd_hippocampal_effect"] * h / sd_h
+        + _ACCURACY["residual_sd"] * rng.standard_normal(n)
+    )
+    accuracy = np.clip(np.round(accuracy, 1), 0.0, 100.0)
+
+    # towns: item effects (centred over the six towns) and participant-by-town deviations
+    # (centred within participant), so that novel is exactly the mean of the six towns
+    sd_town = np.array([r.sd_town for r in _REGIONS])
+    town_effect = rng.standard_normal((len(TOWNS), n_regions)) * sd_town
+    town_effect -= town_effect.mean(axis=0)
+    pt = rng.standard_normal((n, len(TOWNS), n_regions)) * _SD_PARTICIPANT_TOWN
+    pt -= pt.mean(axis=1, keepdims=True)
+
+    planted = _planted_ids(n_per_group) if problems else {}
+    outlier_offset = _OUTLIER_SDS * np.array([r.sd_between * (r.name in _OUTLIER_REGIONS) for r in _REGIONS])
+    if problems:
+        novel[ids.index(planted["outlier"])] += outlier_offset
+        i = ids.index(planted["large_variance"])
+        mean_fd[i] = _LARGE_VARIANCE_FD
+        variance[i] = _LARGE_VARIANCE_MULTIPLIER * _V0
+    towns = novel[:, None, :] + town_effect[None] + pt  # (participant, town, region)
+
+    # within-group slope of each region's novel-vs-familiar response on route_accuracy
+    # (population value, ignoring clipping): Cov(nvf_r, acc) / Var(acc | group)
+    wr = np.zeros((n_regions, n_regions * 2))
+    for r in range(n_regions):
+        wr[r, 2 * r], wr[r, 2 * r + 1] = 1.0, -1.0
+    cov_nvf_h = wr @ cov @ w.ravel()
+    b = _ACCURACY["per_sd_hippocampal_effect"]
+    var_acc = b**2 + _ACCURACY["residual_sd"] ** 2
+    slope = b / sd_h * cov_nvf_h / var_acc
+
+    return {
+        "ids": ids,
+        "group": group,
+        "age": age,
+        "sex": sex,
+        "handedness": handedness,
+        "mean_fd": mean_fd,
+        "variance": variance,
+        "route_accuracy": accuracy,
+        "novel": novel,
+        "familiar": familiar,
+        "towns": towns,
+        "town_effect": town_effect,
+        "participant_town": pt,
+        "planted": planted,
+        "outlier_offset": outlier_offset,
+        "sd_h": sd_h,
+        "route_accuracy_slope": slope,
+        "cov": cov,
+    }
+
+
+# --------------------------------------------------------------------------------------------------
+# Writing
+# --------------------------------------------------------------------------------------------------
+
+
+def _nifti_gz(data: np.ndarray, dtype) -> bytes:
+    """A gzipped NIfTI-1 file's bytes; the gzip header carries no time stamp (reproducible bytes)."""
+    img = nib.Nifti1Image(np.asarray(data, dtype=dtype), AFFINE)
+    img.header.set_data_dtype(dtype)
+    img.header.set_xyzt_units("mm")
+    img.header.set_sform(AFFINE, code=2)  # aligned to a template-like space, not a real template
+    img.header.set_qform(AFFINE, code=2)
+    img.header["descrip"] = b"roikit demo: invented data"
+    return gzip.compress(img.to_bytes(), compresslevel=1, mtime=0)
+
+
+def _volume(flat: np.ndarray) -> np.ndarray:
+    return flat.reshape(SHAPE, order="F")
+
+
+def _is_demo_study(path: Path) -> bool:
+    truth = path / "ground_truth.json"
+    if not truth.is_file():
+        return False
+    import json
+
+    try:
+        with open(truth, encoding="utf-8") as fh:
+            return json.load(fh).get("generator") == "roikit.demo"
+    except (OSError, ValueError):
+        return False
+
+
+def _prepare_target(out: Path, overwrite: bool) -> None:
+    if out.exists():
+        if not overwrite:
+            raise OutputExistsError(
+                f"{out}: folder exists; pass --overwrite (overwrite=True) to replace an earlier demo study, "
+                "or choose another folder"
+            )
+        if not out.is_dir() or (any(out.iterdir()) and not _is_demo_study(out)):
+            raise OutputExistsError(
+                f"{out}: exists and is not a roikit demo study (no ground_truth.json written by roikit.demo); "
+                "refusing to replace it even with overwrite; choose another folder"
+            )
+
+
+def _umask() -> int:
+    mask = os.umask(0o022)
+    os.umask(mask)
+    return mask
+
+
+def _replace_dir(tmp: Path, out: Path) -> None:
+    """Move a finished temporary folder into place (replacing ``out``), with ordinary permissions."""
+    os.chmod(tmp, 0o777 & ~_umask())  # mkdtemp creates 0700
+    if out.exists():
+        trash = Path(tempfile.mkdtemp(prefix=f".{out.name}.old-", dir=out.parent))
+        os.replace(out, trash / out.name)
+        os.replace(tmp, out)
+        shutil.rmtree(trash, ignore_errors=True)
+    else:
+        os.replace(tmp, out)
+
+
+def _toml_value(value) -> str:
+    import json
+
+    if isinstance(value, bool):
+        return "true" if value else "false"
+    if isinstance(value, (int, float)):
+        return repr(value)
+    if isinstance(value, str):
+        return json.dumps(value, ensure_ascii=False)  # a TOML basic string for these characters
+    if isinstance(value, (list, tuple)):
+        return "[" + ", ".join(_toml_value(v) for v in value) + "]"
+    raise TypeError(f"no TOML form for {value!r}")  # pragma: no cover - internal
+
+
+#: Analyses of the demo study file, in order (keys mirror the command-line options).
+DEMO_ANALYSES = (
+    {"design": "one-sample", "contrast": "novel-vs-familiar"},
+    {"design": "paired", "contrast": "novel", "versus": "familiar"},
+    {"design": "two-group", "contrast": "novel-vs-familiar", "group": "group", "levels": ["younger", "older"]},
+    {"design": "glm", "contrast": "novel-vs-familiar", "formula": "value ~ route_accuracy + group"},
+    {"design": "precision-weighted", "contrast": "novel-vs-familiar", "tau2": "reml"},
+    {"design": "mixed", "contrast": list(TOWNS), "formula": "value ~ group", "random": "1", "crossed": "contrast"},
+)
+
+
+def study_toml(*, title: str = "Wayfinding study (invented demo data)") -> str:
+    """The demo's study file (TOML) in the contract's format, paths relative to the study folder.
+
+    Examples
+    --------
+    >>> import tomllib
+    >>> tomllib.loads(study_toml())["maps"]["effect"]
+    'maps/sub-{subject}_contrast-{contrast}_effect.nii.gz'
+    """
+    lines = [
+        "# roikit demo: the invented wayfinding study. All data are invented.",
+        "# Paths are relative to this file.",
+        "",
+        "[study]",
+        f"title = {_toml_value(title)}",
+        'participants = "participants.tsv"',
+        "",
+        "[maps]",
+        'effect = "maps/sub-{subject}_contrast-{contrast}_effect.nii.gz"',
+        'variance = "maps/sub-{subject}_contrast-{contrast}_variance.nii.gz"',
+        "",
+        "[regions]",
+        'atlas = "atlas.nii.gz"',
+        'labels = "atlas.tsv"',
+        "",
+        "[[regions.sphere]]",
+        f"name = {_toml_value(PRIOR_PEAK['name'])}",
+        f"center = {_toml_value([float(c) for c in PRIOR_PEAK['center']])}",
+        f"radius = {_toml_value(float(PRIOR_PEAK['radius']))}",
+    ]
+    for analysis in DEMO_ANALYSES:
+        lines += ["", "[[analysis]]"] + [f"{k} = {_toml_value(v)}" for k, v in analysis.items()]
+    return "\n".join(lines) + "\n"
+
+
+_PARTICIPANTS_SIDECAR = {
+    "participant_id": {"Description": "participant label (invented)"},
+    "group": {
+        "Description": "age group",
+        "Levels": {"younger": "aged 20-35 years", "older": "aged 60-78 years"},
+    },
+    "age": {"Description": "age at the (invented) scan", "Units": "year"},
+    "sex": {"Description": "sex (invented)", "Levels": {"F": "female", "M": "male"}},
+    "handedness": {"Description": "handedness (invented)", "Levels": {"R": "right", "L": "left"}},
+    "route_accuracy": {
+        "Description": "percentage of novel routes completed without a wrong turn (invented behaviour)",
+        "Units": "%",
+    },
+    "mean_fd": {"Description": "mean framewise displacement during the run (invented head motion)", "Units": "mm"},
+}
+
+_VALUES_SIDECAR = {
+    "participant_id": {"Description": "participant label"},
+    "group": {"Description": "age group"},
+    "contrast": {"Description": "first-level contrast"},
+    "region": {"Description": "region name (atlas label or the prior-peak sphere)"},
+    "value": {"Description": "true regional response (population effect + participant deviation; "
+              "for the sphere the mean of the true voxel signal over its voxels)"},
+    "variance": {"Description": "mean voxel variance of the map over the region's voxels (the contract's "
+                 "region-level variance, computed from the generating model)"},
+    "noise_sd": {"Description": "standard deviation of the region mean of the first-level noise, including "
+                 "its spatial smoothness (sqrt of reference variance x contrast multiplier x noise factor)"},
+}
+
+
+@dataclass
+class DemoStudy:
+    """What :func:`make_study` wrote.
+
+    Attributes
+    ----------
+    path : Path
+        The study folder.
+    ground_truth : dict
+        The content of ``ground_truth.json``.
+    truth : DataFrame
+        One row per participant x contrast x region: ``participant_id``, ``group``, ``contrast``,
+        ``region``, ``value`` (true regional response), ``variance`` (mean voxel variance over the
+        region), ``noise_sd`` (SD of the region mean of the noise, smoothness included).
+    participants : DataFrame
+        The participants table as written.
+    files : list of Path
+        Every file written, relative to ``path``.
+    """
+
+    path: Path
+    ground_truth: dict
+    truth: pd.DataFrame
+    participants: pd.DataFrame
+    files: list[Path] = field(default_factory=list)
+
+
+def _check_options(n_per_group, seed) -> None:
+    if isinstance(n_per_group, bool) or not isinstance(n_per_group, (int, np.integer)) or not 3 <= n_per_group <= 99:
+        raise UsageError(f"n_per_group must be an integer from 3 to 99, got {n_per_group!r}; the demo uses 16")
+    if seed is not None and not isinstance(seed, (int, np.integer, np.random.Generator)) or isinstance(seed, bool):
+        raise UsageError(f"seed must be an int, a numpy Generator or None, got {seed!r}")
+
+
+def make_study(
+    out: PathLike,
+    *,
+    seed: Seed = DEFAULT_SEED,
+    n_per_group: int = 16,
+    problems: bool = True,
+    overwrite: bool = False,
+    progress: bool = False,
+) -> DemoStudy:
+    """Write the invented wayfinding study (maps, atlas, participants, study file, ground truth).
+
+    Parameters
+    ----------
+    out : path
+        Study folder to create (``DIR/study`` for ``roikit demo``). Written in a temporary
+        sibling folder and renamed into place when complete.
+    seed : int, numpy Generator or None
+        Seeds everything drawn (``numpy.random.default_rng(seed)``); the same int gives the same
+        arrays and files. ``None`` draws fresh entropy and records it.
+    n_per_group : int
+        Participants per age group (3 to 99; the demo has 16, i.e. 32 in all).
+    problems : bool
+        Plant the three problems for the diagnostics (signal dropout, an outlying participant, a
+        participant with a much larger first-level variance).
+    overwrite : bool
+        Replace an earlier demo study at ``out`` (a folder with a ``ground_truth.json`` written by
+        this generator). Any other existing folder is never replaced.
+    progress : bool
+        Show a progress bar (tqdm) over participants.
+
+    Returns
+    -------
+    DemoStudy
+        The folder, the ground truth (also in ``ground_truth.json``), the true regional values
+        (also in ``ground_truth_values.tsv``) and the participants table.
+
+    Notes
+    -----
+    The generating model (documented in ``demo/README.md``): participant ``i`` in group ``g`` has
+    true regional responses ``novel_ir = mu_novel[r, g] + u_ir`` and ``familiar_ir = mu_familiar[r,
+    g] + w_ir`` with ``(u, w)`` multivariate normal across regions and conditions; town ``k``
+    adds an item effect ``a_kr`` (centred over towns) and a participant-by-town deviation (centred
+    within participant), so ``novel`` is the mean of the six towns and ``novel-vs-familiar`` is
+    ``novel - familiar``, map by map. Each voxel of region ``r`` holds the true response plus
+    Gaussian noise smoothed to 8 mm FWHM and rescaled to voxel variance ``m_c v_i s(x)``
+    (``m_c`` the contrast's variance multiplier, ``v_i`` the participant's reference variance,
+    linked to ``mean_fd``, ``s(x)`` a smooth spatial profile); the variance maps hold exactly
+    ``m_c v_i s(x)``. The variance of a region mean of the noise is ``m_c v_i c_r`` with ``c_r``
+    computed from the kernel's autocorrelation (recorded as ``noise_factor``); checked in the
+    tests against plain numpy region means of the written maps.
+
+    Examples
+    --------
+    >>> import tempfile, pathlib
+    >>> demo = make_study(pathlib.Path(tempfile.mkdtemp()) / "study", n_per_group=3)  # doctest: +SKIP
+    >>> demo.ground_truth["planted_problems"][0]["kind"]  # doctest: +SKIP
+    'dropout'
+    """
+    _check_options(n_per_group, seed)
+    if seed is None:
+        seed = int(np.random.SeedSequence().entropy)
+    recorded_seed = seed if not isinstance(seed, np.random.Generator) else "numpy Generator (not reproducible)"
+    out = Path(out)
+    _prepare_target(out, overwrite)
+    out.parent.mkdir(parents=True, exist_ok=True)
+
+    rng = np.random.default_rng(seed)
+    geo = _geometry()
+    model = _draw_model(rng, n_per_group, problems)
+    noise_rngs = rng.spawn(len(model["ids"]))
+
+    tmp = Path(tempfile.mkdtemp(prefix=f".{out.name}.tmp-", dir=out.parent))
+    try:
+        truth, ground_truth, files, participants = _write_all(tmp, geo, model, noise_rngs, recorded_seed,
+                                                              n_per_group, problems, progress)
+        _replace_dir(tmp, out)
+    except BaseException:
+        shutil.rmtree(tmp, ignore_errors=True)
+        raise
+    return DemoStudy(path=out, ground_truth=ground_truth, truth=truth, participants=participants, files=files)
+
+
+def _write_all(tmp, geo, model, noise_rngs, recorded_seed, n_per_group, problems, progress):
+    from tqdm.auto import tqdm
+
+    files: list[Path] = []
+
+    def put(rel: str, data: bytes) -> None:
+        path = tmp / rel
+        path.parent.mkdir(parents=True, exist_ok=True)
+        path.write_bytes(data)
+        files.append(Path(rel))
+
+    ids = model["ids"]
+    n_regions = len(_REGIONS)
+    region_voxels = [np.flatnonzero(geo.labels == k) for k in range(1, n_regions + 1)]
+    sphere_voxels = np.flatnonzero(geo.sphere)
+    all_voxels = region_voxels + [sphere_voxels]
+    all_names = list(REGION_NAMES) + [PRIOR_PEAK["name"]]
+    noise_factor = np.array([_noise_factor(geo, v) for v in all_voxels])
+    profile_mean = np.array([geo.profile[v].mean() for v in all_voxels])
+    # the sphere's true value: mean of the true voxel signal (atlas regions' responses, 0 elsewhere)
+    sphere_labels = geo.labels[sphere_voxels]
+    sphere_weights = np.array([(sphere_labels == k).mean() for k in range(1, n_regions + 1)])
+
+    # atlas, brain mask, label table
+    put("atlas.nii.gz", _nifti_gz(_volume(geo.labels), np.int16))
+    put("brain_mask.nii.gz", _nifti_gz(_volume(geo.brain.astype(np.uint8)), np.uint8))
+    label_table = pd.DataFrame({
+        "index": np.arange(1, n_regions + 1),
+        "name": list(REGION_NAMES),
+        "abbreviation": [r.abbreviation for r in _REGIONS],
+    })
+    write_table(tmp / "atlas.tsv", label_table)
+    files.append(Path("atlas.tsv"))
+
+    participants = pd.DataFrame({
+        "participant_id": ids,
+        "group": model["group"],
+        "age": model["age"],
+        "sex": model["sex"],
+        "handedness": model["handedness"],
+        "route_accuracy": model["route_accuracy"],
+        "mean_fd": np.round(model["mean_fd"], 3),
+    })
+    write_table(tmp / "participants.tsv", participants, sidecar=_PARTICIPANTS_SIDECAR)
+    files += [Path("participants.tsv"), Path("participants.json")]
+
+    # true regional values per participant x contrast (atlas regions), shape (n, contrast, region)
+    novel, familiar, towns = model["novel"], model["familiar"], model["towns"]
+    true_atlas = np.concatenate([novel[:, None], familiar[:, None], (novel - familiar)[:, None], towns], axis=1)
+    true_all = np.concatenate([true_atlas, (true_atlas @ sphere_weights)[:, :, None]], axis=2)
+
+    brain_idx = geo.brain_index
+    labels_b = geo.labels[brain_idx]
+    profile_b = geo.profile[brain_idx]
+    dropout_b = geo.dropout[brain_idx]
+    n_vox = geo.labels.size
+    planted = model["planted"]
+    iterator = tqdm(range(len(ids)), desc="demo: writing maps", unit="participant", disable=not progress,
+                    leave=False)
+    for i in iterator:
+        pid = ids[i]
+        prng = noise_rngs[i]
+        v = model["variance"][i]
+        sd_b = np.sqrt(v * profile_b)
+        lut = np.zeros((len(CONTRASTS), n_regions + 1))
+        lut[:, 1:] = true_atlas[i]
+        signal = lut[:, labels_b]  # (contrast, brain voxel)
+        fields = np.empty((len(TOWNS) + 1, brain_idx.size))
+        for f in range(len(TOWNS) + 1):
+            white = prng.standard_normal(SHAPE)
+            fields[f] = ndimage.gaussian_filter(white, geo.sigma, mode="reflect", truncate=4.0).ravel(order="F")[
+                brain_idx
+            ] / geo.unit_scale
+        town_maps = signal[3:] + np.sqrt(VARIANCE_MULTIPLIER["town1"]) * sd_b * fields[: len(TOWNS)]
+        novel_map = town_maps.mean(axis=0)
+        familiar_map = signal[1] + sd_b * fields[-1]
+        maps = {"novel": novel_map, "familiar": familiar_map, "novel-vs-familiar": novel_map - familiar_map}
+        maps.update(zip(TOWNS, town_maps))
+        drop = problems and pid == planted.get("dropout")
+        for contrast in CONTRASTS:
+            effect = np.zeros(n_vox)
+            variance = np.zeros(n_vox)
+            effect[brain_idx] = maps[contrast]
+            variance[brain_idx] = VARIANCE_MULTIPLIER[contrast] * v * profile_b
+            if drop:
+                effect[brain_idx[dropout_b]] = 0.0
+                variance[brain_idx[dropout_b]] = 0.0
+            stem = f"maps/{pid}_contrast-{contrast}"
+            put(f"{stem}_effect.nii.gz", _nifti_gz(_volume(effect), np.float32))
+            put(f"{stem}_variance.nii.gz", _nifti_gz(_volume(variance), np.float32))
+
+    # tidy truth table
+    multiplier = np.array([VARIANCE_MULTIPLIER[c] for c in CONTRASTS])
+    n, n_c, n_r = true_all.shape
+    var_all = model["variance"][:, None, None] * multiplier[None, :, None] * profile_mean[None, None, :]
+    noise_sd = np.sqrt(model["variance"][:, None, None] * multiplier[None, :, None] * noise_factor[None, None, :])
+    truth = pd.DataFrame({
+        "participant_id": np.repeat(ids, n_c * n_r),
+        "group": np.repeat(model["group"], n_c * n_r),
+        "contrast": np.tile(np.repeat(CONTRASTS, n_r), n),
+        "region": np.tile(all_names, n * n_c),
+        "value": true_all.ravel(),
+        "variance": var_all.ravel(),
+        "noise_sd": noise_sd.ravel(),
+    })
+    write_table(tmp / "ground_truth_values.tsv", truth, sidecar=_VALUES_SIDECAR)
+    files += [Path("ground_truth_values.tsv"), Path("ground_truth_values.json")]
+
+    ground_truth = _ground_truth(geo, model, recorded_seed, n_per_group, problems, all_names, all_voxels,
+                                 noise_factor, profile_mean, sphere_weights, true_all)
+    write_json(tmp / "ground_truth.json", ground_truth)
+    files.append(Path("ground_truth.json"))
+    (tmp / "study.toml").write_text(study_toml(), encoding="utf-8")
+    files.append(Path("study.toml"))
+    (tmp / "README.md").write_text(_STUDY_README, encoding="utf-8")
+    files.append(Path("README.md"))
+    return truth, ground_truth, files, participants
+
+
+_STUDY_README = """\
+# Wayfinding study (invented demo data)
+
+All data in this folder are invented. They were generated by `roikit demo` (roikit.demo.make_study)
+from the two-level model described in roikit's `demo/README.md`; no real participant, scan or
+measurement stands behind any value. The region coordinates are approximate MNI-like positions
+written from memory, not taken from any atlas.
+
+- `maps/`: per participant and contrast, an effect map and a variance map (3 mm grid, float32).
+- `atlas.nii.gz`, `atlas.tsv`: nine labelled regions and their label table.
+- `brain_mask.nii.gz`: the ellipsoidal synthetic brain (maps are zero outside it).
+- `participants.tsv`, `participants.json`: group, age, sex, handedness, route_accuracy, mean_fd.
+- `study.toml`: the study file (maps, regions, analyses) for `roikit run`.
+- `ground_truth.json`, `ground_truth_values.tsv`: the true values and the planted problems.
+"""
+
+
+def _ground_truth(geo, model, seed, n_per_group, problems, all_names, all_voxels, noise_factor, profile_mean,
+                  sphere_weights, true_all) -> dict:
+    n_regions = len(_REGIONS)
+    ids = model["ids"]
+
+    def by_region(values, names=REGION_NAMES):
+        return {name: float(x) for name, x in zip(names, values)}
+
+    # population effects per contrast x group (atlas regions; the sphere as the voxel-weighted mix)
+    pop = {}
+    for gi, gname in enumerate(GROUPS):
+        mu_n = np.array([r.novel[gi] for r in _REGIONS])
+        mu_f = np.array([r.familiar[gi] for r in _REGIONS])
+        rows = {"novel": mu_n, "familiar": mu_f, "novel-vs-familiar": mu_n - mu_f}
+        for k, town in enumerate(TOWNS):
+            rows[town] = mu_n + model["town_effect"][k]
+        for contrast, values in rows.items():
+            pop.setdefault(contrast, {})[gname] = by_region(
+                np.append(values, values @ sphere_weights), all_names
+            )
+    cov = model["cov"]
+    sd_novel = np.sqrt(np.diag(cov)[0::2])
+    sd_nvf = np.sqrt(np.diag(cov)[0::2] + np.diag(cov)[1::2] - 2 * np.diag(cov, 1)[0::2])
+    drop_regions = {}
+    if problems:
+        for name, vox in zip(all_names, all_voxels):
+            zeroed = int(geo.dropout[vox].sum())
+            if zeroed:
+                drop_regions[name] = {"n_voxels": int(len(vox)), "n_zeroed": zeroed,
+                                      "fraction_valid": 1.0 - zeroed / len(vox)}
+    planted = model["planted"]
+    problems_list = []
+    if problems:
+        problems_list = [
+            {
+                "kind": "dropout",
+                "participant_id": planted["dropout"],
+                "description": "signal dropout: effect and variance maps are zero in an ellipsoid of the left "
+                               "ventral anterior temporal lobe, in every contrast of this participant",
+                "center_mm": list(_DROPOUT_CENTER),
+                "semi_axes_mm": list(_DROPOUT_SEMI_AXES),
+                "regions": drop_regions,
+                "contrasts": list(CONTRASTS),
+            },
+            {
+                "kind": "outlier",
+                "participant_id": planted["outlier"],
+                "description": f"true novel response shifted up by {_OUTLIER_SDS:g} between-participant SDs in "
+                               "the medial temporal regions and the retrosplenial cortex (so also every town and "
+                               "novel-vs-familiar there; familiar unaffected)",
+                "offset": {name: float(x) for name, x in zip(REGION_NAMES, model["outlier_offset"]) if x},
+                "contrasts": ["novel", "novel-vs-familiar", *TOWNS],
+            },
+            {
+                "kind": "large_variance",
+                "participant_id": planted["large_variance"],
+                "description": f"first-level reference variance set to {_LARGE_VARIANCE_MULTIPLIER:g} x {_V0:g} "
+                               f"and mean_fd to {_LARGE_VARIANCE_FD:g} mm",
+                "reference_variance": _LARGE_VARIANCE_MULTIPLIER * _V0,
+                "typical_reference_variance": _V0,
+            },
+        ]
+    true_values = {
+        pid: {c: by_region(true_all[i, k], all_names) for k, c in enumerate(CONTRASTS)}
+        for i, pid in enumerate(ids)
+    }
+    return {
+        "generator": "roikit.demo",
+        "roikit_version": __version__,
+        "note": "All data are invented (roikit demo); no real participant or scan stands behind any value.",
+        "seed": seed,
+        "n_per_group": n_per_group,
+        "units": "invented percent signal change",
+        "grid": {"shape": list(SHAPE), "affine": AFFINE.tolist(), "voxel_size_mm": 3.0},
+        "brain": {"kind": "ellipsoid", "center_mm": list(_BRAIN_CENTER), "semi_axes_mm": list(_BRAIN_SEMI_AXES),
+                  "n_voxels": int(geo.brain.sum())},
+        "regions": [
+            {
+                "name": name,
+                "kind": "atlas" if k < n_regions else "sphere",
+                "index": k + 1 if k < n_regions else None,
+                "abbreviation": _REGIONS[k].abbreviation if k < n_regions else None,
+                "center_mm": list(_REGIONS[k].center) if k < n_regions else list(PRIOR_PEAK["center"]),
+                "semi_axes_mm": list(_REGIONS[k].semi_axes) if k < n_regions else None,
+                "radius_mm": None if k < n_regions else PRIOR_PEAK["radius"],
+                "n_voxels": int(len(all_voxels[k])),
+                "variance_profile_mean": float(profile_mean[k]),
+                "noise_factor": float(noise_factor[k]),
+                "coordinates_note": "approximate MNI-like position, from memory" if k < n_regions
+                else "invented coordinate 'from an earlier study'",
+            }
+            for k, name in enumerate(all_names)
+        ],
+        "sphere_composition": {"region_fractions": by_region(sphere_weights),
+                               "rest": float(1.0 - sphere_weights.sum()),
+                               "rule": "voxels whose centre lies within radius mm of the centre"},
+        "population_effects": pop,
+        "between_participant_sd": {
+            "novel": by_region(sd_novel),
+            "familiar": by_region(sd_novel),
+            "novel-vs-familiar": by_region(sd_nvf),
+        },
+        "correlations": {"novel_familiar": _RHO_CONDITION, "between_regions": _RHO_REGION,
+                         "within_medial_temporal_lobe": _RHO_MTL, "between_caudates": _RHO_CAUDATE},
+        "town_effects": {town: by_region(model["town_effect"][k]) for k, town in enumerate(TOWNS)},
+        "town_sd": by_region([r.sd_town for r in _REGIONS]),
+        "participant_by_town_sd": _SD_PARTICIPANT_TOWN,
+        "route_accuracy_model": {
+            **_ACCURACY,
+            "hippocampal_effect_sd": model["sd_h"],
+            "within_group_slope_of_novel_vs_familiar_on_route_accuracy": by_region(model["route_accuracy_slope"]),
+        },
+        "first_level": {
+            "reference_variance": _V0,
+            "reference_mean_fd_mm": _FD0,
+            "link": f"v_i = {_V0:g} * (mean_fd_i / {_FD0:g})^0.75 * exp(0.15 z_i), z_i ~ N(0, 1)",
+            "variance_multiplier": VARIANCE_MULTIPLIER,
+            "spatial_profile": "s(x) = 0.8 + 0.6 / (1 + exp((z_mm + 10) / 8))",
+            "fwhm_mm": FWHM_MM,
+            "kernel_sigma_voxels": geo.sigma,
+            "noise_factor_formula": "Var(region mean of noise) = multiplier * v_i * noise_factor",
+        },
+        "participants": {
+            pid: {"group": str(model["group"][i]), "reference_variance": float(model["variance"][i]),
+                  "mean_fd": float(model["mean_fd"][i])}
+            for i, pid in enumerate(ids)
+        },
+        "planted_problems": problems_list,
+        "true_values": true_values,
+    }

@@ -1,0 +1,140 @@
+"""`roikit demo` end to end: the full invented study, the pipeline, and what the results show."""
+
+from __future__ import annotations
+
+import contextlib
+import io
+import tomllib
+
+import numpy as np
+import pytest
+
+from roikit._tables import read_table, sha256_file
+from roikit.cli import main
+from roikit.demo import CONTRASTS, REGION_NAMES, run_demo
+from roikit.errors import OutputExistsError
+
+
+@pytest.fixture(scope="module")
+def full_demo(tmp_path_factory):
+    out = tmp_path_factory.mktemp("roikit-demo")
+    stdout = io.StringIO()
+    with contextlib.redirect_stdout(stdout):
+        status = main(["demo", "--out", str(out), "--quiet"])
+    return {"out": out, "status": status, "stdout": stdout.getvalue()}
+
+
+@pytest.mark.slow
+def test_demo_runs_end_to_end(full_demo):
+    out = full_demo["out"]
+    assert full_demo["status"] == 0
+    assert full_demo["stdout"].split() == [str(out / "study"), str(out / "results")]
+    for rel in ("study/study.toml", "study/participants.tsv", "study/participants.json", "study/atlas.nii.gz",
+                "study/atlas.tsv", "study/ground_truth.json", "results/region_values.tsv",
+                "results/region_values.json"):
+        assert (out / rel).is_file(), rel
+    maps = sorted((out / "study" / "maps").iterdir())
+    assert len(maps) == 32 * len(CONTRASTS) * 2
+    # issue 3: the study stays under 120 MB
+    size = sum(p.stat().st_size for p in (out / "study").rglob("*") if p.is_file())
+    assert size < 120e6
+    study = tomllib.loads((out / "study" / "study.toml").read_text())
+    assert study["maps"]["effect"] == "maps/sub-{subject}_contrast-{contrast}_effect.nii.gz"
+
+
+@pytest.fixture(scope="module")
+def results(full_demo):
+    out = full_demo["out"]
+    values = read_table(out / "results" / "region_values.tsv")
+    truth = read_table(out / "study" / "ground_truth_values.tsv")
+    merged = values.merge(truth, on=["participant_id", "contrast", "region"], suffixes=("", "_true"),
+                          validate="one_to_one")
+    gt = __import__("json").loads((out / "study" / "ground_truth.json").read_text())
+    return {"values": values, "merged": merged, "ground_truth": gt}
+
+
+@pytest.mark.slow
+def test_extracted_values_recover_the_ground_truth(results):
+    merged = results["merged"]
+    assert len(merged) == 32 * len(CONTRASTS) * (len(REGION_NAMES) + 1)
+    full = merged[merged["n_valid"] == merged["n_voxels"]]
+    z = (full["value"] - full["value_true"]) / full["noise_sd"]
+    # every region mean within 5 SD of the region mean of the smooth noise (the generator's noise model;
+    # two-sided normal tail beyond 5 SD is 5.7e-7 per value; common practice); SD of z near 1 (about 2800
+    # values, standard error of the SD about 0.015)
+    assert np.abs(z).max() < 5.0
+    assert 0.9 < z.std() < 1.1
+    np.testing.assert_allclose(full["variance"], full["variance_true"], rtol=1e-5)
+
+
+def _modified_z(x: np.ndarray) -> np.ndarray:
+    # modified z-score 0.6745 (x - median) / MAD (Iglewicz & Hoaglin 1993)
+    med = np.median(x)
+    return 0.6745 * (x - med) / np.median(np.abs(x - med))
+
+
+@pytest.mark.slow
+def test_planted_problems_show_in_the_results(results):
+    values, gt = results["values"], results["ground_truth"]
+    problems = {p["kind"]: p for p in gt["planted_problems"]}
+    # dropout: low coverage (fewer than half the voxels valid) in the left hippocampus, every contrast
+    drop = values[values["participant_id"] == problems["dropout"]["participant_id"]]
+    hc = drop[drop["region"] == "left hippocampus"]
+    assert ((hc["n_valid"] / hc["n_voxels"]) < 0.5).all() and len(hc) == len(CONTRASTS)
+    others = values[values["participant_id"] != problems["dropout"]["participant_id"]]
+    assert (others["n_valid"] == others["n_voxels"]).all()
+    # outlier: modified z > 3.5 on novel-vs-familiar in the regions where it was planted (the robust outlier rule)
+    nvf = values[values["contrast"] == "novel-vs-familiar"]
+    flagged = []
+    assert len(problems["outlier"]["offset"]) == 5
+    for region in problems["outlier"]["offset"]:
+        sub = nvf[nvf["region"] == region].set_index("participant_id")["value"]
+        mz = _modified_z(sub.to_numpy())
+        flagged.append(sub.index[np.argmax(mz)] == problems["outlier"]["participant_id"] and mz.max() > 3.5)
+    assert sum(flagged) >= len(flagged) - 1
+    # large first-level variance: the largest region variance in every region and contrast
+    for (contrast, region), sub in values.groupby(["contrast", "region"]):
+        top = sub.sort_values("variance").iloc[-1]["participant_id"]
+        assert top == problems["large_variance"]["participant_id"], (contrast, region)
+
+
+@pytest.mark.slow
+def test_built_in_effects_are_visible(results):
+    """The demo's headline truths show in the extracted values (simple numpy summaries, not roikit.stats)."""
+    values = results["values"]
+    nvf = values[values["contrast"] == "novel-vs-familiar"].pivot(index="participant_id", columns="region",
+                                                                   values="value")
+    mean, se = nvf.mean(), nvf.std(ddof=1) / np.sqrt(nvf.count())
+    for region in ("left hippocampus", "right hippocampus"):
+        assert mean[region] / se[region] > 3  # novel > familiar
+    for region in ("left caudate", "right caudate"):
+        assert mean[region] / se[region] < -2  # familiar > novel
+    assert abs(mean["primary visual cortex"] / se["primary visual cortex"]) < 3  # no effect in the control
+
+
+def test_existing_output_fails_fast(tmp_path, capsys):
+    (tmp_path / "study").mkdir()
+    assert main(["demo", "--out", str(tmp_path)]) == 1
+    err = capsys.readouterr().err
+    assert err.count("\n") == 1 and "exists" in err and "--overwrite" in err
+
+
+def test_negative_seed_is_a_usage_error(tmp_path, capsys):
+    assert main(["demo", "--out", str(tmp_path / "d"), "--seed", "-1"]) == 2
+    assert "--seed must be a non-negative integer" in capsys.readouterr().err
+    assert not (tmp_path / "d").exists()
+
+
+def test_pipeline_is_deterministic_and_overwrites_only_a_demo(tmp_path):
+    first = run_demo(tmp_path / "a", seed=5, n_per_group=3, progress=False)
+    second = run_demo(tmp_path / "b", seed=5, n_per_group=3, progress=False)
+    assert sha256_file(first.outputs["region_values"]) == sha256_file(second.outputs["region_values"])
+    with pytest.raises(OutputExistsError, match="pass --overwrite"):
+        run_demo(tmp_path / "a", seed=6, n_per_group=3, progress=False)
+    third = run_demo(tmp_path / "a", seed=6, n_per_group=3, overwrite=True, progress=False)
+    assert sha256_file(third.outputs["region_values"]) != sha256_file(second.outputs["region_values"])
+    assert sorted(p.name for p in (tmp_path / "a").iterdir()) == ["results", "study"]
+    # a results folder that is not next to a demo study is never replaced
+    (tmp_path / "c" / "results").mkdir(parents=True)
+    with pytest.raises(OutputExistsError, match="not an earlier demo's results"):
+        run_demo(tmp_path / "c", n_per_group=3, overwrite=True, progress=False)
