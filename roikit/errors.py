@@ -19,6 +19,7 @@ __all__ = [
     "GridMismatchError",
     "RegionError",
     "MapDiscoveryError",
+    "ExtractionError",
     "OutputExistsError",
     "DesignError",
     "ConvergenceError",
@@ -59,6 +60,10 @@ class RegionError(RoikitError, ValueError):
 
 class MapDiscoveryError(RoikitError, ValueError):
     """Maps could not be found or are listed ambiguously (duplicates, no matches)."""
+
+
+class ExtractionError(RoikitError, RuntimeError):
+    """Several maps (or a batch of them on a worker) failed during extraction; see ``failures``."""
 
 
 class OutputExistsError(RoikitError, FileExistsError):

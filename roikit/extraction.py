@@ -36,6 +36,7 @@ from . import __version__
 from ._tables import read_table, write_table
 from .errors import (
     CoverageWarning,
+    ExtractionError,
     ImageFormatError,
     InputFileError,
     MapDiscoveryError,
@@ -483,6 +484,7 @@ def extract(
     keep_zeros: bool = False,
     n_jobs: int = 1,
     executor: cf.Executor | None = None,
+    client=None,
     batch_size: int | None = None,
     progress: bool | None = None,
     atol: float = DEFAULT_ATOL,
@@ -507,6 +509,9 @@ def extract(
     executor : concurrent.futures.Executor, optional
         Run batches of maps on this executor instead (threads, processes, or a distributed engine's
         executor); ``n_jobs`` is then ignored.
+    client : dask.distributed.Client, optional
+        Run batches of maps on a Dask cluster (optional ``distributed`` extra). The voxel-to-region index
+        is sent to every worker once; results come back in order.
     batch_size : int, optional
         Maps per task (default: 8 with workers, all maps in one stream without).
     progress : bool, optional
@@ -521,6 +526,13 @@ def extract(
         ``contrast``, ``region``, ``value``, ``n_voxels``, ``n_valid``, ``variance`` (with variance
         maps). One row per map x region, in the maps' order then the region order. Provenance is in
         ``.attrs["roikit"]`` (JSON-able dict).
+
+    Raises
+    ------
+    RoikitError
+        After every map was tried: the one failure (its message names the file), or an
+        :class:`~roikit.errors.ExtractionError` listing several. The exception's ``partial_values``
+        holds the table with the failed maps' rows n/a, so nothing that succeeded is lost.
 
     Notes
     -----
@@ -559,12 +571,14 @@ def extract(
     digests: list = [None] * n_maps
     vdigests: list = [None] * n_maps
 
+    failures: list[tuple[int, BaseException]] = []
+
     def collect(start: int, results: list):
         for offset, res in enumerate(results):
             i = start + offset
             if res[0] == "error":
-                exc = res[1]
-                raise exc
+                failures.append((i, res[1]))
+                continue
             _, value, nv, var, dig, vdig = res
             values[i], n_valid[i] = value, nv
             if has_var:
@@ -573,26 +587,35 @@ def extract(
 
     bar = _progress(n_maps, progress, "extracting")
     try:
-        if executor is None and n_jobs == 1:
+        if client is not None:
+            # a distributed engine (dask.distributed Client): the index travels once to every worker
+            index_ref = client.scatter(index, broadcast=True)
+            size = batch_size or 8
+            batches = [(s, tasks[s:s + size]) for s in range(0, n_maps, size)]
+            _stream(lambda batch: client.submit(_run_tasks, batch, index_ref, names, statistic, keep_zeros,
+                                                pure=False),
+                    batches, collect, bar, max_in_flight=2 * max(1, len(client.scheduler_info()["workers"])))
+        elif executor is None and n_jobs == 1:
             for i, task in enumerate(tasks):
                 collect(i, _run_tasks([task], index, names, statistic, keep_zeros))
                 bar.update(1)
         else:
             size = batch_size or 8
             batches = [(s, tasks[s:s + size]) for s in range(0, n_maps, size)]
-            own = executor is None
-            pool = cf.ProcessPoolExecutor(n_jobs, initializer=_init_worker,
-                                          initargs=(index, names, statistic, keep_zeros)) if own else executor
-            try:
-                _stream(pool, batches, own, index, names, statistic, keep_zeros, collect, bar,
-                        max_in_flight=2 * max(n_jobs, getattr(pool, "_max_workers", 2)))
-            finally:
-                if own:
-                    pool.shutdown(cancel_futures=True)
+            if executor is None:
+                with cf.ProcessPoolExecutor(n_jobs, initializer=_init_worker,
+                                            initargs=(index, names, statistic, keep_zeros)) as pool:
+                    _stream(lambda batch: pool.submit(_run_tasks_in_worker, batch), batches, collect, bar,
+                            max_in_flight=2 * n_jobs)
+            else:
+                _stream(lambda batch: executor.submit(_run_tasks, batch, index, names, statistic, keep_zeros),
+                        batches, collect, bar, max_in_flight=2 * max(1, getattr(executor, "_max_workers", 2)))
     finally:
         bar.close()
 
     table = _assemble(maps, names, realised.n_voxels, values, n_valid, variances)
+    if failures:
+        _raise_failures(failures, tasks, table)
     _warn_empty(table)
     table.attrs["roikit"] = {
         "kind": "region values",
@@ -615,34 +638,55 @@ def extract(
     return table
 
 
-def _stream(pool, batches, own, index, names, statistic, keep_zeros, collect, bar, *, max_in_flight):
-    """Submit batches with a bounded number in flight; collect results in order."""
-    pending: dict[int, cf.Future] = {}
-    it = iter(batches)
-    order = [s for s, _ in batches]
-    next_i = 0
+def _stream(submit, batches, collect, bar, *, max_in_flight: int):
+    """Submit batches with a bounded number in flight (flat memory); collect results in map order.
+
+    A batch whose task fails as a whole (a worker died, a result could not travel back) is recorded
+    as a failure of each of its maps; the other batches' results are kept.
+    """
+    pending: dict[int, object] = {}
+    queue = list(batches)
+    sizes = {start: len(batch) for start, batch in queue}
+    order = [start for start, _ in queue]
+    queue.reverse()
 
     def submit_one():
-        try:
-            start, batch = next(it)
-        except StopIteration:
-            return False
-        if own:
-            pending[start] = pool.submit(_run_tasks_in_worker, batch)
-        else:
-            pending[start] = pool.submit(_run_tasks, batch, index, names, statistic, keep_zeros)
-        return True
+        if queue:
+            start, batch = queue.pop()
+            pending[start] = submit(batch)
 
-    for _ in range(max_in_flight):
-        if not submit_one():
-            break
-    while next_i < len(order):
-        start = order[next_i]
-        results = pending.pop(start).result()
-        collect(start, results)
-        bar.update(len(results))
-        next_i += 1
+    for _ in range(max(1, max_in_flight)):
         submit_one()
+    for start in order:
+        future = pending.pop(start)
+        try:
+            results = future.result()
+        except Exception as exc:  # noqa: BLE001 - recorded per map, raised after all maps are done
+            results = [("error", exc)] * sizes[start]
+        collect(start, results)
+        bar.update(sizes[start])
+        submit_one()
+
+
+def _raise_failures(failures, tasks, table: pd.DataFrame):
+    """Raise after all maps are done: one failure re-raised as is, several as one ExtractionError.
+
+    Either way the exception carries ``partial_values`` (the table with the failed maps' rows n/a)
+    and ``failures`` (path, exception) pairs, so a long run loses nothing that succeeded.
+    """
+    listed = [(tasks[i].path, exc) for i, exc in failures]
+    if len(listed) == 1:
+        exc = listed[0][1]
+        task = tasks[failures[0][0]]
+        if not any(p and p in str(exc) for p in (task.path, task.variance_path)):
+            exc = ExtractionError(f"{listed[0][0]}: {exc}")
+    else:
+        shown = "; ".join(f"{p}: {e}" for p, e in listed[:3])
+        more = f"; and {len(listed) - 3} more" if len(listed) > 3 else ""
+        exc = ExtractionError(f"{len(listed)} of {len(tasks)} maps failed, the others were extracted: {shown}{more}")
+    exc.partial_values = table
+    exc.failures = listed
+    raise exc
 
 
 def _assemble(maps, names, n_voxels, values, n_valid, variances) -> pd.DataFrame:

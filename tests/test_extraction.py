@@ -254,3 +254,36 @@ def test_write_values_is_atomic_and_refuses_to_overwrite(tiny_study, tmp_path):
         write_values(tmp_path / "values.tsv", values)
     write_values(tmp_path / "values.tsv", values, overwrite=True)
     assert not [p for p in os.listdir(tmp_path) if p.endswith(".tmp")]
+
+
+def test_failed_maps_do_not_lose_the_others(tiny_study, tmp_path):
+    maps = find_maps(tiny_study["pattern"])
+    raw = tiny_study["maps"][("sub-02", "novel")][0].read_bytes()
+    for name in ("sub-02_contrast-novel_effect.nii.gz", "sub-10_contrast-familiar_effect.nii.gz"):
+        (tmp_path / name).write_bytes(raw[:-300])
+    maps.loc[(maps.participant_id == "sub-02") & (maps.contrast == "novel"), "path"] = str(
+        tmp_path / "sub-02_contrast-novel_effect.nii.gz")
+    maps.loc[(maps.participant_id == "sub-10") & (maps.contrast == "familiar"), "path"] = str(
+        tmp_path / "sub-10_contrast-familiar_effect.nii.gz")
+    regions = RegionSet([Atlas(tiny_study["atlas"], tiny_study["labels"])])
+    from roikit.errors import ExtractionError
+
+    for kwargs in ({}, {"n_jobs": 2, "batch_size": 3}):
+        with pytest.raises(ExtractionError, match=r"2 of 8 maps failed, the others were extracted: .*sub-02") as info:
+            extract(maps, regions, **kwargs)
+        partial = info.value.partial_values
+        assert len(partial) == 24 and partial["value"].isna().sum() == 6
+        assert partial["value"].notna().sum() == 18
+        assert [p for p, _ in info.value.failures][0].endswith("sub-02_contrast-novel_effect.nii.gz")
+
+
+def test_dask_local_cluster_gives_identical_results(tiny_study):
+    import distributed  # the `distributed` extra is part of the test install: this must not skip
+
+    maps = find_maps(tiny_study["pattern"], variance=tiny_study["variance"])
+    regions = RegionSet([Atlas(tiny_study["atlas"], tiny_study["labels"]), Sphere("s", (0, 0, 0), 6)])
+    serial = extract(maps, regions)
+    with distributed.LocalCluster(n_workers=2, threads_per_worker=1, processes=True, dashboard_address=None) as cluster:
+        with distributed.Client(cluster) as client:
+            remote = extract(maps, regions, client=client, batch_size=3)
+    pd.testing.assert_frame_equal(serial, remote)

@@ -6,7 +6,7 @@ import argparse
 import sys
 
 from .._tables import check_output, sidecar_path
-from ..errors import UsageError
+from ..errors import ExtractionError, UsageError
 from ..extraction import extract, find_maps, read_map_list, write_values
 from ._sources import add_region_options, region_set_from_args
 
@@ -32,9 +32,23 @@ def add_parser(subparsers) -> None:
                    help="treat voxels exactly 0 as data (default: as missing, as many packages write 0 outside "
                         "their analysis mask)")
     p.add_argument("--jobs", type=int, default=1, metavar="N", help="worker processes (default 1)")
+    p.add_argument("--scheduler", metavar="ADDRESS",
+                   help="run on a Dask cluster whose scheduler listens at ADDRESS (e.g. tcp://10.0.0.5:8786); "
+                        "needs the `distributed` extra")
     p.add_argument("--quiet", action="store_true", help="no progress bar or summary")
     p.add_argument("--overwrite", action="store_true", help="replace existing output files")
     p.set_defaults(func=run)
+
+
+def _dask_client(address: str):
+    try:
+        from distributed import Client
+    except ImportError as exc:
+        raise UsageError("--scheduler needs Dask: pip install 'roikit[distributed]'") from exc
+    try:
+        return Client(address, timeout="10s")
+    except (OSError, TimeoutError) as exc:
+        raise ExtractionError(f"--scheduler {address}: cannot reach a Dask scheduler there ({exc})") from exc
 
 
 def run(args: argparse.Namespace) -> int:
@@ -51,8 +65,13 @@ def run(args: argparse.Namespace) -> int:
         if args.variance:
             raise UsageError("--variance goes with --maps; with --map-list give a variance_path column")
         maps = read_map_list(args.map_list)
-    values = extract(maps, regions, statistic=args.statistic, keep_zeros=args.keep_zeros, n_jobs=args.jobs,
-                     progress=False if args.quiet else None)
+    options = dict(statistic=args.statistic, keep_zeros=args.keep_zeros, n_jobs=args.jobs,
+                   progress=False if args.quiet else None)
+    if args.scheduler:
+        with _dask_client(args.scheduler) as client:
+            values = extract(maps, regions, client=client, **options)
+    else:
+        values = extract(maps, regions, **options)
     path = write_values(args.out, values, overwrite=args.overwrite)
     if not args.quiet:
         n_missing = int(values["value"].isna().sum())

@@ -83,3 +83,14 @@ def test_console_script_entry_point_runs(tiny_study, tmp_path):
     assert "retrosplenial cortex" in result.stdout
     bad = subprocess.run([sys.executable, "-m", "roikit", "extract", "--out", "x.tsv", "--bogus"], capture_output=True, text=True)
     assert bad.returncode == 2 and "unrecognized arguments" in bad.stderr
+
+
+def test_extract_on_a_dask_scheduler_matches_the_local_run(tiny_study, tmp_path):
+    import distributed  # part of the test install
+
+    local, remote = tmp_path / "local.tsv", tmp_path / "remote.tsv"
+    common = ["--maps", tiny_study["pattern"], *_sources(tiny_study), "--quiet"]
+    assert main(["extract", *common, "--out", str(local)]) == 0
+    with distributed.LocalCluster(n_workers=2, threads_per_worker=1, processes=True, dashboard_address=None) as c:
+        assert main(["extract", *common, "--scheduler", c.scheduler_address, "--out", str(remote)]) == 0
+    assert local.read_text() == remote.read_text()
