@@ -1,0 +1,66 @@
+"""Reporting: APA tables, participant-level figures, methods and results text, a self-contained HTML report.
+
+The only layer that rounds numbers. Everything starts from the tidy tables the other layers write: the
+region values table and the group results table (plus participants.tsv).
+
+Examples
+--------
+>>> from roikit.reporting import write_report, in_text, results_tables, participant_plot
+>>> in_text({"statistic_type": "t", "df": 31, "statistic": 3.12, "p": 0.0042})
+'t(31) = 3.12, p = .004'
+>>> write_report(values, results, participants=participants, out="report")      # doctest: +SKIP
+
+roikit is for research group analysis, not for clinical decisions about an individual patient.
+"""
+
+from __future__ import annotations
+
+from .figures import (
+    GROUP_COLORS,
+    GROUP_MARKERS,
+    JOURNAL_WIDTHS_MM,
+    OKABE_ITO,
+    covariate_plot,
+    forest_plot,
+    participant_figure,
+    participant_plot,
+    precision_plot,
+    save_figure,
+    stimulus_plot,
+)
+from .format import format_ci, format_df, format_number, format_p, in_text
+from .html import report_html
+from .report import write_report
+from .tables import ReportTable, descriptives, descriptives_table, results_table, results_tables
+from .text import SCOPE_STATEMENT, assumptions, cautions, methods_text, results_text
+
+__all__ = [
+    "write_report",
+    "in_text",
+    "format_number",
+    "format_p",
+    "format_df",
+    "format_ci",
+    "ReportTable",
+    "results_tables",
+    "results_table",
+    "descriptives",
+    "descriptives_table",
+    "participant_plot",
+    "participant_figure",
+    "forest_plot",
+    "precision_plot",
+    "stimulus_plot",
+    "covariate_plot",
+    "save_figure",
+    "OKABE_ITO",
+    "GROUP_COLORS",
+    "GROUP_MARKERS",
+    "JOURNAL_WIDTHS_MM",
+    "methods_text",
+    "results_text",
+    "cautions",
+    "assumptions",
+    "SCOPE_STATEMENT",
+    "report_html",
+]

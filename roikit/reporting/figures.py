@@ -1,0 +1,982 @@
+"""Participant-level figures: dot plots, forest plots, precision-sized points, per-stimulus estimates, covariates.
+
+Every participant is drawn as a point (jittered, never hidden behind a bar), the estimate and its confidence
+interval sit beside the points, and a dashed zero line marks "no effect". Groups differ in colour *and*
+marker; the colours are the colour-blind-safe palette of Okabe & Ito (2008, "Color Universal Design",
+https://jfly.uni-koeln.de/color/). Outliers and low-coverage participants flagged by the diagnostics are
+marked (rings and their ids), never removed.
+
+Each function takes the data first and keyword options, draws on ``ax`` (or a new figure sized for a
+journal column) and returns the Axes (or the Figure for multi-panel figures); none calls ``show()``. Save with
+:func:`save_figure` (PDF and SVG with embedded fonts / outlined text, and a 300-dpi PNG).
+
+Examples
+--------
+>>> ax = participant_plot(values, region="left hippocampus", contrast="novel", versus="familiar",
+...                       results=results)                                            # doctest: +SKIP
+>>> save_figure(ax.figure, "figures/paired_left-hippocampus", width="single")      # doctest: +SKIP
+"""
+
+from __future__ import annotations
+
+import contextlib
+import io
+import os
+from pathlib import Path
+from typing import Any, Literal, Sequence
+
+import matplotlib as mpl
+import numpy as np
+import pandas as pd
+from matplotlib.figure import Figure
+from matplotlib.collections import LineCollection
+from matplotlib.transforms import blended_transform_factory
+from scipy import stats
+
+from .._tables import atomic_write_bytes, check_output
+from ..errors import UsageError
+from ._common import (
+    REQUIRED_RESULTS,
+    REQUIRED_VALUES,
+    attach,
+    check_columns,
+    col,
+    flag,
+    group_of,
+    has_values,
+    ids,
+    number,
+    ordered_unique,
+    text,
+)
+from .format import BOUNDED_EFFECTS, format_ci, format_number, format_p, is_missing
+
+__all__ = [
+    "OKABE_ITO",
+    "GROUP_COLORS",
+    "GROUP_MARKERS",
+    "JOURNAL_WIDTHS_MM",
+    "style",
+    "participant_plot",
+    "participant_figure",
+    "forest_plot",
+    "precision_plot",
+    "stimulus_plot",
+    "covariate_plot",
+    "save_figure",
+    "mean_ci",
+    "fit_line",
+]
+
+#: The eight colours of Okabe & Ito (2008), distinguishable with the common forms of colour blindness.
+OKABE_ITO = {
+    "black": "#000000",
+    "orange": "#E69F00",
+    "sky blue": "#56B4E9",
+    "bluish green": "#009E73",
+    "yellow": "#F0E442",
+    "blue": "#0072B2",
+    "vermillion": "#D55E00",
+    "reddish purple": "#CC79A7",
+}
+#: Group colours (Okabe-Ito, high contrast on white first) and markers: a group differs in both.
+GROUP_COLORS = ("#0072B2", "#D55E00", "#009E73", "#CC79A7", "#E69F00", "#56B4E9")
+GROUP_MARKERS = ("o", "s", "^", "D", "v", "P")
+#: Journal figure widths in millimetres (single and double column; common practice, e.g. 85 and 180 mm).
+JOURNAL_WIDTHS_MM = {"single": 85.0, "double": 180.0}
+
+_MM = 1 / 25.4
+_ESTIMATE_COLOR = "#000000"
+_ZERO_STYLE = dict(color="0.45", lw=0.7, ls=(0, (4, 3)), zorder=0.5)
+_EFFECT_MATH = {"d": "$d$", "d_z": "$d_z$", "g": "$g$", "partial_eta2": r"$\eta^2_p$"}
+
+Width = Literal["single", "double"] | float
+
+
+@contextlib.contextmanager
+def style():
+    """Matplotlib settings for print: 7-pt text at journal widths, fonts embedded (TrueType in PDF, outlines in SVG)."""
+    rc = {
+        "font.family": "DejaVu Sans",
+        "font.size": 7.0,
+        "axes.titlesize": 7.5,
+        "axes.labelsize": 7.0,
+        "xtick.labelsize": 6.5,
+        "ytick.labelsize": 6.5,
+        "legend.fontsize": 6.5,
+        "axes.linewidth": 0.6,
+        "xtick.major.width": 0.6,
+        "ytick.major.width": 0.6,
+        "lines.linewidth": 0.9,
+        "axes.spines.top": False,
+        "axes.spines.right": False,
+        "pdf.fonttype": 42,
+        "ps.fonttype": 42,
+        "svg.fonttype": "path",
+        "savefig.dpi": 300,
+        "figure.dpi": 100,
+        "legend.frameon": False,
+    }
+    with mpl.rc_context(rc):
+        yield
+
+
+def _width_mm(width: Width) -> float:
+    if isinstance(width, str):
+        if width not in JOURNAL_WIDTHS_MM:
+            raise UsageError(f"width must be 'single', 'double' or millimetres, got {width!r}")
+        return JOURNAL_WIDTHS_MM[width]
+    value = float(width)
+    if not 20 <= value <= 400:
+        raise UsageError(f"width must lie between 20 and 400 mm, got {value}")
+    return value
+
+
+def _new_axes(ax, width: Width, height_mm: float):
+    if ax is not None:
+        return ax
+    fig = Figure(figsize=(_width_mm(width) * _MM, height_mm * _MM), layout="constrained")
+    return fig.add_subplot()
+
+
+# --------------------------------------------------------------------------------------------- statistics
+def mean_ci(x: Sequence[float], *, confidence: float = 0.95) -> tuple[float, float, float]:
+    """Mean and its *t*-based confidence interval (``mean ± t_{n-1} SD/√n``); NaNs ignored.
+
+    Notes
+    -----
+    Checked against ``scipy.stats.t.interval`` in the tests.
+    """
+    x = np.asarray(x, dtype=float)
+    x = x[np.isfinite(x)]
+    if x.size == 0:
+        return np.nan, np.nan, np.nan
+    m = float(x.mean())
+    if x.size < 2:
+        return m, np.nan, np.nan
+    half = stats.t.ppf(0.5 + confidence / 2, x.size - 1) * x.std(ddof=1) / np.sqrt(x.size)
+    return m, m - half, m + half
+
+
+def fit_line(x: Sequence[float], y: Sequence[float], *, confidence: float = 0.95, grid: Sequence[float] | None = None):
+    """Ordinary least squares line of ``y`` on ``x`` with the confidence band of the fitted mean.
+
+    Returns
+    -------
+    grid, fit, low, high : arrays
+        ``fit = b0 + b1 grid``; band ``fit ± t_{n-2} s sqrt(1/n + (grid - mean x)^2 / Sxx)``.
+
+    Notes
+    -----
+    Checked against ``statsmodels`` ``OLS(...).get_prediction(...).conf_int()`` in the tests.
+    """
+    x = np.asarray(x, dtype=float)
+    y = np.asarray(y, dtype=float)
+    ok = np.isfinite(x) & np.isfinite(y)
+    x, y = x[ok], y[ok]
+    if x.size < 3 or np.ptp(x) == 0:
+        raise UsageError(f"a fitted line needs at least 3 finite points with distinct x, got {x.size}")
+    grid = np.linspace(x.min(), x.max(), 100) if grid is None else np.asarray(grid, dtype=float)
+    xm = x.mean()
+    sxx = ((x - xm) ** 2).sum()
+    b1 = ((x - xm) * (y - y.mean())).sum() / sxx
+    b0 = y.mean() - b1 * xm
+    resid = y - (b0 + b1 * x)
+    s = np.sqrt((resid**2).sum() / (x.size - 2))
+    fit = b0 + b1 * grid
+    half = stats.t.ppf(0.5 + confidence / 2, x.size - 2) * s * np.sqrt(1 / x.size + (grid - xm) ** 2 / sxx)
+    return grid, fit, fit - half, fit + half
+
+
+# --------------------------------------------------------------------------------------------- helpers
+def _pick_region(data: pd.DataFrame, region: str | None) -> str:
+    regions = ordered_unique(data["region"].map(text))
+    if region is None:
+        if len(regions) == 1:
+            return regions[0]
+        raise UsageError(f"region is required when the values hold several regions ({', '.join(regions)})")
+    if region not in regions:
+        raise UsageError(f"region {region!r} not found in the values table (regions: {', '.join(regions)})")
+    return region
+
+
+def _results_rows(results: pd.DataFrame | None, *, region: str, designs: Sequence[str], contrast=None,
+                  versus=None, term=None) -> pd.DataFrame:
+    if results is None or len(results) == 0:
+        return pd.DataFrame()
+    r = results[(results["region"].map(text) == region) & (results["design"].map(text).isin(designs))]
+    if contrast is not None and "contrast" in r.columns:
+        r = r[r["contrast"].map(text) == contrast]
+    if versus is not None and "versus" in r.columns:
+        r = r[r["versus"].map(text) == versus]
+    if term is not None:
+        r = r[r["term"].map(text) == term]
+    return r
+
+
+def _flagged(rows: pd.DataFrame, column: str) -> set[str]:
+    out: set[str] = set()
+    for v in col(rows, column):
+        out.update(ids(v))
+    return out
+
+
+def _low_coverage(part: pd.DataFrame, participant: str) -> set[str]:
+    if "n_valid" not in part.columns or "n_voxels" not in part.columns:
+        return set()
+    nv = pd.to_numeric(part["n_voxels"], errors="coerce")
+    cov = pd.to_numeric(part["n_valid"], errors="coerce") / nv.where(nv > 0)
+    return set(part.loc[cov < 0.5, participant].astype(str))
+
+
+def _jitter(keys: Sequence[str], half_width: float, seed) -> dict[str, float]:
+    rng = np.random.default_rng(seed)
+    return {k: float(v) for k, v in zip(keys, rng.uniform(-half_width, half_width, len(keys)))}
+
+
+def _estimate(ax, x: float, m: float, lo: float, hi: float, *, color=_ESTIMATE_COLOR, marker="o", label=None,
+              size=5.0):
+    if not np.isfinite(m):
+        return
+    if np.isfinite(lo) and np.isfinite(hi):
+        ax.plot([x, x], [lo, hi], color=color, lw=1.3, solid_capstyle="butt", zorder=4)
+    ax.plot([x], [m], marker=marker, color=color, markerfacecolor="white" if marker == "D" else color,
+            markeredgecolor=color, markersize=size, mew=1.1, ls="none", zorder=5, label=label)
+
+
+def _mark(ax, xs, ys, who, outliers: set, low: set, *, size: float):
+    """Rings around flagged points, plus their ids."""
+    for x, y, w in zip(xs, ys, who):
+        if not np.isfinite(y):
+            continue
+        if w in outliers:
+            ax.scatter([x], [y], s=size * 4.5, facecolors="none", edgecolors="black", linewidths=0.8, zorder=6,
+                       label="outlier (modified z > 3.5)")
+        if w in low:
+            ax.scatter([x], [y], s=size * 4.5, marker="D", facecolors="none", edgecolors="#CC79A7",
+                       linewidths=0.9, zorder=6, label="low coverage (< 50% voxels)")
+        if w in outliers or w in low:
+            ax.annotate(w, (x, y), xytext=(4, 0), textcoords="offset points", fontsize=5.0, va="center",
+                        color="0.25", zorder=7)
+
+
+def _legend_rank(label: str) -> int:
+    """Legend order: data points first, then estimates, then flags."""
+    if label.startswith(("outlier", "low coverage")):
+        return 3
+    if any(w in label for w in ("mean", "estimate", "difference and", "line", "band", "model b")):
+        return 2
+    return 1
+
+
+def _dedupe_legend(ax, owned: bool, **kwargs):
+    """One entry per label; below the plot when roikit made the figure, inside the Axes otherwise."""
+    handles, labels = ax.get_legend_handles_labels()
+    seen: dict[str, Any] = {}
+    for h, lab in zip(handles, labels):
+        if lab and not lab.startswith("_") and lab not in seen:
+            seen[lab] = h
+    if not seen:
+        return seen
+    seen = dict(sorted(seen.items(), key=lambda kv: _legend_rank(kv[0])))
+    opts = dict(handletextpad=0.3, columnspacing=1.0, borderaxespad=0.2, markerscale=0.8)
+    opts.update(kwargs)
+    if owned:
+        wide = max(len(k) for k in seen) > 28
+        ax.figure.legend(list(seen.values()), list(seen.keys()), loc="outside lower center",
+                         ncols=1 if wide or len(seen) == 1 else 2, **opts)
+    else:
+        ax.legend(list(seen.values()), list(seen.keys()), loc="best", **opts)
+    return seen
+
+
+# --------------------------------------------------------------------------------------------- participant plots
+def participant_plot(
+    data: pd.DataFrame,
+    *,
+    region: str | None = None,
+    contrast: str | None = None,
+    versus: str | None = None,
+    contrasts: Sequence[str] | None = None,
+    group: str | None = None,
+    levels: Sequence[str] | None = None,
+    participants: pd.DataFrame | None = None,
+    results: pd.DataFrame | None = None,
+    value: str = "value",
+    participant: str = "participant_id",
+    confidence: float = 0.95,
+    difference: bool = True,
+    seed: int | None = 0,
+    width: Width = "single",
+    legend: bool = True,
+    ax=None,
+):
+    """Every participant's region value as a point, with the estimate and its CI beside the points.
+
+    Parameters
+    ----------
+    data : DataFrame
+        Region values table (participant_id, contrast, region, value, [n_voxels, n_valid]).
+    region : str, optional
+        Region to draw (required when the table holds several).
+    contrast, versus : str, optional
+        One contrast (one-sample or between-group design), or two contrasts compared within participants
+        (paired design: each participant's values are connected, and the differences are drawn to the right).
+    contrasts : sequence of str, optional
+        Several contrasts on the x axis, connected within participants (e.g. a mixed design over stimuli).
+    group : str, optional
+        Column (of ``data`` or ``participants``) with the group of each participant; groups are drawn side by
+        side with distinct colour and marker.
+    levels : sequence of str, optional
+        Order of the groups (default: order of appearance).
+    participants : DataFrame, optional
+        participants.tsv (for ``group``).
+    results : DataFrame, optional
+        Group results; the matching row gives the estimate and CI drawn beside the points (so the figure and
+        the table agree) and the participants to flag (``outlier_ids``, ``low_coverage_ids``).
+    value, participant : str
+        Column names.
+    confidence : float
+        Level of the intervals computed here (means per condition and group).
+    difference : bool
+        For two contrasts, also draw the within-participant differences (paired) or the group difference.
+    seed : int or None
+        Seed of the horizontal jitter.
+    width : "single", "double" or float
+        Figure width (mm) when a new figure is made.
+    legend : bool
+        Draw a legend.
+    ax : matplotlib Axes, optional
+        Axes to draw on.
+
+    Returns
+    -------
+    matplotlib.axes.Axes
+    """
+    check_columns(data, REQUIRED_VALUES, "region values table")
+    region = _pick_region(data, region)
+    part = data[data["region"].map(text) == region]
+    available = ordered_unique(part["contrast"].map(text))
+    if contrasts is not None:
+        conditions = [str(c) for c in contrasts]
+    elif contrast is not None:
+        conditions = [contrast] + ([versus] if versus is not None else [])
+    elif len(available) == 1:
+        conditions = available
+    else:
+        raise UsageError(f"contrast is required: the values hold contrasts {', '.join(available)}")
+    unknown = [c for c in conditions if c not in available]
+    if unknown:
+        raise UsageError(f"contrast(s) {', '.join(unknown)} not found for region {region!r} "
+                         f"(available: {', '.join(available)})")
+    part = part[part["contrast"].map(text).isin(conditions)].copy()
+    part[participant] = part[participant].astype(str)
+    if group is not None:
+        labels = group_of(part, participants, group)
+        if labels is None:
+            raise UsageError(f"group column {group!r} is neither in the values table nor in participants; "
+                             "pass participants=... or choose an existing column")
+        part["_group"] = labels.to_numpy()
+        groups = [str(g) for g in levels] if levels is not None else ordered_unique(part["_group"])
+        part = part[part["_group"].isin(groups)]
+    else:
+        part["_group"] = "all"
+        groups = ["all"]
+    part["_value"] = pd.to_numeric(part[value], errors="coerce")
+
+    # which test does this picture show?
+    if len(conditions) == 2 and len(groups) == 1:
+        mode = "paired"
+        rows = _results_rows(results, region=region, designs=["paired"], contrast=conditions[0], versus=conditions[1])
+    elif len(conditions) == 1 and len(groups) == 2:
+        mode = "two-group"
+        rows = _results_rows(results, region=region, designs=["two-group"], contrast=conditions[0])
+    elif len(conditions) == 1 and len(groups) == 1:
+        mode = "one-sample"
+        rows = _results_rows(results, region=region, designs=["one-sample", "fixed-effects", "precision-weighted"],
+                             contrast=conditions[0], term="mean")
+    else:
+        mode = "multi"
+        rows = _results_rows(results, region=region, designs=["mixed", "glm", "two-group", "one-sample"])
+        if "contrast" in rows.columns:
+            rows = rows[rows["contrast"].map(text).isin(conditions + [""])]
+    outliers = _flagged(rows, "outlier_ids")
+    low = _flagged(rows, "low_coverage_ids") | _low_coverage(part, participant)
+
+    wide = part.groupby([participant, "_group", "contrast"], sort=False)["_value"].first().unstack("contrast")
+    wide = wide.reindex(columns=conditions)
+    who_all = [w for w, _ in wide.index]
+    jit = _jitter(ordered_unique(who_all), 0.07 if len(groups) > 1 and len(conditions) > 1 else 0.09, seed)
+
+    with style():
+        owned = ax is None
+        ax = _new_axes(ax, width, 72)
+        point_size = 14.0
+        between = len(conditions) == 1 and len(groups) > 1
+        offsets = [0.0] * len(groups) if between or len(groups) == 1 else list(np.linspace(-0.2, 0.2, len(groups)))
+        tick_pos, tick_lab = [], []
+        for gi, g in enumerate(groups):
+            color = GROUP_COLORS[gi % len(GROUP_COLORS)] if len(groups) > 1 else "#56B4E9"
+            edge = GROUP_COLORS[gi % len(GROUP_COLORS)] if len(groups) > 1 else "#0072B2"
+            marker = GROUP_MARKERS[gi % len(GROUP_MARKERS)]
+            sub = wide[[lab == g for _, lab in wide.index]]
+            who = [w for w, _ in sub.index]
+            xs_by_cond = []
+            for ci, c in enumerate(conditions):
+                base = (gi if between else ci) + offsets[gi]
+                xs = np.array([base + jit[w] for w in who])
+                ys = sub[c].to_numpy(dtype=float)
+                xs_by_cond.append((xs, ys))
+                label = g if len(groups) > 1 else "participant"
+                ax.scatter(xs, ys, s=point_size, marker=marker, facecolor=color, edgecolor=edge, alpha=0.75,
+                           linewidths=0.4, zorder=3, label=label)
+                if mode != "paired":
+                    _mark(ax, xs, ys, who, outliers, low, size=point_size)
+                else:
+                    _mark(ax, xs, ys, who, set(), low if c == conditions[0] else _low_coverage(
+                        part[part["contrast"] == c], participant), size=point_size)
+                n_ok = int(np.isfinite(ys).sum())
+                n_missing = int((~np.isfinite(ys)).sum())
+                side = -1 if (len(conditions) == 2 and ci == 0 and not between) else 1
+                ex = base + side * (0.2 if len(groups) == 1 or between else 0.12)
+                if mode == "one-sample" and len(rows):
+                    r = rows.iloc[0]
+                    m, lo, hi = number(r["estimate"]), number(r.get("ci_low")), number(r.get("ci_high"))
+                else:
+                    m, lo, hi = mean_ci(ys, confidence=confidence)
+                _estimate(ax, ex, m, lo, hi, label=f"mean and {confidence:.0%} CI")
+                if between:
+                    tick_pos.append(base)
+                    tick_lab.append(f"{g}\n(n = {n_ok}{f', {n_missing} missing' if n_missing else ''})")
+                elif gi == 0:
+                    tick_pos.append(ci)
+                    total = int(np.isfinite(wide[c].to_numpy(dtype=float)).sum())
+                    tick_lab.append(f"{c}\n(n = {total})")
+            if len(conditions) >= 2:  # within-participant lines
+                xs_stack = np.vstack([x for x, _ in xs_by_cond])
+                ys_stack = np.vstack([y for _, y in xs_by_cond])
+                segments = [np.column_stack([xs_stack[:, k], ys_stack[:, k]]) for k in range(xs_stack.shape[1])]
+                ax.add_collection(LineCollection(segments, colors=edge if len(groups) > 1 else "0.55",
+                                                 linewidths=0.45, alpha=0.45, zorder=2), autolim=True)
+            if mode == "paired" and difference:
+                d = xs_by_cond[0][1] - xs_by_cond[1][1]
+                xd = 2.35
+                xs = np.array([xd + jit[w] for w in who])
+                ax.scatter(xs, d, s=point_size, marker=marker, facecolor="white", edgecolor=edge,
+                           linewidths=0.7, zorder=3, label="participant difference")
+                _mark(ax, xs, d, who, outliers, set(), size=point_size)
+                if len(rows):
+                    r = rows.iloc[0]
+                    m, lo, hi = number(r["estimate"]), number(r.get("ci_low")), number(r.get("ci_high"))
+                else:
+                    m, lo, hi = mean_ci(d, confidence=confidence)
+                _estimate(ax, xd + 0.22, m, lo, hi, marker="D", label="difference and CI")
+                tick_pos.append(xd)
+                tick_lab.append(f"{conditions[0]} − {conditions[1]}\n(n = {int(np.isfinite(d).sum())})")
+        if mode == "two-group" and difference:
+            xd = 2.2
+            if len(rows):
+                r = rows.iloc[0]
+                m, lo, hi = number(r["estimate"]), number(r.get("ci_low")), number(r.get("ci_high"))
+            else:
+                a = wide[[lab == groups[0] for _, lab in wide.index]][conditions[0]].to_numpy(dtype=float)
+                b = wide[[lab == groups[1] for _, lab in wide.index]][conditions[0]].to_numpy(dtype=float)
+                a, b = a[np.isfinite(a)], b[np.isfinite(b)]
+                res = stats.ttest_ind(a, b, equal_var=False)
+                ci = res.confidence_interval(confidence)
+                m, lo, hi = a.mean() - b.mean(), ci.low, ci.high
+            _estimate(ax, xd, m, lo, hi, marker="D", label="difference and CI")
+            tick_pos.append(xd)
+            tick_lab.append(f"{groups[0]} − {groups[1]}")
+        ax.axhline(0, **_ZERO_STYLE)
+        ax.set_xticks(tick_pos, tick_lab)
+        lo_x = min(tick_pos) - 0.45
+        hi_x = max(tick_pos) + 0.45
+        ax.set_xlim(lo_x, hi_x)
+        ax.set_ylabel("region value" if value == "value" else value)
+        title = region
+        if between or mode == "one-sample":
+            title += f" · {conditions[0]}"
+        ax.set_title(title)
+        if legend:
+            _dedupe_legend(ax, owned)
+    return ax
+
+
+def participant_figure(
+    data: pd.DataFrame,
+    *,
+    regions: Sequence[str] | None = None,
+    ncols: int | None = None,
+    width: Width = "double",
+    panel_height_mm: float = 58.0,
+    plot=None,
+    **kwargs,
+) -> Figure:
+    """One panel per region (see :func:`participant_plot`, whose options ``kwargs`` are), one shared legend.
+
+    Parameters
+    ----------
+    data : DataFrame
+        Region values table.
+    regions : sequence of str, optional
+        Regions to draw, in this order (default: all, in their order of appearance).
+    ncols : int, optional
+        Panels per row (default: up to 4 at double width, 2 at single width).
+    width : "single", "double" or float
+        Figure width in mm.
+    panel_height_mm : float
+        Height of one row of panels.
+    plot : callable, optional
+        The panel function (default :func:`participant_plot`; also :func:`precision_plot`,
+        :func:`stimulus_plot`, :func:`covariate_plot`).
+
+    Returns
+    -------
+    matplotlib.figure.Figure
+    """
+    check_columns(data, REQUIRED_VALUES, "region values table")
+    plot = plot or participant_plot
+    regions = list(regions) if regions is not None else ordered_unique(data["region"].map(text))
+    if not regions:
+        raise UsageError("no region to draw: the values table is empty")
+    wmm = _width_mm(width)
+    ncols = ncols or max(1, min(len(regions), 4 if wmm >= 150 else 2))
+    nrows = int(np.ceil(len(regions) / ncols))
+    with style():
+        fig = Figure(figsize=(wmm * _MM, (panel_height_mm * nrows + 14) * _MM), layout="constrained")
+        axes = fig.subplots(nrows, ncols, squeeze=False)
+        handles: dict[str, Any] = {}
+        for ax, region in zip(axes.flat, regions):
+            plot(data, region=region, ax=ax, legend=False, **kwargs)
+            for h, lab in zip(*ax.get_legend_handles_labels()):
+                if lab and not lab.startswith("_"):
+                    handles.setdefault(lab, h)
+        handles = dict(sorted(handles.items(), key=lambda kv: _legend_rank(kv[0])))
+        for ax in list(axes.flat)[len(regions):]:
+            ax.set_visible(False)
+        if handles:
+            fig.legend(list(handles.values()), list(handles.keys()), loc="outside lower center",
+                       ncols=min(len(handles), 3 if wmm >= 150 else 2), handletextpad=0.3, columnspacing=1.2,
+                       markerscale=0.8)
+    return fig
+
+
+# --------------------------------------------------------------------------------------------- forest plot
+def forest_plot(
+    results: pd.DataFrame,
+    *,
+    design: str | None = None,
+    term: str | None = None,
+    contrast: str | None = None,
+    measure: Literal["auto", "effect_size", "estimate"] = "auto",
+    correction: str | None = None,
+    alpha: float = 0.05,
+    annotate: bool = True,
+    width: Width = "single",
+    legend: bool = True,
+    ax=None,
+):
+    """Effect sizes (or estimates) with their CIs across regions; filled markers survive the correction.
+
+    Parameters
+    ----------
+    results : DataFrame
+        Group results table.
+    design, term, contrast : str, optional
+        Rows to draw (default: all rows that have the measure and its CI; rows of other analyses are labelled
+        "region · term").
+    measure : {"auto", "effect_size", "estimate"}
+        ``auto`` uses the effect size when every row has one with its CI, else the estimate.
+    correction : str, optional
+        Adjusted p deciding survival (``holm``, ``fdr``, ``fwe``); default: the first method in the rows'
+        ``correction`` column that has a ``p_<method>`` column. Without any, the uncorrected p is used and the
+        legend says so.
+    alpha : float
+        Significance level.
+    annotate : bool
+        Write the value, its CI and the adjusted p to the right of each row.
+
+    Returns
+    -------
+    matplotlib.axes.Axes
+    """
+    check_columns(results, REQUIRED_RESULTS, "results table")
+    rows = results
+    if design is not None:
+        rows = rows[rows["design"].map(text) == design]
+    if term is not None:
+        rows = rows[rows["term"].map(text) == term]
+    if contrast is not None and "contrast" in rows.columns:
+        rows = rows[rows["contrast"].map(text) == contrast]
+    if measure == "auto":
+        use_effect = (has_values(rows, "effect_size") and has_values(rows, "effect_size_ci_low")
+                      and all(np.isfinite(number(v)) for v in col(rows, "effect_size_ci_low")))
+        measure = "effect_size" if use_effect else "estimate"
+    lo_col, hi_col = ("effect_size_ci_low", "effect_size_ci_high") if measure == "effect_size" else ("ci_low", "ci_high")
+    keep = [np.isfinite(number(v)) for v in col(rows, measure)]
+    rows = rows[keep]
+    if len(rows) == 0:
+        raise UsageError(f"nothing to draw: no row has a finite {measure} (F rows have none); choose design/term")
+    if correction is None:
+        for cell in col(rows, "correction"):
+            for method in ids(cell):
+                if has_values(rows, f"p_{method}"):
+                    correction = method
+                    break
+            if correction:
+                break
+    pcol = f"p_{correction}" if correction and has_values(rows, f"p_{correction}") else "p"
+    multi_term = rows[["design", "term"]].astype(str).drop_duplicates().shape[0] > 1
+    labels = [text(r["region"]) + (f" · {text(r['term'])}" if multi_term else "") for _, r in rows.iterrows()]
+    m = np.array([number(v) for v in rows[measure]])
+    lo = np.array([number(v) for v in col(rows, lo_col)])
+    hi = np.array([number(v) for v in col(rows, hi_col)])
+    p = np.array([number(v) for v in rows[pcol]])
+    survive = p < alpha
+    etypes = ordered_unique(col(rows, "effect_size_type"))
+    if measure == "effect_size":
+        xlabel = (_EFFECT_MATH.get(text(etypes[0]), text(etypes[0])) if len(etypes) == 1 else "effect size")
+    else:
+        xlabel = "estimate"
+    levels_ = ordered_unique(col(rows, "confidence"))
+    level = number(levels_[0]) if levels_ else 0.95
+    with style():
+        ax = _new_axes(ax, width, 16 + 7 * len(rows))
+        y = np.arange(len(rows))[::-1]
+        for yi, a, b in zip(y, lo, hi):
+            if np.isfinite(a) and np.isfinite(b):
+                ax.plot([a, b], [yi, yi], color="#0072B2", lw=1.2, solid_capstyle="butt", zorder=2)
+        name = {"holm": "Holm", "fdr": "FDR", "fwe": "FWE"}.get(str(correction), str(correction))
+        a_txt = format_number(alpha, 3 if alpha * 100 % 1 else 2, leading_zero=False)
+        if pcol == "p":
+            lab_yes, lab_no = f"p < {a_txt} (uncorrected)", f"p ≥ {a_txt} (uncorrected)"
+        else:
+            lab_yes, lab_no = f"survives {name} (p < {a_txt})", f"does not survive {name}"
+        ax.scatter(m[survive], y[survive], s=26, marker="s", color="#0072B2", zorder=3, label=lab_yes)
+        ax.scatter(m[~survive], y[~survive], s=26, marker="s", facecolor="white", edgecolor="#0072B2",
+                   linewidths=1.0, zorder=3, label=lab_no)
+        ax.axvline(0, **_ZERO_STYLE)
+        ax.set_yticks(y, labels)
+        ax.set_ylim(-0.7, len(rows) - 0.3)
+        ax.set_xlabel(f"{xlabel} and {level:.0%} CI")
+        ax.spines["left"].set_visible(False)
+        ax.tick_params(axis="y", length=0)
+        if annotate:
+            tr = blended_transform_factory(ax.transAxes, ax.transData)
+            for yi, (_, r), pv in zip(y, rows.iterrows(), p):
+                bounded = measure == "effect_size" and text(r.get("effect_size_type")) in BOUNDED_EFFECTS
+                dec = 2
+                txt = (f"{format_number(r[measure], dec, leading_zero=not bounded)} "
+                       f"{format_ci(r.get(lo_col), r.get(hi_col), dec, leading_zero=not bounded)}")
+                pt = format_p(pv)
+                txt += f"  p{'' if pcol == 'p' else '_' + name} {'= ' + pt if pt[0] not in '<>' else pt}"
+                ax.text(1.03, yi, txt, transform=tr, va="center", ha="left", fontsize=5.8, clip_on=False)
+        if legend:
+            ax.legend(loc="lower center", bbox_to_anchor=(0.5, 1.0), ncols=2, handletextpad=0.2,
+                      columnspacing=1.0, borderaxespad=0.1)
+    return ax
+
+
+# --------------------------------------------------------------------------------------------- precision
+def precision_plot(
+    data: pd.DataFrame,
+    *,
+    region: str | None = None,
+    contrast: str | None = None,
+    results: pd.DataFrame | None = None,
+    variance: str = "variance",
+    value: str = "value",
+    participant: str = "participant_id",
+    confidence: float = 0.95,
+    seed: int | None = 0,
+    width: Width = "single",
+    legend: bool = True,
+    ax=None,
+    **_ignored,
+):
+    """Participants' values with point area proportional to their precision weight ``1/(v_i + τ²)``.
+
+    ``τ²`` is taken from the matching precision-weighted results row (0 when absent); the precision-weighted
+    estimate and CI of that row are drawn beside the points (without results, the unweighted mean and its
+    *t* interval, labelled as such).
+
+    Returns
+    -------
+    matplotlib.axes.Axes
+    """
+    check_columns(data, REQUIRED_VALUES, "region values table")
+    if variance not in data.columns:
+        raise UsageError(f"precision_plot needs the {variance!r} column (extract with --variance)")
+    region = _pick_region(data, region)
+    part = data[data["region"].map(text) == region]
+    contrasts = ordered_unique(part["contrast"].map(text))
+    if contrast is None:
+        if len(contrasts) != 1:
+            raise UsageError(f"contrast is required: the values hold contrasts {', '.join(contrasts)}")
+        contrast = contrasts[0]
+    part = part[part["contrast"].map(text) == contrast]
+    rows = _results_rows(results, region=region, designs=["precision-weighted"], contrast=contrast)
+    tau2 = number(rows.iloc[0].get("tau2")) if len(rows) else 0.0
+    tau2 = tau2 if np.isfinite(tau2) else 0.0
+    y = pd.to_numeric(part[value], errors="coerce").to_numpy(dtype=float)
+    v = pd.to_numeric(part[variance], errors="coerce").to_numpy(dtype=float)
+    who = part[participant].astype(str).tolist()
+    w = 1.0 / (v + tau2)
+    ok = np.isfinite(y) & np.isfinite(w)
+    sizes = np.where(ok, 6 + 70 * w / np.nanmax(w[ok]), 0)
+    jit = _jitter(who, 0.12, seed)
+    with style():
+        owned = ax is None
+        ax = _new_axes(ax, width, 72)
+        xs = np.array([jit[p] for p in who])
+        ax.scatter(xs[ok], y[ok], s=sizes[ok], color="#56B4E9", edgecolor="#0072B2", linewidths=0.4, alpha=0.75,
+                   zorder=3)
+        _mark(ax, xs, y, who, _flagged(rows, "outlier_ids"), _flagged(rows, "low_coverage_ids") |
+              _low_coverage(part, participant), size=14)
+        if len(rows):
+            r = rows[rows["term"].map(text) == "mean"].iloc[0] if (rows["term"].map(text) == "mean").any() else rows.iloc[0]
+            _estimate(ax, 0.32, number(r["estimate"]), number(r.get("ci_low")), number(r.get("ci_high")),
+                      label="precision-weighted estimate and CI")
+        else:
+            m, lo, hi = mean_ci(y, confidence=confidence)
+            _estimate(ax, 0.32, m, lo, hi, label=f"unweighted mean and {confidence:.0%} CI")
+        # size key
+        wk = np.nanmax(w[ok])
+        for frac, lab in ((1.0, "highest precision"), (0.25, "¼ of highest")):
+            ax.scatter([], [], s=6 + 70 * frac, color="#56B4E9", edgecolor="#0072B2", linewidths=0.4,
+                       label=f"{lab} (w = {format_number(wk * frac, 1)})")
+        ax.axhline(0, **_ZERO_STYLE)
+        ax.set_xticks([0], [f"{contrast}\n(n = {int(ok.sum())}, τ² = {format_number(tau2, 3)})"])
+        ax.set_xlim(-0.5, 0.6)
+        ax.set_ylabel("region value")
+        ax.set_title(f"{region} · {contrast}")
+        if legend:
+            _dedupe_legend(ax, owned)
+    return ax
+
+
+# --------------------------------------------------------------------------------------------- stimuli
+def stimulus_plot(
+    data: pd.DataFrame,
+    *,
+    region: str | None = None,
+    stimulus: str = "contrast",
+    stimuli: Sequence[str] | None = None,
+    group: str | None = None,
+    participants: pd.DataFrame | None = None,
+    results: pd.DataFrame | None = None,
+    value: str = "value",
+    participant: str = "participant_id",
+    confidence: float = 0.95,
+    seed: int | None = 0,
+    width: Width = "single",
+    legend: bool = True,
+    ax=None,
+    **_ignored,
+):
+    """Per-stimulus estimates (mean and CI across participants) with every participant's value behind them.
+
+    For mixed models with a crossed random effect of stimuli: the spread of the per-stimulus means is what
+    the stimulus variance component describes. The dotted line is the mean of the stimulus means.
+
+    Parameters
+    ----------
+    stimulus : str
+        Column naming the stimulus (default ``contrast``, e.g. town1..town6).
+    stimuli : sequence of str, optional
+        Stimulus levels to draw, in order (default: all, in order of appearance).
+    group : str, optional
+        Colour and marker the participants by this group column.
+
+    Returns
+    -------
+    matplotlib.axes.Axes
+    """
+    check_columns(data, REQUIRED_VALUES, "region values table")
+    region = _pick_region(data, region)
+    if stimulus not in data.columns:
+        raise UsageError(f"stimulus column {stimulus!r} is not in the values table")
+    part = data[data["region"].map(text) == region].copy()
+    levels_ = [str(s) for s in stimuli] if stimuli is not None else ordered_unique(part[stimulus].map(text))
+    part = part[part[stimulus].map(text).isin(levels_)]
+    part["_value"] = pd.to_numeric(part[value], errors="coerce")
+    part["_who"] = part[participant].astype(str)
+    if group is not None:
+        labels = group_of(part, participants, group)
+        if labels is None:
+            raise UsageError(f"group column {group!r} is neither in the values table nor in participants")
+        part["_group"] = labels.to_numpy()
+    else:
+        part["_group"] = "participant"
+    groups = ordered_unique(part["_group"])
+    jit = _jitter(ordered_unique(part["_who"]), 0.13, seed)
+    rows = _results_rows(results, region=region, designs=["mixed"])
+    with style():
+        owned = ax is None
+        ax = _new_axes(ax, width, 72)
+        means = []
+        for si, s in enumerate(levels_):
+            sp = part[part[stimulus].map(text) == s]
+            for gi, g in enumerate(groups):
+                gp = sp[sp["_group"] == g]
+                xs = si + np.array([jit[w] for w in gp["_who"]]) - 0.08
+                ax.scatter(xs, gp["_value"], s=8, marker=GROUP_MARKERS[gi % 6],
+                           color=GROUP_COLORS[gi % 6] if len(groups) > 1 else "#56B4E9", alpha=0.45,
+                           linewidths=0, zorder=2, label=g if len(groups) > 1 else "participant")
+            m, lo, hi = mean_ci(sp["_value"], confidence=confidence)
+            means.append(m)
+            _estimate(ax, si + 0.22, m, lo, hi, label=f"stimulus mean and {confidence:.0%} CI")
+            _mark(ax, si + np.array([jit[w] for w in sp["_who"]]) - 0.08, sp["_value"].to_numpy(), sp["_who"],
+                  _flagged(rows, "outlier_ids"), _flagged(rows, "low_coverage_ids"), size=8)
+        grand = float(np.nanmean(means)) if means else np.nan
+        if np.isfinite(grand):
+            ax.axhline(grand, color="#009E73", lw=0.8, ls=":", zorder=1, label="mean of stimulus means")
+        ax.axhline(0, **_ZERO_STYLE)
+        counts = [int(part[(part[stimulus].map(text) == s)]["_value"].notna().sum()) for s in levels_]
+        ax.set_xticks(range(len(levels_)), [f"{s}\n(n = {c})" for s, c in zip(levels_, counts)])
+        ax.set_xlim(-0.6, len(levels_) - 0.4)
+        ax.set_ylabel("region value")
+        ax.set_title(f"{region} · per {stimulus}" if stimulus != "contrast" else f"{region} · per stimulus")
+        if legend:
+            _dedupe_legend(ax, owned)
+    return ax
+
+
+# --------------------------------------------------------------------------------------------- covariates
+def covariate_plot(
+    data: pd.DataFrame,
+    *,
+    covariate: str,
+    region: str | None = None,
+    contrast: str | None = None,
+    participants: pd.DataFrame | None = None,
+    group: str | None = None,
+    levels: Sequence[str] | None = None,
+    results: pd.DataFrame | None = None,
+    value: str = "value",
+    participant: str = "participant_id",
+    confidence: float = 0.95,
+    width: Width = "single",
+    legend: bool = True,
+    ax=None,
+    **_ignored,
+):
+    """Region value against a covariate, with the least-squares line and its confidence band.
+
+    The line is the simple regression of the value on the covariate (all participants); the model's
+    coefficient, adjusted for the other terms, is quoted in the legend when ``results`` hold the glm row.
+
+    Returns
+    -------
+    matplotlib.axes.Axes
+    """
+    check_columns(data, REQUIRED_VALUES, "region values table")
+    region = _pick_region(data, region)
+    part = data[data["region"].map(text) == region]
+    contrasts = ordered_unique(part["contrast"].map(text))
+    if contrast is None:
+        if len(contrasts) != 1:
+            raise UsageError(f"contrast is required: the values hold contrasts {', '.join(contrasts)}")
+        contrast = contrasts[0]
+    part = attach(part[part["contrast"].map(text) == contrast], participants, [covariate] + ([group] if group else []))
+    if covariate not in part.columns:
+        raise UsageError(f"covariate {covariate!r} is neither in the values table nor in participants.tsv")
+    x = pd.to_numeric(part[covariate], errors="coerce").to_numpy(dtype=float)
+    y = pd.to_numeric(part[value], errors="coerce").to_numpy(dtype=float)
+    who = part[participant].astype(str).tolist()
+    if group is not None and group in part.columns:
+        g = part[group].map(lambda v: text(v, "n/a")).to_numpy()
+        groups = [str(lv) for lv in levels] if levels is not None else ordered_unique(g)
+    else:
+        g = np.array(["participant"] * len(part))
+        groups = ["participant"]
+    rows = _results_rows(results, region=region, designs=["glm", "precision-weighted", "mixed"], term=covariate)
+    with style():
+        owned = ax is None
+        ax = _new_axes(ax, width, 72)
+        grid, fit, lo, hi = fit_line(x, y, confidence=confidence)
+        ax.fill_between(grid, lo, hi, color="0.8", alpha=0.6, linewidth=0, zorder=1,
+                        label=f"{confidence:.0%} confidence band")
+        ax.plot(grid, fit, color="black", lw=1.0, zorder=2, label="least-squares line")
+        for gi, lv in enumerate(groups):
+            sel = g == lv
+            ax.scatter(x[sel], y[sel], s=14, marker=GROUP_MARKERS[gi % 6],
+                       color=GROUP_COLORS[gi % 6] if len(groups) > 1 else "#56B4E9",
+                       edgecolor=GROUP_COLORS[gi % 6] if len(groups) > 1 else "#0072B2", alpha=0.8,
+                       linewidths=0.4, zorder=3, label=lv)
+        _mark(ax, x, y, who, _flagged(rows, "outlier_ids"),
+              _flagged(rows, "low_coverage_ids") | _low_coverage(part, participant), size=14)
+        if len(rows):
+            r = rows.iloc[0]
+            ax.plot([], [], " ", label=f"model b = {format_number(r['estimate'], 3)} "
+                                       f"{format_ci(r.get('ci_low'), r.get('ci_high'), 3)}")
+        ax.axhline(0, **_ZERO_STYLE)
+        ax.set_xlabel(covariate)
+        ax.set_ylabel("region value")
+        ax.set_title(f"{region} · {contrast}")
+        if legend:
+            _dedupe_legend(ax, owned)
+    return ax
+
+
+# --------------------------------------------------------------------------------------------- export
+def save_figure(
+    fig: Figure,
+    path: os.PathLike | str,
+    *,
+    width: Width | None = None,
+    formats: Sequence[str] = ("pdf", "svg", "png"),
+    dpi: int = 300,
+    overwrite: bool = False,
+) -> list[Path]:
+    """Save a figure as PDF and SVG (vector, fonts embedded / text as outlines) and a ``dpi`` PNG.
+
+    Parameters
+    ----------
+    fig : Figure
+        The figure (``ax.figure`` for an Axes-level plot).
+    path : path
+        Destination without extension (an extension, if given, is replaced by each format's).
+    width : "single", "double", float or None
+        Resize to a journal width (mm), keeping the aspect ratio; None keeps the current size.
+    formats : sequence of {"pdf", "svg", "png"}
+    dpi : int
+        Resolution of the PNG (300 is the common journal minimum for line art with tones).
+    overwrite : bool
+        Replace existing files.
+
+    Returns
+    -------
+    list of Path
+        The files written, atomically.
+
+    Notes
+    -----
+    PDF text uses TrueType (Type 42) fonts embedded in the file (``pdf.fonttype = 42``); SVG text is
+    converted to paths (``svg.fonttype = 'path'``), so it renders identically without the font installed.
+    """
+    stem = Path(path)
+    if stem.suffix.lower() in (".pdf", ".svg", ".png"):
+        stem = stem.with_suffix("")
+    targets = []
+    for ext in formats:
+        if ext not in ("pdf", "svg", "png"):
+            raise UsageError(f"figure format must be pdf, svg or png, got {ext!r}")
+        targets.append(check_output(stem.with_name(stem.name + "." + ext), overwrite=overwrite))
+    if width is not None:
+        w, h = fig.get_size_inches()
+        new_w = _width_mm(width) * _MM
+        fig.set_size_inches(new_w, h * new_w / w)
+    written = []
+    with style():
+        for ext, target in zip(formats, targets):
+            buf = io.BytesIO()
+            meta = {"Creator": "roikit"} if ext in ("pdf", "svg") else {"Software": "roikit"}
+            if ext == "svg":
+                meta = {"Creator": "roikit", "Date": None}
+            elif ext == "pdf":
+                meta = {"Creator": "roikit", "CreationDate": None}
+            fig.savefig(buf, format=ext, dpi=dpi, metadata=meta, facecolor="white")
+            written.append(atomic_write_bytes(target, buf.getvalue(), overwrite=overwrite))
+    return written

@@ -1,0 +1,680 @@
+"""Paper-ready tables: group results and descriptives as Markdown, LaTeX (booktabs), HTML, Word and TSV.
+
+A :class:`ReportTable` holds formatted cells (APA conventions, see :mod:`roikit.reporting.format`) and renders
+them in every format, so the numbers are identical everywhere. Rows keep their identity (design, region,
+term) so tests and readers can trace every cell back to the results table.
+
+Examples
+--------
+>>> tables = results_tables(results)                       # doctest: +SKIP
+>>> print(tables[0].to_markdown())                         # doctest: +SKIP
+>>> tables[0].to_docx("table1.docx")                       # doctest: +SKIP
+"""
+
+from __future__ import annotations
+
+import html as _html
+import io
+import os
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any, Iterable, Sequence
+
+import numpy as np
+import pandas as pd
+
+from .._tables import atomic_write_bytes, check_output
+from ..errors import UsageError
+from ._common import (
+    REQUIRED_RESULTS,
+    REQUIRED_VALUES,
+    analysis_title,
+    check_columns,
+    col,
+    flag,
+    group_of,
+    has_values,
+    ids,
+    number,
+    ordered_unique,
+    slug,
+    split_analyses,
+    text,
+)
+from .format import (
+    BOUNDED_EFFECTS,
+    MISSING,
+    corrected_p_symbol,
+    effect_symbol,
+    escape_markup,
+    estimate_symbol,
+    format_ci,
+    estimate_decimals,
+    format_confidence,
+    format_df,
+    format_number,
+    format_p,
+    format_percent,
+    is_missing,
+    latex_escape,
+    render,
+    statistic_symbol,
+)
+
+__all__ = [
+    "Column",
+    "ReportTable",
+    "results_tables",
+    "results_table",
+    "descriptives",
+    "descriptives_table",
+    "cell_formatters",
+    "estimate_decimals",
+    "CORRECTION_TEXT",
+    "DF_METHOD_TEXT",
+]
+
+#: How each df method is described in notes and methods text.
+DF_METHOD_TEXT = {
+    "student": "Student *t* distribution",
+    "welch": "Welch–Satterthwaite degrees of freedom (fractional)",
+    "residual": "residual degrees of freedom of the ordinary least squares model",
+    "knapp-hartung": "Knapp–Hartung adjusted standard errors and *t* distribution",
+    "z": "standard normal reference distribution",
+    "satterthwaite": "Satterthwaite degrees of freedom (fractional)",
+}
+
+#: How each correction method is named (with its source) in notes and methods text.
+CORRECTION_TEXT = {
+    "holm": "Holm (1979) step-down family-wise error correction",
+    "fdr": "Benjamini–Hochberg (1995) false discovery rate adjustment",
+    "fwe": "permutation family-wise error correction (maximum statistic across regions)",
+    "bonferroni": "Bonferroni correction",
+}
+
+_EFFECT_TEXT = {
+    "d": "*d* = *M* / *SD* (Cohen's *d* for one sample)",
+    "d_z": "*d*_{z} = mean of the within-participant differences / their *SD*",
+    "g": "*g* = Hedges' *g* with the exact small-sample correction (Hedges, 1981)",
+    "partial_eta2": "*η*^{2}_{p} = partial eta squared",
+}
+
+_FLAG_TEXT = {
+    "outlier": "Values flagged as outliers (modified *z* > 3.5; Iglewicz & Hoaglin, 1993) were kept in the test",
+    "coverage": "Participants with valid data in fewer than half of the region's voxels (kept in the test)",
+    "converged": "The model fit did not converge; treat this result as unreliable",
+    "boundary": "A variance component was estimated at the boundary (zero)",
+    "excluded": "Participants left out of this test because of missing values",
+}
+
+
+@dataclass
+class Column:
+    """One table column: ``key`` identifies it (a results column or a derived one), ``header`` is markup."""
+
+    key: str
+    header: str
+    align: str = "r"
+
+
+@dataclass
+class ReportTable:
+    """A formatted table ready to render.
+
+    Attributes
+    ----------
+    name : str
+        File stem (``results_one-sample-novel``).
+    title : str
+        Title in markup (APA: italic title under the bold table number).
+    columns : list of Column
+    rows : list of dict
+        ``key -> cell markup``.
+    row_ids : list of dict
+        Identity of each row (``design``, ``region``, ``term``, ...), kept for tracing.
+    note : list of str
+        Sentences of the table note (markup).
+    number : int, optional
+        Table number used in captions.
+    """
+
+    name: str
+    title: str
+    columns: list[Column]
+    rows: list[dict[str, str]]
+    row_ids: list[dict[str, str]] = field(default_factory=list)
+    note: list[str] = field(default_factory=list)
+    number: int | None = None
+
+    # ------------------------------------------------------------------ plain
+    def headers(self, style: str = "plain") -> list[str]:
+        return [render(c.header, style) for c in self.columns]
+
+    def cells(self, style: str = "plain") -> list[list[str]]:
+        return [[render(row.get(c.key, MISSING), style) for c in self.columns] for row in self.rows]
+
+    def note_text(self, style: str = "plain") -> str:
+        if not self.note:
+            return ""
+        return render("*Note.* ", style) + " ".join(render(s, style) for s in self.note)
+
+    def caption(self, style: str = "plain") -> str:
+        label = f"Table {self.number}" if self.number else "Table"
+        return f"{label}. {render(self.title, style)}"
+
+    def to_frame(self) -> pd.DataFrame:
+        """The formatted cells as strings; columns are the plain headers (made unique with the key)."""
+        headers = self.headers("plain")
+        seen: dict[str, int] = {}
+        names = []
+        for h, c in zip(headers, self.columns):
+            names.append(h if h not in seen else f"{h} ({c.key})")
+            seen[h] = 1
+        return pd.DataFrame(self.cells("plain"), columns=names)
+
+    def to_tsv(self) -> str:
+        """Tab-separated formatted table (plain symbols), one header line, then the note as a comment line."""
+        lines = ["\t".join(self.headers("plain"))]
+        lines += ["\t".join(r) for r in self.cells("plain")]
+        return "\n".join(lines) + "\n"
+
+    # ------------------------------------------------------------------ markdown
+    def to_markdown(self) -> str:
+        """A GitHub/pandoc pipe table with the caption above and the note below."""
+        align = {"l": ":--", "r": "--:", "c": ":-:"}
+        lines = [f"**{self.caption('markdown').split('. ', 1)[0]}.** {render(self.title, 'markdown')}", ""]
+        lines.append("| " + " | ".join(self.headers("markdown")) + " |")
+        lines.append("|" + "|".join(align[c.align] for c in self.columns) + "|")
+        for r in self.cells("markdown"):
+            lines.append("| " + " | ".join(r) + " |")
+        if self.note:
+            lines += ["", self.note_text("markdown")]
+        return "\n".join(lines) + "\n"
+
+    # ------------------------------------------------------------------ latex
+    def to_latex(self) -> str:
+        """A LaTeX ``table`` with a booktabs ``tabular`` (needs ``\\usepackage{booktabs}``)."""
+        spec = "".join(c.align for c in self.columns)
+        label = f"tab:{slug(self.name)}"
+        lines = [
+            r"\begin{table}[htbp]",
+            r"\centering",
+            rf"\caption{{{render(self.title, 'latex')}}}",
+            rf"\label{{{label}}}",
+            rf"\begin{{tabular}}{{{spec}}}",
+            r"\toprule",
+            " & ".join(self.headers("latex")) + r" \\",
+            r"\midrule",
+        ]
+        lines += [" & ".join(r) + r" \\" for r in self.cells("latex")]
+        lines.append(r"\bottomrule")
+        lines.append(r"\end{tabular}")
+        if self.note:
+            lines.append(r"\par\smallskip")
+            lines.append(r"\begin{minipage}{\linewidth}\footnotesize " + self.note_text("latex") + r"\end{minipage}")
+        lines.append(r"\end{table}")
+        return "\n".join(lines) + "\n"
+
+    # ------------------------------------------------------------------ html
+    def to_html(self, *, table_id: str | None = None) -> str:
+        """An HTML ``<table>`` (class ``apa``) whose cells carry ``data-column`` and rows ``data-*`` identities."""
+        esc = _html.escape
+        tid = esc(table_id or slug(self.name), quote=True)
+        out = [f'<figure class="table" id="{tid}">']
+        label = f"Table {self.number}" if self.number else "Table"
+        out.append(f'<figcaption><span class="table-number">{label}</span><br><span class="table-title">'
+                   f"{render(self.title, 'html')}</span></figcaption>")
+        out.append('<table class="apa">')
+        out.append("<thead><tr>" + "".join(
+            f'<th data-column="{esc(c.key, quote=True)}" class="{c.align}">{h}</th>'
+            for c, h in zip(self.columns, self.headers("html"))) + "</tr></thead>")
+        out.append("<tbody>")
+        for rid, cells in zip(self.row_ids or [{}] * len(self.rows), self.cells("html")):
+            attrs = "".join(f' data-{esc(k)}="{esc(str(v), quote=True)}"' for k, v in rid.items())
+            out.append(f"<tr{attrs}>" + "".join(
+                f'<td data-column="{esc(c.key, quote=True)}" class="{c.align}">{v}</td>'
+                for c, v in zip(self.columns, cells)) + "</tr>")
+        out.append("</tbody></table>")
+        if self.note:
+            out.append(f'<p class="table-note">{self.note_text("html")}</p>')
+        out.append("</figure>")
+        return "\n".join(out) + "\n"
+
+    # ------------------------------------------------------------------ word
+    def to_docx(self, path: os.PathLike | str | None = None, *, document=None, overwrite: bool = False):
+        """Add the table to a python-docx ``Document`` (a new one if none) in APA layout; save to ``path``.
+
+        Returns the Document.
+        """
+        import docx
+        from docx.enum.table import WD_TABLE_ALIGNMENT
+        from docx.enum.text import WD_ALIGN_PARAGRAPH
+        from docx.shared import Pt
+
+        from .format import _parse
+
+        if path is not None:
+            check_output(path, overwrite=overwrite)
+        doc = document if document is not None else docx.Document()
+
+        def add_runs(paragraph, markup: str, *, size: float | None = None, bold: bool = False):
+            from .format import _latex_number
+
+            for content, kind in _parse(markup):
+                run = paragraph.add_run(_latex_number(content))
+                run.italic = kind == "i"
+                run.bold = bold
+                run.font.subscript = kind == "sub"
+                run.font.superscript = kind == "sup"
+                if size:
+                    run.font.size = Pt(size)
+
+        label = f"Table {self.number}" if self.number else "Table"
+        p = doc.add_paragraph()
+        add_runs(p, label, bold=True)
+        p = doc.add_paragraph()
+        add_runs(p, "*" + self.title.replace("*", "") + "*")
+        table = doc.add_table(rows=1 + len(self.rows), cols=len(self.columns))
+        table.alignment = WD_TABLE_ALIGNMENT.CENTER
+        for j, c in enumerate(self.columns):
+            cell = table.cell(0, j)
+            cell.paragraphs[0].alignment = WD_ALIGN_PARAGRAPH.LEFT if c.align == "l" else WD_ALIGN_PARAGRAPH.CENTER
+            add_runs(cell.paragraphs[0], c.header, size=9)
+        for i, row in enumerate(self.rows, start=1):
+            for j, c in enumerate(self.columns):
+                cell = table.cell(i, j)
+                cell.paragraphs[0].alignment = WD_ALIGN_PARAGRAPH.LEFT if c.align == "l" else WD_ALIGN_PARAGRAPH.RIGHT
+                add_runs(cell.paragraphs[0], row.get(c.key, MISSING), size=9)
+        _apa_borders(table)
+        if self.note:
+            p = doc.add_paragraph()
+            add_runs(p, "*Note.* " + " ".join(self.note), size=9)
+        if path is not None:
+            buf = io.BytesIO()
+            doc.save(buf)
+            atomic_write_bytes(path, buf.getvalue(), overwrite=overwrite)
+        return doc
+
+    def write(self, directory: os.PathLike | str, *, formats: Sequence[str] = ("md", "tex", "html", "docx", "tsv"),
+              overwrite: bool = False) -> list[Path]:
+        """Write the table as ``directory/<name>.<ext>`` for each format; returns the paths."""
+        directory = Path(directory)
+        paths = []
+        for ext in formats:
+            path = directory / f"{self.name}.{ext}"
+            if ext == "docx":
+                self.to_docx(path, overwrite=overwrite)
+            else:
+                body = {"md": self.to_markdown, "tex": self.to_latex, "html": self.to_html, "tsv": self.to_tsv}
+                if ext not in body:
+                    raise UsageError(f"table format must be one of md, tex, html, docx, tsv; got {ext!r}")
+                atomic_write_bytes(path, body[ext]().encode("utf-8"), overwrite=overwrite)
+            paths.append(path)
+        return paths
+
+
+def _apa_borders(table) -> None:
+    """Horizontal rules only (top, below the header, bottom), as in APA tables."""
+    from docx.oxml import OxmlElement
+    from docx.oxml.ns import qn
+
+    def set_border(cell, edge: str, size: int):
+        tc_pr = cell._tc.get_or_add_tcPr()
+        borders = tc_pr.find(qn("w:tcBorders"))
+        if borders is None:
+            borders = OxmlElement("w:tcBorders")
+            tc_pr.append(borders)
+        element = OxmlElement(f"w:{edge}")
+        element.set(qn("w:val"), "single")
+        element.set(qn("w:sz"), str(size))
+        element.set(qn("w:color"), "000000")
+        borders.append(element)
+
+    rows = table.rows
+    for cell in rows[0].cells:
+        set_border(cell, "top", 8)
+        set_border(cell, "bottom", 4)
+    for cell in rows[-1].cells:
+        set_border(cell, "bottom", 8)
+
+
+# ---------------------------------------------------------------------------------------------- results
+def cell_formatters() -> dict[str, Any]:
+    """Map from a results-table column key to the function formatting one row's cell (used by tests too).
+
+    Every function takes the results row (a mapping) and returns the cell markup.
+    """
+
+    def bounded(row) -> bool:
+        return text(row.get("effect_size_type")) in BOUNDED_EFFECTS
+
+    return {
+        "n": lambda r: format_df(r.get("n")),
+        "estimate": lambda r: format_number(r.get("estimate"), estimate_decimals(r)),
+        "ci": lambda r: format_ci(r.get("ci_low"), r.get("ci_high"), estimate_decimals(r)),
+        "se": lambda r: format_number(r.get("se"), estimate_decimals(r)),
+        "df": lambda r: format_df(r.get("df")),
+        "df1": lambda r: format_df(r.get("df1")),
+        "statistic": lambda r: format_number(r.get("statistic")),
+        "p": lambda r: format_p(r.get("p")),
+        "p_holm": lambda r: format_p(r.get("p_holm")),
+        "p_fdr": lambda r: format_p(r.get("p_fdr")),
+        "p_fwe": lambda r: format_p(r.get("p_fwe")),
+        "effect_size": lambda r: format_number(r.get("effect_size"), leading_zero=not bounded(r)),
+        "effect_ci": lambda r: format_ci(r.get("effect_size_ci_low"), r.get("effect_size_ci_high"),
+                                         leading_zero=not bounded(r)),
+        "tau2": lambda r: format_number(r.get("tau2"), 3),
+        "i2": lambda r: format_percent(r.get("i2")),
+    }
+
+
+def _flags(row: dict) -> list[tuple[str, list[str]]]:
+    """(flag kind, participant ids) of one results row."""
+    out = []
+    n_out = number(row.get("n_outliers"))
+    if (np.isfinite(n_out) and n_out > 0) or ids(row.get("outlier_ids")):
+        out.append(("outlier", ids(row.get("outlier_ids"))))
+    n_low = number(row.get("n_low_coverage"))
+    if (np.isfinite(n_low) and n_low > 0) or ids(row.get("low_coverage_ids")):
+        out.append(("coverage", ids(row.get("low_coverage_ids"))))
+    if flag(row.get("converged")) is False:
+        out.append(("converged", []))
+    if flag(row.get("boundary")) is True:
+        out.append(("boundary", []))
+    if ids(row.get("excluded_ids")):
+        out.append(("excluded", ids(row.get("excluded_ids"))))
+    return out
+
+
+def _family_sentence(rows: pd.DataFrame, corrected: list[str]) -> str | None:
+    if not corrected:
+        sizes = ordered_unique(col(rows, "family_size"))
+        size = int(number(sizes[0])) if sizes else rows["region"].nunique()
+        if size > 1:
+            return (f"*p* values are not corrected for multiple comparisons across the {size} regions tested "
+                    f"(uncorrected family).")
+        return None
+    sizes = [int(number(s)) for s in ordered_unique(col(rows, "family_size")) if np.isfinite(number(s))]
+    size_text = ", ".join(str(s) for s in sizes) if sizes else str(rows["region"].nunique())
+    names = []
+    for method in corrected:
+        desc = CORRECTION_TEXT.get(method, method)
+        if method == "fwe":
+            perms = ordered_unique(col(rows, "permutations"))
+            seeds = ordered_unique(col(rows, "seed"))
+            if perms:
+                desc += f", {int(number(perms[0])):,} permutations"
+            if seeds:
+                desc += f", seed {text(seeds[0])}"
+        names.append(f"{corrected_p_symbol(method)}: {desc}")
+    return ("Adjusted *p* values across the regions of this family (family size = " + size_text + "): "
+            + "; ".join(names) + ".")
+
+
+def _estimate_sentence(key: dict, rows: pd.DataFrame) -> str:
+    design = key.get("design", "")
+    contrast = escape_markup(key.get("contrast", ""))
+    if design in ("one-sample", "fixed-effects"):
+        return f"*M* = mean {contrast} value across participants."
+    if design == "paired":
+        return f"*M*_{{diff}} = mean within-participant difference {contrast} − {escape_markup(key.get('versus', ''))}."
+    if design == "two-group":
+        levels = key.get("levels", "").split(",")
+        if len(levels) == 2:
+            return (f"*M*_{{diff}} = difference of group means, {escape_markup(levels[0])} − "
+                    f"{escape_markup(levels[1])} ({contrast}).")
+        return "*M*_{diff} = difference of group means."
+    if design == "precision-weighted":
+        return ("Estimates are precision-weighted (inverse-variance) with a between-participant variance "
+                "*τ*^{2}; *I*^{2} = share of the total variance due to between-participant heterogeneity.")
+    return "*b* = fixed-effect coefficient (in the units of the region values)."
+
+
+def results_tables(results: pd.DataFrame, *, start: int = 1) -> list[ReportTable]:
+    """Format a group results table as APA tables: one per analysis and kind of test (*t*/*z* or *F*).
+
+    Parameters
+    ----------
+    results : DataFrame
+        A group results table (contract columns; optional columns such as ``family_size``, ``correction``,
+        ``df1``, ``tau2``, ``i2``, ``outlier_ids`` are used when present).
+    start : int
+        Number of the first table.
+
+    Returns
+    -------
+    list of ReportTable
+        Rows in the results' order (regions in region-set order, grouped by term); columns: Region, [Term],
+        *n*, estimate and its CI, *df*, the statistic, *p*, each adjusted *p* present, the effect size and its
+        CI, [*τ*^{2}, *I*^{2}]. Flags (outliers, low coverage, non-convergence, boundary fits, exclusions) are
+        superscript letters explained in the note.
+    """
+    check_columns(results, REQUIRED_RESULTS, "results table")
+    tables: list[ReportTable] = []
+    number_ = start
+    for key, rows in split_analyses(results):
+        stat_types = ordered_unique(rows["statistic_type"].map(lambda v: text(v, "t")))
+        for stat in stat_types:
+            part = rows[rows["statistic_type"].map(lambda v: text(v, "t")) == stat]
+            if stat == "F" and len(stat_types) > 1:
+                tables.append(_build(key, part, stat, number_, suffix="omnibus"))
+            else:
+                tables.append(_build(key, part, stat, number_))
+            number_ += 1
+    return tables
+
+
+def results_table(results: pd.DataFrame, **kwargs) -> ReportTable:
+    """The single table of a results table holding one analysis with one kind of test (see results_tables)."""
+    tables = results_tables(results, **kwargs)
+    if len(tables) != 1:
+        raise UsageError(
+            f"results hold {len(tables)} tables (analyses x kinds of test); use results_tables() or filter the rows"
+        )
+    return tables[0]
+
+
+def _build(key: dict, rows: pd.DataFrame, stat: str, number_: int, suffix: str = "") -> ReportTable:
+    records = [dict(r) for _, r in rows.iterrows()]
+    terms = ordered_unique(rows["term"].map(text))
+    # term-major order, regions in their order of appearance
+    order = sorted(range(len(records)), key=lambda i: (terms.index(text(records[i]["term"])), i))
+    records = [records[i] for i in order]
+    level = format_confidence(ordered_unique(col(rows, "confidence"))[0] if has_values(rows, "confidence") else None)
+    design = key.get("design", "")
+    columns = [Column("region", "Region", "l")]
+    if len(terms) > 1:
+        columns.append(Column("term", "Term", "l"))
+    columns.append(Column("n", "*n*"))
+    if stat != "F":
+        columns.append(Column("estimate", estimate_symbol(design, terms[0] if len(terms) == 1 else "x")))
+        if has_values(rows, "ci_low"):
+            columns.append(Column("ci", f"{level} CI", "c"))
+        if stat == "t" and has_values(rows, "df"):
+            columns.append(Column("df", "*df*"))
+    else:
+        columns.append(Column("df1", "*df*_{1}"))
+        columns.append(Column("df", "*df*_{2}"))
+    columns.append(Column("statistic", statistic_symbol(stat)))
+    columns.append(Column("p", "*p*"))
+    corrected = [m for m in ("holm", "fdr", "fwe") if has_values(rows, f"p_{m}")]
+    for m in corrected:
+        columns.append(Column(f"p_{m}", corrected_p_symbol(m)))
+    effect_types = ordered_unique(col(rows, "effect_size_type"))
+    if has_values(rows, "effect_size"):
+        header = effect_symbol(effect_types[0]) if len(effect_types) == 1 else "Effect size"
+        columns.append(Column("effect_size", header))
+        if has_values(rows, "effect_size_ci_low"):
+            columns.append(Column("effect_ci", f"{level} CI", "c"))
+    if has_values(rows, "tau2"):
+        columns.append(Column("tau2", "τ^{2}"))
+    if has_values(rows, "i2"):
+        columns.append(Column("i2", "*I*^{2}"))
+
+    fmt = cell_formatters()
+    letters: dict[str, str] = {}
+    flagged: dict[str, list[str]] = {}
+    cells, row_ids = [], []
+    for r in records:
+        region = text(r["region"])
+        marks = []
+        for kind, who in _flags(r):
+            letter = letters.setdefault(kind, "abcdefghij"[len(letters)])
+            marks.append(letter)
+            detail = escape_markup(region) + (f" ({escape_markup(', '.join(who))})" if who else "")
+            if detail not in flagged.setdefault(kind, []):
+                flagged[kind].append(detail)
+        cell = {"region": escape_markup(region) + ("^{" + ",".join(marks) + "}" if marks else ""),
+                "term": escape_markup(text(r["term"]))}
+        for c in columns:
+            if c.key in fmt:
+                cell[c.key] = fmt[c.key](r)
+        cells.append(cell)
+        row_ids.append({"design": design, "region": region, "term": text(r["term"]),
+                        "contrast": text(r.get("contrast")), "statistic-type": stat})
+
+    note = []
+    has_ci = any(c.key in ("ci", "effect_ci") for c in columns)
+    note.append("*n* = participants in the test" + (f"; CI = confidence interval ({level})." if has_ci else "."))
+    if stat != "F":
+        note.append(_estimate_sentence(key, rows))
+    note.append("*p* values are two-sided.")
+    methods = ordered_unique(col(rows, "df_method"))
+    if methods:
+        note.append("Reference distribution: " + "; ".join(DF_METHOD_TEXT.get(text(m), escape_markup(text(m)))
+                                                          for m in methods) + ".")
+    family = _family_sentence(rows, corrected)
+    if family:
+        note.append(family)
+    for etype in effect_types:
+        if text(etype) in _EFFECT_TEXT:
+            sentence = _EFFECT_TEXT[text(etype)]
+            if text(etype) in ("d", "d_z", "g") and has_values(rows, "effect_size_ci_low"):
+                sentence += "; its CI inverts the noncentral *t* distribution (Steiger & Fouladi, 1997)"
+            note.append(sentence + ".")
+    if any(flag(v) is False for v in col(rows, "population_inference")) or design == "fixed-effects":
+        note.append("Fixed-effects result: it describes only these participants and does not generalise to the "
+                    "population.")
+    for kind, letter in letters.items():
+        note.append(f"^{{{letter}}} {_FLAG_TEXT[kind]}: " + "; ".join(flagged[kind]) + ".")
+
+    title = analysis_title(key)
+    if suffix:
+        title += f" ({suffix} tests)"
+    title_markup = escape_markup(title[0].upper() + title[1:])
+    name = "results_" + slug(title)
+    return ReportTable(name=name, title=title_markup, columns=columns, rows=cells, row_ids=row_ids, note=note,
+                       number=number_)
+
+
+# ---------------------------------------------------------------------------------------------- descriptives
+def descriptives(
+    data: pd.DataFrame,
+    *,
+    participants: pd.DataFrame | None = None,
+    group: str | None = None,
+    value: str = "value",
+) -> pd.DataFrame:
+    """Per region x contrast (x group) descriptive statistics of the region values.
+
+    Parameters
+    ----------
+    data : DataFrame
+        Region values table (participant_id, contrast, region, value, [n_voxels, n_valid], [session_id]).
+    participants : DataFrame, optional
+        participants.tsv, used to find ``group`` when it is not a column of ``data``.
+    group : str, optional
+        Column naming the group of each participant.
+    value : str
+        Column with the region values.
+
+    Returns
+    -------
+    DataFrame
+        ``region``, [``session_id``], ``contrast``, [``group``], ``n`` (non-missing values), ``n_missing``,
+        ``mean``, ``sd`` (ddof 1), ``se`` (sd / sqrt(n)), ``coverage`` (mean percentage of the region's voxels
+        with valid data, when n_valid and n_voxels are present). Regions, contrasts and groups keep their order
+        of appearance.
+
+    Notes
+    -----
+    SD uses n - 1 in the denominator (checked against ``pandas.Series.std`` in the tests).
+    """
+    check_columns(data, REQUIRED_VALUES, "region values table")
+    table = data.copy()
+    keys = ["region"]
+    if "session_id" in table.columns:
+        keys.append("session_id")
+    keys.append("contrast")
+    if group is not None:
+        labels = group_of(table, participants, group)
+        if labels is None:
+            raise UsageError(
+                f"group column {group!r} is neither in the values table nor in participants.tsv; "
+                "pass --participants or choose an existing column"
+            )
+        table["group"] = labels.to_numpy()
+        keys.append("group")
+    table["_value"] = pd.to_numeric(table[value], errors="coerce")
+    if "n_valid" in table.columns and "n_voxels" in table.columns:
+        nv = pd.to_numeric(table["n_voxels"], errors="coerce").to_numpy(dtype=float)
+        table["_coverage"] = 100.0 * pd.to_numeric(table["n_valid"], errors="coerce").to_numpy(dtype=float) / np.where(
+            nv > 0, nv, np.nan)
+    for k in keys:  # regions, sessions, contrasts and groups in their order of appearance
+        table[k] = pd.Categorical(table[k].map(text), categories=ordered_unique(table[k].map(text)))
+    rows = []
+    for key, part in table.groupby(keys, sort=True, observed=True):
+        x = part["_value"].to_numpy(dtype=float)
+        finite = x[np.isfinite(x)]
+        n = finite.size
+        rec = dict(zip(keys, map(str, key if isinstance(key, tuple) else (key,))))
+        rec["n"] = n
+        rec["n_missing"] = int(x.size - n)
+        rec["mean"] = float(finite.mean()) if n else np.nan
+        rec["sd"] = float(finite.std(ddof=1)) if n > 1 else np.nan
+        rec["se"] = rec["sd"] / np.sqrt(n) if n > 1 else np.nan
+        if "_coverage" in part.columns:
+            rec["coverage"] = float(np.nanmean(part["_coverage"])) if part["_coverage"].notna().any() else np.nan
+        rows.append(rec)
+    return pd.DataFrame(rows)
+
+
+def descriptives_table(
+    data: pd.DataFrame,
+    *,
+    participants: pd.DataFrame | None = None,
+    group: str | None = None,
+    value: str = "value",
+    number: int | None = None,
+) -> ReportTable:
+    """The descriptives (see :func:`descriptives`) as a formatted :class:`ReportTable`."""
+    desc = descriptives(data, participants=participants, group=group, value=value)
+    columns = [Column("region", "Region", "l")]
+    if "session_id" in desc.columns:
+        columns.append(Column("session_id", "Session", "l"))
+    columns.append(Column("contrast", "Contrast", "l"))
+    if "group" in desc.columns:
+        columns.append(Column("group", escape_markup(str(group)).capitalize(), "l"))
+    columns += [Column("n", "*n*")]
+    if desc["n_missing"].sum() > 0:
+        columns.append(Column("n_missing", "Missing"))
+    columns += [Column("mean", "*M*"), Column("sd", "*SD*"), Column("se", "*SE*")]
+    if "coverage" in desc.columns:
+        columns.append(Column("coverage", "Coverage"))
+    rows, row_ids = [], []
+    for _, r in desc.iterrows():
+        cell = {c: escape_markup(text(r[c])) for c in ("region", "session_id", "contrast", "group") if c in desc}
+        cell.update({"n": format_df(r["n"]), "n_missing": format_df(r["n_missing"]), "mean": format_number(r["mean"]),
+                     "sd": format_number(r["sd"]), "se": format_number(r["se"])})
+        if "coverage" in desc.columns:
+            cell["coverage"] = format_percent(r["coverage"])
+        rows.append(cell)
+        row_ids.append({k: text(r[k]) for k in ("region", "session_id", "contrast", "group") if k in desc})
+    note = ["*n* = participants with a value; *M* = mean; *SD* = standard deviation (*n* − 1 denominator); "
+            "*SE* = *SD*/√*n*."]
+    if "coverage" in desc.columns:
+        note.append("Coverage = mean percentage of the region's voxels with valid data.")
+    if "n_missing" in [c.key for c in columns]:
+        note.append("Missing = participants without a value (no valid voxel or no map).")
+    return ReportTable(name="descriptives", title="Region values by region and contrast", columns=columns,
+                       rows=rows, row_ids=row_ids, note=note, number=number)
