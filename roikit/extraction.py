@@ -40,6 +40,7 @@ from .errors import (
     ImageFormatError,
     InputFileError,
     MapDiscoveryError,
+    RoikitError,
     UsageError,
 )
 from .images import DEFAULT_ATOL, Grid, MapHeader, check_same_grid, read_flat, read_header
@@ -422,8 +423,18 @@ def _run_tasks(tasks: list[_Task], index: _Index, names: list[str], statistic: s
                 variance = _region_variance(v, valid, n_valid, index, path=t.variance_path, names=names)
             out.append(("ok", value, n_valid, variance, digest, vdigest))
         except Exception as exc:  # noqa: BLE001 - returned to the caller with the path; raised there
-            out.append(("error", exc))
+            out.append(("error", _portable(exc, t.path)))
     return out
+
+
+def _portable(exc: Exception, path: str) -> Exception:
+    """A copy of ``exc`` that survives pickling back from a worker (no chained causes from C extensions)."""
+    if isinstance(exc, RoikitError):
+        try:
+            return type(exc)(str(exc))
+        except TypeError:  # pragma: no cover - a subclass with another signature
+            pass
+    return ExtractionError(f"{path}: {type(exc).__name__}: {exc}")
 
 
 # Per-process state for pools started by extract(): the index travels once per worker, not per task.
