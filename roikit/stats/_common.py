@@ -187,12 +187,14 @@ def check_values(values: pd.DataFrame, *, variance: bool = False) -> pd.DataFram
             f"region values table lacks column(s) {', '.join(missing)}; found {', '.join(map(str, values.columns))}; "
             f"expected {', '.join(required)} (as written by roikit extract)"
         )
-    values = values.copy()
+    values = values.copy(deep=False)
     for column in ("participant_id", "session_id", "contrast", "region"):
-        if column in values.columns:
-            values[column] = values[column].astype(object).where(values[column].notna(), None)
-            values[column] = [None if v is None else str(v) for v in values[column]]
+        if column in values.columns and not pd.api.types.is_string_dtype(values[column]):
+            col = values[column]
+            values[column] = col.astype(str).astype(object).where(col.notna(), None)
     for column in ("value", "n_voxels", "n_valid") + (("variance",) if "variance" in values.columns else ()):
+        if values[column].dtype == np.float64:
+            continue
         try:
             values[column] = pd.to_numeric(values[column]).astype(float)
         except (TypeError, ValueError) as exc:
@@ -271,20 +273,28 @@ def pivot_contrast(
         )
     _single_session(sub, contrast)
     if regions is None:
-        present = set(sub["region"])
+        present = set(pd.unique(sub["region"]))
         regions = [r for r in region_order(values) if r in present]
-    dup = sub.duplicated(["participant_id", "region"], keep=False)
-    if dup.any():
-        first = sub[dup].iloc[0]
+    pid_codes, pids = pd.factorize(sub["participant_id"])  # order of first appearance
+    region_index = pd.Index(list(regions))
+    reg_codes = region_index.get_indexer(sub["region"])
+    keep = reg_codes >= 0
+    pid_codes, reg_codes = pid_codes[keep], reg_codes[keep]
+    flat = pid_codes.astype(np.int64) * len(region_index) + reg_codes
+    if flat.size and np.bincount(flat, minlength=len(pids) * len(region_index)).max() > 1:
+        dup = sub[keep][pd.Series(flat).duplicated().to_numpy()].iloc[0]
         raise DesignError(
-            f"contrast {contrast!r}: participant {first['participant_id']} has more than one row for region "
-            f"{first['region']!r}; expected one value per participant, contrast and region"
+            f"contrast {contrast!r}: participant {dup['participant_id']} has more than one row for region "
+            f"{dup['region']!r}; expected one value per participant, contrast and region"
         )
-    matrix = sub.pivot(index="participant_id", columns="region", values=column)
-    matrix = matrix.reindex(index=participant_order(sub), columns=list(regions))
-    matrix.index.name = "participant_id"
-    matrix.columns.name = "region"
-    return matrix.astype(float)
+    data = np.full((len(pids), len(region_index)), np.nan)
+    data[pid_codes, reg_codes] = sub[column].to_numpy(dtype=float)[keep]
+    matrix = pd.DataFrame(
+        data,
+        index=pd.Index(np.asarray(pids, dtype=object), name="participant_id"),
+        columns=pd.Index(list(region_index), name="region", dtype=object),
+    )
+    return matrix
 
 
 def join_participants(

@@ -64,7 +64,7 @@ def _invert_decreasing(cdf, x, target, start_lo, start_hi, *, floor=None, xtol=1
     lo, hi, target = lo.copy(), hi.copy(), target.copy()
     # cdf(lo) must be >= target and cdf(hi) <= target (decreasing in theta)
     f_lo = cdf(x, lo) - target
-    step = np.maximum(1.0, np.abs(hi - lo))
+    step = np.maximum(1e-3, np.abs(hi - lo))
     for _ in range(200):
         need = f_lo < 0
         if floor is not None:
@@ -77,7 +77,7 @@ def _invert_decreasing(cdf, x, target, start_lo, start_hi, *, floor=None, xtol=1
         step[need] *= 2
         f_lo[need] = cdf(x[need], lo[need]) - target[need]
     f_hi = cdf(x, hi) - target
-    step = np.maximum(1.0, np.abs(hi - lo))
+    step = np.maximum(1e-3, np.abs(hi - lo))
     for _ in range(200):
         need = f_hi > 0
         if not need.any():
@@ -139,7 +139,12 @@ def _invert_nct(t: np.ndarray, df: np.ndarray, target: float) -> np.ndarray:
     def cdf(idx, ncp):
         return _nct_cdf(t[idx], df[idx], ncp)
 
-    return _invert_decreasing(cdf, index, target, t - 1.0, t + 1.0)
+    # start from the normal approximation (Abramowitz & Stegun 26.7.10) with a narrow bracket; the adaptive
+    # bracketing widens it geometrically wherever the approximation is off (small df)
+    spread = np.sqrt(1 + t**2 / (2 * df))
+    guess = t * (1 - 1 / (4 * df)) - stats.norm.ppf(target) * spread
+    width = 0.05 * spread + 0.01
+    return _invert_decreasing(cdf, index, target, guess - width, guess + width)
 
 
 def ncf_lambda_interval(f, df1, df2, confidence: float = 0.95) -> tuple[np.ndarray, np.ndarray]:
