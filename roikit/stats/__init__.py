@@ -31,6 +31,9 @@ from ._common import (
 from ._registry import DESIGNS, PERMUTATIONS, available_designs, get_design, register
 from .corrections import CORRECTIONS, adjust, parse_corrections
 from . import designs  # noqa: F401 - registers one-sample, paired, two-group, glm
+from . import precision  # noqa: F401,E402 - registers precision-weighted
+from . import mixed  # noqa: F401,E402 - registers mixed
+from . import fixed  # noqa: F401,E402 - registers fixed-effects
 
 __all__ = ["run_design", "DESIGNS", "register", "available_designs", "COLUMN_DESCRIPTIONS"]
 

@@ -88,8 +88,14 @@ _FUNCTIONS = {"bonferroni": bonferroni, "holm": holm, "fdr": fdr_bh}
 
 
 def parse_corrections(correct: str | Sequence[str] | None) -> tuple[str, ...]:
-    """Normalise ``correct`` ("holm,fdr", ["holm", "fdr"], None) to a tuple of known names (no duplicates)."""
+    """Normalise ``correct`` ("holm,fdr", ["holm", "fdr"], "none", None) to a tuple of known names (no duplicates).
+
+    ``p_holm`` and ``p_fdr`` are written whatever is chosen (the contract's columns); the choice is recorded in the
+    ``correction`` column and decides whether ``p_bonferroni`` is added.
+    """
     if correct is None:
+        return ()
+    if isinstance(correct, str) and correct.strip().lower() in ("", "none"):
         return ()
     if isinstance(correct, str):
         items = [c.strip() for c in correct.split(",") if c.strip()]

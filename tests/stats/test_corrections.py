@@ -31,5 +31,6 @@ def test_nan_left_out_of_family():
 def test_parse():
     assert parse_corrections("holm,fdr") == ("holm", "fdr")
     assert parse_corrections(["bonferroni", "BH"]) == ("bonferroni", "fdr")
+    assert parse_corrections("none") == () and parse_corrections(None) == ()
     with pytest.raises(UsageError, match="unknown correction 'sidak'"):
         parse_corrections("holm,sidak")
