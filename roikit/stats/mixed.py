@@ -164,17 +164,82 @@ def _pls(theta, y, X, Zs, factors):
 
 
 def _deviance(theta, y, X, Z, factors, reml):
+    """Profiled criterion from the direct residuals (used at the optimum and in tests)."""
     try:
         ld_l, ld_x, r2, *_ = _pls(theta, y, X, Z, factors)
     except np.linalg.LinAlgError:
         return np.inf
-    n, p = X.shape
+    return _criterion(ld_l, ld_x, r2, X.shape, reml)
+
+
+def _criterion(ld_l, ld_x, r2, shape, reml):
+    n, p = shape
     if not r2 > 0:
         return np.inf
     if reml:
         m = n - p
         return ld_l + ld_x + m * (1 + np.log(2 * np.pi * r2 / m))
     return ld_l + n * (1 + np.log(2 * np.pi * r2 / n))
+
+
+class _CrossProducts:
+    """Profiled criterion from precomputed cross-products: per evaluation only (q+p)-square matrices.
+
+    When X holds a constant column, y is centred first (r2 is unchanged and no precision is lost to the mean).
+    """
+
+    def __init__(self, y, X, Zs, factors, reml):
+        Z = np.hstack(Zs)
+        if np.any(np.all(X == X[:1], axis=0) & (X[0] != 0)):
+            y = y - y.mean()
+        self.factors, self.reml, self.shape = factors, reml, X.shape
+        self.ZtZ, self.ZtX, self.XtX = Z.T @ Z, Z.T @ X, X.T @ X
+        self.Zty, self.Xty, self.yty = Z.T @ y, X.T @ y, float(y @ y)
+        self.q = Z.shape[1]
+        # positions of the theta elements inside the block-diagonal Lambda
+        rows, cols, which = [], [], []
+        off, pos = 0, 0
+        for f in factors:
+            tri = _tril_index(f.r)
+            for g in range(f.n_levels):
+                for t, (i, j) in enumerate(tri):
+                    rows.append(off + g * f.r + i)
+                    cols.append(off + g * f.r + j)
+                    which.append(pos + t)
+            off += f.n_levels * f.r
+            pos += len(tri)
+        self.rows, self.cols, self.which = np.array(rows), np.array(cols), np.array(which)
+        self.diagonal = all(f.r == 1 for f in factors)
+
+    def __call__(self, theta):
+        q = self.q
+        p = self.shape[1]
+        if self.diagonal:  # Lambda is diagonal: scale rows and columns
+            lam = np.asarray(theta, dtype=float)[self.which]
+            A = self.ZtZ * np.outer(lam, lam)
+            B = self.ZtX * lam[:, None]
+            cz = self.Zty * lam
+        else:
+            Lam = np.zeros((q, q))
+            Lam[self.rows, self.cols] = np.asarray(theta, dtype=float)[self.which]
+            A = Lam.T @ self.ZtZ @ Lam
+            B = Lam.T @ self.ZtX
+            cz = Lam.T @ self.Zty
+        M = np.empty((q + p, q + p))
+        M[:q, :q] = A
+        M[:q, :q].flat[:: q + 1] += 1.0
+        M[:q, q:] = B
+        M[q:, :q] = B.T
+        M[q:, q:] = self.XtX
+        try:
+            L = np.linalg.cholesky(M)
+        except np.linalg.LinAlgError:
+            return np.inf
+        c = np.concatenate([cz, self.Xty])
+        w = _la.solve_triangular(L, c, lower=True, check_finite=False)
+        r2 = self.yty - float(w @ w)  # y'y - c' M^-1 c
+        d = np.diag(L)
+        return _criterion(2 * np.log(d[:q]).sum(), 2 * np.log(d[q:]).sum(), r2, self.shape, self.reml)
 
 
 def _projected_gradient(theta, fun, lower, h=1e-5):
@@ -197,7 +262,7 @@ def fit_mixed(
     factors: Sequence[RandomFactor],
     *,
     reml: bool = True,
-    optimizers: Sequence[str] = ("L-BFGS-B", "Nelder-Mead", "Powell"),
+    optimizers: Sequence[str] = ("Nelder-Mead", "L-BFGS-B", "Powell"),
 ) -> MixedFit:
     """Fit a linear mixed model by profiled REML (or ML), trying several optimisers.
 
@@ -237,7 +302,7 @@ def fit_mixed(
     n, p = X.shape
     Z = _build_Z(factors, n)
     lower = _theta_lower(factors)
-    fun = lambda t: _deviance(t, y, X, Z, factors, reml)  # noqa: E731
+    fun = _CrossProducts(y, X, Z, factors, reml)
     start = _theta_start(factors)
     best = None
     attempts: dict[str, dict] = {}
@@ -288,6 +353,7 @@ def fit_mixed(
             + f"; gradient tolerance {GRADIENT_TOL}); simplify the random structure (e.g. random='1')"
         )
     ld_l, ld_x, r2, beta, L, q = _pls(theta, y, X, Z, factors)
+    dev = _criterion(ld_l, ld_x, r2, X.shape, reml)  # from the direct residuals
     sigma2 = r2 / (n - p) if reml else r2 / n
     RX = L[q:, q:]
     cov_beta = sigma2 * _la.cho_solve((RX, True), np.eye(p))
@@ -299,18 +365,6 @@ def fit_mixed(
 
 
 # --------------------------------------------------------------------------- Satterthwaite
-def _variance_blocks(factors: Sequence[RandomFactor], n: int) -> list[np.ndarray]:
-    """dV/dphi for phi = (unique covariance elements of every factor, then the residual variance)."""
-    out = []
-    for f in factors:
-        same = (f.codes[:, None] == f.codes[None, :]).astype(float)
-        for (i, j) in _tril_index(f.r):
-            block = np.outer(f.Z[:, i], f.Z[:, j]) * same
-            out.append(block if i == j else block + block.T)
-    out.append(np.eye(n))
-    return out
-
-
 def _phi(fit: MixedFit) -> np.ndarray:
     vals = []
     for S in fit.covariances:
@@ -325,23 +379,55 @@ def _satterthwaite_parts(fit: MixedFit, X: np.ndarray, factors: Sequence[RandomF
     if cached is not None:
         return cached
     n = X.shape[0]
-    blocks = _variance_blocks(factors, n)
-    phi = _phi(fit)
+    Zs = _build_Z(factors, n)
     # V^-1 through Woodbury: V = sigma2 (I + ZL ZL'), ZL = Z Lambda(theta); avoids an n x n inversion
-    ZL = _z_lambda(fit.theta, _build_Z(factors, n), factors)
+    ZL = _z_lambda(fit.theta, Zs, factors)
     A = _la.cho_factor(ZL.T @ ZL + np.eye(ZL.shape[1]), lower=True)
     Vinv = (np.eye(n) - ZL @ _la.cho_solve(A, ZL.T)) / fit.sigma2
     VX = Vinv @ X
     C = np.linalg.inv(X.T @ VX)
     P = Vinv - VX @ C @ VX.T if fit.reml else Vinv
-    PB = [P @ B for B in blocks]
-    K = len(blocks)
+    # every dV/dphi_k is a sum of low-rank products U W' (U, W: n x L covariate-by-level blocks, or I for the
+    # residual), so traces and derivatives need only P @ U, never an n x n x n product
+    mats: list[np.ndarray] = []
+    pairs: list[list[tuple[int, int]]] = []
+    for f, Zf in zip(factors, Zs):
+        base = len(mats)
+        L = f.n_levels
+        for i in range(f.r):
+            mats.append(Zf[:, i::f.r] if f.r > 1 else Zf)  # n x L: covariate i at each level
+        for (i, j) in _tril_index(f.r):
+            pairs.append([(base + i, base + j)] if i == j else [(base + i, base + j), (base + j, base + i)])
+        del L
+    IDENT = -1
+    pairs.append([(IDENT, IDENT)])
+    PZ = [P @ Z for Z in mats]
+
+    def m(a: int, b: int) -> np.ndarray:  # a' P b
+        if a == IDENT and b == IDENT:
+            return P
+        if a == IDENT:
+            return PZ[b]
+        if b == IDENT:
+            return PZ[a].T
+        return mats[a].T @ PZ[b]
+
+    K = len(pairs)
     info = np.empty((K, K))
-    for a in range(K):
-        for b in range(a, K):
-            info[a, b] = info[b, a] = 0.5 * np.sum(PB[a] * PB[b].T)
+    for k in range(K):
+        for l in range(k, K):
+            tr = 0.0
+            for (u, w) in pairs[k]:
+                for (u2, w2) in pairs[l]:
+                    tr += float(np.sum(m(w, u2) * m(w2, u).T))
+            info[k, l] = info[l, k] = 0.5 * tr
     cov_phi = np.linalg.pinv(info)
-    dC = np.stack([C @ (VX.T @ B @ VX) @ C for B in blocks])  # (K, p, p)
+    VXZ = [VX.T @ Z for Z in mats]
+
+    def xb(a: int) -> np.ndarray:  # VX' a
+        return VX.T if a == IDENT else VXZ[a]
+
+    dC = np.stack([C @ sum(xb(u) @ xb(w).T for (u, w) in pr) @ C for pr in pairs])  # (K, p, p)
     fit.attempts["_satterthwaite"] = (C, dC, cov_phi)
     return C, dC, cov_phi
 
