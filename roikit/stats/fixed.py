@@ -15,6 +15,7 @@ import pandas as pd
 from scipy import stats as _st
 
 from ..errors import CautionWarning, DesignError
+from ._common import COLUMN_DESCRIPTIONS
 from ._registry import register
 
 __all__ = ["fit_fixed_effects", "fixed_effects", "CAUTION"]
@@ -23,6 +24,13 @@ __all__ = ["fit_fixed_effects", "fixed_effects", "CAUTION"]
 CAUTION = ("fixed-effects result: tested against within-participant (first-level) error only, so it describes "
            "only these participants and does not generalise to the population; use the one-sample or "
            "precision-weighted design for population inference")
+
+
+for _name, _text in {
+    "fixed_effects_only": "true: the row tests against within-participant error only (fixed-effects design)",
+    "caution": "words that must accompany a fixed-effects result: it does not generalise to the population",
+}.items():
+    COLUMN_DESCRIPTIONS.setdefault(_name, _text)
 
 
 def fit_fixed_effects(y: np.ndarray, v: np.ndarray, *, mask: np.ndarray | None = None,

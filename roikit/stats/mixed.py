@@ -21,6 +21,7 @@ from scipy import optimize as _opt
 from scipy import stats as _st
 
 from ..errors import ConvergenceError, DesignError, DiagnosticWarning, UsageError
+from ._common import COLUMN_DESCRIPTIONS
 from ._registry import register
 from .precision import _centre_numeric, _design_matrix, _formula_rhs, _required_variables
 
@@ -596,6 +597,8 @@ _MIXED_DESCRIPTIONS = {
     "deviance": "minimised REML criterion (estimation reml) or -2 log-likelihood (ml)",
     "optimizer": "scipy optimiser whose solution was kept",
 }
+for _name, _text in _MIXED_DESCRIPTIONS.items():  # describe our columns in the results sidecar
+    COLUMN_DESCRIPTIONS.setdefault(_name, _text)
 
 
 @register("mixed")

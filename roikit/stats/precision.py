@@ -19,6 +19,7 @@ import pandas as pd
 from scipy import stats as _st
 
 from ..errors import ConvergenceError, DesignError, DiagnosticWarning, UsageError
+from ._common import COLUMN_DESCRIPTIONS
 from ._registry import register
 
 __all__ = ["fit_precision_weighted", "precision_weighted", "TAU2_METHODS"]
@@ -337,6 +338,8 @@ _EXTRA_DESCRIPTIONS = {
     "boundary": "true where the estimate of the between-participant variance is at its boundary (0)",
     "converged": "true where the iterative fit converged",
 }
+for _name, _text in _EXTRA_DESCRIPTIONS.items():  # describe our columns in the results sidecar
+    COLUMN_DESCRIPTIONS.setdefault(_name, _text)
 
 
 @register("precision-weighted")
