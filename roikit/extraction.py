@@ -335,12 +335,16 @@ class _Index:
 def _summarise(x: np.ndarray, index: _Index, *, statistic: str, keep_zeros: bool):
     """Region values and valid counts for one map's gathered voxels ``x`` (aligned with index.uniq)."""
     x = np.asarray(x, dtype=np.float64)
-    valid = np.isfinite(x)
-    if not keep_zeros:
-        valid &= x != 0
+    if np.isfinite(x.sum()):  # the common case, checked once: no NaN or infinity among the region voxels
+        valid = np.ones(len(x), dtype=bool) if keep_zeros else x != 0
+        xz = x  # zeros add nothing to the sums
+    else:
+        valid = np.isfinite(x)
+        if not keep_zeros:
+            valid &= x != 0
+        xz = np.where(valid, x, 0.0)
     validf = valid.astype(np.float64)
     n_valid = np.rint(index.count @ validf).astype(np.int64)
-    xz = np.where(valid, x, 0.0)
     with np.errstate(invalid="ignore", divide="ignore"):
         if statistic == "mean" or (statistic == "weighted-mean" and index.weight is None):
             value = (index.count @ xz) / n_valid
