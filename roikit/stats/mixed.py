@@ -810,26 +810,43 @@ def _variance_columns(results, payloads, crossed) -> dict[str, list]:
     return cols
 
 
+def _fit_region_one_thread(payload: dict) -> dict:
+    """Fit one region with BLAS limited to one thread: these matrices are small, and threaded BLAS on
+    small matrices was 3-4x slower on a busy 2-core machine (benchmarks/bench_mixed.py)."""
+    from threadpoolctl import threadpool_limits
+
+    with threadpool_limits(limits=1, user_api="blas"):
+        return _fit_region(payload)
+
+
 def _run_regions(payloads: list[dict], regions: Sequence[str], n_jobs: int) -> list[dict]:
+    from tqdm.auto import tqdm
+
     def _named(region, exc):
         return type(exc)(f"mixed: region {region!r}: {exc}")
 
-    if n_jobs == 1 or len(payloads) == 1:
-        out = []
-        for region, payload in zip(regions, payloads):
-            try:
-                out.append(_fit_region(payload))
-            except (ConvergenceError, DesignError) as exc:
-                raise _named(region, exc) from None
-        return out
-    from concurrent.futures import ProcessPoolExecutor
+    bar = tqdm(total=len(payloads), desc="mixed models", unit="region", leave=False, disable=len(payloads) < 20)
+    try:
+        if n_jobs == 1 or len(payloads) == 1:
+            out = []
+            for region, payload in zip(regions, payloads):
+                try:
+                    out.append(_fit_region_one_thread(payload))
+                except (ConvergenceError, DesignError) as exc:
+                    raise _named(region, exc) from None
+                bar.update(1)
+            return out
+        from concurrent.futures import ProcessPoolExecutor
 
-    with ProcessPoolExecutor(max_workers=min(n_jobs, len(payloads))) as pool:
-        futures = [pool.submit(_fit_region, payload) for payload in payloads]
-        out = []
-        for region, fut in zip(regions, futures):
-            try:
-                out.append(fut.result())
-            except (ConvergenceError, DesignError) as exc:
-                raise _named(region, exc) from None
-        return out
+        with ProcessPoolExecutor(max_workers=min(n_jobs, len(payloads))) as pool:
+            futures = [pool.submit(_fit_region_one_thread, payload) for payload in payloads]
+            out = []
+            for region, fut in zip(regions, futures):
+                try:
+                    out.append(fut.result())
+                except (ConvergenceError, DesignError) as exc:
+                    raise _named(region, exc) from None
+                bar.update(1)
+            return out
+    finally:
+        bar.close()
