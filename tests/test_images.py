@@ -149,3 +149,18 @@ def test_header_pairs_and_fast_header_agree_with_nibabel(tmp_path):
         # reference library: nibabel's own affine, shape and data type
         np.testing.assert_allclose(h.grid.affine, img.affine)
         assert h.grid.shape == img.shape[:3] and h.dtype == img.get_data_dtype()
+
+
+def test_accelerated_and_plain_gzip_give_identical_voxels(tmp_path, monkeypatch):
+    import roikit.images as images
+
+    assert images._fast_zlib is not None, "the test install includes the `fast` extra (isal)"
+    data = np.random.default_rng(5).normal(size=(20, 24, 18)).astype(np.float32)
+    data[:5] = 0
+    path = save_nifti(tmp_path / "m.nii.gz", data)
+    header = read_header(path)
+    fast = read_flat(header).copy()
+    monkeypatch.setattr(images, "_fast_zlib", None)
+    monkeypatch.setattr(images, "_fast_gzip", None)
+    plain = read_flat(header)
+    assert fast.tobytes() == plain.tobytes() == data.tobytes(order="F")
