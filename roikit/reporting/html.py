@@ -71,6 +71,7 @@ class ReportFigure:
     caption: str
     number: int | None = None
     name: str = ""
+    width_mm: float = 180.0
 
 
 @dataclass
@@ -87,7 +88,9 @@ def figure_html(fig: ReportFigure) -> str:
     label = f"Figure {fig.number}" if fig.number else "Figure"
     alt = _html.escape(fig.alt, quote=True)
     fid = _html.escape(fig.name or f"figure-{fig.number}", quote=True)
-    return (f'<figure class="plot" id="{fid}"><img src="{data_uri(fig.png)}" alt="{alt}">'
+    share = max(30.0, min(100.0, 100.0 * fig.width_mm / 180.0))  # print proportions: 85 mm ~ half the page
+    return (f'<figure class="plot" id="{fid}"><img src="{data_uri(fig.png)}" alt="{alt}" '
+            f'style="width: {share:.0f}%">'
             f'<figcaption><span class="figure-number">{label}.</span> {render(fig.caption, "html")}</figcaption>'
             "</figure>\n")
 

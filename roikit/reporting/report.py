@@ -285,7 +285,7 @@ def write_report(
             png = next(p for p in paths if p.suffix == ".png").read_bytes()
             alt = re.sub(r"[*_{}^\\]", "", item["caption"]).split(". ")[0]
             figure_items.append(ReportFigure(png=png, alt=alt, caption=item["caption"], number=len(figure_items) + 1,
-                                             name=item["name"]))
+                                             name=item["name"], width_mm=float(fig.get_size_inches()[0] * 25.4)))
 
     # ---------------------------------------------------------------- text
     found = cautions(results, provenance=values_prov, circular=circular)

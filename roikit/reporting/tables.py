@@ -276,13 +276,12 @@ class ReportTable:
         add_runs(p, "*" + self.title.replace("*", "") + "*")
         table = doc.add_table(rows=1 + len(self.rows), cols=len(self.columns))
         table.alignment = WD_TABLE_ALIGNMENT.CENTER
-        for j, c in enumerate(self.columns):
-            cell = table.cell(0, j)
+        word_rows = list(table.rows)  # cells fetched once per row (table.cell(i, j) is slow)
+        for cell, c in zip(word_rows[0].cells, self.columns):
             cell.paragraphs[0].alignment = WD_ALIGN_PARAGRAPH.LEFT if c.align == "l" else WD_ALIGN_PARAGRAPH.CENTER
             add_runs(cell.paragraphs[0], c.header, size=9)
-        for i, row in enumerate(self.rows, start=1):
-            for j, c in enumerate(self.columns):
-                cell = table.cell(i, j)
+        for word_row, row in zip(word_rows[1:], self.rows):
+            for cell, c in zip(word_row.cells, self.columns):
                 cell.paragraphs[0].alignment = WD_ALIGN_PARAGRAPH.LEFT if c.align == "l" else WD_ALIGN_PARAGRAPH.RIGHT
                 add_runs(cell.paragraphs[0], row.get(c.key, MISSING), size=9)
         _apa_borders(table)

@@ -1,0 +1,226 @@
+"""Figures: every participant drawn, estimates beside the points, flags marked, export at journal widths."""
+
+import re
+import struct
+
+import matplotlib
+import numpy as np
+import pandas as pd
+import pytest
+from matplotlib.colors import to_hex
+from scipy import stats
+
+from roikit.errors import UsageError
+from roikit.reporting.figures import (
+    GROUP_COLORS,
+    OKABE_ITO,
+    covariate_plot,
+    fit_line,
+    forest_plot,
+    mean_ci,
+    participant_figure,
+    participant_plot,
+    precision_plot,
+    save_figure,
+    stimulus_plot,
+)
+
+
+def _points(ax, label=None):
+    """Offsets of the scatter collections (optionally only those with this label)."""
+    out = []
+    for c in ax.collections:
+        if isinstance(c, matplotlib.collections.PathCollection) and (label is None or c.get_label() == label):
+            off = c.get_offsets()
+            out.append(np.asarray(off)[np.isfinite(np.asarray(off)).all(axis=1)])
+    return np.vstack(out) if out else np.empty((0, 2))
+
+
+def _has_zero_line(ax):
+    return any(np.allclose(line.get_ydata(), 0) and line.get_linestyle() != "-" for line in ax.lines)
+
+
+def test_okabe_ito_palette():
+    # Okabe & Ito (2008), Color Universal Design: the eight colours
+    assert OKABE_ITO["vermillion"] == "#D55E00" and OKABE_ITO["bluish green"] == "#009E73"
+    assert set(GROUP_COLORS) <= set(OKABE_ITO.values())
+
+
+def test_mean_ci_against_scipy():
+    x = np.array([0.3, 0.9, -0.2, 1.4, 0.5, np.nan])
+    m, lo, hi = mean_ci(x, confidence=0.9)
+    # scipy.stats.t.interval(0.9, df, loc, scale)
+    ref = stats.t.interval(0.9, 4, loc=np.nanmean(x), scale=stats.sem(x[:5]))
+    assert (m, lo, hi) == pytest.approx((np.nanmean(x), *ref))
+
+
+def test_fit_line_against_statsmodels():
+    import statsmodels.api as sm
+
+    rng = np.random.default_rng(3)
+    x = rng.uniform(20, 80, 30)
+    y = 1.0 - 0.01 * x + rng.normal(0, 0.3, 30)
+    grid, fit, lo, hi = fit_line(x, y, confidence=0.95, grid=[20, 50, 80])
+    # statsmodels OLS get_prediction().conf_int() (mean confidence band)
+    model = sm.OLS(y, sm.add_constant(x)).fit()
+    pred = model.get_prediction(sm.add_constant(np.array([20.0, 50.0, 80.0]), has_constant="add"))
+    band = pred.conf_int(alpha=0.05)
+    assert fit == pytest.approx(pred.predicted_mean)
+    assert lo == pytest.approx(band[:, 0]) and hi == pytest.approx(band[:, 1])
+    with pytest.raises(UsageError, match="at least 3 finite points"):
+        fit_line([1, 1, 1], [1, 2, 3])
+
+
+def test_one_sample_plot_draws_everyone_and_the_results_estimate(values, results_by_design):
+    rows = results_by_design["one-sample"]
+    ax = participant_plot(values, region="left hippocampus", contrast="novel", results=rows)
+    pts = _points(ax, "participant")
+    assert len(pts) == 32  # every participant a point
+    r = rows[rows.region == "left hippocampus"].iloc[0]
+    est = [line for line in ax.lines if line.get_label().startswith("mean and")][0]
+    assert est.get_ydata()[0] == pytest.approx(r["estimate"])  # the table's estimate, not a recomputation
+    bars = [line for line in ax.lines if len(line.get_ydata()) == 2 and line.get_xdata()[0] == line.get_xdata()[1]]
+    assert any(np.allclose(sorted(b.get_ydata()), [r["ci_low"], r["ci_high"]]) for b in bars)
+    assert _has_zero_line(ax)
+    # the outlier sub-12 is ringed at its value and named, not removed
+    ring = _points(ax, "outlier (modified z > 3.5)")
+    assert ring[:, 1] == pytest.approx([2.9])
+    assert any(t.get_text() == "sub-12" for t in ax.texts)
+
+
+def test_missing_values_are_counted_in_the_tick_label(values):
+    ax = participant_plot(values, region="retrosplenial cortex", contrast="novel")
+    assert len(_points(ax, "participant")) == 31
+    assert "(n = 31)" in ax.get_xticklabels()[0].get_text()
+
+
+def test_paired_plot_connects_participants(values, results_by_design):
+    rows = results_by_design["paired"]
+    ax = participant_plot(values, region="right hippocampus", contrast="novel", versus="familiar", results=rows)
+    lines = [c for c in ax.collections if isinstance(c, matplotlib.collections.LineCollection)]
+    assert len(lines) == 1 and len(lines[0].get_segments()) == 32
+    diffs = _points(ax, "participant difference")
+    assert len(diffs) == 32
+    r = rows[rows.region == "right hippocampus"].iloc[0]
+    diamond = [line for line in ax.lines if line.get_label() == "difference and CI"][0]
+    assert diamond.get_ydata()[0] == pytest.approx(r["estimate"])
+    # low coverage (sub-05, 150 of 398 voxels) is marked
+    assert len(_points(ax, "low coverage (< 50% voxels)")) == 1
+
+
+def test_two_group_plot_distinct_colour_and_marker(values, participants, results_by_design):
+    ax = participant_plot(values, region="left hippocampus", contrast="novel", group="group",
+                          participants=participants, results=results_by_design["two-group"])
+    young = [c for c in ax.collections if c.get_label() == "younger"][0]
+    old = [c for c in ax.collections if c.get_label() == "older"][0]
+    assert len(young.get_offsets()) == 16 and len(old.get_offsets()) == 16
+    assert to_hex(young.get_facecolor()[0], keep_alpha=False) != to_hex(old.get_facecolor()[0], keep_alpha=False)
+    assert not np.allclose(young.get_paths()[0].vertices.shape, old.get_paths()[0].vertices.shape) or \
+        not np.allclose(young.get_paths()[0].vertices, old.get_paths()[0].vertices)
+    # groups side by side
+    assert np.mean(young.get_offsets()[:, 0]) < np.mean(old.get_offsets()[:, 0])
+    assert [t.get_text().split("\n")[0] for t in ax.get_xticklabels()] == ["younger", "older", "younger − older"]
+
+
+def test_within_and_between_panels(values, participants, results):
+    fig = participant_figure(values, contrasts=["novel", "familiar"], group="group", participants=participants,
+                             results=results)
+    axes = [a for a in fig.axes if a.get_visible()]
+    assert [a.get_title() for a in axes] == ["left hippocampus", "right hippocampus", "retrosplenial cortex"]
+    assert fig.legends, "one shared legend"
+    assert fig.get_size_inches()[0] == pytest.approx(180 / 25.4)
+
+
+def test_participant_plot_errors(values):
+    with pytest.raises(UsageError, match="region is required"):
+        participant_plot(values, contrast="novel")
+    with pytest.raises(UsageError, match="contrast is required"):
+        participant_plot(values, region="left hippocampus")
+    with pytest.raises(UsageError, match="contrast\\(s\\) nonsense not found"):
+        participant_plot(values, region="left hippocampus", contrast="nonsense")
+    with pytest.raises(UsageError, match="group column 'site'"):
+        participant_plot(values, region="left hippocampus", contrast="novel", group="site")
+
+
+def test_forest_plot_marks_survivors(results_by_design):
+    rows = results_by_design["paired"]
+    ax = forest_plot(rows)
+    filled = _points(ax, "survives Holm (p < .05)")
+    hollow = _points(ax, "does not survive Holm")
+    n_survive = int((rows.p_holm < 0.05).sum())
+    assert len(filled) == n_survive and len(hollow) == len(rows) - n_survive
+    # effect sizes (d_z) are drawn when every row has an interval
+    assert sorted(np.r_[filled[:, 0], hollow[:, 0]]) == pytest.approx(sorted(rows.effect_size))
+    assert "$d_z$" in ax.get_xlabel()
+    assert any(line.get_xdata()[0] == 0 for line in ax.lines)
+    # F rows have no estimate: drawing only them is an error
+    glm = results_by_design["glm"]
+    with pytest.raises(UsageError, match="nothing to draw"):
+        forest_plot(glm[glm.statistic_type == "F"])
+    # glm t rows: estimates (no effect size)
+    ax = forest_plot(glm, term="age")
+    assert ax.get_xlabel().startswith("estimate")
+
+
+def test_forest_plot_without_correction_says_uncorrected(results_by_design):
+    rows = results_by_design["one-sample"].drop(columns=["p_holm", "p_fdr"]).assign(correction="")
+    ax = forest_plot(rows)
+    labels = [c.get_label() for c in ax.collections]
+    assert "p < .05 (uncorrected)" in labels
+
+
+def test_precision_plot_sizes_by_weight(values, results_by_design):
+    rows = results_by_design["precision-weighted"]
+    ax = precision_plot(values, region="left hippocampus", contrast="novel", results=rows)
+    sizes = ax.collections[0].get_sizes()
+    part = values[(values.region == "left hippocampus") & (values.contrast == "novel")]
+    w = 1 / (part.variance.to_numpy() + 0.061)
+    # area grows linearly with the weight 1/(v_i + tau2)
+    assert np.corrcoef(sizes, w)[0, 1] == pytest.approx(1.0)
+    with pytest.raises(UsageError, match="needs the 'variance' column"):
+        precision_plot(values.drop(columns=["variance"]), region="left hippocampus", contrast="novel")
+
+
+def test_stimulus_plot(values, participants):
+    ax = stimulus_plot(values, region="left hippocampus", stimuli=["town1", "town2", "town3"], group="group",
+                       participants=participants)
+    est = [line for line in ax.lines if line.get_label().startswith("stimulus mean")]
+    assert len(est) == 3
+    town2 = values[(values.region == "left hippocampus") & (values.contrast == "town2")].value
+    assert est[1].get_ydata()[0] == pytest.approx(town2.mean())
+    assert len(_points(ax)) == 3 * 32
+
+
+def test_covariate_plot(values, participants, results_by_design):
+    ax = covariate_plot(values, region="left hippocampus", contrast="novel", covariate="age", group="group",
+                        participants=participants, results=results_by_design["glm"])
+    assert len(_points(ax)) == 32
+    assert any("model b = -0.006" in t.get_text() for t in ax.figure.legends[0].get_texts())
+    with pytest.raises(UsageError, match="covariate 'height'"):
+        covariate_plot(values, region="left hippocampus", contrast="novel", covariate="height")
+
+
+def _png_info(data: bytes):
+    width, height = struct.unpack(">II", data[16:24])
+    i = data.index(b"pHYs")
+    ppm_x = struct.unpack(">I", data[i + 4:i + 8])[0]
+    return width, height, ppm_x
+
+
+def test_save_figure_formats_fonts_and_width(values, tmp_path):
+    ax = participant_plot(values, region="left hippocampus", contrast="novel")
+    paths = save_figure(ax.figure, tmp_path / "one", width="single")
+    assert [p.name for p in paths] == ["one.pdf", "one.svg", "one.png"]
+    pdf = paths[0].read_bytes()
+    # TrueType fonts embedded (pdf.fonttype 42): a FontFile2 stream, no Type 3 fonts
+    assert b"/FontFile2" in pdf and b"/Type3" not in pdf
+    svg = paths[1].read_text()
+    assert "<text" not in svg  # text as outlines (svg.fonttype 'path')
+    width, _, ppm = _png_info(paths[2].read_bytes())
+    # 85 mm at 300 dpi = 1004 px; 300 dpi = 11811 pixels per metre
+    assert abs(width - round(85 / 25.4 * 300)) <= 2
+    assert ppm == 11811
+    with pytest.raises(Exception, match="exists"):
+        save_figure(ax.figure, tmp_path / "one.png", formats=("png",))
+    with pytest.raises(UsageError, match="width must be"):
+        save_figure(ax.figure, tmp_path / "two", width="triple")

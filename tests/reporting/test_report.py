@@ -1,0 +1,199 @@
+"""write_report and `roikit report`: outputs, overwrite refusal, and every HTML table number checked."""
+
+import json
+import re
+import warnings
+from html.parser import HTMLParser
+
+import numpy as np
+import pandas as pd
+import pytest
+
+from roikit._tables import sha256_file, write_table
+from roikit.cli import main
+from roikit.errors import CautionWarning, OutputExistsError
+from roikit.reporting import write_report
+from roikit.reporting.format import format_df, format_number, format_percent
+from roikit.reporting.tables import cell_formatters
+
+
+class _Tables(HTMLParser):
+    """Collect every <table>: rows of (tr attributes, [(td data-column, text)])."""
+
+    def __init__(self):
+        super().__init__()
+        self.tables, self.images, self.external = [], [], []
+        self._cell = None
+
+    def handle_starttag(self, tag, attrs):
+        attrs = dict(attrs)
+        for key in ("src", "href"):
+            value = attrs.get(key) or ""
+            if value and not value.startswith(("data:", "#")):
+                self.external.append(value)
+        if tag == "table":
+            self.tables.append({"class": attrs.get("class"), "head": [], "rows": []})
+        elif tag == "tr":
+            self.tables[-1]["rows"].append((attrs, []))
+        elif tag in ("td", "th"):
+            self._cell = [tag, attrs.get("data-column"), ""]
+        elif tag == "img":
+            self.images.append(attrs)
+        elif tag in ("script", "link", "iframe"):
+            self.external.append(tag)
+
+    def handle_endtag(self, tag):
+        if tag in ("td", "th") and self._cell is not None:
+            kind, column, text = self._cell
+            target = self.tables[-1]["head"] if kind == "th" else self.tables[-1]["rows"][-1][1]
+            target.append((column, text.strip()))
+            self._cell = None
+
+    def handle_data(self, data):
+        if self._cell is not None:
+            self._cell[2] += data
+
+
+def _parse(path):
+    parser = _Tables()
+    parser.feed(path.read_text(encoding="utf-8"))
+    return parser
+
+
+@pytest.fixture(scope="module")
+def full_report(tmp_path_factory, values, results, participants):
+    out = tmp_path_factory.mktemp("full") / "report"
+    with pytest.warns(CautionWarning, match="caution"):
+        written = write_report(values, results, participants=participants, out=out, figures=False)
+    return out, written
+
+
+def test_outputs_written(full_report):
+    out, written = full_report
+    for name in ("methods.md", "report.html", "provenance.json"):
+        assert (out / name).is_file()
+    assert (out / "tables" / "descriptives.docx").is_file()
+    assert (out / "tables" / "all_tables.docx").is_file()
+    assert len(list((out / "tables").glob("results_*.tex"))) == 8
+    prov = json.loads((out / "provenance.json").read_text())
+    assert prov["versions"]["numpy"]
+    assert prov["values_provenance"]["statistic"] == "mean"
+    assert {o["path"]: o["sha256"] for o in prov["outputs"]}["report.html"] == sha256_file(out / "report.html")
+    md = (out / "methods.md").read_text()
+    assert "## Cautions" in md and "clinical decisions about an individual patient" in md
+
+
+def test_every_number_in_the_html_tables_equals_the_results(full_report, results):
+    out, _ = full_report
+    parsed = _parse(out / "report.html")
+    fmt = cell_formatters()
+    checked = 0
+    result_tables = [t for t in parsed.tables if any(a.get("data-statistic-type") for a, _ in t["rows"])]
+    assert len(result_tables) == 8
+    for table in result_tables:
+        for attrs, cells in table["rows"]:
+            if not cells:  # the header row
+                continue
+            match = results[(results.design == attrs["data-design"]) & (results.region == attrs["data-region"])
+                            & (results.term == attrs["data-term"])
+                            & (results.statistic_type == attrs["data-statistic-type"])]
+            if attrs.get("data-contrast"):
+                match = match[match.contrast == attrs["data-contrast"]]
+            assert len(match) == 1, attrs
+            row = match.iloc[0]
+            for column, text in cells:
+                text = text.replace("−", "-")
+                if column == "region":
+                    assert text.startswith(row["region"])
+                elif column == "term":
+                    assert text == row["term"]
+                else:
+                    assert column in fmt, f"unvalidated column {column}"
+                    assert text == fmt[column](row), (attrs, column)
+                    checked += 1
+    # every numeric cell of the 33 result rows was compared
+    assert checked > 33 * 6
+
+
+def test_descriptives_in_the_html_equal_pandas(full_report, values, participants):
+    out, _ = full_report
+    parsed = _parse(out / "report.html")
+    desc = [t for t in parsed.tables if t["head"] and t["head"][0] == ("region", "Region")
+            and any(c == "coverage" for c, _ in t["head"])][0]
+    merged = values.merge(participants, on="participant_id")
+    assert len([r for r in desc["rows"] if r[1]]) == merged.groupby(["region", "contrast", "group"]).ngroups
+    for attrs, cells in desc["rows"]:
+        if not cells:
+            continue
+        part = merged[(merged.region == attrs["data-region"]) & (merged.contrast == attrs["data-contrast"])
+                      & (merged.group == attrs["data-group"])]
+        x = part.value.dropna()
+        # independent computation with pandas (mean, std with ddof=1)
+        expected = {"n": format_df(len(x)), "n_missing": format_df(part.value.isna().sum()),
+                    "mean": format_number(x.mean()), "sd": format_number(x.std(ddof=1)),
+                    "se": format_number(x.std(ddof=1) / np.sqrt(len(x))),
+                    "coverage": format_percent(100 * (part.n_valid / part.n_voxels).mean())}
+        for column, text in cells:
+            if column in expected:
+                assert text.replace("−", "-") == expected[column], (attrs, column)
+
+
+def test_html_is_self_contained(full_report):
+    out, _ = full_report
+    parsed = _parse(out / "report.html")
+    assert parsed.external == []
+    html = (out / "report.html").read_text()
+    assert "@media print" in html
+    assert "does not generalise to the population" in html
+    assert "Circular region definition" in html
+
+
+def test_refuses_to_overwrite(full_report, values, results):
+    out, _ = full_report
+    with pytest.raises(OutputExistsError, match="already exist; pass --overwrite"):
+        write_report(values, results, out=out, figures=False)
+
+
+def test_report_with_figures(tmp_path, values, results_by_design, participants):
+    results = pd.concat([results_by_design[d] for d in ("paired", "glm")], ignore_index=True)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", CautionWarning)
+        written = write_report(values, results, participants=participants, out=tmp_path / "r",
+                               figure_formats=("png",))
+    names = sorted(p.name for p in written["figures"])
+    assert names == ["covariate_age_general-linear-model-novel-value-age-group.png",
+                     "forest_age_general-linear-model-novel-value-age-group.png",
+                     "forest_novel-familiar_paired-t-tests-novel-vs-familiar.png",
+                     "participants_paired-t-tests-novel-vs-familiar.png"]
+    parsed = _parse(written["html"])
+    assert len(parsed.images) == 4
+    assert all(img["src"].startswith("data:image/png;base64,") and img["alt"] for img in parsed.images)
+
+
+@pytest.mark.filterwarnings("ignore::roikit.errors.CautionWarning")
+def test_cli_report(tmp_path, values, results_by_design, participants, capsys):
+    values_path = tmp_path / "region_values.tsv"
+    write_table(values_path, values, sidecar={"columns": {}, "provenance": values.attrs["roikit"]})
+    results_path = tmp_path / "group_results.tsv"
+    write_table(results_path, results_by_design["one-sample"])
+    participants_path = tmp_path / "participants.tsv"
+    write_table(participants_path, participants)
+    out = tmp_path / "report"
+    args = ["report", "--values", str(values_path), "--results", str(results_path), "--participants",
+            str(participants_path), "--out", str(out), "--circular", "left hippocampus"]
+    assert main(args) == 0
+    assert "wrote" in capsys.readouterr().out
+    prov = json.loads((out / "provenance.json").read_text())
+    assert [i["role"] for i in prov["inputs"]][:3] == ["values", "results", "participants"]
+    assert prov["inputs"][0]["sha256"] == sha256_file(values_path)
+    html = (out / "report.html").read_text()
+    assert "retrosplenial cortex, left hippocampus were defined from the same data" in html
+    # the TSV round trip keeps the numbers: same table cells as from the DataFrame
+    assert "5.47" in html
+    # an existing report is not overwritten without --overwrite (exit 1, one line on stderr)
+    assert main(args) == 1
+    err = capsys.readouterr().err
+    assert err.count("\n") == 1 and "--overwrite" in err
+    assert main(args + ["--overwrite"]) == 0
+    assert main(["report", "--values", str(tmp_path / "nope.tsv"), "--results", str(results_path), "--out",
+                 str(tmp_path / "other")]) == 1
