@@ -151,10 +151,11 @@ def main(argv=None) -> int:
 
     results["mask_loop_ms"] = time_per_map(mask_loop, paths[: args.loop_maps], 1)
 
-    mem10 = peak_memory_mib(10, folder, args.regions)
-    memn = peak_memory_mib(args.maps, folder, args.regions)
-    results["peak_mib_10_maps"] = mem10
-    results[f"peak_mib_{args.maps}_maps"] = memn
+    memory = {}
+    for n in sorted({10, max(10, args.maps // 4), max(10, args.maps // 2), args.maps}):
+        memory[n] = peak_memory_mib(n, folder, args.regions)
+        results[f"peak_mib_{n}_maps"] = memory[n]
+    mem10, memn = memory[10], memory[args.maps]
 
     ratios = {
         "throughput_vs_plain_zlib": results["plain_zlib_ms"] / results["roikit_ms"],
@@ -174,8 +175,8 @@ def main(argv=None) -> int:
     for k, v in ratios.items():
         print(f"{k:45s} {v:10.2f}x" if "memory" not in k else f"{k:45s} {v:10.2f}")
     RESULTS.mkdir(exist_ok=True)
-    (RESULTS / "bench_extract.json").write_text(json.dumps({"info": info, "results": results, "ratios": ratios},
-                                                           indent=2))
+    (RESULTS / "bench_extract.json").write_text(json.dumps({"info": info, "results": results, "ratios": ratios,
+                                                            "peak_mib_by_maps": memory}, indent=2))
     return 0
 
 
