@@ -1,0 +1,35 @@
+"""`roikit run STUDY.toml`: run a whole study file (extraction, every analysis, the report)."""
+
+from __future__ import annotations
+
+import argparse
+
+from ..study import load_study, run_study
+
+
+def add_parser(subparsers) -> None:
+    p = subparsers.add_parser(
+        "run",
+        help="run a study file: extraction, every analysis and the report",
+        description="Validate the study file (TOML; keys mirror the command-line options; paths relative to the "
+        "file) and report every problem at once; then extract the region values (maps unchanged since an earlier "
+        "run into the same folder are taken from its cache in DIR/.cache/), run every [[analysis]] and write "
+        "region_values.tsv, group_results.tsv (with JSON sidecars), tables/, figures/, report.html, methods.md "
+        "and provenance.json into DIR, and print a short summary.",
+    )
+    p.add_argument("study", metavar="STUDY.toml", help="the study file")
+    p.add_argument("--out", metavar="DIR", default=None,
+                   help="output folder (default: a folder named results beside the study file)")
+    p.add_argument("--overwrite", action="store_true",
+                   help="replace the outputs of an earlier run in DIR (its extraction cache is reused)")
+    p.add_argument("--no-figures", action="store_true", help="skip the report's figures (faster; tables and text only)")
+    p.add_argument("--quiet", action="store_true", help="no progress bar; print only the output folder")
+    p.set_defaults(func=run)
+
+
+def run(args: argparse.Namespace) -> int:
+    study = load_study(args.study)
+    result = run_study(study, out=args.out, overwrite=args.overwrite, progress=False if args.quiet else None,
+                        figures=not args.no_figures)
+    print(result.out if args.quiet else result.summary())
+    return 0

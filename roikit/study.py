@@ -1,0 +1,1326 @@
+"""Study files: a whole analysis (maps, participants, regions, designs) described as data, run in one go.
+
+A study file is TOML whose keys mirror the command-line options (see the contract)::
+
+    [study]
+    title = "Wayfinding study"
+    participants = "participants.tsv"          # optional
+
+    [maps]
+    effect = "maps/sub-{subject}_contrast-{contrast}_effect.nii.gz"
+    variance = "maps/sub-{subject}_contrast-{contrast}_variance.nii.gz"   # optional
+    # or: list = "maps.tsv"                     (a map list: participant_id, contrast, path, ...)
+
+    [regions]
+    atlas = "atlas.nii.gz"
+    labels = "atlas.tsv"
+    # optional: split_hemispheres = true (or a list of region names), within = "brain_mask.nii.gz",
+    #           select = [...], rename = {old = "new"}, circular = ["prior peak"]
+    [[regions.sphere]]
+    name = "prior peak"
+    center = [30.0, -20.0, -14.0]
+    radius = 6.0
+    [[regions.mask]]
+    name = "my mask"
+    image = "mask.nii.gz"
+    [[regions.probability]]
+    image = "prob.nii.gz"
+    threshold = 0.5
+    name = "my region"                          # or labels = "prob.tsv" for a 4D image
+
+    [extraction]                                # optional
+    statistic = "mean"                          # mean, median, trimmed-mean, weighted-mean
+    keep_zeros = false
+    jobs = 1
+
+    [[analysis]]
+    design = "two-group"
+    contrast = "novel"
+    group = "group"
+    levels = ["younger", "older"]
+    # any of: versus, welch, formula, random, crossed, tau2, correct, permutations, seed, confidence
+
+Paths are relative to the study file. :func:`load_study` validates the *whole* file before any work starts
+and reports every problem at once, each with its key path (``analysis[2].levels: ...``; blocks are counted
+from 1 in file order), in one :class:`StudyError`. :func:`run_study` extracts (reusing a cache of earlier
+runs), runs every analysis, writes the report and prints nothing; :meth:`StudyRun.summary` is the short
+text ``roikit run`` prints.
+
+A study file is data and never runs code: formulas (``formula``, ``random``) are checked token by token
+(:func:`check_formula`) before they reach the formula library.
+
+Region operations are applied in this order: hemisphere split, intersection with ``within``, ``select``,
+``rename``.
+"""
+
+from __future__ import annotations
+
+import datetime as _dt
+import difflib
+import hashlib
+import importlib
+import json
+import os
+import re
+import shutil
+import tempfile
+import time
+import tomllib
+import warnings
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any, Iterable, Sequence
+
+import numpy as np
+import pandas as pd
+
+from . import __version__
+from ._tables import sha256_file, sidecar_path, write_json, write_table
+from ._typing import PathLike
+from .errors import (
+    CoverageWarning,
+    InputFileError,
+    OutputExistsError,
+    RoikitError,
+    RoikitWarning,
+    UsageError,
+)
+from .extraction import STATISTICS, TRIM, VALUE_COLUMNS, extract, find_maps, read_map_list, read_participants
+from .images import check_same_grid, read_header
+from .regions import Atlas, Mask, ProbabilityMap, Regions, RegionSet, Sphere, read_label_table
+
+__all__ = [
+    "StudyError",
+    "Analysis",
+    "Study",
+    "StudyRun",
+    "load_study",
+    "run_study",
+    "check_formula",
+    "FORMULA_TRANSFORMS",
+    "STUDY_KEYS",
+    "OUTPUTS",
+    "CACHE_FOLDER",
+]
+
+# The stats designs beyond the basic four register themselves when their modules are imported.
+for _module in ("roikit.stats.precision", "roikit.stats.fixed", "roikit.stats.mixed"):
+    try:
+        importlib.import_module(_module)
+    except ModuleNotFoundError:  # pragma: no cover - a design module not installed in this build
+        pass
+
+from .stats import available_designs, run_design  # noqa: E402 - after the design modules registered
+from .stats import COLUMN_DESCRIPTIONS  # noqa: E402
+from .stats._registry import DESIGNS, PERMUTATIONS  # noqa: E402
+from .stats.corrections import parse_corrections  # noqa: E402
+
+
+class StudyError(UsageError):
+    """A study file has one or more problems; ``problems`` lists them, one ``key.path: message`` each."""
+
+    def __init__(self, path: PathLike | None, problems: Sequence[str]):
+        self.path = None if path is None else Path(path)
+        self.problems = list(problems)
+        where = f"{path}: " if path is not None else ""
+        n = len(self.problems)
+        head = f"{where}{n} problem{'s' if n != 1 else ''} in the study file (nothing was run):"
+        super().__init__("\n".join([head] + [f"  {p}" for p in self.problems]))
+
+
+# --------------------------------------------------------------------------------------------------
+# Keys
+# --------------------------------------------------------------------------------------------------
+
+#: Every key a study file may hold, by section (``analysis`` keys mirror the command-line options).
+STUDY_KEYS: dict[str, tuple[str, ...]] = {
+    "": ("study", "maps", "regions", "extraction", "analysis"),
+    "study": ("title", "participants"),
+    "maps": ("effect", "variance", "list"),
+    "regions": ("atlas", "labels", "sphere", "mask", "probability", "split_hemispheres", "within", "select",
+                "rename", "circular"),
+    "regions.sphere": ("name", "center", "radius"),
+    "regions.mask": ("name", "image"),
+    "regions.probability": ("image", "threshold", "name", "labels"),
+    "extraction": ("statistic", "keep_zeros", "jobs"),
+    "analysis": ("design", "contrast", "versus", "group", "levels", "welch", "formula", "random", "crossed",
+                 "tau2", "correct", "permutations", "seed", "confidence"),
+}
+
+#: Analysis keys that are design options (passed to the design when given).
+_DESIGN_OPTIONS = ("contrast", "versus", "group", "levels", "welch", "formula", "random", "crossed", "tau2")
+
+#: Options each design cannot do without (beyond what its signature requires).
+_NEEDS = {
+    "one-sample": ("contrast",),
+    "paired": ("contrast", "versus"),
+    "two-group": ("contrast", "group", "levels"),
+    "glm": ("contrast", "formula"),
+    "precision-weighted": ("contrast",),
+    "fixed-effects": ("contrast",),
+    "mixed": ("formula",),
+}
+_NEEDS_VARIANCE = ("precision-weighted", "fixed-effects")
+_TAU2 = ("reml", "ml", "dl", "pm")
+
+#: Transforms a study-file formula may call (formulaic's, by these names only).
+FORMULA_TRANSFORMS = ("C", "center", "log", "scale", "standardize")
+
+#: What ``run_study`` writes into the output folder (besides the cache).
+OUTPUTS = ("region_values.tsv", "region_values.json", "group_results.tsv", "group_results.json", "tables",
+           "figures", "report.html", "methods.md", "provenance.json")
+
+#: Folder (inside the output folder) holding the extraction cache.
+CACHE_FOLDER = ".cache"
+_CACHE_FILE = "extraction.json"
+_CACHE_FORMAT = 1
+
+_TOML_TYPES = {str: "a string", int: "an integer", float: "a number", bool: "true or false", list: "an array",
+               dict: "a table"}
+
+
+def _type_name(value: Any) -> str:
+    for t, name in _TOML_TYPES.items():
+        if type(value) is t:
+            return name
+    return type(value).__name__
+
+
+def _suggest(word: str, choices: Iterable[str]) -> str:
+    close = difflib.get_close_matches(str(word), [str(c) for c in choices], n=1, cutoff=0.6)
+    return f"; did you mean {close[0]!r}?" if close else ""
+
+
+def _listing(items: Iterable[Any], limit: int = 12) -> str:
+    items = [str(i) for i in items]
+    shown = ", ".join(items[:limit])
+    return shown + (f" and {len(items) - limit} more" if len(items) > limit else "") if items else "none"
+
+
+# --------------------------------------------------------------------------------------------------
+# Formula check
+# --------------------------------------------------------------------------------------------------
+
+_TOKEN = re.compile(
+    r"\s*(?:(?P<number>(?:\d+\.?\d*|\.\d+)(?:[eE][+-]?\d+)?)"
+    r"|(?P<name>[A-Za-z_][A-Za-z0-9_]*)"
+    r"|(?P<quoted>`[^`]*`)"
+    r"|(?P<op>\*\*|[~+\-*:/()]))"
+)
+
+
+def check_formula(
+    formula: str,
+    columns: Iterable[str],
+    *,
+    what: str = "formula",
+    allow_tilde: bool = True,
+) -> list[str]:
+    """Check a formula from a study file token by token; return the problems found (empty if none).
+
+    Allowed tokens: column names (of the region values table and participants.tsv; a name with other
+    characters may be written in backticks), numbers, the operators ``~ + - * : / ** ( )`` and the
+    transforms :data:`FORMULA_TRANSFORMS` (``C``, ``center``, ``log``, ``scale``, ``standardize``),
+    each immediately followed by ``(``. Anything else -- attribute access (``np.log``), ``I()``, strings,
+    commas, braces, Python expressions -- is refused, so a study file cannot run code through the formula
+    library (formulaic evaluates unknown calls as Python).
+
+    Parameters
+    ----------
+    formula : str
+        The formula, e.g. ``"value ~ age + C(group)"`` (or random terms, ``"1 + contrast"``).
+    columns : iterable of str
+        Column names a term may name.
+    what : str
+        How to call the formula in messages (e.g. ``"formula"``, ``"random"``).
+    allow_tilde : bool
+        Whether ``~`` may appear (once; the left-hand side must be empty or ``value``).
+
+    Returns
+    -------
+    list of str
+        One message per problem, naming the formula and the token.
+
+    Examples
+    --------
+    >>> check_formula("value ~ age + C(group)", ["value", "age", "group"])
+    []
+    >>> check_formula("value ~ np.log(age)", ["value", "age"])[0][:40]
+    "formula 'value ~ np.log(age)': 'np' is n"
+    """
+    if not isinstance(formula, str) or not formula.strip():
+        return [f"{what} must be a non-empty string, e.g. 'value ~ age + group'; got {formula!r}"]
+    columns = [str(c) for c in columns]
+    allowed = "column names, numbers, ~ + - * : / ** ( ) and the transforms " + ", ".join(FORMULA_TRANSFORMS)
+    problems: list[str] = []
+    tokens: list[tuple[str, str]] = []
+    pos = 0
+    text = formula.rstrip()
+    while pos < len(text):
+        m = _TOKEN.match(text, pos)
+        if not m or m.end() == pos:
+            bad = text[pos:].lstrip()[:1]
+            return [f"{what} {formula!r}: token {bad!r} is not allowed in a study file (allowed: {allowed})"]
+        kind = m.lastgroup
+        tokens.append((kind, m.group(kind)))
+        pos = m.end()
+    n_tilde = sum(1 for k, t in tokens if t == "~")
+    if n_tilde and not allow_tilde:
+        problems.append(f"{what} {formula!r}: '~' is not allowed here (write the terms only, e.g. '1 + contrast')")
+    elif n_tilde > 1:
+        problems.append(f"{what} {formula!r}: '~' appears {n_tilde} times; write one 'value ~ terms'")
+    elif n_tilde == 1:
+        lhs = [t for _, t in tokens[: [t for _, t in tokens].index("~")]]
+        if lhs not in ([], ["value"]):
+            problems.append(f"{what} {formula!r}: the left-hand side must be 'value', found {' '.join(lhs)!r}")
+    depth = 0
+    for i, (kind, tok) in enumerate(tokens):
+        following = tokens[i + 1][1] if i + 1 < len(tokens) else None
+        if kind == "name" and following == "(":
+            if tok not in FORMULA_TRANSFORMS:
+                problems.append(f"{what} {formula!r}: {tok!r} is not an allowed transform (allowed: "
+                                f"{', '.join(FORMULA_TRANSFORMS)}){_suggest(tok, FORMULA_TRANSFORMS)}")
+        elif kind in ("name", "quoted"):
+            name = tok.strip("`") if kind == "quoted" else tok
+            if name not in columns:
+                problems.append(f"{what} {formula!r}: {tok!r} is not a column of the region values table or "
+                                f"participants.tsv{_suggest(name, columns)} (columns: {_listing(columns, 20)})")
+        elif tok == "(":
+            depth += 1
+        elif tok == ")":
+            depth -= 1
+            if depth < 0:
+                problems.append(f"{what} {formula!r}: unbalanced ')'")
+                depth = 0
+    if depth > 0:
+        problems.append(f"{what} {formula!r}: unbalanced '('")
+    return problems
+
+
+# --------------------------------------------------------------------------------------------------
+# The parsed study
+# --------------------------------------------------------------------------------------------------
+
+
+@dataclass(frozen=True)
+class Analysis:
+    """One ``[[analysis]]`` block, validated.
+
+    Attributes
+    ----------
+    number : int
+        Position in the file, counted from 1 (``analysis[number]`` in messages).
+    design : str
+    options : dict
+        Design options in snake_case, as :func:`roikit.stats.run_design` takes them.
+    correct : str or list of str
+    permutations : int
+    seed : int or None
+    confidence : float
+    """
+
+    number: int
+    design: str
+    options: dict
+    correct: str | list = "holm,fdr"
+    permutations: int = 0
+    seed: int | None = None
+    confidence: float = 0.95
+
+    @property
+    def label(self) -> str:
+        """Short name, e.g. ``analysis[2] two-group novel``."""
+        contrast = self.options.get("contrast")
+        if isinstance(contrast, (list, tuple)):
+            contrast = ",".join(contrast)
+        versus = self.options.get("versus")
+        what = f" {contrast}" if contrast else ""
+        what += f" vs {versus}" if versus else ""
+        formula = self.options.get("formula")
+        what += f" ({formula})" if formula else ""
+        return f"analysis[{self.number}] {self.design}{what}"
+
+    def run(self, values: pd.DataFrame, participants: pd.DataFrame | None) -> pd.DataFrame:
+        """Run this analysis with :func:`roikit.stats.run_design`."""
+        return run_design(values, self.design, participants=participants, correct=self.correct,
+                          permutations=self.permutations, seed=self.seed, confidence=self.confidence,
+                          **self.options)
+
+
+@dataclass
+class Study:
+    """A validated study file (see :func:`load_study`).
+
+    Attributes
+    ----------
+    path : Path
+        The study file.
+    title : str
+    participants_path : Path or None
+    participants : DataFrame or None
+        participants.tsv, read.
+    maps : DataFrame
+        The maps table (participant_id, [session_id], contrast, path, [variance_path], [volume]).
+    regions : RegionSet
+    realised : Regions
+        The regions realised on the maps' grid.
+    circular : list of str
+        Regions marked as defined from the same data (flagged in the report).
+    statistic : str
+    keep_zeros : bool
+    jobs : int
+    analyses : list of Analysis
+    raw : dict
+        The parsed TOML.
+    """
+
+    path: Path
+    title: str
+    participants_path: Path | None
+    participants: pd.DataFrame | None
+    maps: pd.DataFrame
+    regions: RegionSet
+    realised: Regions
+    circular: list[str]
+    statistic: str
+    keep_zeros: bool
+    jobs: int
+    analyses: list[Analysis]
+    raw: dict = field(repr=False, default_factory=dict)
+
+    @property
+    def default_out(self) -> Path:
+        """The default output folder: ``results`` beside the study file."""
+        return self.path.parent / "results"
+
+
+# --------------------------------------------------------------------------------------------------
+# Validation
+# --------------------------------------------------------------------------------------------------
+
+
+class _Checker:
+    """Collects problems (``key.path: message``) while reading the study file."""
+
+    def __init__(self, path: Path):
+        self.path = path
+        self.root = path.parent
+        self.problems: list[str] = []
+
+    def add(self, key: str, message: str) -> None:
+        self.problems.append(f"{key}: {message}" if key else message)
+
+    def table(self, value: Any, key: str) -> dict | None:
+        if value is None:
+            return None
+        if not isinstance(value, dict):
+            self.add(key, f"must be a table ([{key}]), found {_type_name(value)}")
+            return None
+        return value
+
+    def keys(self, table: dict, key: str, section: str) -> None:
+        allowed = STUDY_KEYS[section]
+        for k in table:
+            if k not in allowed:
+                where = f"{key}.{k}" if key else k
+                self.add(where, f"unknown key{_suggest(k, allowed)} (allowed {('in [' + section + ']') if section else 'sections'}: "
+                         f"{', '.join(allowed)})")
+
+    def string(self, table: dict, name: str, key: str, *, required: bool = False) -> str | None:
+        value = table.get(name)
+        if value is None:
+            if required:
+                self.add(f"{key}.{name}" if key else name, "missing; this key is required here")
+            return None
+        if not isinstance(value, str) or not value.strip():
+            self.add(f"{key}.{name}", f"must be a non-empty string, found {_type_name(value)} {value!r}")
+            return None
+        return value
+
+    def file(self, table: dict, name: str, key: str, *, required: bool = False, what: str = "file") -> Path | None:
+        value = self.string(table, name, key, required=required)
+        if value is None:
+            return None
+        path = Path(value)
+        path = path if path.is_absolute() else self.root / path
+        if not path.is_file():
+            self.add(f"{key}.{name}", f"{what} {value!r} not found (looked for {path}); paths are relative to "
+                                      "the study file")
+            return None
+        return path
+
+    def boolean(self, table: dict, name: str, key: str, default: bool) -> bool:
+        value = table.get(name, default)
+        if not isinstance(value, bool):
+            self.add(f"{key}.{name}", f"must be true or false, found {_type_name(value)} {value!r}")
+            return default
+        return value
+
+    def integer(self, table: dict, name: str, key: str, default, *, minimum: int) -> int | None:
+        value = table.get(name, default)
+        if value is None:
+            return None
+        if isinstance(value, bool) or not isinstance(value, int) or value < minimum:
+            self.add(f"{key}.{name}", f"must be an integer >= {minimum}, found {_type_name(value)} {value!r}")
+            return default
+        return value
+
+    def names(self, value: Any, key: str) -> list[str] | None:
+        if isinstance(value, str):
+            value = [value]
+        if not isinstance(value, list) or not value or not all(isinstance(v, str) and v for v in value):
+            self.add(key, f"must be an array of region names, found {_type_name(value)} {value!r}")
+            return None
+        return list(value)
+
+
+def load_study(path: PathLike) -> Study:
+    """Read and validate a study file; every problem is reported at once.
+
+    Parameters
+    ----------
+    path : path
+        The study file (TOML). Paths inside it are relative to its folder.
+
+    Returns
+    -------
+    Study
+        The validated study: participants read, maps found, regions realised on the maps' grid, analyses
+        checked against the designs' options, the maps' contrasts and participants.tsv.
+
+    Raises
+    ------
+    StudyError
+        (a :class:`roikit.errors.UsageError`) listing every problem, one ``key.path: message`` per line,
+        e.g. ``analysis[2].levels: 'old' is not a value of column group; found older, younger``.
+    InputFileError
+        When the study file itself does not exist.
+
+    Examples
+    --------
+    >>> study = load_study("study/study.toml")       # doctest: +SKIP
+    >>> [a.label for a in study.analyses]             # doctest: +SKIP
+    """
+    path = Path(path)
+    if not path.is_file():
+        raise InputFileError(f"{path}: study file not found (looked in {path.parent.resolve()})")
+    try:
+        with open(path, "rb") as fh:
+            raw = tomllib.load(fh)
+    except tomllib.TOMLDecodeError as exc:
+        raise StudyError(path, [f"not valid TOML: {exc}"]) from None
+    except UnicodeDecodeError as exc:
+        raise StudyError(path, [f"not UTF-8 text: {exc}"]) from None
+    c = _Checker(path.resolve() if not path.is_absolute() else path)
+    c.keys(raw, "", "")
+
+    # [study]
+    section = c.table(raw.get("study"), "study") or {}
+    c.keys(section, "study", "study")
+    title = c.string(section, "title", "study") or path.stem
+    participants_path = c.file(section, "participants", "study", what="participants table")
+    participants = None
+    if participants_path is not None:
+        try:
+            participants = read_participants(participants_path)
+        except RoikitError as exc:
+            c.add("study.participants", str(exc))
+
+    # [maps]
+    maps = _check_maps(c, raw)
+    contrasts = sorted(set(maps["contrast"])) if maps is not None else None
+    has_variance = maps is not None and "variance_path" in maps.columns
+
+    # [regions]
+    regions, static_names, circular = _check_regions(c, raw)
+
+    # [extraction]
+    section = c.table(raw.get("extraction"), "extraction") or {}
+    c.keys(section, "extraction", "extraction")
+    statistic = section.get("statistic", "mean")
+    if statistic not in STATISTICS:
+        c.add("extraction.statistic", f"must be one of {', '.join(STATISTICS)}, found {statistic!r}"
+              f"{_suggest(statistic, STATISTICS)}")
+        statistic = "mean"
+    keep_zeros = c.boolean(section, "keep_zeros", "extraction", False)
+    jobs = c.integer(section, "jobs", "extraction", 1, minimum=1) or 1
+
+    # [[analysis]]
+    columns = list(VALUE_COLUMNS)
+    if participants is not None:
+        columns += [str(col) for col in participants.columns if col not in columns]
+    analyses = _check_analyses(c, raw, contrasts=contrasts, participants=participants, columns=columns,
+                               has_variance=has_variance, maps_known=maps is not None)
+
+    # realise the regions on the maps' grid (only when everything else is sound: it reads images)
+    realised = None
+    if not c.problems and maps is not None and regions is not None:
+        try:
+            grid = read_header(maps["path"].iloc[0]).grid
+            realised = regions.realise(grid)
+        except RoikitError as exc:
+            c.add("regions", str(exc))
+        else:
+            unknown = [n for n in circular if n not in realised.names]
+            if unknown:
+                c.add("regions.circular", f"unknown region(s) {_listing(unknown)}; regions are "
+                                          f"{_listing(realised.names, 20)}")
+    if c.problems:
+        raise StudyError(path, c.problems)
+    return Study(path=path, title=title, participants_path=participants_path, participants=participants, maps=maps,
+                 regions=regions, realised=realised, circular=circular, statistic=statistic, keep_zeros=keep_zeros,
+                 jobs=jobs, analyses=analyses, raw=raw)
+
+
+def _check_maps(c: _Checker, raw: dict) -> pd.DataFrame | None:
+    section = c.table(raw.get("maps"), "maps")
+    if section is None:
+        if "maps" not in raw:
+            c.add("maps", "missing; give [maps] effect = \"maps/sub-{subject}_contrast-{contrast}_effect.nii.gz\" "
+                          "or list = \"maps.tsv\"")
+        return None
+    c.keys(section, "maps", "maps")
+    effect = c.string(section, "effect", "maps")
+    variance = c.string(section, "variance", "maps")
+    has_list = "list" in section
+    if effect is None and not has_list:
+        if "effect" not in section:
+            c.add("maps", "give either effect (a path pattern) or list (a map list table)")
+        return None
+    if effect is not None and has_list:
+        c.add("maps", "give either effect (a path pattern) or list (a map list table), not both")
+        return None
+    try:
+        if has_list:
+            if variance is not None:
+                c.add("maps.variance", "not used with maps.list; give the variance maps in the list's "
+                                       "variance_path column")
+                return None
+            listed = c.file(section, "list", "maps", what="map list")
+            return None if listed is None else read_map_list(listed)
+        return find_maps(effect, variance=variance, root=c.root)
+    except RoikitError as exc:
+        c.add("maps.list" if has_list else "maps.effect", str(exc))
+    return None
+
+
+def _check_regions(c: _Checker, raw: dict) -> tuple[RegionSet | None, list[str] | None, list[str]]:
+    """The RegionSet, the region names expected after the operations (None if unknown), circular names."""
+    section = c.table(raw.get("regions"), "regions")
+    if section is None:
+        if "regions" not in raw:
+            c.add("regions", "missing; give an atlas (atlas + labels), [[regions.sphere]], [[regions.mask]] or "
+                             "[[regions.probability]]")
+        return None, None, []
+    c.keys(section, "regions", "regions")
+    n_problems = len(c.problems)
+    sources: list = []
+    names: list[str] = []
+    names_known = True  # false when a label table could not be read (names after the operations unknown)
+
+    if "atlas" in section or "labels" in section:
+        atlas = c.file(section, "atlas", "regions", required=True, what="atlas image")
+        labels = c.file(section, "labels", "regions", required=True, what="label table")
+        names_known = False
+        if atlas is not None and labels is not None:
+            try:
+                table = read_label_table(labels)
+                names += table["name"].tolist()
+                sources.append(Atlas(atlas, labels=labels))
+                names_known = True
+            except RoikitError as exc:
+                c.add("regions.labels", str(exc))
+
+    def blocks(name: str) -> list[tuple[str, dict]]:
+        value = section.get(name, [])
+        if isinstance(value, dict):
+            value = [value]
+        if not isinstance(value, list) or not all(isinstance(v, dict) for v in value):
+            c.add(f"regions.{name}", f"must be one or more [[regions.{name}]] tables, found {_type_name(value)}")
+            return []
+        return [(f"regions.{name}[{i}]", v) for i, v in enumerate(value, start=1)]
+
+    for key, block in blocks("sphere"):
+        c.keys(block, key, "regions.sphere")
+        name = c.string(block, "name", key, required=True)
+        center, radius = block.get("center"), block.get("radius")
+        ok = name is not None
+        if name is not None:
+            names.append(name)
+        if not (isinstance(center, list) and len(center) == 3 and all(
+                isinstance(v, (int, float)) and not isinstance(v, bool) and np.isfinite(v) for v in center)):
+            c.add(f"{key}.center", f"must be three numbers [x, y, z] in world mm, found {center!r}")
+            ok = False
+        if isinstance(radius, bool) or not isinstance(radius, (int, float)) or not (np.isfinite(radius) and radius > 0):
+            c.add(f"{key}.radius", f"must be a positive number of mm, found {radius!r}")
+            ok = False
+        if ok:
+            sources.append(Sphere(name, center=tuple(float(v) for v in center), radius=float(radius)))
+    for key, block in blocks("mask"):
+        c.keys(block, key, "regions.mask")
+        name = c.string(block, "name", key, required=True)
+        image = c.file(block, "image", key, required=True, what="mask image")
+        if name is not None:
+            names.append(name)
+        if name is not None and image is not None:
+            sources.append(Mask(name, image))
+    for key, block in blocks("probability"):
+        c.keys(block, key, "regions.probability")
+        image = c.file(block, "image", key, required=True, what="probability map")
+        threshold = block.get("threshold")
+        ok = image is not None
+        if isinstance(threshold, bool) or not isinstance(threshold, (int, float)) or not threshold > 0:
+            c.add(f"{key}.threshold", f"must be a positive number (e.g. 0.5 for probabilities), found {threshold!r}")
+            ok = False
+        name = c.string(block, "name", key)
+        labels = c.file(block, "labels", key, what="label table") if "labels" in block else None
+        if ("name" in block) == ("labels" in block):
+            c.add(key, "give name (a 3D probability image) or labels (a 4D image, one volume per region), not both "
+                       "or neither")
+            ok = False
+        if not ok:
+            names_known = False
+        if ok and (name is not None or labels is not None):
+            try:
+                if labels is not None:
+                    names += read_label_table(labels)["name"].tolist()
+                else:
+                    names.append(name)
+                sources.append(ProbabilityMap(image, threshold=float(threshold), name=name, labels=labels))
+            except RoikitError as exc:
+                c.add(f"{key}.labels", str(exc))
+                names_known = False
+    if not sources and len(c.problems) == n_problems:
+        c.add("regions", "no region given; give an atlas (atlas + labels), [[regions.sphere]], [[regions.mask]] or "
+                         "[[regions.probability]]")
+    complete = names_known
+    regionset = RegionSet(sources)
+
+    split = section.get("split_hemispheres", False)
+    if split is not False:
+        if split is True:
+            names = [f"{side} {n}" for n in names for side in ("left", "right")]
+            regionset = regionset.split_hemispheres()
+        else:
+            chosen = c.names(split, "regions.split_hemispheres")
+            if chosen is not None:
+                unknown = [n for n in chosen if complete and n not in names]
+                if unknown:
+                    c.add("regions.split_hemispheres", f"unknown region(s) {_listing(unknown)}; regions are "
+                                                       f"{_listing(names, 20)}{_suggest(unknown[0], names)}")
+                names = [x for n in names for x in ((f"left {n}", f"right {n}") if n in chosen else (n,))]
+                regionset = regionset.split_hemispheres(chosen)
+    within = c.file(section, "within", "regions", what="analysis mask") if "within" in section else None
+    if within is not None:
+        regionset = regionset.intersect(within)
+    if "select" in section:
+        chosen = c.names(section["select"], "regions.select")
+        if chosen is not None:
+            unknown = [n for n in chosen if complete and n not in names]
+            if unknown:
+                c.add("regions.select", f"unknown region(s) {_listing(unknown)}{_suggest(unknown[0], names)}; "
+                                        f"regions are {_listing(names, 20)}")
+            names = chosen
+            regionset = regionset.select(chosen)
+    if "rename" in section:
+        mapping = section["rename"]
+        if not isinstance(mapping, dict) or not all(isinstance(v, str) and v for v in mapping.values()):
+            c.add("regions.rename", f"must be a table of old = \"new\" names, found {_type_name(mapping)}")
+        else:
+            unknown = [n for n in mapping if complete and n not in names]
+            if unknown:
+                c.add("regions.rename", f"unknown region(s) {_listing(unknown)}{_suggest(unknown[0], names)}; "
+                                        f"regions are {_listing(names, 20)}")
+            names = [mapping.get(n, n) for n in names]
+            regionset = regionset.rename(mapping)
+    circular: list[str] = []
+    if "circular" in section:
+        circular = c.names(section["circular"], "regions.circular") or []
+    return (regionset if sources else None), (names if complete else None), circular
+
+
+def _participant_values(participants: pd.DataFrame, column: str) -> list[str]:
+    def fmt(v):
+        if isinstance(v, (float, np.floating)) and float(v).is_integer():
+            return str(int(v))
+        return str(v)
+
+    return sorted({fmt(v) for v in participants[column].dropna()})
+
+
+def _check_analyses(c: _Checker, raw: dict, *, contrasts, participants, columns, has_variance, maps_known):
+    blocks = raw.get("analysis", [])
+    if isinstance(blocks, dict):
+        blocks = [blocks]
+    if not isinstance(blocks, list) or not all(isinstance(b, dict) for b in blocks):
+        c.add("analysis", f"must be one or more [[analysis]] tables, found {_type_name(blocks)}")
+        return []
+    if not blocks:
+        c.add("analysis", "no [[analysis]] given; add at least one, e.g. [[analysis]] design = \"one-sample\" "
+                          "contrast = \"novel\"")
+    designs = available_designs()
+    analyses = []
+    for number, block in enumerate(blocks, start=1):
+        key = f"analysis[{number}]"
+        n_before = len(c.problems)
+        c.keys(block, key, "analysis")
+        design = block.get("design")
+        if design is None:
+            c.add(f"{key}.design", f"missing; one of {', '.join(designs)}")
+            continue
+        if design not in designs:
+            c.add(f"{key}.design", f"{design!r} is not a design{_suggest(design, designs)} "
+                                   f"(designs: {', '.join(designs)})")
+            continue
+        import inspect
+
+        params = inspect.signature(DESIGNS[design]).parameters
+        accepted = [n for n in _DESIGN_OPTIONS if n in params]
+        required = [n for n, p in params.items() if p.kind is inspect.Parameter.KEYWORD_ONLY
+                    and p.default is inspect.Parameter.empty and n not in ("participants", "confidence")]
+        required += [n for n in _NEEDS.get(design, ()) if n not in required]
+        for name in _DESIGN_OPTIONS:
+            if name in block and name not in accepted:
+                c.add(f"{key}.{name}", f"does not apply to design {design!r} (it takes "
+                                       f"{', '.join(accepted) or 'no design options'})")
+        for name in required:
+            if name not in block:
+                c.add(f"{key}.{name}", f"missing; design {design!r} needs {', '.join(required)}")
+        options: dict = {}
+
+        def known_contrast(name: str, value: Any) -> None:
+            if not isinstance(value, str) or not value:
+                c.add(f"{key}.{name}", f"must be a contrast label (a string), found {_type_name(value)} {value!r}")
+            elif contrasts is not None and value not in contrasts:
+                c.add(f"{key}.{name}", f"{value!r} is not a contrast of the maps{_suggest(value, contrasts)}; "
+                                       f"found {_listing(contrasts)}")
+
+        if "contrast" in block and "contrast" in accepted:
+            value = block["contrast"]
+            if design == "mixed" and isinstance(value, str) and "," in value:
+                value = [v.strip() for v in value.split(",") if v.strip()]
+            if design == "mixed" and isinstance(value, list):
+                if not value:
+                    c.add(f"{key}.contrast", "empty array; list one or more contrasts")
+                for v in value:
+                    known_contrast("contrast", v)
+            else:
+                known_contrast("contrast", value)
+            options["contrast"] = value
+        if "versus" in block and "versus" in accepted:
+            known_contrast("versus", block["versus"])
+            if block["versus"] == block.get("contrast"):
+                c.add(f"{key}.versus", f"must differ from contrast ({block['versus']!r})")
+            options["versus"] = block["versus"]
+        if "group" in block and "group" in accepted:
+            group = block["group"]
+            if not isinstance(group, str) or not group:
+                c.add(f"{key}.group", f"must be a column name of participants.tsv, found {group!r}")
+            elif participants is None:
+                c.add(f"{key}.group", "needs participants.tsv; give [study] participants = \"participants.tsv\"")
+            elif group not in participants.columns:
+                others = [str(x) for x in participants.columns if x != "participant_id"]
+                c.add(f"{key}.group", f"{group!r} is not a column of participants.tsv{_suggest(group, others)}; "
+                                      f"found {_listing(others)}")
+            options["group"] = group
+        if "levels" in block and "levels" in accepted:
+            levels = block["levels"]
+            items = [s.strip() for s in levels.split(",")] if isinstance(levels, str) else levels
+            if not isinstance(items, list) or len(items) != 2 or not all(
+                    isinstance(v, (str, int)) and not isinstance(v, bool) for v in items) or \
+                    str(items[0]) == str(items[1]):
+                c.add(f"{key}.levels", f"must name two different groups, e.g. [\"younger\", \"older\"]; "
+                                       f"found {levels!r}")
+            else:
+                items = [str(v) for v in items]
+                group = options.get("group")
+                if participants is not None and isinstance(group, str) and group in participants.columns:
+                    found = _participant_values(participants, group)
+                    for level in items:
+                        if level not in found:
+                            c.add(f"{key}.levels", f"{level!r} is not a value of column {group}"
+                                                   f"{_suggest(level, found)}; found {_listing(found)}")
+                options["levels"] = items
+        if "welch" in block and "welch" in accepted:
+            options["welch"] = c.boolean(block, "welch", key, False)
+        for name, tilde in (("formula", True), ("random", False)):
+            if name in block and name in accepted:
+                value = block[name]
+                problems = check_formula(value, columns, what=name, allow_tilde=tilde)
+                for p in problems:
+                    c.add(f"{key}.{name}", p)
+                if tilde and not problems and "~" not in value:
+                    c.add(f"{key}.{name}", f"{value!r}: write the formula as 'value ~ terms', e.g. "
+                                           "'value ~ age + group'")
+                if participants is None and problems:
+                    c.add(f"{key}.{name}", "no participants.tsv was given ([study] participants), so only the "
+                                           "region values table's columns can be named")
+                options[name] = value
+        if "crossed" in block and "crossed" in accepted:
+            value = block["crossed"]
+            if not isinstance(value, str) or value not in columns:
+                c.add(f"{key}.crossed", f"must be a column of the region values table or participants.tsv"
+                                        f"{_suggest(str(value), columns)}; found {value!r}")
+            options["crossed"] = value
+        if "tau2" in block and "tau2" in accepted:
+            value = block["tau2"]
+            if value not in _TAU2:
+                c.add(f"{key}.tau2", f"must be one of {', '.join(_TAU2)}, found {value!r}")
+            options["tau2"] = value
+        if design in _NEEDS_VARIANCE and maps_known and not has_variance:
+            c.add(f"{key}.design", f"{design!r} needs first-level variances; give [maps] variance = \"...\" "
+                                   "(or a variance_path column in the map list)")
+        correct = block.get("correct", "holm,fdr")
+        try:
+            if not isinstance(correct, (str, list)):
+                raise UsageError(f"must be a string such as \"holm,fdr\" or an array, found {_type_name(correct)}")
+            parse_corrections(correct)
+        except UsageError as exc:
+            c.add(f"{key}.correct", str(exc))
+        permutations = c.integer(block, "permutations", key, 0, minimum=0) or 0
+        seed = c.integer(block, "seed", key, None, minimum=0)
+        if permutations and design not in PERMUTATIONS:
+            c.add(f"{key}.permutations", f"design {design!r} has no permutation test; designs with one: "
+                                         f"{', '.join(PERMUTATIONS)}")
+        if permutations and seed is None:
+            c.add(f"{key}.seed", "missing; permutations in a study file need a seed so that the run can be "
+                                 "repeated exactly (e.g. seed = 1)")
+        confidence = block.get("confidence", 0.95)
+        if isinstance(confidence, bool) or not isinstance(confidence, (int, float)) or not 0 < confidence < 1:
+            c.add(f"{key}.confidence", f"must be a number between 0 and 1 (e.g. 0.95), found {confidence!r}")
+        if len(c.problems) == n_before:
+            analyses.append(Analysis(number, design, options, correct=correct, permutations=permutations, seed=seed,
+                                     confidence=float(confidence)))
+    return analyses
+
+
+# --------------------------------------------------------------------------------------------------
+# Extraction with a cache
+# --------------------------------------------------------------------------------------------------
+
+
+def _fingerprint(realised: Regions, statistic: str, keep_zeros: bool) -> str:
+    """SHA-256 of the realised regions (grid, names, voxels, weights) and the extraction choices."""
+    h = hashlib.sha256()
+    header = {"roikit": __version__, "cache_format": _CACHE_FORMAT, "statistic": statistic,
+              "keep_zeros": bool(keep_zeros), "trim": TRIM, "shape": list(realised.grid.shape),
+              "affine": np.asarray(realised.grid.affine, dtype=np.float64).tolist(), "names": list(realised.names)}
+    h.update(json.dumps(header, sort_keys=True).encode("utf-8"))
+    for vox, w in zip(realised.voxels, realised.weights):
+        h.update(np.ascontiguousarray(vox, dtype=np.int64).tobytes())
+        h.update(b"|" if w is None else np.ascontiguousarray(w, dtype=np.float64).tobytes())
+        h.update(b"#")
+    return h.hexdigest()
+
+
+def _stamp(path: str | None) -> list | None:
+    if path is None or (isinstance(path, float) and np.isnan(path)):
+        return None
+    st = os.stat(path)
+    return [os.path.abspath(path), int(st.st_size), int(st.st_mtime_ns)]
+
+
+def _map_key(row: dict) -> tuple[str, list]:
+    """Cache key of one map (its file and volume) and the stamp that must match (size, mtime of both files)."""
+    volume = row.get("volume")
+    volume = None if volume is None or pd.isna(volume) else int(volume)
+    effect = _stamp(row["path"])
+    variance = _stamp(row.get("variance_path"))
+    key = json.dumps([effect[0], volume, None if variance is None else variance[0]])
+    return key, [effect, variance]
+
+
+def _read_cache(path: Path, fingerprint: str) -> dict:
+    try:
+        with open(path, encoding="utf-8") as fh:
+            cache = json.load(fh)
+    except (OSError, ValueError):
+        return {}
+    if not isinstance(cache, dict) or cache.get("fingerprint") != fingerprint or cache.get("format") != _CACHE_FORMAT:
+        return {}
+    return cache
+
+
+def _floats(xs) -> np.ndarray:
+    return np.array([np.nan if x is None else x for x in xs], dtype=np.float64)
+
+
+def _extract_with_cache(study: Study, out: Path, *, progress: bool | None) -> tuple[pd.DataFrame, dict]:
+    """Extract every map of the study, reading only maps not in the cache (or changed since)."""
+    realised = study.realised
+    names = list(realised.names)
+    n_regions = len(names)
+    fingerprint = _fingerprint(realised, study.statistic, study.keep_zeros)
+    cache_path = out / CACHE_FOLDER / _CACHE_FILE
+    cache = _read_cache(cache_path, fingerprint)
+    entries: dict = cache.get("maps", {}) if cache else {}
+
+    maps = study.maps
+    rows = maps.to_dict("records")
+    keyed = [_map_key(r) for r in rows]
+    hits = [entries.get(k) if entries.get(k, {}).get("stamp") == s else None for k, s in keyed]
+    todo = [i for i, h in enumerate(hits) if h is None]
+
+    has_var = "variance_path" in maps.columns
+    values = np.full((len(rows), n_regions), np.nan)
+    n_valid = np.zeros((len(rows), n_regions), dtype=np.int64)
+    variances = np.full((len(rows), n_regions), np.nan) if has_var else None
+    inputs: list = [None] * len(rows)
+    for i, hit in enumerate(hits):
+        if hit is not None:
+            values[i] = _floats(hit["value"])
+            n_valid[i] = np.asarray(hit["n_valid"], dtype=np.int64)
+            if has_var:
+                variances[i] = _floats(hit["variance"])
+            inputs[i] = hit["input"]
+
+    base = cache.get("provenance") if cache else None
+    if todo:
+        for i in todo:  # a clear message when a new map is on another grid than the regions
+            header = read_header(rows[i]["path"])
+            check_same_grid(realised.grid, header.grid, a_name="the regions' grid (the first map's)",
+                            b_name=header.path)
+        fresh = extract(maps.iloc[todo].reset_index(drop=True), realised, statistic=study.statistic,
+                        keep_zeros=study.keep_zeros, n_jobs=study.jobs, progress=progress)
+        prov = dict(fresh.attrs.get("roikit", {}))
+        fresh_inputs = prov.pop("inputs", [])
+        base = prov
+        for j, i in enumerate(todo):
+            block = fresh.iloc[j * n_regions:(j + 1) * n_regions]
+            if list(block["region"]) != names or block["participant_id"].iloc[0] != rows[i]["participant_id"]:
+                raise RuntimeError("extraction returned maps out of order")  # pragma: no cover - internal check
+            values[i] = block["value"].to_numpy(float)
+            n_valid[i] = block["n_valid"].to_numpy(np.int64)
+            if has_var:
+                variances[i] = block["variance"].to_numpy(float)
+            inputs[i] = fresh_inputs[j]
+    base = dict(base or {})
+    base["region_sources"] = study.regions.describe()
+    base["inputs"] = inputs
+    base["cache"] = {"extracted": len(todo), "reused": len(rows) - len(todo), "fingerprint": fingerprint,
+                     "path": os.fspath(cache_path)}
+    if study.circular:
+        base["circular_regions"] = list(study.circular)
+
+    table = _assemble(maps, names, realised.n_voxels, values, n_valid, variances)
+    reused_empty = [i for i in range(len(rows)) if hits[i] is not None and (n_valid[i] == 0).any()]
+    if reused_empty:
+        who = [f"{rows[i]['participant_id']}/{rows[i]['contrast']}/{names[r]}" for i in reused_empty
+               for r in np.flatnonzero(n_valid[i] == 0)]
+        warnings.warn(CoverageWarning(
+            f"{len(who)} participant x contrast x region value(s) have no valid voxel and are n/a (rows kept; "
+            f"from the extraction cache): {_listing(who)}"), stacklevel=3)
+    table.attrs["roikit"] = base
+
+    new_entries = {}
+    for i, (k, s) in enumerate(keyed):
+        new_entries[k] = {"stamp": s, "value": values[i].tolist(), "n_valid": n_valid[i].tolist(),
+                          "variance": variances[i].tolist() if has_var else None, "input": inputs[i]}
+    provenance = {k: v for k, v in base.items() if k not in ("inputs", "cache")}
+    write_json(cache_path, {"format": _CACHE_FORMAT, "fingerprint": fingerprint, "roikit_version": __version__,
+                            "note": "roikit extraction cache: safe to delete (the next run re-extracts)",
+                            "provenance": provenance, "maps": new_entries}, overwrite=True)
+    return table, base["cache"]
+
+
+def _assemble(maps: pd.DataFrame, names, n_voxels, values, n_valid, variances) -> pd.DataFrame:
+    """The region values table in the layout :func:`roikit.extraction.extract` returns (tested equal)."""
+    n_maps, n_regions = values.shape
+    cols: dict = {}
+    for c in ("participant_id", "session_id", "contrast"):
+        if c in maps.columns:
+            cols[c] = np.repeat(maps[c].to_numpy(dtype=object), n_regions)
+    cols["region"] = np.tile(np.array(names, dtype=object), n_maps)
+    cols["value"] = values.ravel()
+    cols["n_voxels"] = np.tile(np.asarray(n_voxels, dtype=np.int64), n_maps)
+    cols["n_valid"] = n_valid.ravel()
+    if variances is not None:
+        cols["variance"] = variances.ravel()
+    table = pd.DataFrame(cols)
+    for c in ("participant_id", "session_id", "contrast", "region"):
+        if c in table.columns:
+            table[c] = table[c].astype(str)
+    return table
+
+
+# --------------------------------------------------------------------------------------------------
+# Running
+# --------------------------------------------------------------------------------------------------
+
+
+@dataclass
+class StudyRun:
+    """What :func:`run_study` did.
+
+    Attributes
+    ----------
+    study : Study
+    out : Path
+        The output folder.
+    values : DataFrame
+        The region values table (also ``out/region_values.tsv``).
+    results : DataFrame
+        Every analysis's rows, concatenated in file order (also ``out/group_results.tsv``); the column
+        ``analysis`` holds the analysis number (from 1).
+    per_analysis : list of DataFrame
+    outputs : dict of str to Path
+    extracted, reused : int
+        Maps read in this run, and maps taken from the cache.
+    warnings : list of dict
+        Warnings raised during the run (``category``, ``message``); they are also re-issued.
+    seconds : dict of str to float
+    """
+
+    study: Study
+    out: Path
+    values: pd.DataFrame
+    results: pd.DataFrame
+    per_analysis: list
+    outputs: dict
+    extracted: int
+    reused: int
+    warnings: list
+    seconds: dict
+
+    def summary(self, *, alpha: float = 0.05) -> str:
+        """A short text: regions x designs, what survived correction, warnings, where the outputs are."""
+        study = self.study
+        n_part = self.values["participant_id"].nunique()
+        n_regions = self.values["region"].nunique()
+        lines = [
+            f"roikit run: {study.title}",
+            f"  {n_part} participants, {len(study.maps)} maps ({self.extracted} extracted, {self.reused} from the "
+            f"cache), {n_regions} regions x {len(study.analyses)} analyses",
+        ]
+        for analysis, rows in zip(study.analyses, self.per_analysis):
+            lines.append(f"  {analysis.label}:")
+            for term, part in rows.groupby("term", sort=False):
+                lines.append(f"    {term}: " + _survivors(part, alpha))
+            if "population_inference" in rows.columns and not rows["population_inference"].astype(bool).all():
+                lines.append("    caution: fixed effects describe these participants only (no population inference)")
+        if study.circular:
+            lines.append(f"  caution: circular region definition(s): {', '.join(study.circular)}")
+        if self.warnings:
+            counts: dict[str, int] = {}
+            for w in self.warnings:
+                counts[w["category"]] = counts.get(w["category"], 0) + 1
+            lines.append(f"  warnings: {len(self.warnings)} ("
+                         + ", ".join(f"{k} x{v}" for k, v in counts.items()) + "; listed in provenance.json)")
+        else:
+            lines.append("  warnings: none")
+        lines.append(f"  outputs: {self.out}{os.sep} (report.html, group_results.tsv, region_values.tsv, tables/, "
+                     "figures/, methods.md, provenance.json)")
+        return "\n".join(lines)
+
+
+def _survivors(part: pd.DataFrame, alpha: float) -> str:
+    """'k/n regions with p_holm < alpha (names); FDR: m/n' for one term of one analysis."""
+    n = int(part["p"].notna().sum())
+    out = []
+    for column, name in (("p_holm", "Holm"), ("p_fdr", "FDR"), ("p_fwe", "permutation FWE")):
+        if column not in part.columns or part[column].isna().all():
+            continue
+        hit = part.loc[part[column] < alpha, "region"].tolist()
+        text = f"{name} {len(hit)}/{n}"
+        if column == "p_holm" and hit:
+            text += f" ({_listing(hit, 5)})"
+        out.append(text)
+    if not out:
+        hit = part.loc[part["p"] < alpha, "region"].tolist()
+        out.append(f"uncorrected {len(hit)}/{n}")
+    return f"p < {alpha:g} after correction: " + "; ".join(out)
+
+
+def _existing_outputs(out: Path) -> list[Path]:
+    return [out / name for name in OUTPUTS if (out / name).exists()]
+
+
+def run_study(
+    study: Study | PathLike,
+    *,
+    out: PathLike | None = None,
+    overwrite: bool = False,
+    progress: bool | None = None,
+    figures: bool = True,
+) -> StudyRun:
+    """Run a study file: extraction (with a cache), every analysis, the report, provenance.
+
+    Parameters
+    ----------
+    study : Study or path
+        A study (:func:`load_study`) or the path of a study file (validated first; nothing runs when it has
+        problems).
+    out : path, optional
+        Output folder; default ``results`` beside the study file.
+    overwrite : bool
+        Replace the outputs of an earlier run in ``out`` (only the files and folders listed in
+        :data:`OUTPUTS`; nothing else in the folder is touched).
+    progress : bool, optional
+        Progress bar while extracting (default: only for 20 maps or more).
+    figures : bool
+        Draw the report's figures (False: tables and text only, much faster).
+
+    Returns
+    -------
+    StudyRun
+
+    Notes
+    -----
+    Written into ``out``: ``region_values.tsv`` and ``group_results.tsv`` (with JSON sidecars),
+    ``tables/``, ``figures/``, ``report.html``, ``methods.md`` (from :func:`roikit.reporting.write_report`)
+    and ``provenance.json``. The extraction cache lives in ``out/.cache/``: a map whose file path, size and
+    modification time (and those of its variance map) are unchanged, extracted with the same realised regions
+    (SHA-256 of the grid, names, voxels and weights), statistic and zero rule, is not read again. The merged
+    table equals a fresh extraction (tested). Outputs are written to a temporary folder first and moved into
+    place when everything succeeded.
+
+    Examples
+    --------
+    >>> run = run_study("study/study.toml", out="results")   # doctest: +SKIP
+    >>> print(run.summary())                                  # doctest: +SKIP
+    """
+    t_start = time.perf_counter()
+    if not isinstance(study, Study):
+        study = load_study(study)
+    out = Path(out) if out is not None else study.default_out
+    if out.exists() and not out.is_dir():
+        raise OutputExistsError(f"{out}: exists and is not a folder; choose another --out folder")
+    existing = _existing_outputs(out)
+    if existing and not overwrite:
+        raise OutputExistsError(
+            f"{out}: holds the outputs of an earlier run ({', '.join(p.name for p in existing[:4])}"
+            f"{' ...' if len(existing) > 4 else ''}); pass --overwrite (overwrite=True) to replace them (the "
+            "extraction cache is kept, so only new maps are read), or choose another --out folder")
+    from .reporting import write_report
+
+    seconds: dict[str, float] = {}
+    caught: list[warnings.WarningMessage] = []
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
+        t0 = time.perf_counter()
+        out.mkdir(parents=True, exist_ok=True)
+        values, cache_info = _extract_with_cache(study, out, progress=progress)
+        seconds["extraction"] = time.perf_counter() - t0
+
+        t0 = time.perf_counter()
+        per_analysis = []
+        for analysis in study.analyses:
+            try:
+                rows = analysis.run(values, study.participants)
+            except RoikitError as exc:
+                raise type(exc)(f"{analysis.label}: {exc}") from exc
+            per_analysis.append(rows)
+        results = pd.concat([r.assign(analysis=a.number) for a, r in zip(study.analyses, per_analysis)],
+                            ignore_index=True, sort=False)
+        seconds["statistics"] = time.perf_counter() - t0
+
+        t0 = time.perf_counter()
+        tmp = Path(tempfile.mkdtemp(prefix=".run-tmp-", dir=out))
+        try:
+            written = [
+                write_table(tmp / "region_values.tsv", values,
+                            sidecar={"columns": {c: VALUE_COLUMNS.get(c, "") for c in values.columns},
+                                     "provenance": values.attrs.get("roikit", {})}),
+                write_table(tmp / "group_results.tsv", results,
+                            sidecar=_results_sidecar(study, results, per_analysis)),
+            ]
+            written += [sidecar_path(p) for p in written]
+            inputs = [{"role": "study file", "path": os.fspath(study.path), "sha256": sha256_file(study.path)}]
+            if study.participants_path is not None:
+                inputs.append({"role": "participants", "path": os.fspath(study.participants_path),
+                               "sha256": sha256_file(study.participants_path)})
+            write_report(values, results, participants=study.participants, out=tmp, overwrite=True,
+                         provenance={"inputs": inputs, "options": {"command": "roikit run", "out": os.fspath(out)}},
+                         title=study.title, circular=study.circular, figures=figures)
+            seconds["report"] = time.perf_counter() - t0
+            for w in caught:  # messages naming the temporary folder name the output folder instead
+                if str(tmp) in str(w.message):
+                    w.message = w.category(str(w.message).replace(str(tmp), str(out)))
+            recorded = [{"category": w.category.__name__, "message": str(w.message)} for w in caught
+                        if issubclass(w.category, RoikitWarning)]
+            seconds["total"] = time.perf_counter() - t_start
+            _extend_provenance(tmp / "provenance.json", study, out, cache_info, per_analysis, recorded, seconds,
+                               written, tmp)
+            _move_into_place(tmp, out)
+        finally:
+            shutil.rmtree(tmp, ignore_errors=True)
+    for w in caught:  # re-issue, so callers (and the command line) see them
+        warnings.warn_explicit(w.message, w.category, w.filename, w.lineno)
+    outputs = {name: out / name for name in OUTPUTS if (out / name).exists()}
+    return StudyRun(study=study, out=out, values=values, results=results, per_analysis=per_analysis,
+                    outputs=outputs, extracted=cache_info["extracted"], reused=cache_info["reused"],
+                    warnings=recorded, seconds=seconds)
+
+
+def _move_into_place(tmp: Path, out: Path) -> None:
+    """Replace ``out``'s entries by those in ``tmp`` (files and folders), one rename each."""
+    for item in sorted(tmp.iterdir()):
+        target = out / item.name
+        if target.is_dir() and not target.is_symlink():
+            trash = Path(tempfile.mkdtemp(prefix=f".{item.name}.old-", dir=out))
+            os.replace(target, trash / item.name)
+            os.replace(item, target)
+            shutil.rmtree(trash, ignore_errors=True)
+        else:
+            os.replace(item, target)
+
+
+def _results_sidecar(study: Study, results: pd.DataFrame, per_analysis: list) -> dict:
+    extra: dict = {}
+    for rows in per_analysis:
+        described = rows.attrs.get("column_descriptions", {}) if isinstance(rows.attrs, dict) else {}
+        extra.update(described if isinstance(described, dict) else {})
+    columns = {}
+    for c in results.columns:
+        if c == "analysis":
+            columns[c] = "number of the [[analysis]] block in the study file (from 1)"
+        else:
+            columns[c] = extra.get(c, COLUMN_DESCRIPTIONS.get(c, "design-specific column (see roikit.stats)"))
+    return {
+        "description": f"roikit group results of study {study.title!r}: every [[analysis]] of {study.path.name}, "
+                       "one row per analysis x region x term",
+        "columns": columns,
+        "analyses": [{"analysis": a.number, "design": a.design, **a.options, "correct": a.correct,
+                      "permutations": a.permutations, "seed": a.seed, "confidence": a.confidence}
+                     for a in study.analyses],
+        "note": "p_holm and p_fdr adjust across the regions of the same analysis and term (family_size). "
+                "For research group analysis, not for clinical decisions.",
+    }
+
+
+def _analysis_records(study: Study, per_analysis: list) -> list[dict]:
+    records = []
+    for a, rows in zip(study.analyses, per_analysis):
+        seeds = rows["seed"].dropna().unique().tolist() if "seed" in rows.columns else []
+        records.append({"analysis": a.number, "design": a.design, "options": a.options, "correct": a.correct,
+                        "permutations": a.permutations, "seed": seeds[0] if seeds else a.seed,
+                        "confidence": a.confidence, "rows": len(rows), "terms": list(pd.unique(rows["term"]))})
+    return records
+
+
+def _extend_provenance(path: Path, study: Study, out: Path, cache_info: dict, per_analysis: list,
+                       recorded: list, seconds: dict, written: list, tmp: Path) -> None:
+    """Add the run's record (study file, analyses, cache, warnings) to the report's provenance.json."""
+    try:
+        with open(path, encoding="utf-8") as fh:
+            record = json.load(fh)
+    except (OSError, ValueError):
+        record = {}
+    record["kind"] = "roikit run"
+    outputs = record.get("outputs", [])
+    outputs += [{"path": os.fspath(p.relative_to(tmp)), "sha256": sha256_file(p)} for p in written]
+    record["outputs"] = outputs
+    record["run"] = {
+        "study_file": os.fspath(study.path),
+        "title": study.title,
+        "study": study.raw,
+        "out": os.fspath(out),
+        "extraction": {"statistic": study.statistic, "keep_zeros": study.keep_zeros, "jobs": study.jobs,
+                       "n_maps": len(study.maps), "regions": list(study.realised.names), "cache": cache_info},
+        "circular_regions": list(study.circular),
+        "analyses": _analysis_records(study, per_analysis),
+        "warnings": recorded,
+        "seconds": seconds,
+        "note": "For research group analysis, not for clinical decisions about an individual patient.",
+    }
+    write_json(path, record, overwrite=True)
