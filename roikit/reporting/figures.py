@@ -302,6 +302,7 @@ def participant_plot(
     levels: Sequence[str] | None = None,
     participants: pd.DataFrame | None = None,
     results: pd.DataFrame | None = None,
+    design: str | None = None,
     value: str = "value",
     participant: str = "participant_id",
     confidence: float = 0.95,
@@ -334,6 +335,9 @@ def participant_plot(
     results : DataFrame, optional
         Group results; the matching row gives the estimate and CI drawn beside the points (so the figure and
         the table agree) and the participants to flag (``outlier_ids``, ``low_coverage_ids``).
+    design : str, optional
+        Use only the results rows of this design (e.g. ``fixed-effects`` when results hold several designs
+        for the same contrast).
     value, participant : str
         Column names.
     confidence : float
@@ -400,6 +404,8 @@ def participant_plot(
         rows = _results_rows(results, region=region, designs=["mixed", "glm", "two-group", "one-sample"])
         if "contrast" in rows.columns:
             rows = rows[rows["contrast"].map(text).isin(conditions + [""])]
+    if design is not None and len(rows):
+        rows = rows[rows["design"].map(text) == design]
     outliers = _flagged(rows, "outlier_ids")
     low = _flagged(rows, "low_coverage_ids") | _low_coverage(part, participant)
 

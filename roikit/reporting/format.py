@@ -74,6 +74,7 @@ _EFFECT_MARKUP = {
     "d_av": "*d*_{av}",
     "g": "*g*",
     "g_z": "*g*_{z}",
+    "d_total": "*d*_{total}",
     "partial_eta2": "*η*^{2}_{p}",
     "eta2": "*η*^{2}",
     "omega2": "*ω*^{2}",

@@ -96,8 +96,11 @@ def _figure_plan(values: pd.DataFrame, results: pd.DataFrame, participants: pd.D
         opts: dict[str, Any] = dict(results=results)
         flags = _FLAGS
         if design in ("one-sample", "fixed-effects") and contrast:
-            plan.append(dict(name=f"participants_{base}", caption=f"{escape_markup(title)}. {_POINTS}{flags}",
-                             make=lambda c=contrast: participant_figure(values, contrast=c, **opts)))
+            note = (" The fixed-effects estimate describes only these participants and does not generalise to the "
+                    "population." if design == "fixed-effects" else "")
+            plan.append(dict(name=f"participants_{base}", caption=f"{escape_markup(title)}. {_POINTS}{flags}{note}",
+                             make=lambda c=contrast, d=design: participant_figure(values, contrast=c, design=d,
+                                                                                  **opts)))
         elif design == "paired" and contrast and key.get("versus") in contrasts_all:
             plan.append(dict(name=f"participants_{base}", caption=(
                 f"{escape_markup(title)}. Grey lines connect each participant's values; open points to the right are "
