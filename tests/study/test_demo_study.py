@@ -1,0 +1,34 @@
+"""`roikit run` on the demo's study file reproduces the demo's results exactly."""
+
+from __future__ import annotations
+
+import contextlib
+import io
+
+import pandas as pd
+import pytest
+
+from roikit._tables import read_table
+from roikit.cli import main
+from roikit.demo import run_demo
+
+
+@pytest.mark.slow
+def test_run_on_the_demo_study_reproduces_the_demo(tmp_path):
+    demo = run_demo(tmp_path / "demo", progress=False, figures=False)
+    out = tmp_path / "run"
+    stdout = io.StringIO()
+    with contextlib.redirect_stdout(stdout):
+        status = main(["run", str(demo.study.path / "study.toml"), "--out", str(out), "--no-figures"])
+    assert status == 0
+    assert "32 participants, 288 maps (288 extracted, 0 from the cache), 10 regions x 6 analyses" in stdout.getvalue()
+    # the region values: the same bytes
+    assert (out / "region_values.tsv").read_bytes() == (demo.results / "region_values.tsv").read_bytes()
+    # the group results: the same table (roikit run adds the column `analysis`, the block number in the file)
+    ours = read_table(out / "group_results.tsv")
+    theirs = read_table(demo.results / "group_results.tsv")
+    assert ours["analysis"].tolist() == [k for k, n in enumerate(
+        theirs.groupby(["design"], sort=False).size().reindex(pd.unique(theirs["design"])), start=1)
+        for _ in range(n)]
+    pd.testing.assert_frame_equal(ours.drop(columns="analysis"), theirs)
+    assert len(theirs) > 0 and theirs["design"].nunique() == 6
