@@ -41,7 +41,11 @@ def run(args: argparse.Namespace) -> int:
         f"  study:        {demo.study.path}{os.sep}  (maps/, atlas.nii.gz + atlas.tsv, participants.tsv, study.toml)",
         f"  ground truth: {demo.outputs['ground_truth']}  (planted: {problems})",
         f"  results:      {demo.results}{os.sep}",
+        f"    report:        {demo.outputs['report']}  (open in a browser)",
         f"    region values: {demo.outputs['region_values']}",
+        f"    group results: {demo.outputs['group_results']}",
+        f"    methods text:  {demo.outputs['methods']}",
+        f"    tables:        {demo.results / 'tables'}{os.sep}   figures: {demo.results / 'figures'}{os.sep}",
         "All data are invented; see the study's README.md.",
     ]
     print("\n".join(lines))

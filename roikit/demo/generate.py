@@ -93,8 +93,8 @@ class _RegionSpec:
 # Region centres are plausible MNI-like coordinates written from memory, rounded; they are
 # not taken from any atlas. Effects are in invented percent-signal-change units.
 _REGIONS = (
-    _RegionSpec("left hippocampus", "lHC", (-28, -22, -14), (6, 14, 6), (0.60, 0.40), (0.20, 0.20), 0.35, 0.15),
-    _RegionSpec("right hippocampus", "rHC", (28, -22, -14), (6, 14, 6), (0.65, 0.45), (0.20, 0.22), 0.35, 0.15),
+    _RegionSpec("left hippocampus", "lHC", (-28, -22, -14), (6, 14, 6), (0.70, 0.40), (0.20, 0.20), 0.35, 0.15),
+    _RegionSpec("right hippocampus", "rHC", (28, -22, -14), (6, 14, 6), (0.75, 0.45), (0.20, 0.22), 0.35, 0.15),
     _RegionSpec("left parahippocampal gyrus", "lPHG", (-24, -46, -10), (5, 8, 5), (0.55, 0.45), (0.30, 0.28),
                 0.35, 0.15),
     _RegionSpec("right parahippocampal gyrus", "rPHG", (24, -46, -10), (5, 8, 5), (0.60, 0.48), (0.30, 0.28),
@@ -102,8 +102,8 @@ _REGIONS = (
     _RegionSpec("retrosplenial cortex", "RSC", (0, -52, 12), (10, 6, 8), (0.70, 0.60), (0.50, 0.45), 0.35, 0.15),
     _RegionSpec("medial prefrontal cortex", "mPFC", (0, 48, 2), (10, 10, 10), (0.15, 0.10), (0.15, 0.10), 0.30,
                 0.10),
-    _RegionSpec("left caudate", "lCAU", (-13, 12, 10), (4, 9, 7), (0.15, 0.15), (0.45, 0.40), 0.30, 0.10),
-    _RegionSpec("right caudate", "rCAU", (13, 12, 10), (4, 9, 7), (0.15, 0.15), (0.45, 0.40), 0.30, 0.10),
+    _RegionSpec("left caudate", "lCAU", (-13, 12, 10), (4, 9, 7), (0.10, 0.10), (0.45, 0.40), 0.30, 0.10),
+    _RegionSpec("right caudate", "rCAU", (13, 12, 10), (4, 9, 7), (0.10, 0.10), (0.45, 0.40), 0.30, 0.10),
     _RegionSpec("primary visual cortex", "V1", (0, -88, 4), (12, 8, 10), (1.20, 1.00), (1.20, 1.00), 0.40, 0.25),
 )
 REGION_NAMES = tuple(r.name for r in _REGIONS)
@@ -114,7 +114,9 @@ _HIPPOCAMPI = ("left hippocampus", "right hippocampus")
 PRIOR_PEAK = {"name": "prior peak", "center": (30.0, -20.0, -14.0), "radius": 6.0}
 
 # Correlations of the participant deviations: between novel and familiar in a region, and
-# between regions (0.3 in general, 0.6 within the medial temporal lobe, 0.5 between the caudates).
+# between regions (0.3 in general, 0.6 within the medial temporal lobe, 0.5 between the caudates,
+# 0 between the visual control region and every other region).
+_CONTROL = "primary visual cortex"
 _RHO_CONDITION = 0.5
 _RHO_REGION = 0.3
 _RHO_MTL = 0.6
@@ -122,9 +124,9 @@ _RHO_CAUDATE = 0.5
 # Participant-by-town deviations (SD before centring within participant).
 _SD_PARTICIPANT_TOWN = 0.10
 
-# route_accuracy (%) = 78 - 10 [older] + 5 * h / sd_h + N(0, 4^2), clipped to [0, 100],
+# route_accuracy (%) = 78 - 6 [older] + 5 * h / sd_h + N(0, 4^2), clipped to [0, 100],
 # with h the participant's deviation of novel-vs-familiar averaged over both hippocampi.
-_ACCURACY = {"intercept": 78.0, "older": -10.0, "per_sd_hippocampal_effect": 5.0, "residual_sd": 4.0}
+_ACCURACY = {"intercept": 78.0, "older": -6.0, "per_sd_hippocampal_effect": 5.0, "residual_sd": 4.0}
 
 # Planted problems.
 _DROPOUT_CENTER = (-28.0, -16.0, -24.0)  # left ventral anterior temporal lobe
@@ -249,6 +251,8 @@ def _deviation_covariance() -> np.ndarray:
             r_region[names.index(a), names.index(b)] = _RHO_MTL
     i, j = names.index("left caudate"), names.index("right caudate")
     r_region[i, j] = r_region[j, i] = _RHO_CAUDATE
+    control = names.index(_CONTROL)
+    r_region[control, :] = r_region[:, control] = 0.0
     np.fill_diagonal(r_region, 1.0)
     r_condition = np.array([[1.0, _RHO_CONDITION], [_RHO_CONDITION, 1.0]])
     sd = np.repeat([r.sd_between for r in _REGIONS], 2)  # order: (region, condition)
@@ -346,6 +350,12 @@ def _draw_model(rng: np.random.Generator, n_per_group: int, problems: bool) -> d
 # --------------------------------------------------------------------------------------------------
 
 
+try:  # ISA-L's gzip (optional dependency, roikit[fast]) compresses about 5x faster than zlib
+    from isal.igzip import compress as _gzip_compress
+except ImportError:  # pragma: no cover - depends on the environment
+    _gzip_compress = gzip.compress
+
+
 def _nifti_gz(data: np.ndarray, dtype) -> bytes:
     """A gzipped NIfTI-1 file's bytes; the gzip header carries no time stamp (reproducible bytes)."""
     img = nib.Nifti1Image(np.asarray(data, dtype=dtype), AFFINE)
@@ -354,7 +364,7 @@ def _nifti_gz(data: np.ndarray, dtype) -> bytes:
     img.header.set_sform(AFFINE, code=2)  # aligned to a template-like space, not a real template
     img.header.set_qform(AFFINE, code=2)
     img.header["descrip"] = b"roikit demo: invented data"
-    return gzip.compress(img.to_bytes(), compresslevel=1, mtime=0)
+    return _gzip_compress(img.to_bytes(), compresslevel=1, mtime=0)
 
 
 def _volume(flat: np.ndarray) -> np.ndarray:
@@ -851,7 +861,8 @@ def _ground_truth(geo, model, seed, n_per_group, problems, all_names, all_voxels
             "novel-vs-familiar": by_region(sd_nvf),
         },
         "correlations": {"novel_familiar": _RHO_CONDITION, "between_regions": _RHO_REGION,
-                         "within_medial_temporal_lobe": _RHO_MTL, "between_caudates": _RHO_CAUDATE},
+                         "within_medial_temporal_lobe": _RHO_MTL, "between_caudates": _RHO_CAUDATE,
+                         "control_region_with_others": 0.0},
         "town_effects": {town: by_region(model["town_effect"][k]) for k, town in enumerate(TOWNS)},
         "town_sd": by_region([r.sd_town for r in _REGIONS]),
         "participant_by_town_sd": _SD_PARTICIPANT_TOWN,
@@ -859,6 +870,20 @@ def _ground_truth(geo, model, seed, n_per_group, problems, all_names, all_voxels
             **_ACCURACY,
             "hippocampal_effect_sd": model["sd_h"],
             "within_group_slope_of_novel_vs_familiar_on_route_accuracy": by_region(model["route_accuracy_slope"]),
+            # population coefficients of "value ~ route_accuracy + group" on novel-vs-familiar (older the
+            # reference level), ignoring clipping and the planted outlier: the group coefficient is the
+            # younger - older difference at equal accuracy, d_mu - slope * d_accuracy
+            "implied_glm_novel_vs_familiar": {
+                name: {
+                    "route_accuracy": float(model["route_accuracy_slope"][k]),
+                    "group[T.younger]": float(
+                        (_REGIONS[k].novel[0] - _REGIONS[k].familiar[0])
+                        - (_REGIONS[k].novel[1] - _REGIONS[k].familiar[1])
+                        - model["route_accuracy_slope"][k] * (-_ACCURACY["older"])
+                    ),
+                }
+                for k, name in enumerate(REGION_NAMES)
+            },
         },
         "first_level": {
             "reference_variance": _V0,

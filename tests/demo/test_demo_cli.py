@@ -31,8 +31,12 @@ def test_demo_runs_end_to_end(full_demo):
     assert full_demo["stdout"].split() == [str(out / "study"), str(out / "results")]
     for rel in ("study/study.toml", "study/participants.tsv", "study/participants.json", "study/atlas.nii.gz",
                 "study/atlas.tsv", "study/ground_truth.json", "results/region_values.tsv",
-                "results/region_values.json"):
+                "results/region_values.json", "results/group_results.tsv", "results/group_results.json",
+                "results/report.html", "results/methods.md", "results/provenance.json"):
         assert (out / rel).is_file(), rel
+    assert any((out / "results" / "figures").glob("*.png"))
+    assert any((out / "results" / "tables").glob("*.tsv"))
+    assert sorted(p.name for p in out.iterdir()) == ["results", "study"]  # no temporary folders left
     maps = sorted((out / "study" / "maps").iterdir())
     assert len(maps) == 32 * len(CONTRASTS) * 2
     # issue 3: the study stays under 120 MB
@@ -99,6 +103,24 @@ def test_planted_problems_show_in_the_results(results):
 
 
 @pytest.mark.slow
+def test_every_analysis_of_the_study_file_ran(full_demo, results):
+    out = full_demo["out"]
+    group = read_table(out / "results" / "group_results.tsv")
+    study = tomllib.loads((out / "study" / "study.toml").read_text())
+    assert list(dict.fromkeys(group["design"])) == [a["design"] for a in study["analysis"]]
+    for design, sub in group.groupby("design"):
+        assert set(sub["region"]) == set(REGION_NAMES) | {"prior peak"}, design
+    # the planted problems reach roikit's own diagnostics: low coverage and robust outliers
+    problems = {p["kind"]: p["participant_id"] for p in results["ground_truth"]["planted_problems"]}
+    one = group[(group["design"] == "one-sample")].set_index("region")
+    assert one.loc["left hippocampus", "low_coverage_ids"] == problems["dropout"]
+    for region in ("left hippocampus", "right hippocampus", "retrosplenial cortex"):
+        assert problems["outlier"] in str(one.loc[region, "outlier_ids"]).split(","), region
+    html = (out / "results" / "report.html").read_text(encoding="utf-8")
+    assert "left hippocampus" in html and problems["dropout"] in html
+
+
+@pytest.mark.slow
 def test_built_in_effects_are_visible(results):
     """The demo's headline truths show in the extracted values (simple numpy summaries, not roikit.stats)."""
     values = results["values"]
@@ -126,13 +148,16 @@ def test_negative_seed_is_a_usage_error(tmp_path, capsys):
 
 
 def test_pipeline_is_deterministic_and_overwrites_only_a_demo(tmp_path):
-    first = run_demo(tmp_path / "a", seed=5, n_per_group=3, progress=False)
-    second = run_demo(tmp_path / "b", seed=5, n_per_group=3, progress=False)
-    assert sha256_file(first.outputs["region_values"]) == sha256_file(second.outputs["region_values"])
+    first = run_demo(tmp_path / "a", seed=5, n_per_group=3, progress=False, figures=False)
+    hashes = {name: sha256_file(first.outputs[name]) for name in ("region_values", "group_results")}
+    assert set(first.group_results["design"]) == {"one-sample", "paired", "two-group", "glm", "precision-weighted",
+                                                  "mixed"}
+    assert first.outputs["report"].is_file() and first.report["html"] == first.outputs["report"]
     with pytest.raises(OutputExistsError, match="pass --overwrite"):
-        run_demo(tmp_path / "a", seed=6, n_per_group=3, progress=False)
-    third = run_demo(tmp_path / "a", seed=6, n_per_group=3, overwrite=True, progress=False)
-    assert sha256_file(third.outputs["region_values"]) != sha256_file(second.outputs["region_values"])
+        run_demo(tmp_path / "a", seed=5, n_per_group=3, progress=False)
+    # the same seed again, replacing the earlier demo: identical tables
+    again = run_demo(tmp_path / "a", seed=5, n_per_group=3, overwrite=True, progress=False, figures=False)
+    assert {name: sha256_file(again.outputs[name]) for name in hashes} == hashes
     assert sorted(p.name for p in (tmp_path / "a").iterdir()) == ["results", "study"]
     # a results folder that is not next to a demo study is never replaced
     (tmp_path / "c" / "results").mkdir(parents=True)

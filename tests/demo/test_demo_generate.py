@@ -247,6 +247,9 @@ def test_built_in_truths(small):
     for cau in ("left caudate", "right caudate"):
         assert nvf["younger"][cau] < 0 and nvf["older"][cau] < 0  # familiar > novel
     assert nvf["younger"]["primary visual cortex"] == 0 == nvf["older"]["primary visual cortex"]
+    slopes = small.ground_truth["route_accuracy_model"]["within_group_slope_of_novel_vs_familiar_on_route_accuracy"]
+    assert slopes["left hippocampus"] > 0 and slopes["right hippocampus"] > 0
+    assert slopes["primary visual cortex"] == 0  # the control region is unrelated to behaviour
     town = small.ground_truth["town_effects"]
     for region in REGION_NAMES:
         effects = [town[t][region] for t in TOWNS]

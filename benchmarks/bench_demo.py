@@ -1,0 +1,84 @@
+"""Demo benchmark: time of `roikit demo` (generation + pipeline) and size of the invented study.
+
+Targets (issue 3): generation plus the whole pipeline under 60 s on this machine, study under 120 MB.
+Runs the command in a fresh subprocess per repeat (so imports count, as for a user), then times the
+generator alone in this process. Prints medians and writes benchmarks/results/bench_demo.json.
+
+    python benchmarks/bench_demo.py [--repeats 3]
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import os
+import platform
+import shutil
+import statistics
+import subprocess
+import sys
+import tempfile
+import time
+from pathlib import Path
+
+HERE = Path(__file__).resolve().parent
+RESULTS = HERE / "results"
+
+
+def _size(folder: Path) -> int:
+    return sum(p.stat().st_size for p in folder.rglob("*") if p.is_file())
+
+
+def main(argv=None) -> int:
+    parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    parser.add_argument("--repeats", type=int, default=3)
+    args = parser.parse_args(argv)
+
+    from roikit.demo import make_study, run_demo
+
+    command, in_process, generation, extraction, sizes = [], [], [], [], []
+    for _ in range(args.repeats):
+        tmp = Path(tempfile.mkdtemp(prefix="bench-demo-"))
+        try:
+            t0 = time.perf_counter()
+            subprocess.run([sys.executable, "-m", "roikit", "demo", "--out", str(tmp / "cli"), "--quiet"],
+                           check=True, stdout=subprocess.DEVNULL)
+            command.append(time.perf_counter() - t0)
+            sizes.append(_size(tmp / "cli" / "study"))
+
+            t0 = time.perf_counter()
+            run = run_demo(tmp / "api", progress=False)
+            in_process.append(time.perf_counter() - t0)
+            generation.append(run.seconds["generate the study"])
+            extraction.append(run.seconds["extract region values"])
+
+            t0 = time.perf_counter()
+            make_study(tmp / "gen-only", n_per_group=16)
+            generation.append(time.perf_counter() - t0)
+        finally:
+            shutil.rmtree(tmp, ignore_errors=True)
+
+    result = {
+        "machine": {"python": platform.python_version(), "cpus": os.cpu_count(), "platform": platform.platform()},
+        "repeats": args.repeats,
+        "median_seconds": {
+            "roikit demo command (subprocess, incl. imports)": statistics.median(command),
+            "run_demo in process": statistics.median(in_process),
+            "generation (make_study)": statistics.median(generation),
+            "extraction step": statistics.median(extraction),
+        },
+        "all_seconds": {"command": command, "run_demo": in_process, "generation": generation,
+                        "extraction": extraction},
+        "study_megabytes": statistics.median(sizes) / 1e6,
+    }
+    print(f"roikit demo benchmark ({args.repeats} repeats, medians)")
+    for name, value in result["median_seconds"].items():
+        print(f"  {name:<48} {value:7.2f} s")
+    print(f"  {'study size':<48} {result['study_megabytes']:7.1f} MB")
+    RESULTS.mkdir(parents=True, exist_ok=True)
+    (RESULTS / "bench_demo.json").write_text(json.dumps(result, indent=2) + "\n")
+    return 0
+
+
+if __name__ == "__main__":
+    sys.exit(main())
