@@ -20,6 +20,7 @@ Examples
 from __future__ import annotations
 
 import contextlib
+import textwrap
 import io
 import os
 from pathlib import Path
@@ -478,7 +479,7 @@ def participant_plot(
                     m, lo, hi = mean_ci(d, confidence=confidence)
                 _estimate(ax, xd + 0.22, m, lo, hi, marker="D", label="difference and CI")
                 tick_pos.append(xd)
-                tick_lab.append(f"{conditions[0]} − {conditions[1]}\n(n = {int(np.isfinite(d).sum())})")
+                tick_lab.append(f"{conditions[0]} −\n{conditions[1]}\n(n = {int(np.isfinite(d).sum())})")
         if mode == "two-group" and difference:
             xd = 2.2
             if len(rows):
@@ -493,7 +494,7 @@ def participant_plot(
                 m, lo, hi = a.mean() - b.mean(), ci.low, ci.high
             _estimate(ax, xd, m, lo, hi, marker="D", label="difference and CI")
             tick_pos.append(xd)
-            tick_lab.append(f"{groups[0]} − {groups[1]}")
+            tick_lab.append(f"{groups[0]} −\n{groups[1]}")
         ax.axhline(0, **_ZERO_STYLE)
         ax.set_xticks(tick_pos, tick_lab)
         lo_x = min(tick_pos) - 0.45
@@ -501,9 +502,9 @@ def participant_plot(
         ax.set_xlim(lo_x, hi_x)
         ax.set_ylabel("region value" if value == "value" else value)
         title = region
-        if between or mode == "one-sample":
+        if owned and (between or mode == "one-sample"):
             title += f" · {conditions[0]}"
-        ax.set_title(title)
+        ax.set_title(textwrap.fill(title, 30))
         if legend:
             _dedupe_legend(ax, owned)
     return ax
@@ -528,7 +529,7 @@ def participant_figure(
     regions : sequence of str, optional
         Regions to draw, in this order (default: all, in their order of appearance).
     ncols : int, optional
-        Panels per row (default: up to 4 at double width, 2 at single width).
+        Panels per row (default: up to 3 at double width, 2 at single width).
     width : "single", "double" or float
         Figure width in mm.
     panel_height_mm : float
@@ -547,7 +548,7 @@ def participant_figure(
     if not regions:
         raise UsageError("no region to draw: the values table is empty")
     wmm = _width_mm(width)
-    ncols = ncols or max(1, min(len(regions), 4 if wmm >= 150 else 2))
+    ncols = ncols or max(1, min(len(regions), 3 if wmm >= 150 else 2))
     nrows = int(np.ceil(len(regions) / ncols))
     with style():
         fig = Figure(figsize=(wmm * _MM, (panel_height_mm * nrows + 14) * _MM), layout="constrained")
@@ -561,6 +562,9 @@ def participant_figure(
         handles = dict(sorted(handles.items(), key=lambda kv: _legend_rank(kv[0])))
         for ax in list(axes.flat)[len(regions):]:
             ax.set_visible(False)
+        contrast = kwargs.get("contrast")
+        if contrast is not None and kwargs.get("versus") is None:
+            fig.suptitle(f"contrast: {contrast}", fontsize=7.5)
         if handles:
             fig.legend(list(handles.values()), list(handles.keys()), loc="outside lower center",
                        ncols=min(len(handles), 3 if wmm >= 150 else 2), handletextpad=0.3, columnspacing=1.2,
@@ -756,7 +760,7 @@ def precision_plot(
         ax.set_xticks([0], [f"{contrast}\n(n = {int(ok.sum())}, τ² = {format_number(tau2, 3)})"])
         ax.set_xlim(-0.5, 0.6)
         ax.set_ylabel("region value")
-        ax.set_title(f"{region} · {contrast}")
+        ax.set_title(textwrap.fill(f"{region} · {contrast}" if owned else region, 30))
         if legend:
             _dedupe_legend(ax, owned)
     return ax
@@ -843,7 +847,7 @@ def stimulus_plot(
         ax.set_xticks(range(len(levels_)), [f"{s}\n(n = {c})" for s, c in zip(levels_, counts)])
         ax.set_xlim(-0.6, len(levels_) - 0.4)
         ax.set_ylabel("region value")
-        ax.set_title(f"{region} · per {stimulus}" if stimulus != "contrast" else f"{region} · per stimulus")
+        ax.set_title(textwrap.fill(f"{region} · per {stimulus}" if stimulus != "contrast" else f"{region} · per stimulus", 30))
         if legend:
             _dedupe_legend(ax, owned)
     return ax
@@ -920,7 +924,7 @@ def covariate_plot(
         ax.axhline(0, **_ZERO_STYLE)
         ax.set_xlabel(covariate)
         ax.set_ylabel("region value")
-        ax.set_title(f"{region} · {contrast}")
+        ax.set_title(textwrap.fill(f"{region} · {contrast}" if owned else region, 30))
         if legend:
             _dedupe_legend(ax, owned)
     return ax

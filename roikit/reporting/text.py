@@ -190,6 +190,13 @@ def cautions(
 
 
 # --------------------------------------------------------------------------------------------- methods
+def _file_name(path) -> str:
+    """The file name as the user knows it (folders dropped: methods text names files, not machines)."""
+    from pathlib import PurePath
+
+    return PurePath(str(path)).name if path else ""
+
+
 def _region_sentences(prov: dict, values: pd.DataFrame | None) -> list[str]:
     voxels: dict[str, int] = {}
     if values is not None and "n_voxels" in values.columns:
@@ -218,13 +225,14 @@ def _region_sentences(prov: dict, values: pd.DataFrame | None) -> list[str]:
                      if c is not None and r is not None else "a sphere")
             by_kind.setdefault("sphere", []).append(f"{escape_markup(name)}: {where}{vox}")
         elif kind in ("mask", "probability"):
-            image = escape_markup(str(src.get("image", "")))
+            image = escape_markup(_file_name(src.get("image", "")))
             extra = f" thresholded at {src['threshold']}" if kind == "probability" and "threshold" in src else ""
             by_kind.setdefault(kind, []).append(f"{escape_markup(name)}: {kind} image {image}{extra}{vox}")
         else:
             by_kind.setdefault("other", []).append(f"{escape_markup(name)} ({escape_markup(kind)}{vox})")
     out = []
     for (image, labels), names in atlases.items():
+        image, labels = _file_name(image), _file_name(labels)
         out.append(f"From the atlas image {escape_markup(image)} with the label table {escape_markup(labels)}: "
                    + "; ".join(names) + ".")
     if by_kind.get("sphere"):
@@ -239,7 +247,7 @@ def _region_sentences(prov: dict, values: pd.DataFrame | None) -> list[str]:
     for rec in prov.get("resampling", []) or []:
         if isinstance(rec, dict):
             what = escape_markup(str(rec.get("what", rec.get("region", "a region image"))))
-            image = escape_markup(str(rec.get("image", "")))
+            image = escape_markup(_file_name(rec.get("image", "")))
             method = escape_markup(str(rec.get("method", "nearest neighbour")))
             out.append(f"The {what} {image} was resampled onto the maps' grid by {method} interpolation.".replace(
                 "  ", " "))

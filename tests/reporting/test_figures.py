@@ -119,7 +119,7 @@ def test_two_group_plot_distinct_colour_and_marker(values, participants, results
         not np.allclose(young.get_paths()[0].vertices, old.get_paths()[0].vertices)
     # groups side by side
     assert np.mean(young.get_offsets()[:, 0]) < np.mean(old.get_offsets()[:, 0])
-    assert [t.get_text().split("\n")[0] for t in ax.get_xticklabels()] == ["younger", "older", "younger − older"]
+    assert [t.get_text().split("\n")[0] for t in ax.get_xticklabels()] == ["younger", "older", "younger −"]
 
 
 def test_within_and_between_panels(values, participants, results):
