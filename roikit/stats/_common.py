@@ -141,7 +141,8 @@ COLUMN_DESCRIPTIONS: dict[str, str] = {
     "outlier_ids": "participant_ids of those outliers",
     "shapiro_w": "Shapiro-Wilk W of the residuals",
     "shapiro_p": "Shapiro-Wilk p of the residuals",
-    "n_low_coverage": "participants whose n_valid / n_voxels < 0.5 in this region (from extraction)",
+    "n_low_coverage": "participants whose n_valid / n_voxels is above 0 but below 0.5 in this region (from "
+                      "extraction); those with no valid voxel are among the exclusions",
     "low_coverage_ids": "participant_ids of those low-coverage participants",
     "brown_forsythe_p": "Brown-Forsythe test of equal variances between the two groups (two-group)",
     "max_leverage": "largest hat-matrix diagonal among the participants (glm)",
@@ -377,7 +378,10 @@ def low_coverage(
     ids: Sequence[str] | None = None,
     threshold: float = LOW_COVERAGE_THRESHOLD,
 ) -> list[list[str]]:
-    """Participants whose ``n_valid / n_voxels < threshold`` per region (regions with 0 voxels count as low).
+    """Participants whose ``0 < n_valid / n_voxels < threshold`` per region.
+
+    A participant with no valid voxel has no value (n/a): it is excluded from the test and named among
+    the exclusions (``excluded_ids``), not counted again here.
 
     ``contrast`` may be several contrasts (e.g. paired): a participant is flagged if any of them is low.
     ``ids`` restricts the participants considered.
@@ -388,7 +392,7 @@ def low_coverage(
         sub = sub[sub["participant_id"].isin(list(ids))]
     with np.errstate(divide="ignore", invalid="ignore"):
         fraction = sub["n_valid"].to_numpy(float) / sub["n_voxels"].to_numpy(float)
-    low = ~(fraction >= threshold)
+    low = (fraction > 0) & (fraction < threshold)
     flagged = sub.loc[low, ["participant_id", "region"]]
     by_region: dict[str, list[str]] = {}
     for pid, region in zip(flagged["participant_id"], flagged["region"]):

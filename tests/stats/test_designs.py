@@ -240,3 +240,14 @@ def test_low_coverage_and_outliers_are_columns():
     assert res.loc[1, "n_low_coverage"] == 1 and res.loc[1, "low_coverage_ids"] == "sub-07"
     # scipy.stats.shapiro on the region's values
     assert res.loc[1, "shapiro_w"] == pytest.approx(stats.shapiro(y[:, 1]).statistic, rel=1e-12)
+
+
+def test_no_valid_voxel_is_an_exclusion_not_low_coverage():
+    rng = np.random.default_rng(12)
+    y = rng.normal(size=(12, 1))
+    y[3, 0] = np.nan  # extraction wrote n/a: no valid voxel
+    values = values_table({"novel": y}, n_valid=lambda i, j: 0 if i == 3 else (40 if i == 5 else 100))
+    with pytest.warns(Warning):
+        res = run_design(values, "one-sample", contrast="novel")
+    assert res.loc[0, "n"] == 11 and res.loc[0, "excluded_ids"] == "sub-04"
+    assert res.loc[0, "n_low_coverage"] == 1 and res.loc[0, "low_coverage_ids"] == "sub-06"
