@@ -97,6 +97,9 @@ _EFFECT_TEXT = {
     "d_z": "*d*_{z} = mean of the within-participant differences / their *SD*",
     "g": "*g* = Hedges' *g* with the exact small-sample correction (Hedges, 1981)",
     "partial_eta2": "*η*^{2}_{p} = partial eta squared",
+    "d_total": "*d*_{total} = estimate divided by the square root of (*τ*^{2} + typical first-level variance), the "
+               "estimate in units of the "
+               "model-implied SD of one participant's value (no CI)",
 }
 
 _FLAG_TEXT = {
