@@ -36,7 +36,7 @@ def main(argv=None) -> int:
 
     from roikit.demo import make_study, run_demo
 
-    command, in_process, generation, extraction, sizes = [], [], [], [], []
+    command, in_process, generation, extraction, statistics_, report, sizes = [], [], [], [], [], [], []
     for _ in range(args.repeats):
         tmp = Path(tempfile.mkdtemp(prefix="bench-demo-"))
         try:
@@ -51,6 +51,8 @@ def main(argv=None) -> int:
             in_process.append(time.perf_counter() - t0)
             generation.append(run.seconds["generate the study"])
             extraction.append(run.seconds["extract region values"])
+            statistics_.append(run.seconds["group statistics"])
+            report.append(run.seconds["report"])
 
             t0 = time.perf_counter()
             make_study(tmp / "gen-only", n_per_group=16)
@@ -66,9 +68,12 @@ def main(argv=None) -> int:
             "run_demo in process": statistics.median(in_process),
             "generation (make_study)": statistics.median(generation),
             "extraction step": statistics.median(extraction),
+            "group statistics step (six analyses)": statistics.median(statistics_),
+            "report step (PNG figures)": statistics.median(report),
         },
         "all_seconds": {"command": command, "run_demo": in_process, "generation": generation,
-                        "extraction": extraction},
+                        "extraction": extraction, "statistics": statistics_, "report": report},
+        "load_average_after": os.getloadavg(),
         "study_megabytes": statistics.median(sizes) / 1e6,
     }
     print(f"roikit demo benchmark ({args.repeats} repeats, medians)")
