@@ -13,6 +13,7 @@ parts of roikit it is meant to test.
 from __future__ import annotations
 
 import gzip
+import json
 import os
 import shutil
 import tempfile
@@ -375,8 +376,6 @@ def _is_demo_study(path: Path) -> bool:
     truth = path / "ground_truth.json"
     if not truth.is_file():
         return False
-    import json
-
     try:
         with open(truth, encoding="utf-8") as fh:
             return json.load(fh).get("generator") == "roikit.demo"
@@ -417,8 +416,6 @@ def _replace_dir(tmp: Path, out: Path) -> None:
 
 
 def _toml_value(value) -> str:
-    import json
-
     if isinstance(value, bool):
         return "true" if value else "false"
     if isinstance(value, (int, float)):
@@ -536,8 +533,9 @@ class DemoStudy:
 def _check_options(n_per_group, seed) -> None:
     if isinstance(n_per_group, bool) or not isinstance(n_per_group, (int, np.integer)) or not 3 <= n_per_group <= 99:
         raise UsageError(f"n_per_group must be an integer from 3 to 99, got {n_per_group!r}; the demo uses 16")
-    if seed is not None and not isinstance(seed, (int, np.integer, np.random.Generator)) or isinstance(seed, bool):
-        raise UsageError(f"seed must be an int, a numpy Generator or None, got {seed!r}")
+    if (seed is not None and not isinstance(seed, (int, np.integer, np.random.Generator))) or isinstance(seed, bool) \
+            or (isinstance(seed, (int, np.integer)) and seed < 0):
+        raise UsageError(f"seed must be an int >= 0, a numpy Generator or None, got {seed!r}")
 
 
 def make_study(

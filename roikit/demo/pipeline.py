@@ -116,8 +116,23 @@ def run_analyses(values: pd.DataFrame, *, participants: pd.DataFrame | None,
                  analyses=DEMO_ANALYSES) -> tuple[pd.DataFrame, dict[str, str]]:
     """Run each analysis (a dict with ``design`` and its options, as in the study file) on every region.
 
-    Returns the results of all analyses stacked (columns missing from a design are n/a) and the
-    descriptions of their columns.
+    Parameters
+    ----------
+    values : DataFrame
+        Region values table (the contract's columns).
+    participants : DataFrame or None
+        participants.tsv as a table (groups and covariates).
+    analyses : sequence of dict
+        ``{"design": ..., **options}`` with the options of :func:`roikit.stats.run_design`; default the
+        demo's analyses (those written to ``study.toml``).
+
+    Returns
+    -------
+    results : DataFrame
+        The group results of all analyses stacked, in order (the contract's group results columns plus
+        each design's own; a column a design does not fill is n/a).
+    columns : dict of str to str
+        A description of every column, for the JSON sidecar.
     """
     frames, described = [], {}
     for analysis in analyses:

@@ -353,7 +353,7 @@ def test_bad_n_per_group(tmp_path, bad):
         make_study(tmp_path / "study", n_per_group=bad)
 
 
-@pytest.mark.parametrize("bad", ["7", 1.5, True])
+@pytest.mark.parametrize("bad", ["7", 1.5, True, -3])
 def test_bad_seed(tmp_path, bad):
     with pytest.raises(UsageError, match="seed must be an int"):
         make_study(tmp_path / "study", seed=bad, n_per_group=N_PER_GROUP)
