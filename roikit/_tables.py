@@ -54,12 +54,19 @@ def atomic_write_bytes(path: os.PathLike | str, data: bytes, *, overwrite: bool 
     try:
         with os.fdopen(fd, "wb") as fh:
             fh.write(data)
+        os.chmod(tmp, 0o666 & ~_umask())  # mkstemp makes 0600; give the file the user's usual permissions
         os.replace(tmp, path)
     except BaseException:
         if os.path.exists(tmp):
             os.unlink(tmp)
         raise
     return path
+
+
+def _umask() -> int:
+    mask = os.umask(0)
+    os.umask(mask)
+    return mask
 
 
 def sidecar_path(path: os.PathLike | str) -> Path:
