@@ -96,6 +96,7 @@ __all__ = [
     "StudyRun",
     "load_study",
     "run_study",
+    "extract_study",
     "check_formula",
     "FORMULA_TRANSFORMS",
     "STUDY_KEYS",
@@ -1021,6 +1022,36 @@ def _extract_with_cache(study: Study, out: Path, *, progress: bool | None) -> tu
                             "note": "roikit extraction cache: safe to delete (the next run re-extracts)",
                             "provenance": provenance, "maps": new_entries}, overwrite=True)
     return table, base["cache"]
+
+
+def extract_study(study: Study | PathLike, *, out: PathLike | None = None, progress: bool | None = None
+                  ) -> pd.DataFrame:
+    """The study's region values table, reading only maps not already in the output folder's cache.
+
+    Parameters
+    ----------
+    study : Study or path
+        A study (:func:`load_study`) or the path of a study file.
+    out : path, optional
+        Output folder whose ``.cache/`` is used and updated; default ``results`` beside the study file.
+    progress : bool, optional
+        Progress bar (default: only for 20 maps or more).
+
+    Returns
+    -------
+    DataFrame
+        The region values table exactly as :func:`roikit.extraction.extract` returns it for all the study's
+        maps; ``attrs["roikit"]`` holds the provenance, with ``cache`` (maps ``extracted`` and ``reused``).
+
+    Examples
+    --------
+    >>> values = extract_study("study/study.toml")      # doctest: +SKIP
+    """
+    if not isinstance(study, Study):
+        study = load_study(study)
+    out = Path(out) if out is not None else study.default_out
+    values, _ = _extract_with_cache(study, out, progress=progress)
+    return values
 
 
 def _assemble(maps: pd.DataFrame, names, n_voxels, values, n_valid, variances) -> pd.DataFrame:

@@ -196,3 +196,14 @@ def test_command_line_data_error_exits_1(study_dir):
     status, out, err = _cli(["run", str(study_dir / "study.toml"), "--quiet", "--no-figures"])
     assert status == 1
     assert "sub-05_contrast-novel_effect.nii.gz" in err
+
+
+def test_extract_study_uses_the_same_cache_as_run(study_dir, count_reads):
+    from roikit.study import extract_study
+
+    values = extract_study(study_dir / "study.toml")
+    assert len(count_reads) == 32 and values.attrs["roikit"]["cache"]["extracted"] == 16
+    count_reads.clear()
+    run = run_study(study_dir / "study.toml", figures=False)
+    assert count_reads == [] and run.reused == 16
+    pd.testing.assert_frame_equal(run.values, values)

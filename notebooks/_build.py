@@ -1,0 +1,698 @@
+"""Build the template notebooks (``notebooks/*.ipynb``) from the cells written below.
+
+The notebooks are generated, never edited by hand, so that a review reads this file. Run::
+
+    python notebooks/_build.py          # rewrites the five notebooks, outputs stripped
+
+Each notebook starts with a parameters cell (tagged ``parameters``) that points at a study file; with
+``STUDY = None`` it writes the invented demo study (roikit.demo) and runs against it. Each ends by saving
+its tables and figures into the study's results folder (``tables/`` and ``figures/``), where the report
+keeps them.
+"""
+
+from __future__ import annotations
+
+import sys
+from pathlib import Path
+
+import nbformat
+from nbformat.v4 import new_code_cell, new_markdown_cell, new_notebook
+
+HERE = Path(__file__).resolve().parent
+
+PARAMETERS = '''\
+# Parameters: point STUDY at your study file (TOML, see `roikit run`); None runs the invented demo study.
+STUDY = None
+DEMO_FOLDER = None  # where the demo study is written when STUDY is None (None: a new temporary folder)
+OUT = None  # results folder (None: `results` beside the study file, as `roikit run` uses)
+FIGURE_FORMATS = ("pdf", "svg", "png")  # vector for the journal, 300-dpi PNG for slides and the report
+OVERWRITE = False  # True replaces tables and figures saved by an earlier run of this notebook
+'''
+
+SETUP = '''\
+import tempfile
+import warnings
+from pathlib import Path
+
+import matplotlib.pyplot as plt
+import numpy as np
+import pandas as pd
+from IPython.display import Markdown, display
+
+from roikit._tables import write_table
+from roikit.reporting import results_tables, save_figure
+from roikit.reporting.figures import GROUP_COLORS, GROUP_MARKERS, style  # colour-blind-safe palette, journal style
+from roikit.study import extract_study, load_study
+
+if STUDY is None:  # the invented wayfinding study (all data invented); writing it takes about 15 s
+    from roikit.demo import make_study
+
+    folder = Path(DEMO_FOLDER) if DEMO_FOLDER else Path(tempfile.mkdtemp(prefix="roikit-demo-")) / "study"
+    if not (folder / "study.toml").is_file():
+        make_study(folder)
+    STUDY = folder / "study.toml"
+
+study = load_study(STUDY)  # checks the whole study file first and lists every problem at once
+OUT = Path(OUT) if OUT else study.default_out
+TABLES, FIGURES = OUT / "tables", OUT / "figures"
+participants = study.participants
+# region values of every map; maps extracted by an earlier run (or notebook) come from OUT/.cache
+values = extract_study(study, out=OUT)
+
+
+def analysis_options(design):
+    """Options of the study file's first [[analysis]] with this design (None if there is none)."""
+    for analysis in study.analyses:
+        if analysis.design == design:
+            return dict(analysis.options)
+    return None
+
+
+def save(fig, name):
+    """Save a figure where the report keeps its figures; returns the paths written."""
+    paths = save_figure(fig, FIGURES / name, formats=FIGURE_FORMATS, overwrite=OVERWRITE)
+    plt.close(fig)
+    return paths
+
+
+def save_results(results, start=1):
+    """Save the APA tables of one analysis (Markdown, LaTeX, HTML, Word, TSV); returns the paths written."""
+    return [p for t in results_tables(results, start=start) for p in t.write(TABLES, overwrite=OVERWRITE)]
+
+
+def save_table(frame, name, description):
+    """Save a tidy table as TSV (n/a for missing) with a JSON sidecar describing it."""
+    return write_table(TABLES / f"{name}.tsv", frame, sidecar={"description": description}, overwrite=OVERWRITE)
+
+
+print(f"{study.title}: {values['participant_id'].nunique()} participants, {len(study.maps)} maps, "
+      f"{values['region'].nunique()} regions; results folder {OUT}")
+'''
+
+
+def md(text: str):
+    return new_markdown_cell(text.strip("\n"))
+
+
+def code(text: str, *, tags: tuple[str, ...] = ()):
+    cell = new_code_cell(text.strip("\n"))
+    if tags:
+        cell.metadata["tags"] = list(tags)
+    return cell
+
+
+def head(title: str, intro: str) -> list:
+    return [
+        md(f"# {title}\n\n{intro.strip()}\n\n*roikit is for research group analysis, not for clinical decisions "
+           "about an individual patient. With the default parameters every number below comes from the invented "
+           "wayfinding study.*"),
+        code(PARAMETERS, tags=("parameters",)),
+        code(SETUP),
+    ]
+
+
+# --------------------------------------------------------------------------------------------------------------
+# 01 from maps to a region table
+# --------------------------------------------------------------------------------------------------------------
+
+NB01 = head("01 From maps to a region table", """
+One first-level contrast map per participant and contrast goes in; one tidy table comes out, with one row per
+participant x contrast x region. This notebook shows where the regions come from, checks that maps and regions
+share a voxel grid, checks coverage (how much of each region has data in each map), and takes a first look.
+""") + [
+    md("""
+## Region sources
+
+The study file lists the regions: an atlas with its label table, spheres around coordinates, masks, probability
+maps. They are realised on the maps' voxel grid; a region image on another grid is resampled by nearest neighbour
+and the resampling is recorded (nothing is resampled silently).
+"""),
+    code('''
+display(pd.DataFrame(study.regions.describe()))
+regions = study.realised.summary()
+display(regions)
+print("grid of the maps:", study.realised.grid.describe())
+print("region images resampled:", len(study.realised.resampling) or "none")
+'''),
+    md("""
+## Grid and coverage checks
+
+Every map must share one grid (shape and affine, compared with a tolerance); extraction stops with the offending
+file otherwise. Coverage is the share of a region's voxels with usable data (`n_valid / n_voxels`): signal
+dropout or a tight first-level mask shrinks it. Values resting on less than half of a region are flagged in every
+analysis and marked in the figures.
+"""),
+    code('''
+values["coverage"] = values["n_valid"] / values["n_voxels"]
+coverage = values.pivot_table(index="participant_id", columns="region", values="coverage", aggfunc="min", sort=False)
+low = values[values["coverage"] < 0.5][["participant_id", "contrast", "region", "n_valid", "n_voxels", "coverage"]]
+print(f"{len(low)} participant x contrast x region values rest on less than half of the region")
+display(low.head(20))
+
+with style():
+    fig, ax = plt.subplots(figsize=(7.0, 0.12 * len(coverage) + 2.0))
+    image = ax.imshow(coverage.to_numpy(), vmin=0, vmax=1, cmap="viridis", aspect="auto")  # viridis: colour-blind safe
+    ax.set_xticks(range(coverage.shape[1]), coverage.columns, rotation=45, ha="right")
+    ax.set_yticks(range(coverage.shape[0]), coverage.index, fontsize=5)
+    ax.set_title("Lowest coverage over the contrasts (n_valid / n_voxels)")
+    fig.colorbar(image, ax=ax, label="coverage")
+    fig.tight_layout()
+coverage_fig = fig
+plt.show()
+'''),
+    md("""
+## Extraction
+
+`extract_study` (the same step as `roikit run`) reads each map once for all regions and summarises the voxels with
+data (the mean unless the study file says otherwise; zeros count as missing unless `keep_zeros = true`). The
+table's provenance records every input file with its SHA-256.
+"""),
+    code('''
+values = values.drop(columns="coverage")
+display(values.head(12))
+provenance = values.attrs["roikit"]
+print("statistic:", provenance["statistic"], "| missing rule:", provenance["missing_rule"])
+print("maps read now:", provenance["cache"]["extracted"], "| taken from the cache:", provenance["cache"]["reused"])
+'''),
+    md("""
+## A first look
+
+Means per contrast and region, then every participant of one contrast, region by region. Look for participants far
+from the others and for regions where the spread dwarfs the mean before running any test.
+"""),
+    code('''
+display(values.pivot_table(index="region", columns="contrast", values="value", aggfunc="mean", sort=False).round(3))
+
+from roikit.reporting import participant_figure
+
+first = study.analyses[0].options.get("contrast") if study.analyses else None
+contrast = first if isinstance(first, str) else values["contrast"].iloc[0]
+fig = participant_figure(values, contrast=contrast)
+fig.suptitle(f"Region values, contrast {contrast}", fontsize=9)
+plt.show()
+'''),
+    md("## Save where the report expects them"),
+    code('''
+from roikit.extraction import write_values
+
+print(write_values(OUT / "region_values.tsv", values, overwrite=OVERWRITE))
+print(save_table(coverage.reset_index(), "coverage_by_participant",
+                 "lowest coverage (n_valid / n_voxels) over the contrasts, per participant and region"))
+print(save_table(regions, "regions", "regions realised on the maps' grid: voxels, volume, centre of mass (mm)"))
+print(save(fig, f"first_look_{contrast}"))
+print(save(coverage_fig, "coverage_by_participant"))
+'''),
+]
+
+# --------------------------------------------------------------------------------------------------------------
+# 02 is there an effect?
+# --------------------------------------------------------------------------------------------------------------
+
+NB02 = head("02 Is there an effect?", """
+The first question in most region-of-interest studies: is the mean response in a region different from zero
+(one-sample), or different between two conditions within the same participants (paired)? Every region is tested
+at once, and the p-values are corrected across the regions of the family.
+""") + [
+    code('''
+one = analysis_options("one-sample") or {"contrast": values["contrast"].iloc[0]}
+paired = analysis_options("paired")
+print("one-sample:", one, "| paired:", paired)
+'''),
+    md("""
+## One-sample: is the mean different from zero?
+
+Each participant contributes one value per region; the test asks whether the population mean differs from zero,
+so participants are the unit of analysis (notebook 05 shows why). The effect size is `d` = mean / SD with a
+confidence interval from the noncentral *t* distribution.
+"""),
+    code('''
+from roikit.stats import run_design
+
+with warnings.catch_warnings(record=True) as caught:  # diagnostics (outliers, coverage) are kept as columns too
+    warnings.simplefilter("always")
+    one_sample = run_design(values, "one-sample", participants=participants, permutations=2000, seed=2024, **one)
+for w in caught:
+    print(f"{w.category.__name__}: {w.message}")
+columns = ["region", "n", "estimate", "ci_low", "ci_high", "statistic", "df", "p", "p_holm", "p_fdr", "p_fwe",
+           "effect_size", "effect_size_ci_low", "effect_size_ci_high", "n_outliers", "n_low_coverage"]
+display(one_sample[columns].round(4))
+'''),
+    md("""
+## Corrections: which regions survive?
+
+Testing ten regions at the 5% level gives about one false positive in two studies when nothing is there. Three
+answers: the permutation family-wise p (`p_fwe`, from the maximum statistic over the regions, so it takes the
+correlation between regions into account; its smallest possible value is 1 / (permutations + 1)), Holm (`p_holm`,
+family-wise, valid whatever that correlation) and Benjamini-Hochberg (`p_fdr`, controls the expected share of false
+discoveries among the regions declared, so it is the most lenient). Say in the pre-registration which
+one you use and which regions form the family.
+"""),
+    code('''
+survive = pd.DataFrame({name: one_sample[column] < 0.05 for name, column in
+                        [("uncorrected", "p"), ("Holm", "p_holm"), ("FDR", "p_fdr"), ("permutation FWE", "p_fwe")]})
+survive.index = one_sample["region"]
+display(survive)
+
+order = np.argsort(one_sample["p"].to_numpy())
+with style():
+    fig, ax = plt.subplots(figsize=(3.35, 2.6))
+    for k, column in enumerate(("p", "p_holm", "p_fdr", "p_fwe")):
+        ax.plot(np.arange(1, len(order) + 1), one_sample[column].to_numpy()[order], marker=GROUP_MARKERS[k],
+                color=GROUP_COLORS[k], lw=0.8, ms=3, label=column)
+    ax.axhline(0.05, color="0.3", ls="--", lw=0.8)
+    ax.set_yscale("log")
+    ax.set_xlabel("regions, by uncorrected p")
+    ax.set_ylabel("p")
+    ax.legend(frameon=False)
+    fig.tight_layout()
+corrections_fig = fig
+plt.show()
+'''),
+    md("""
+## Dot plots: every participant visible
+
+A bar chart hides the participants; these plots show each one, with the estimate and its confidence interval and a
+line at zero. Rings mark outliers, diamonds low-coverage participants; both stay in the analysis.
+"""),
+    code('''
+from roikit.reporting import forest_plot, participant_figure
+
+dots = participant_figure(values, contrast=one["contrast"], results=one_sample, design="one-sample")
+plt.show()
+forest = forest_plot(one_sample).figure
+plt.show()
+'''),
+    md("""
+## Paired: within-participant differences
+
+With two conditions from the same participants, the paired test works on each participant's difference; its
+effect size is `d_z` = mean difference / SD of the differences (not comparable to a between-group `d`).
+"""),
+    code('''
+paired_results = None
+if paired is not None:
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")  # the same diagnostics as above, kept as columns
+        paired_results = run_design(values, "paired", participants=participants, **paired)
+    display(paired_results[["region", "term", "n", "estimate", "ci_low", "ci_high", "p", "p_holm",
+                            "effect_size_type", "effect_size", "effect_size_ci_low", "effect_size_ci_high"]].round(4))
+    paired_dots = participant_figure(values, contrast=paired["contrast"], versus=paired["versus"],
+                                     results=paired_results, design="paired")
+    plt.show()
+else:
+    print("The study file has no paired analysis.")
+'''),
+    md("""
+## In-text strings
+
+APA style, ready to paste: the statistic with its df, the exact p (Holm-corrected here, named in the text), the
+effect size and its interval.
+"""),
+    code('''
+from roikit.reporting import in_text, results_table
+
+for row in one_sample.to_dict("records"):
+    print(f"{row['region']}: {in_text(row, correction='holm')}")
+'''),
+    md("## Save where the report expects them"),
+    code('''
+table = results_table(one_sample)
+display(Markdown(table.to_markdown()))
+print(save_results(one_sample, start=1))
+print(save(dots, f"one_sample_{one['contrast']}_participants"))
+print(save(forest, f"one_sample_{one['contrast']}_forest"))
+print(save(corrections_fig, f"one_sample_{one['contrast']}_corrections"))
+if paired_results is not None:
+    print(save_results(paired_results, start=2))
+    print(save(paired_dots, f"paired_{paired['contrast']}_vs_{paired['versus']}_participants"))
+'''),
+]
+
+# --------------------------------------------------------------------------------------------------------------
+# 03 two groups and covariates
+# --------------------------------------------------------------------------------------------------------------
+
+NB03 = head("03 Two groups and covariates", """
+Between-participant questions: do two groups differ (two-group design), and does a region's response go with a
+participant measure such as age or behaviour, adjusting for group (glm)? Groups and covariates come from
+participants.tsv.
+""") + [
+    code('''
+from roikit.stats import run_design
+
+two = analysis_options("two-group")
+glm = analysis_options("glm")
+print("two-group:", two, "| glm:", glm)
+'''),
+    md("""
+## Descriptives
+
+Before any test: how many participants per group, and the mean and spread of each region in each group.
+"""),
+    code('''
+from roikit.reporting import descriptives_table
+
+group = two["group"] if two else None
+sub = values[values["contrast"] == (two or glm or {"contrast": values["contrast"].iloc[0]})["contrast"]]
+descriptives = descriptives_table(sub, participants=participants, group=group, number=1)
+display(Markdown(descriptives.to_markdown()))
+'''),
+    md("""
+## Two groups
+
+Student's *t* assumes equal variances in the groups; Welch's *t* does not (fractional df). The Brown-Forsythe test
+of equal variances is reported as a diagnostic column, but choose the test in advance rather than by that test.
+The effect size is Hedges' `g` with the exact small-sample correction.
+"""),
+    code('''
+from roikit.reporting import participant_figure
+
+two_results = None
+if two is not None:
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
+        two_results = run_design(values, "two-group", participants=participants, **two)
+        welch = run_design(values, "two-group", participants=participants, **{**two, "welch": True})
+    print(f"{len(caught)} diagnostic warning(s); the same information is in the columns")
+    comparison = two_results[["region", "term", "n", "estimate", "df", "p", "p_holm", "effect_size",
+                              "brown_forsythe_p"]].merge(
+        welch[["region", "df", "p", "p_holm"]], on="region", suffixes=("", "_welch"))
+    display(comparison.round(4))
+    groups_fig = participant_figure(values, contrast=two["contrast"], group=two["group"], levels=two["levels"],
+                                    participants=participants, results=two_results, design="two-group")
+    plt.show()
+else:
+    print("The study file has no two-group analysis.")
+'''),
+    md("""
+## Covariates (glm)
+
+One model per region, every region at once: `value ~ covariate + group`. Numeric covariates are mean-centred, so
+the intercept is the mean response at the average covariate. Each coefficient gets its own row, its own correction
+family and a partial eta squared.
+"""),
+    code('''
+from roikit.reporting import covariate_plot, results_table
+
+glm_results = None
+if glm is not None:
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        glm_results = run_design(values, "glm", participants=participants, **glm)
+    display(glm_results[["region", "term", "estimate", "ci_low", "ci_high", "statistic", "df", "p", "p_holm",
+                         "effect_size", "max_cooks_d"]].round(4))
+    numeric = [c for c in participants.columns if c != "participant_id"
+               and pd.api.types.is_numeric_dtype(participants[c]) and c in glm["formula"]]
+    covariate = numeric[0] if numeric else None
+    if covariate:
+        rows = glm_results[glm_results["term"] == covariate]
+        top = rows.sort_values("p")["region"].iloc[0]
+        ax = covariate_plot(values, covariate=covariate, region=top, contrast=glm["contrast"],
+                            participants=participants, group=group, results=glm_results)
+        covariate_fig = ax.figure
+        plt.show()
+else:
+    print("The study file has no glm analysis.")
+'''),
+    md("## Save where the report expects them"),
+    code('''
+print(descriptives.write(TABLES, overwrite=OVERWRITE))
+if two_results is not None:
+    print(save_results(two_results, start=2))
+    print(save(groups_fig, f"two_group_{two['contrast']}_participants"))
+if glm_results is not None:
+    print(save_results(glm_results, start=3))
+    if covariate:
+        print(save(covariate_fig, f"glm_{glm['contrast']}_{covariate}"))
+'''),
+]
+
+# --------------------------------------------------------------------------------------------------------------
+# 04 repeated measures and stimuli
+# --------------------------------------------------------------------------------------------------------------
+
+NB04 = head("04 Repeated measures and stimuli", """
+Two ways to use more of the data. The precision-weighted design uses each participant's first-level variance, so
+noisy participants count less while the between-participant variance is still estimated. The mixed design models
+several observations per participant (here: the six towns, the stimuli) with participants *and* towns as random
+effects, so the conclusion generalises to new people and to new towns.
+""") + [
+    code('''
+from roikit.stats import run_design
+
+precision = analysis_options("precision-weighted")
+mixed = analysis_options("mixed")
+print("precision-weighted:", precision, "| mixed:", mixed)
+'''),
+    md("""
+## Precision weighting
+
+Per region: `y_i = b + u_i + e_i` with the between-participant variance `tau2` estimated (REML) and the
+first-level variance `v_i` known from the variance maps. `I2` is the share of the spread that is between
+participants rather than measurement noise. Compare with the unweighted one-sample test on the same values.
+"""),
+    code('''
+from roikit.reporting import participant_figure, precision_plot
+
+precision_results = None
+if precision is not None and "variance" in values.columns:
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")  # diagnostics are columns (boundary, outliers)
+        precision_results = run_design(values, "precision-weighted", participants=participants, **precision)
+        unweighted = run_design(values, "one-sample", participants=participants, contrast=precision["contrast"])
+    both = precision_results[["region", "estimate", "se", "p", "tau2", "i2", "boundary"]].merge(
+        unweighted[["region", "estimate", "se", "p"]], on="region", suffixes=("", "_unweighted"))
+    display(both.round(4))
+    precision_fig = participant_figure(values, contrast=precision["contrast"], results=precision_results,
+                                       plot=precision_plot)
+    plt.show()
+else:
+    print("The study file has no precision-weighted analysis (or no variance maps).")
+'''),
+    md("""
+## Participants and stimuli as random effects
+
+Each participant navigated six towns; the towns are a sample of possible towns, just as the participants are a
+sample of people. A crossed random intercept for town lets the estimate generalise to new towns: the standard error
+of the mean response then includes the variance between towns, divided by the number of towns. Treating the towns
+as fixed (or ignoring them) answers a narrower question, about these six towns only. The second table splits each
+region's variance into shares: between participants, between towns, and residual.
+"""),
+    code('''
+from roikit.reporting import stimulus_plot
+
+mixed_results = None
+if mixed is not None:
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        mixed_results = run_design(values, "mixed", participants=participants, **mixed)
+        columns = ["region", "term", "estimate", "se", "df", "p", "p_holm", "sd_participant", "sd_residual", "icc",
+                   "converged", "boundary"]
+        sd_crossed = [c for c in mixed_results.columns if c.startswith("sd_") and c not in columns]
+        display(mixed_results[columns + sd_crossed].round(4))
+    if sd_crossed:  # how much of the spread is between people, between towns, and left over
+        parts = mixed_results.drop_duplicates("region").set_index("region")[["sd_participant"] + sd_crossed
+                                                                             + ["sd_residual"]]
+        display((parts ** 2).div((parts ** 2).sum(axis=1), axis=0).round(3).rename(columns=lambda c: "share " + c[3:]))
+    stimuli = mixed.get("contrast") if isinstance(mixed.get("contrast"), list) else None
+    top = mixed_results[mixed_results["term"] == mixed_results["term"].iloc[0]].sort_values("p")["region"].iloc[0]
+    ax = stimulus_plot(values[values["contrast"].isin(stimuli)] if stimuli else values, region=top,
+                       stimulus=mixed.get("crossed") or "contrast", participants=participants,
+                       results=mixed_results)
+    stimulus_fig = ax.figure
+    plt.show()
+else:
+    print("The study file has no mixed analysis.")
+'''),
+    md("## Save where the report expects them"),
+    code('''
+from roikit.reporting import results_table
+
+if precision_results is not None:
+    print(save_results(precision_results, start=4))
+    print(save(precision_fig, f"precision_weighted_{precision['contrast']}"))
+if mixed_results is not None:
+    print(save_results(mixed_results, start=5))
+    print(save(stimulus_fig, "mixed_stimuli"))
+'''),
+]
+
+# --------------------------------------------------------------------------------------------------------------
+# 05 why participants are random effects
+# --------------------------------------------------------------------------------------------------------------
+
+NB05 = head("05 Why participants are random effects", """
+For newcomers to the lab. A group study asks about *people in general*, not only about the participants we scanned.
+This notebook simulates many studies where we know the truth and counts how often each analysis is fooled. The
+simulated studies take their participants' first-level variances from the study above (the demo's by default), and
+every test is roikit's own (`run_design`): each simulated study is one "region" of a region values table, so
+thousands of studies are tested at once.
+""") + [
+    code('''
+# Simulation settings (small, so the notebook runs in seconds; raise STUDIES for smoother curves)
+STUDIES = 500  # simulated studies per setting
+N = 16  # participants per study
+SEED = 2024
+ALPHA = 0.05
+
+from roikit.stats import run_design
+
+contrast = (analysis_options("precision-weighted") or analysis_options("one-sample") or
+            {"contrast": values["contrast"].iloc[0]})["contrast"]
+if "variance" in values.columns:
+    first_level = values[values["contrast"] == contrast].groupby("participant_id")["variance"].median()
+else:  # no variance maps: a typical first-level variance per participant from the spread of the values
+    first_level = values[values["contrast"] == contrast].groupby("participant_id")["value"].var() / 4
+v_typical = float(first_level.median())
+print(f"first-level variances taken from contrast {contrast!r}: median {v_typical:.3f}")
+rng = np.random.default_rng(SEED)
+
+
+def simulate(mean, between_sd, variances, studies):
+    """A region values table of `studies` simulated studies (one per 'region')."""
+    n = len(variances)
+    true = mean + between_sd * rng.standard_normal((studies, n))  # each person's true response
+    measured = true + np.sqrt(variances) * rng.standard_normal((studies, n))  # plus first-level noise
+    return pd.DataFrame({
+        "participant_id": np.tile([f"sub-{i + 1:02d}" for i in range(n)], studies),
+        "contrast": "simulated",
+        "region": np.repeat([f"study {k + 1}" for k in range(studies)], n),
+        "value": measured.ravel(), "n_voxels": 1, "n_valid": 1, "variance": np.tile(variances, studies)})
+
+
+def rejection_rate(table, design, **options):
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")  # e.g. the caution attached to every fixed-effects result
+        results = run_design(table, design, contrast="simulated", correct=None, **options)
+    return float((results["p"] < ALPHA).mean())
+'''),
+    md("""
+## 1. When there is no effect at all
+
+No one in the population responds on average (true mean 0). People still differ from one another: some respond a
+little, some a little negatively. The horizontal axis is that spread between people. Each line shows how often an
+analysis declares an effect that is not there; an honest test stays near the dashed 5% line.
+"""),
+    code('''
+variances = first_level.to_numpy()[:N] if len(first_level) >= N else np.full(N, v_typical)
+spreads = [0.0, 0.1, 0.2, 0.35, 0.5]
+rows = []
+for sd in spreads:
+    table = simulate(0.0, sd, variances, STUDIES)
+    rows.append({"between_sd": sd,
+                 "fixed effects": rejection_rate(table, "fixed-effects"),
+                 "random effects (one-sample t)": rejection_rate(table, "one-sample"),
+                 "precision-weighted": rejection_rate(table, "precision-weighted", tau2="dl")})
+false_positives = pd.DataFrame(rows)
+
+with style():
+    fig, ax = plt.subplots(figsize=(3.35, 2.6))
+    for k, column in enumerate(false_positives.columns[1:]):
+        ax.plot(false_positives["between_sd"], false_positives[column], marker=GROUP_MARKERS[k],
+                color=GROUP_COLORS[k], ms=4, label=column)
+    ax.axhline(ALPHA, color="0.3", ls="--", lw=0.8)
+    ax.set_xlabel("between-person SD of the true response")
+    ax.set_ylabel("false-positive rate")
+    ax.set_ylim(0, None)
+    ax.legend(frameon=False)
+    fig.tight_layout()
+false_positive_fig = fig
+plt.show()
+display(false_positives.round(3))
+'''),
+    md("""
+**What happened.** The fixed-effects analysis pools every measurement as if all participants shared one true
+response; its uncertainty reflects only the measurement noise. As people differ more, it declares effects more and
+more often: it answers "did *these* participants respond?", not "do people respond?". The random-effects tests
+(one-sample *t* on the participants' values, and the precision-weighted model, which estimates the spread between
+people) stay close to 5% whatever the spread. With about 500 studies per point, rates between roughly 3% and 7%
+are consistent with 5%.
+
+## 2. When participants are measured with different precision
+
+Now there is a real effect. Some participants' maps are noisier (head motion, fewer trials). The horizontal axis is
+how unequal the first-level variances are (the SD of their logarithm). Weighting by precision lets the noisy
+participants count less, which buys power when precisions differ, while the between-participant variance keeps the
+test honest.
+"""),
+    code('''
+inequality = [0.0, 0.5, 1.0, 1.5, 2.0]
+z = np.random.default_rng(SEED + 1).standard_normal(N)
+rows = []
+for s in inequality:
+    unequal = v_typical * np.exp(s * z)
+    table = simulate(0.2, 0.1, unequal, STUDIES)
+    rows.append({"inequality": s,
+                 "one-sample t (unweighted)": rejection_rate(table, "one-sample"),
+                 "precision-weighted": rejection_rate(table, "precision-weighted", tau2="dl")})
+power = pd.DataFrame(rows)
+
+with style():
+    fig, ax = plt.subplots(figsize=(3.35, 2.6))
+    for k, column in enumerate(power.columns[1:], start=1):
+        ax.plot(power["inequality"], power[column], marker=GROUP_MARKERS[k], color=GROUP_COLORS[k], ms=4,
+                label=column)
+    ax.set_xlabel("inequality of first-level variances\\n(SD of log variance)")
+    ax.set_ylabel("power (true mean 0.2)")
+    ax.set_ylim(0, 1)
+    ax.legend(frameon=False)
+    fig.tight_layout()
+power_fig = fig
+plt.show()
+display(power.round(3))
+'''),
+    md("""
+**What happened.** With equal precisions the two tests are the same test. As precisions become unequal, the
+unweighted test gives the noisiest participants as much say as the most precise ones, so its power stays flat or
+drops; the precision-weighted test lets the precise participants count more and its power grows (the unequal
+settings hold some very precise participants, information the unweighted test cannot use). Both remain
+random-effects tests: neither is fooled in part 1.
+
+## The model behind the pictures
+
+Participant *i*'s measured value is `y_i = mu + u_i + e_i`, where `u_i ~ N(0, tau2)` is how that person differs
+from the population (the spread in part 1) and `e_i ~ N(0, v_i)` is first-level measurement noise (the variances in
+part 2). A fixed-effects test uses `Var(y_i) = v_i` and ignores `tau2`; the one-sample *t* estimates
+`tau2 + v` from the spread of the `y_i`; the precision-weighted model estimates `tau2` and weights each participant
+by `1 / (tau2 + v_i)`. This simulation uses DerSimonian-Laird for `tau2` (`tau2="dl"`), which needs no iterations.
+"""),
+    md("## Save where the report expects them"),
+    code('''
+print(save_table(false_positives, "simulation_false_positives",
+                 f"share of {STUDIES} simulated studies (N = {N}, true mean 0) with p < {ALPHA}, by between-person SD"))
+print(save_table(power, "simulation_power",
+                 f"share of {STUDIES} simulated studies (N = {N}, true mean 0.2, between-person SD 0.1) with "
+                 f"p < {ALPHA}, by inequality of first-level variances"))
+print(save(false_positive_fig, "simulation_false_positives"))
+print(save(power_fig, "simulation_power"))
+'''),
+]
+
+NOTEBOOKS = {
+    "01_from_maps_to_a_region_table.ipynb": NB01,
+    "02_is_there_an_effect.ipynb": NB02,
+    "03_two_groups_and_covariates.ipynb": NB03,
+    "04_repeated_measures_and_stimuli.ipynb": NB04,
+    "05_why_participants_are_random_effects.ipynb": NB05,
+}
+
+
+def build(folder: Path = HERE) -> list[Path]:
+    """Write the notebooks (outputs stripped) into ``folder``; returns the paths."""
+    paths = []
+    for name, cells in NOTEBOOKS.items():
+        nb = new_notebook(cells=cells)
+        nb.metadata["kernelspec"] = {"name": "python3", "display_name": "Python 3", "language": "python"}
+        nb.metadata["language_info"] = {"name": "python"}
+        for i, cell in enumerate(nb.cells):
+            cell["id"] = f"cell-{i:02d}"  # stable ids: rebuilding gives the same file
+        nbformat.validate(nb)
+        path = folder / name
+        path.write_text(nbformat.writes(nb) + "\n", encoding="utf-8")
+        paths.append(path)
+    return paths
+
+
+if __name__ == "__main__":
+    for p in build(Path(sys.argv[1]) if len(sys.argv) > 1 else HERE):
+        print(p)
