@@ -979,14 +979,23 @@ def save_figure(
         new_w = _width_mm(width) * _MM
         fig.set_size_inches(new_w, h * new_w / w)
     written = []
+    engine = fig.get_layout_engine()
     with style():
-        for ext, target in zip(formats, targets):
-            buf = io.BytesIO()
-            meta = {"Creator": "roikit"} if ext in ("pdf", "svg") else {"Software": "roikit"}
-            if ext == "svg":
-                meta = {"Creator": "roikit", "Date": None}
-            elif ext == "pdf":
-                meta = {"Creator": "roikit", "CreationDate": None}
-            fig.savefig(buf, format=ext, dpi=dpi, metadata=meta, facecolor="white")
-            written.append(atomic_write_bytes(target, buf.getvalue(), overwrite=overwrite))
+        try:
+            for k, (ext, target) in enumerate(zip(formats, targets)):
+                buf = io.BytesIO()
+                meta = {"Software": "roikit"}
+                if ext == "svg":
+                    meta = {"Creator": "roikit", "Date": None}
+                elif ext == "pdf":
+                    meta = {"Creator": "roikit", "CreationDate": None}
+                fig.savefig(buf, format=ext, dpi=dpi, metadata=meta, facecolor="white")
+                if k == 0 and engine is not None:
+                    # the layout depends on the size in inches, not on the format: compute it once, then keep it
+                    # (constrained layout was most of the time of saving three formats)
+                    fig.set_layout_engine("none")
+                written.append(atomic_write_bytes(target, buf.getvalue(), overwrite=overwrite))
+        finally:
+            if engine is not None:
+                fig.set_layout_engine(engine)
     return written
