@@ -26,7 +26,7 @@ import re
 import warnings
 from dataclasses import dataclass
 from pathlib import Path
-from typing import Iterable, Literal, Sequence
+from typing import Literal, Sequence
 
 import numpy as np
 import pandas as pd
@@ -43,7 +43,7 @@ from .errors import (
     RoikitError,
     UsageError,
 )
-from .images import DEFAULT_ATOL, Grid, MapHeader, check_same_grid, read_flat, read_header
+from .images import DEFAULT_ATOL, MapHeader, check_same_grid, read_flat, read_header
 from .regions import Regions, RegionSet
 
 __all__ = [

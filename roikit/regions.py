@@ -28,7 +28,6 @@ from __future__ import annotations
 import os
 import warnings
 from dataclasses import dataclass, field
-from pathlib import Path
 from typing import Iterable, Mapping, Sequence
 
 import numpy as np

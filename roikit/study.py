@@ -55,7 +55,6 @@ Region operations are applied in this order: hemisphere split, intersection with
 
 from __future__ import annotations
 
-import datetime as _dt
 import difflib
 import hashlib
 import importlib
@@ -1173,6 +1172,7 @@ def run_study(
     overwrite: bool = False,
     progress: bool | None = None,
     figures: bool = True,
+    figure_formats: Sequence[str] = ("pdf", "svg", "png"),
 ) -> StudyRun:
     """Run a study file: extraction (with a cache), every analysis, the report, provenance.
 
@@ -1190,6 +1190,8 @@ def run_study(
         Progress bar while extracting (default: only for 20 maps or more).
     figures : bool
         Draw the report's figures (False: tables and text only, much faster).
+    figure_formats : sequence of {"pdf", "svg", "png"}
+        Files written per figure (the HTML report embeds the PNG, drawn in any case).
 
     Returns
     -------
@@ -1262,7 +1264,8 @@ def run_study(
                                "sha256": sha256_file(study.participants_path)})
             write_report(values, results, participants=study.participants, out=tmp, overwrite=True,
                          provenance={"inputs": inputs, "options": {"command": "roikit run", "out": os.fspath(out)}},
-                         title=study.title, circular=study.circular, figures=figures)
+                         title=study.title, circular=study.circular, figures=figures,
+                         figure_formats=tuple(figure_formats))
             seconds["report"] = time.perf_counter() - t0
             for w in caught:  # messages naming the temporary folder name the output folder instead
                 if str(tmp) in str(w.message):
