@@ -108,6 +108,60 @@ def _fisher_scoring(y, v, X, mask, method, tau2_start):
     return tau2, converged
 
 
+def _score_info(y, v, X, mask, tau2, method):
+    """Score and expected information of the (restricted) log-likelihood in tau2, per region."""
+    w = mask / (v + tau2)
+    _, A, e = _weighted_ls(y, w, X)
+    pe2 = ((w * e) ** 2).sum(0)
+    if method == "reml":
+        tr_p, tr_pp = _trace_terms(w, X, A)
+        return 0.5 * (pe2 - tr_p), 0.5 * tr_pp
+    return 0.5 * (pe2 - w.sum(0)), 0.5 * (w**2).sum(0)
+
+
+def _bracketed_scoring(y, v, X, mask, method, tau2_start):
+    """Safeguarded Fisher scoring: keep a bracket [lo, hi] around the root of the score and bisect whenever a
+    scoring step would leave it. Used where plain scoring oscillates (an overshoot factor near -1 makes the
+    iteration zig-zag around the maximum for hundreds of steps, seen with 16 participants and very unequal
+    first-level variances)."""
+    R = y.shape[1]
+    s0, _ = _score_info(y, v, X, mask, np.zeros(R), method)
+    at_zero = s0 <= 0  # the score falls from tau2 = 0: the constrained maximum is the boundary
+    lo = np.zeros(R)
+    hi = np.maximum(2 * np.maximum(tau2_start, 0), np.maximum(_wvar(y, mask), 1e-12))
+    for _ in range(200):  # expand until the score is negative at hi
+        s_hi, _ = _score_info(y, v, X, mask, hi, method)
+        need = ~at_zero & (s_hi > 0)
+        if not need.any():
+            break
+        lo = np.where(need, hi, lo)
+        hi = np.where(need, hi * 4, hi)
+    t = np.clip(np.maximum(tau2_start, 0), lo, hi)
+    t = np.where((t <= lo) | (t >= hi), 0.5 * (lo + hi), t)
+    converged = at_zero.copy()
+    prev_t = prev_s = None
+    for _ in range(_MAX_ITER):
+        active = ~converged
+        if not active.any():
+            break
+        score, info = _score_info(y, v, X, mask, t, method)
+        lo = np.where(active & (score > 0), t, lo)
+        hi = np.where(active & (score <= 0), t, hi)
+        new = t + score / info
+        if prev_t is not None:
+            # secant on the score: the observed curvature, where the expected information misjudges it
+            with np.errstate(invalid="ignore", divide="ignore"):
+                slope = (score - prev_s) / (t - prev_t)
+                secant = t - score / slope
+            new = np.where(np.isfinite(secant) & (slope < 0), secant, new)
+        prev_t, prev_s = t, score
+        new = np.where((new <= lo) | (new >= hi), 0.5 * (lo + hi), new)
+        done = active & ((np.abs(new - t) <= _TOL * np.maximum(1.0, t)) | (hi - lo <= _TOL * np.maximum(1.0, hi)))
+        t = np.where(active, new, t)
+        converged |= done
+    return np.where(at_zero, 0.0, t), converged
+
+
 def _dl(y, v, X, mask):
     w = mask / v
     _, A, e = _weighted_ls(y, w, X)
@@ -230,6 +284,14 @@ def fit_precision_weighted(
         tau2 = _pm(y, v, X, mask)
     else:
         tau2, converged = _fisher_scoring(y, v, X, mask, tau2_method, _dl(y, v, X, mask))
+        if not converged.all():
+            redo = np.flatnonzero(~converged)
+            t2, c2 = _bracketed_scoring(y[:, redo], v[:, redo], X, mask[:, redo], tau2_method, tau2[redo])
+            tau2[redo], converged[redo] = t2, c2
+        # the likelihood in tau2 can have two maxima (one at the boundary): keep the better of the two
+        zero = np.zeros_like(tau2)
+        better_at_zero = _loglik(y, v, X, mask, zero, tau2_method) > _loglik(y, v, X, mask, tau2, tau2_method)
+        tau2 = np.where(better_at_zero, 0.0, tau2)
     boundary = tau2 <= 0
 
     w = mask / (v + tau2)

@@ -206,3 +206,25 @@ def test_design_z_and_estimators_recorded():
         assert set(res["tau2_method"]) == {method} and set(res["statistic_type"]) == {"z"}
         # z test: p = 2 (1 - Phi(|z|)) (definition)
         np.testing.assert_allclose(res["p"], 2 * stats.norm.sf(np.abs(res["statistic"])), rtol=1e-12)
+
+
+@pytest.mark.parametrize("method", ["reml", "ml"])
+def test_tau2_is_the_global_maximum_with_very_unequal_variances(method):
+    # 16 participants, first-level SDs from 0.05 to 3: plain Fisher scoring zig-zags here, and the ML
+    # likelihood can have a second maximum at the boundary. Reference: a brute-force grid maximisation of
+    # the (restricted) likelihood (common practice, no source), 0.0001 apart.
+    from roikit.stats.precision import _loglik, fit_precision_weighted
+
+    rng = np.random.default_rng(0)
+    n, regions = 16, 400
+    v = rng.uniform(0.05, 3.0, (n, regions)) ** 2
+    y = rng.normal(0, np.sqrt(0.2 + v))
+    fit = fit_precision_weighted(y, v, tau2_method=method)
+    assert fit["converged"].all()
+    grid = np.linspace(0, 12, 12001)
+    ones = np.ones((n, 1))
+    for j in range(regions):
+        ll = _loglik(np.repeat(y[:, [j]], len(grid), 1), np.repeat(v[:, [j]], len(grid), 1), ones,
+                     np.ones((n, len(grid))), grid, method)
+        at_fit = _loglik(y[:, [j]], v[:, [j]], ones, np.ones((n, 1)), fit["tau2"][[j]], method)[0]
+        assert at_fit >= ll.max() - 1e-9, (j, fit["tau2"][j], grid[ll.argmax()])
