@@ -582,7 +582,7 @@ for sd in spreads:
     rows.append({"between_sd": sd,
                  "fixed effects": rejection_rate(table, "fixed-effects"),
                  "random effects (one-sample t)": rejection_rate(table, "one-sample"),
-                 "precision-weighted": rejection_rate(table, "precision-weighted", tau2="dl")})
+                 "precision-weighted": rejection_rate(table, "precision-weighted")})
 false_positives = pd.DataFrame(rows)
 
 with style():
@@ -624,7 +624,7 @@ for s in inequality:
     table = simulate(0.2, 0.1, unequal, STUDIES)
     rows.append({"inequality": s,
                  "one-sample t (unweighted)": rejection_rate(table, "one-sample"),
-                 "precision-weighted": rejection_rate(table, "precision-weighted", tau2="dl")})
+                 "precision-weighted": rejection_rate(table, "precision-weighted")})
 power = pd.DataFrame(rows)
 
 with style():
@@ -654,7 +654,7 @@ Participant *i*'s measured value is `y_i = mu + u_i + e_i`, where `u_i ~ N(0, ta
 from the population (the spread in part 1) and `e_i ~ N(0, v_i)` is first-level measurement noise (the variances in
 part 2). A fixed-effects test uses `Var(y_i) = v_i` and ignores `tau2`; the one-sample *t* estimates
 `tau2 + v` from the spread of the `y_i`; the precision-weighted model estimates `tau2` and weights each participant
-by `1 / (tau2 + v_i)`. This simulation uses DerSimonian-Laird for `tau2` (`tau2="dl"`), which needs no iterations.
+by `1 / (tau2 + v_i)`. `tau2` is estimated by REML, the default.
 """),
     md("## Save where the report expects them"),
     code('''
