@@ -528,7 +528,7 @@ def extract(
         Run batches of maps on a Dask cluster (optional ``distributed`` extra). The voxel-to-region index
         is sent to every worker once; results come back in order.
     batch_size : int, optional
-        Maps per task (default: 8 with workers, all maps in one stream without).
+        Maps per task with workers (default: about four tasks per worker, at most 64 maps each).
     progress : bool, optional
         Show a progress bar (default: only for 20 maps or more).
     atol : float
@@ -605,7 +605,7 @@ def extract(
         if client is not None:
             # a distributed engine (dask.distributed Client): the index travels once to every worker
             index_ref = client.scatter(index, broadcast=True)
-            size = batch_size or 8
+            size = batch_size or _batch_size(n_maps, len(client.scheduler_info()["workers"]))
             batches = [(s, tasks[s:s + size]) for s in range(0, n_maps, size)]
             _stream(lambda batch: client.submit(_run_tasks, batch, index_ref, names, statistic, keep_zeros,
                                                 pure=False),
@@ -615,7 +615,8 @@ def extract(
                 collect(i, _run_tasks([task], index, names, statistic, keep_zeros))
                 bar.update(1)
         else:
-            size = batch_size or 8
+            size = batch_size or _batch_size(n_maps, n_jobs if executor is None else
+                                             getattr(executor, "_max_workers", 2))
             batches = [(s, tasks[s:s + size]) for s in range(0, n_maps, size)]
             if executor is None:
                 with cf.ProcessPoolExecutor(n_jobs, initializer=_init_worker,
@@ -651,6 +652,11 @@ def extract(
         ],
     }
     return table
+
+
+def _batch_size(n_maps: int, n_workers: int) -> int:
+    """Maps per task: about four tasks per worker (few round trips, still balanced), 1 to 64 maps each."""
+    return int(min(64, max(1, n_maps // (4 * max(1, n_workers)))))
 
 
 def _stream(submit, batches, collect, bar, *, max_in_flight: int):
