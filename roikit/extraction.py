@@ -53,6 +53,7 @@ __all__ = [
     "read_participants",
     "extract",
     "write_values",
+    "assemble_values",
     "VALUE_COLUMNS",
     "STATISTICS",
 ]
@@ -629,7 +630,7 @@ def extract(
     finally:
         bar.close()
 
-    table = _assemble(maps, names, realised.n_voxels, values, n_valid, variances)
+    table = assemble_values(maps, names, realised.n_voxels, values, n_valid, variances)
     if failures:
         _raise_failures(failures, tasks, table)
     _warn_empty(table)
@@ -710,7 +711,11 @@ def _raise_failures(failures, tasks, table: pd.DataFrame):
     raise exc
 
 
-def _assemble(maps, names, n_voxels, values, n_valid, variances) -> pd.DataFrame:
+def assemble_values(maps: pd.DataFrame, names, n_voxels, values, n_valid, variances=None) -> pd.DataFrame:
+    """The region values table from per-map arrays (maps x regions), in the maps' then the regions' order.
+
+    Used by :func:`extract` and by callers that merge cached and fresh results (``roikit run``).
+    """
     n_maps, n_regions = values.shape
     cols = {}
     for c in ("participant_id", "session_id", "contrast"):
@@ -718,7 +723,7 @@ def _assemble(maps, names, n_voxels, values, n_valid, variances) -> pd.DataFrame
             cols[c] = np.repeat(maps[c].to_numpy(dtype=object), n_regions)
     cols["region"] = np.tile(np.array(names, dtype=object), n_maps)
     cols["value"] = values.ravel()
-    cols["n_voxels"] = np.tile(n_voxels, n_maps)
+    cols["n_voxels"] = np.tile(np.asarray(n_voxels, dtype=np.int64), n_maps)
     cols["n_valid"] = n_valid.ravel()
     if variances is not None:
         cols["variance"] = variances.ravel()

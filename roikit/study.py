@@ -84,7 +84,16 @@ from .errors import (
     RoikitWarning,
     UsageError,
 )
-from .extraction import STATISTICS, TRIM, VALUE_COLUMNS, extract, find_maps, read_map_list, read_participants
+from .extraction import (
+    STATISTICS,
+    TRIM,
+    VALUE_COLUMNS,
+    assemble_values,
+    extract,
+    find_maps,
+    read_map_list,
+    read_participants,
+)
 from .images import check_same_grid, read_header
 from .regions import Atlas, Mask, ProbabilityMap, Regions, RegionSet, Sphere, read_label_table
 
@@ -1002,7 +1011,7 @@ def _extract_with_cache(study: Study, out: Path, *, progress: bool | None) -> tu
     if study.circular:
         base["circular_regions"] = list(study.circular)
 
-    table = _assemble(maps, names, realised.n_voxels, values, n_valid, variances)
+    table = assemble_values(maps, names, realised.n_voxels, values, n_valid, variances)
     reused_empty = [i for i in range(len(rows)) if hits[i] is not None and (n_valid[i] == 0).any()]
     if reused_empty:
         who = [f"{rows[i]['participant_id']}/{rows[i]['contrast']}/{names[r]}" for i in reused_empty
@@ -1051,26 +1060,6 @@ def extract_study(study: Study | PathLike, *, out: PathLike | None = None, progr
     out = Path(out) if out is not None else study.default_out
     values, _ = _extract_with_cache(study, out, progress=progress)
     return values
-
-
-def _assemble(maps: pd.DataFrame, names, n_voxels, values, n_valid, variances) -> pd.DataFrame:
-    """The region values table in the layout :func:`roikit.extraction.extract` returns (tested equal)."""
-    n_maps, n_regions = values.shape
-    cols: dict = {}
-    for c in ("participant_id", "session_id", "contrast"):
-        if c in maps.columns:
-            cols[c] = np.repeat(maps[c].to_numpy(dtype=object), n_regions)
-    cols["region"] = np.tile(np.array(names, dtype=object), n_maps)
-    cols["value"] = values.ravel()
-    cols["n_voxels"] = np.tile(np.asarray(n_voxels, dtype=np.int64), n_maps)
-    cols["n_valid"] = n_valid.ravel()
-    if variances is not None:
-        cols["variance"] = variances.ravel()
-    table = pd.DataFrame(cols)
-    for c in ("participant_id", "session_id", "contrast", "region"):
-        if c in table.columns:
-            table[c] = table[c].astype(str)
-    return table
 
 
 # --------------------------------------------------------------------------------------------------
