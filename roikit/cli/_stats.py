@@ -36,6 +36,8 @@ def add_parser(subparsers) -> None:
                    "(reml, ml, dl, pm)")
     g.add_argument("--random", metavar="TERMS", help="mixed: random terms per participant, e.g. \"1 + contrast\"")
     g.add_argument("--crossed", metavar="COLUMN", help="mixed: crossed random intercept for this column")
+    g.add_argument("--jobs", type=int, default=None, metavar="N",
+                   help="mixed: fit the regions in N worker processes (default 1)")
     p.add_argument("--participants", metavar="participants.tsv", help="participants table (groups, covariates)")
     p.add_argument("--out", required=True, metavar="RESULTS.tsv", help="output table")
     p.add_argument("--correct", default="holm,fdr", metavar="LIST",
@@ -61,6 +63,10 @@ def run(args: argparse.Namespace) -> int:
     )
     options = {name: getattr(args, name) for name in _DESIGN_OPTIONS}
     options = {k: v for k, v in options.items() if v is not None and v is not False}
+    if args.jobs is not None:
+        if args.jobs < 1:
+            raise UsageError(f"--jobs must be at least 1, got {args.jobs}")
+        options["n_jobs"] = args.jobs
     results = run_design(
         values,
         args.design,

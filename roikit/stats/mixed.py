@@ -615,6 +615,7 @@ def mixed(
     df_method: Literal["satterthwaite", "z"] = "satterthwaite",
     center: bool = True,
     n_jobs: int = 1,
+    executor=None,
 ) -> pd.DataFrame:
     """Linear mixed model per region with random participant effects and an optional crossed random intercept.
 
@@ -646,6 +647,9 @@ def mixed(
         Mean-centre numeric predictors of ``formula``.
     n_jobs : int
         Worker processes across regions (1: in this process).
+    executor : concurrent.futures.Executor, optional
+        Fit the regions on this executor instead (e.g. ``client.get_executor()`` of a Dask cluster);
+        ``n_jobs`` is then ignored. Results are identical to a serial run.
 
     Returns
     -------
@@ -758,7 +762,7 @@ def mixed(
                          "df_method": df_method, "confidence": confidence, "terms": terms, "names": names})
         region_meta.append({"n_participants": len(pid_levels), "n_stimuli": n_stim, "n_observations": rows.size})
 
-    results = _run_regions(payloads, regions, n_jobs)
+    results = _run_regions(payloads, regions, n_jobs, executor)
 
     frames = []
     n_terms = len(results[0]["terms"])
@@ -819,7 +823,7 @@ def _fit_region_one_thread(payload: dict) -> dict:
         return _fit_region(payload)
 
 
-def _run_regions(payloads: list[dict], regions: Sequence[str], n_jobs: int) -> list[dict]:
+def _run_regions(payloads: list[dict], regions: Sequence[str], n_jobs: int, executor=None) -> list[dict]:
     from tqdm.auto import tqdm
 
     def _named(region, exc):
@@ -827,6 +831,8 @@ def _run_regions(payloads: list[dict], regions: Sequence[str], n_jobs: int) -> l
 
     bar = tqdm(total=len(payloads), desc="mixed models", unit="region", leave=False, disable=len(payloads) < 20)
     try:
+        if executor is not None:
+            return _collect(regions, [executor.submit(_fit_region_one_thread, p) for p in payloads], _named, bar)
         if n_jobs == 1 or len(payloads) == 1:
             out = []
             for region, payload in zip(regions, payloads):
@@ -839,14 +845,18 @@ def _run_regions(payloads: list[dict], regions: Sequence[str], n_jobs: int) -> l
         from concurrent.futures import ProcessPoolExecutor
 
         with ProcessPoolExecutor(max_workers=min(n_jobs, len(payloads))) as pool:
-            futures = [pool.submit(_fit_region_one_thread, payload) for payload in payloads]
-            out = []
-            for region, fut in zip(regions, futures):
-                try:
-                    out.append(fut.result())
-                except (ConvergenceError, DesignError) as exc:
-                    raise _named(region, exc) from None
-                bar.update(1)
-            return out
+            return _collect(regions, [pool.submit(_fit_region_one_thread, p) for p in payloads], _named, bar)
     finally:
         bar.close()
+
+
+def _collect(regions, futures, named, bar) -> list[dict]:
+    """Results of per-region futures, in region order; a region's fitting error is raised with its name."""
+    out = []
+    for region, fut in zip(regions, futures):
+        try:
+            out.append(fut.result())
+        except (ConvergenceError, DesignError) as exc:
+            raise named(region, exc) from None
+        bar.update(1)
+    return out

@@ -238,3 +238,28 @@ def test_satterthwaite_core_single_level():
     assert not fit.boundary
     df, _ = satterthwaite(fit, X, f, np.eye(1))
     assert df[0] == pytest.approx(n - 1, rel=1e-6)
+
+
+def test_regions_on_a_dask_cluster_and_in_processes_match_the_serial_fit():
+    import distributed  # part of the test install
+
+    from roikit.stats import run_design
+
+    rng = np.random.default_rng(8)
+    rows = []
+    for r in range(3):
+        town = rng.normal(0, 0.3, 6)
+        for i in range(12):
+            u = rng.normal(0, 0.5)
+            for t in range(6):
+                rows.append({"participant_id": f"sub-{i + 1:02d}", "contrast": f"town{t + 1}", "region": f"region {r}",
+                             "value": 0.2 + u + town[t] + rng.normal(0, 0.4), "n_voxels": 50, "n_valid": 50})
+    values = pd.DataFrame(rows)
+    options = dict(formula="value ~ 1", random="1", crossed="contrast")
+    serial = run_design(values, "mixed", **options)
+    procs = run_design(values, "mixed", n_jobs=2, **options)
+    with distributed.LocalCluster(n_workers=2, threads_per_worker=1, processes=True, dashboard_address=None) as c:
+        with distributed.Client(c) as client:
+            remote = run_design(values, "mixed", executor=client.get_executor(), **options)
+    pd.testing.assert_frame_equal(serial, procs)
+    pd.testing.assert_frame_equal(serial, remote)
