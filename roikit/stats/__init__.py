@@ -48,6 +48,11 @@ def _participants_table(participants) -> pd.DataFrame | None:
     )
 
 
+def _flag(name: str) -> str:
+    """The command-line spelling of a design option (``n_jobs`` is ``--jobs``)."""
+    return "--" + {"n_jobs": "jobs"}.get(name, name).replace("_", "-")
+
+
 def _check_options(func, design: str, options: dict) -> None:
     """Raise :class:`UsageError` for an option the design does not take (named as on the command line)."""
     parameters = inspect.signature(func).parameters
@@ -57,7 +62,7 @@ def _check_options(func, design: str, options: dict) -> None:
     if lacking:
         raise UsageError(
             f"design {design!r} needs {', '.join(n + '=' for n in lacking)} "
-            f"({', '.join('--' + n.replace('_', '-') for n in lacking)}); none was given"
+            f"({', '.join(_flag(n) for n in lacking)}); none was given"
         )
     if any(p.kind is inspect.Parameter.VAR_KEYWORD for p in parameters.values()):
         return
@@ -66,8 +71,8 @@ def _check_options(func, design: str, options: dict) -> None:
     unknown = [k for k in options if k not in accepted]
     if unknown:
         raise UsageError(
-            f"option(s) {', '.join('--' + k.replace('_', '-') for k in unknown)} do not apply to design {design!r}; "
-            f"it takes {', '.join('--' + k.replace('_', '-') for k in accepted) or 'no options'}"
+            f"option(s) {', '.join(_flag(k) for k in unknown)} do not apply to design {design!r}; "
+            f"it takes {', '.join(_flag(k) for k in accepted) or 'no options'}"
         )
 
 
