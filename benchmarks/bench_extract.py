@@ -134,7 +134,7 @@ def main(argv=None) -> int:
         images._fast_zlib, images._fast_gzip = saved
 
     def roikit_two(ps):
-        extract(maps, regions, progress=False, n_jobs=2, batch_size=10)
+        extract(maps, regions, progress=False, n_jobs=2)
 
     results["roikit_2_workers_ms"] = time_per_map(roikit_two, paths, args.repeats)
 
