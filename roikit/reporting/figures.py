@@ -844,7 +844,12 @@ def stimulus_plot(
             ax.axhline(grand, color="#009E73", lw=0.8, ls=":", zorder=1, label="mean of stimulus means")
         ax.axhline(0, **_ZERO_STYLE)
         counts = [int(part[(part[stimulus].map(text) == s)]["_value"].notna().sum()) for s in levels_]
-        ax.set_xticks(range(len(levels_)), [f"{s}\n(n = {c})" for s, c in zip(levels_, counts)])
+        if len(set(counts)) == 1 and len(levels_) > 3:
+            # many stimuli with the same n: say n once (in the axis label) so the tick labels stay readable
+            ax.set_xticks(range(len(levels_)), [str(s) for s in levels_])
+            ax.set_xlabel(f"n = {counts[0]} per stimulus")
+        else:
+            ax.set_xticks(range(len(levels_)), [f"{s}\n(n = {c})" for s, c in zip(levels_, counts)])
         ax.set_xlim(-0.6, len(levels_) - 0.4)
         ax.set_ylabel("region value")
         ax.set_title(textwrap.fill(f"{region} · per {stimulus}" if stimulus != "contrast" else f"{region} · per stimulus", 30))

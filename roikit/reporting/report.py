@@ -145,13 +145,16 @@ def _figure_plan(values: pd.DataFrame, results: pd.DataFrame, participants: pd.D
             words = _formula_columns(key.get("formula", ""))
             group = next((g for g in words if _numeric_column(values, participants, g) is False
                           and g not in ("contrast",)), None)
+            # only the contrasts the model was fitted to (the `contrast` column lists them, comma-separated)
+            listed = [c.strip() for v in col(rows, "contrast") for c in text(v).split(",") if c.strip()]
+            model_values = values[values["contrast"].map(text).isin(listed)] if listed else values
             if "contrast" in words or crossed:
                 stim = crossed[0] if crossed else "contrast"
                 plan.append(dict(name=f"stimuli_{base}", caption=(
                     f"{escape_markup(title)}: per-{escape_markup(stim)} estimates (mean and 95% CI across participants, "
                     "black) with every participant's value behind them; the dotted line is the mean of the "
                     "per-stimulus means, the dashed line zero."),
-                    make=lambda s=stim, g=group: participant_figure(values, stimulus=s, group=g,
+                    make=lambda s=stim, g=group, v=model_values: participant_figure(v, stimulus=s, group=g,
                                                                     participants=participants, plot=stimulus_plot,
                                                                     **opts)))
         # forest plots: one per term with an interval (intercepts of models left out)

@@ -197,3 +197,30 @@ def test_cli_report(tmp_path, values, results_by_design, participants, capsys):
     assert main(args + ["--overwrite"]) == 0
     assert main(["report", "--values", str(tmp_path / "nope.tsv"), "--results", str(results_path), "--out",
                  str(tmp_path / "other")]) == 1
+
+
+def test_stimulus_figure_shows_only_the_contrasts_of_the_mixed_model(tmp_path, values, results, participants,
+                                                                     monkeypatch):
+    # the values table also holds contrasts outside the model; the per-stimulus figure must not show them
+    import roikit.reporting.report as report_module
+
+    mixed = results[results["design"] == "mixed"].copy()
+    mixed["contrast"] = "town1,town2"
+    towns = values[values["contrast"] == "novel"].copy()
+    extra = []
+    for k, town in enumerate(("town1", "town2", "town3")):
+        extra.append(towns.assign(contrast=town, value=towns["value"] + 0.1 * k))
+    both = pd.concat([values, *extra], ignore_index=True)
+    seen = []
+    real = report_module.participant_figure
+
+    def spy(data, **kwargs):
+        if kwargs.get("stimulus"):
+            seen.append(sorted(set(data["contrast"])))
+        return real(data, **kwargs)
+
+    monkeypatch.setattr(report_module, "participant_figure", spy)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        write_report(both, mixed, participants=participants, out=tmp_path / "r", figure_formats=("png",))
+    assert seen == [["town1", "town2"]]
