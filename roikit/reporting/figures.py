@@ -751,11 +751,9 @@ def precision_plot(
         else:
             m, lo, hi = mean_ci(y, confidence=confidence)
             _estimate(ax, 0.32, m, lo, hi, label=f"unweighted mean and {confidence:.0%} CI")
-        # size key
-        wk = np.nanmax(w[ok])
-        for frac, lab in ((1.0, "highest precision"), (0.25, "¼ of highest")):
-            ax.scatter([], [], s=6 + 70 * frac, color="#56B4E9", edgecolor="#0072B2", linewidths=0.4,
-                       label=f"{lab} (w = {format_number(wk * frac, 1)})")
+        # size key: relative sizes only (the weights differ from panel to panel, and the key may be shared)
+        for frac, lab in ((1.0, "highest precision in the panel"), (0.25, "¼ of the panel's highest precision")):
+            ax.scatter([], [], s=6 + 70 * frac, color="#56B4E9", edgecolor="#0072B2", linewidths=0.4, label=lab)
         ax.axhline(0, **_ZERO_STYLE)
         ax.set_xticks([0], [f"{contrast}\n(n = {int(ok.sum())}, τ² = {format_number(tau2, 3)})"])
         ax.set_xlim(-0.5, 0.6)
@@ -922,14 +920,18 @@ def covariate_plot(
                        linewidths=0.4, zorder=3, label=lv)
         _mark(ax, x, y, who, _flagged(rows, "outlier_ids"),
               _flagged(rows, "low_coverage_ids") | _low_coverage(part, participant), size=14)
+        slope = ""
         if len(rows):
             r = rows.iloc[0]
-            ax.plot([], [], " ", label=f"model b = {format_number(r['estimate'], 3)} "
-                                       f"{format_ci(r.get('ci_low'), r.get('ci_high'), 3)}")
+            # the slope belongs to this panel: under its title, not in a legend that all panels may share
+            level = number(r.get("confidence"))
+            level = confidence if not np.isfinite(level) else level
+            slope = (f"\nb = {format_number(r['estimate'], 3)}, {level:.0%} CI "
+                     f"{format_ci(r.get('ci_low'), r.get('ci_high'), 3)}")
         ax.axhline(0, **_ZERO_STYLE)
         ax.set_xlabel(covariate)
         ax.set_ylabel("region value")
-        ax.set_title(textwrap.fill(f"{region} · {contrast}" if owned else region, 30))
+        ax.set_title(textwrap.fill(f"{region} · {contrast}" if owned else region, 30) + slope)
         if legend:
             _dedupe_legend(ax, owned)
     return ax

@@ -195,7 +195,7 @@ def test_covariate_plot(values, participants, results_by_design):
     ax = covariate_plot(values, region="left hippocampus", contrast="novel", covariate="age", group="group",
                         participants=participants, results=results_by_design["glm"])
     assert len(_points(ax)) == 32
-    assert any("model b = -0.006" in t.get_text() for t in ax.figure.legends[0].get_texts())
+    assert "b = -0.006, 95% CI" in ax.get_title()  # the model's slope under the panel title
     with pytest.raises(UsageError, match="covariate 'height'"):
         covariate_plot(values, region="left hippocampus", contrast="novel", covariate="height")
 
