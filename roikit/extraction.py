@@ -540,7 +540,8 @@ def extract(
     DataFrame
         The region values table: ``participant_id``, ``session_id`` (when the maps have sessions),
         ``contrast``, ``region``, ``value``, ``n_voxels``, ``n_valid``, ``variance`` (with variance
-        maps). One row per map x region, in the maps' order then the region order. Provenance is in
+        maps). One row per map x region, maps sorted by participant, session and contrast, regions in the
+        region set's order. Provenance is in
         ``.attrs["roikit"]`` (JSON-able dict).
 
     Raises
