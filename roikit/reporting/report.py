@@ -130,8 +130,8 @@ def _figure_plan(values: pd.DataFrame, results: pd.DataFrame, participants: pd.D
                                   if _numeric_column(values, participants, g) is False), None)
                     plan.append(dict(name=f"covariate_{slug(term)}_{base}", caption=(
                         f"{escape_markup(title)}: region values against {escape_markup(term)}. The line is the simple "
-                        "least-squares fit with its 95% confidence band; the legend quotes the model's coefficient, "
-                        "which is adjusted for the other terms."),
+                        "least-squares fit with its 95% confidence band; each panel's title quotes the model's "
+                        "coefficient b, which is adjusted for the other terms."),
                         make=lambda t=term, c=contrast, g=group: participant_figure(
                             values, contrast=c, covariate=t, group=g, participants=participants, plot=covariate_plot,
                             **opts)))
