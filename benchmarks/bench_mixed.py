@@ -26,7 +26,6 @@ import numpy as np
 import pandas as pd
 
 from roikit.stats import run_design
-import roikit.stats.mixed  # noqa: F401  (registers the design)
 
 HERE = Path(__file__).resolve().parent
 RESULTS = HERE / "results"

@@ -57,7 +57,6 @@ from __future__ import annotations
 
 import difflib
 import hashlib
-import importlib
 import json
 import os
 import re
@@ -112,14 +111,7 @@ __all__ = [
     "CACHE_FOLDER",
 ]
 
-# The stats designs beyond the basic four register themselves when their modules are imported.
-for _module in ("roikit.stats.precision", "roikit.stats.fixed", "roikit.stats.mixed"):
-    try:
-        importlib.import_module(_module)
-    except ModuleNotFoundError:  # pragma: no cover - a design module not installed in this build
-        pass
-
-from .stats import available_designs, run_design  # noqa: E402 - after the design modules registered
+from .stats import available_designs, run_design  # noqa: E402 (every design registers when roikit.stats is imported)
 from .stats import COLUMN_DESCRIPTIONS  # noqa: E402
 from .stats._registry import DESIGNS, PERMUTATIONS  # noqa: E402
 from .stats.corrections import parse_corrections  # noqa: E402

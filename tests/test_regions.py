@@ -32,9 +32,9 @@ def test_sphere_at_the_mni_origin_is_centred_on_voxel_45_63_36():
 
 @pytest.mark.parametrize("radius", [4.0, 8.0, 16.0, 30.0])
 def test_sphere_voxel_count_approaches_the_analytic_volume(radius):
-    # Analytic: 4/3 pi r^3 / voxel volume. Counting lattice points in a ball has an error that grows like the
-    # surface (Gauss circle problem); tolerance: relative error below 3 (voxel/r)... use 1.5 * surface/volume
-    # ratio in voxel units, i.e. 4.5 * voxel / r (common practice, no source), which shrinks as r grows.
+    # Analytic: 4/3 pi r^3 / voxel volume. Counting voxel centres in a ball errs by about a shell of surface
+    # voxels, so the relative error scales like the surface/volume ratio 3 * voxel / r; tolerance 1.5 times that,
+    # 4.5 * voxel / r (common practice, no source), which shrinks as r grows; below 5% from r = 16 mm.
     grid = Grid((91, 109, 91), MNI2.affine)
     n = len(RegionSet([Sphere("s", (0.0, -20.0, 10.0), radius)]).realise(grid).voxels[0])
     analytic = 4.0 / 3.0 * np.pi * radius**3 / grid.voxel_volume
