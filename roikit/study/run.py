@@ -1,0 +1,298 @@
+"""Running a whole study: extraction (through the cache), every analysis, the report (``roikit run``)."""
+
+from __future__ import annotations
+
+import json
+import os
+import shutil
+import tempfile
+import time
+import warnings
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Sequence
+
+import pandas as pd
+
+from .._tables import sha256_file, sidecar_path, write_json, write_table
+from .._typing import PathLike
+from ..errors import OutputExistsError, RoikitError, RoikitWarning
+from ..extraction import VALUE_COLUMNS
+from ..stats import COLUMN_DESCRIPTIONS
+from .cache import _extract_with_cache
+from .schema import OUTPUTS, Study, _listing, load_study
+
+@dataclass
+class StudyRun:
+    """What :func:`run_study` did.
+
+    Attributes
+    ----------
+    study : Study
+    out : Path
+        The output folder.
+    values : DataFrame
+        The region values table (also ``out/region_values.tsv``).
+    results : DataFrame
+        Every analysis's rows, concatenated in file order (also ``out/group_results.tsv``); the column
+        ``analysis`` holds the analysis number (from 1).
+    per_analysis : list of DataFrame
+    outputs : dict of str to Path
+    extracted, reused : int
+        Maps read in this run, and maps taken from the cache.
+    warnings : list of dict
+        Warnings raised during the run (``category``, ``message``); they are also re-issued.
+    seconds : dict of str to float
+    """
+
+    study: Study
+    out: Path
+    values: pd.DataFrame
+    results: pd.DataFrame
+    per_analysis: list
+    outputs: dict
+    extracted: int
+    reused: int
+    warnings: list
+    seconds: dict
+
+    def summary(self, *, alpha: float = 0.05) -> str:
+        """A short text: regions x designs, what survived correction, warnings, where the outputs are."""
+        study = self.study
+        n_part = self.values["participant_id"].nunique()
+        n_regions = self.values["region"].nunique()
+        lines = [
+            f"roikit run: {study.title}",
+            f"  {n_part} participants, {len(study.maps)} maps ({self.extracted} extracted, {self.reused} from the "
+            f"cache), {n_regions} regions x {len(study.analyses)} analyses",
+        ]
+        for analysis, rows in zip(study.analyses, self.per_analysis):
+            lines.append(f"  {analysis.label}:")
+            for term, part in rows.groupby("term", sort=False):
+                lines.append(f"    {term}: " + _survivors(part, alpha))
+            if "population_inference" in rows.columns and not rows["population_inference"].astype(bool).all():
+                lines.append("    caution: fixed effects describe these participants only (no population inference)")
+        if study.circular:
+            lines.append(f"  caution: circular region definition(s): {', '.join(study.circular)}")
+        if self.warnings:
+            counts: dict[str, int] = {}
+            for w in self.warnings:
+                counts[w["category"]] = counts.get(w["category"], 0) + 1
+            lines.append(f"  warnings: {len(self.warnings)} ("
+                         + ", ".join(f"{k} x{v}" for k, v in counts.items()) + "; listed in provenance.json)")
+        else:
+            lines.append("  warnings: none")
+        lines.append(f"  outputs: {self.out}{os.sep} (report.html, group_results.tsv, region_values.tsv, tables/, "
+                     "figures/, methods.md, provenance.json)")
+        return "\n".join(lines)
+
+def _survivors(part: pd.DataFrame, alpha: float) -> str:
+    """'k/n regions with p_holm < alpha (names); FDR: m/n' for one term of one analysis."""
+    n = int(part["p"].notna().sum())
+    out = []
+    for column, name in (("p_holm", "Holm"), ("p_fdr", "FDR"), ("p_fwe", "permutation FWE")):
+        if column not in part.columns or part[column].isna().all():
+            continue
+        hit = part.loc[part[column] < alpha, "region"].tolist()
+        text = f"{name} {len(hit)}/{n}"
+        if column == "p_holm" and hit:
+            text += f" ({_listing(hit, 5)})"
+        out.append(text)
+    if not out:
+        hit = part.loc[part["p"] < alpha, "region"].tolist()
+        out.append(f"uncorrected {len(hit)}/{n}")
+    return f"p < {alpha:g} after correction: " + "; ".join(out)
+
+def _existing_outputs(out: Path) -> list[Path]:
+    return [out / name for name in OUTPUTS if (out / name).exists()]
+
+def run_study(
+    study: Study | PathLike,
+    *,
+    out: PathLike | None = None,
+    overwrite: bool = False,
+    progress: bool | None = None,
+    figures: bool = True,
+    figure_formats: Sequence[str] = ("pdf", "svg", "png"),
+) -> StudyRun:
+    """Run a study file: extraction (with a cache), every analysis, the report, provenance.
+
+    Parameters
+    ----------
+    study : Study or path
+        A study (:func:`load_study`) or the path of a study file (validated first; nothing runs when it has
+        problems).
+    out : path, optional
+        Output folder; default ``results`` beside the study file.
+    overwrite : bool
+        Replace the outputs of an earlier run in ``out`` (only the files and folders listed in
+        :data:`OUTPUTS`; nothing else in the folder is touched).
+    progress : bool, optional
+        Progress bar while extracting (default: only for 20 maps or more).
+    figures : bool
+        Draw the report's figures (False: tables and text only, much faster).
+    figure_formats : sequence of {"pdf", "svg", "png"}
+        Files written per figure (the HTML report embeds the PNG, drawn in any case).
+
+    Returns
+    -------
+    StudyRun
+
+    Notes
+    -----
+    Written into ``out``: ``region_values.tsv`` and ``group_results.tsv`` (with JSON sidecars),
+    ``tables/``, ``figures/``, ``report.html``, ``methods.md`` (from :func:`roikit.reporting.write_report`)
+    and ``provenance.json``. The extraction cache lives in ``out/.cache/``: a map whose file path, size and
+    modification time (and those of its variance map) are unchanged, extracted with the same realised regions
+    (SHA-256 of the grid, names, voxels and weights), statistic and zero rule, is not read again. The merged
+    table equals a fresh extraction (tested). Outputs are written to a temporary folder first and moved into
+    place when everything succeeded.
+
+    Examples
+    --------
+    >>> run = run_study("study/study.toml", out="results")   # doctest: +SKIP
+    >>> print(run.summary())                                  # doctest: +SKIP
+    """
+    t_start = time.perf_counter()
+    if not isinstance(study, Study):
+        study = load_study(study)
+    out = Path(out) if out is not None else study.default_out
+    if out.exists() and not out.is_dir():
+        raise OutputExistsError(f"{out}: exists and is not a folder; choose another --out folder")
+    existing = _existing_outputs(out)
+    if existing and not overwrite:
+        raise OutputExistsError(
+            f"{out}: holds the outputs of an earlier run ({', '.join(p.name for p in existing[:4])}"
+            f"{' ...' if len(existing) > 4 else ''}); pass --overwrite (overwrite=True) to replace them (the "
+            "extraction cache is kept, so only new maps are read), or choose another --out folder")
+    from ..reporting import write_report
+
+    seconds: dict[str, float] = {}
+
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
+        t0 = time.perf_counter()
+        out.mkdir(parents=True, exist_ok=True)
+        values, cache_info = _extract_with_cache(study, out, progress=progress)
+        seconds["extraction"] = time.perf_counter() - t0
+
+        t0 = time.perf_counter()
+        per_analysis = []
+        for analysis in study.analyses:
+            try:
+                rows = analysis.run(values, study.participants)
+            except RoikitError as exc:
+                raise type(exc)(f"{analysis.label}: {exc}") from exc
+            per_analysis.append(rows)
+        results = pd.concat([r.assign(analysis=a.number) for a, r in zip(study.analyses, per_analysis)],
+                            ignore_index=True, sort=False)
+        seconds["statistics"] = time.perf_counter() - t0
+
+        t0 = time.perf_counter()
+        tmp = Path(tempfile.mkdtemp(prefix=".run-tmp-", dir=out))
+        try:
+            written = [
+                write_table(tmp / "region_values.tsv", values,
+                            sidecar={"columns": {c: VALUE_COLUMNS.get(c, "") for c in values.columns},
+                                     "provenance": values.attrs.get("roikit", {})}),
+                write_table(tmp / "group_results.tsv", results,
+                            sidecar=_results_sidecar(study, results, per_analysis)),
+            ]
+            written += [sidecar_path(p) for p in written]
+            inputs = [{"role": "study file", "path": os.fspath(study.path), "sha256": sha256_file(study.path)}]
+            if study.participants_path is not None:
+                inputs.append({"role": "participants", "path": os.fspath(study.participants_path),
+                               "sha256": sha256_file(study.participants_path)})
+            write_report(values, results, participants=study.participants, out=tmp, overwrite=True,
+                         provenance={"inputs": inputs, "options": {"command": "roikit run", "out": os.fspath(out)}},
+                         title=study.title, circular=study.circular, figures=figures,
+                         figure_formats=tuple(figure_formats))
+            seconds["report"] = time.perf_counter() - t0
+            for w in caught:  # messages naming the temporary folder name the output folder instead
+                if str(tmp) in str(w.message):
+                    w.message = w.category(str(w.message).replace(str(tmp), str(out)))
+            recorded = [{"category": w.category.__name__, "message": str(w.message)} for w in caught
+                        if issubclass(w.category, RoikitWarning)]
+            seconds["total"] = time.perf_counter() - t_start
+            _extend_provenance(tmp / "provenance.json", study, out, cache_info, per_analysis, recorded, seconds,
+                               written, tmp)
+            _move_into_place(tmp, out)
+        finally:
+            shutil.rmtree(tmp, ignore_errors=True)
+    for w in caught:  # re-issue, so callers (and the command line) see them
+        warnings.warn_explicit(w.message, w.category, w.filename, w.lineno)
+    outputs = {name: out / name for name in OUTPUTS if (out / name).exists()}
+    return StudyRun(study=study, out=out, values=values, results=results, per_analysis=per_analysis,
+                    outputs=outputs, extracted=cache_info["extracted"], reused=cache_info["reused"],
+                    warnings=recorded, seconds=seconds)
+
+def _move_into_place(tmp: Path, out: Path) -> None:
+    """Replace ``out``'s entries by those in ``tmp`` (files and folders), one rename each."""
+    for item in sorted(tmp.iterdir()):
+        target = out / item.name
+        if target.is_dir() and not target.is_symlink():
+            trash = Path(tempfile.mkdtemp(prefix=f".{item.name}.old-", dir=out))
+            os.replace(target, trash / item.name)
+            os.replace(item, target)
+            shutil.rmtree(trash, ignore_errors=True)
+        else:
+            os.replace(item, target)
+
+def _results_sidecar(study: Study, results: pd.DataFrame, per_analysis: list) -> dict:
+    extra: dict = {}
+    for rows in per_analysis:
+        described = rows.attrs.get("column_descriptions", {}) if isinstance(rows.attrs, dict) else {}
+        extra.update(described if isinstance(described, dict) else {})
+    columns = {}
+    for c in results.columns:
+        if c == "analysis":
+            columns[c] = "number of the [[analysis]] block in the study file (from 1)"
+        else:
+            columns[c] = extra.get(c, COLUMN_DESCRIPTIONS.get(c, "design-specific column (see roikit.stats)"))
+    return {
+        "description": f"roikit group results of study {study.title!r}: every [[analysis]] of {study.path.name}, "
+                       "one row per analysis x region x term",
+        "columns": columns,
+        "analyses": [{"analysis": a.number, "design": a.design, **a.options, "correct": a.correct,
+                      "permutations": a.permutations, "seed": a.seed, "confidence": a.confidence}
+                     for a in study.analyses],
+        "note": "p_holm and p_fdr adjust across the regions of the same analysis and term (family_size). "
+                "For research group analysis, not for clinical decisions.",
+    }
+
+def _analysis_records(study: Study, per_analysis: list) -> list[dict]:
+    records = []
+    for a, rows in zip(study.analyses, per_analysis):
+        seeds = rows["seed"].dropna().unique().tolist() if "seed" in rows.columns else []
+        records.append({"analysis": a.number, "design": a.design, "options": a.options, "correct": a.correct,
+                        "permutations": a.permutations, "seed": seeds[0] if seeds else a.seed,
+                        "confidence": a.confidence, "rows": len(rows), "terms": list(pd.unique(rows["term"]))})
+    return records
+
+def _extend_provenance(path: Path, study: Study, out: Path, cache_info: dict, per_analysis: list,
+                       recorded: list, seconds: dict, written: list, tmp: Path) -> None:
+    """Add the run's record (study file, analyses, cache, warnings) to the report's provenance.json."""
+    try:
+        with open(path, encoding="utf-8") as fh:
+            record = json.load(fh)
+    except (OSError, ValueError):
+        record = {}
+    record["kind"] = "roikit run"
+    outputs = record.get("outputs", [])
+    outputs += [{"path": os.fspath(p.relative_to(tmp)), "sha256": sha256_file(p)} for p in written]
+    record["outputs"] = outputs
+    record["run"] = {
+        "study_file": os.fspath(study.path),
+        "title": study.title,
+        "study": study.raw,
+        "out": os.fspath(out),
+        "extraction": {"statistic": study.statistic, "keep_zeros": study.keep_zeros, "jobs": study.jobs,
+                       "n_maps": len(study.maps), "regions": list(study.realised.names), "cache": cache_info},
+        "circular_regions": list(study.circular),
+        "analyses": _analysis_records(study, per_analysis),
+        "warnings": recorded,
+        "seconds": seconds,
+        "note": "For research group analysis, not for clinical decisions about an individual patient.",
+    }
+    write_json(path, record, overwrite=True)
+
