@@ -34,6 +34,7 @@ from . import designs  # noqa: F401 - registers one-sample, paired, two-group, g
 from . import precision  # noqa: F401,E402 - registers precision-weighted
 from . import mixed  # noqa: F401,E402 - registers mixed
 from . import fixed  # noqa: F401,E402 - registers fixed-effects
+from . import repeated  # noqa: F401,E402 - registers repeated-measures, region-difference
 
 __all__ = ["run_design", "DESIGNS", "register", "available_designs", "COLUMN_DESCRIPTIONS"]
 
