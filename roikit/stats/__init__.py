@@ -30,6 +30,7 @@ from ._common import (
 )
 from ._registry import DESIGNS, PERMUTATIONS, available_designs, get_design, register
 from .corrections import CORRECTIONS, adjust, parse_corrections
+from .evidence import add_evidence
 from . import designs  # noqa: F401 - registers one-sample, paired, two-group, glm
 from . import precision  # noqa: F401,E402 - registers precision-weighted
 from . import mixed  # noqa: F401,E402 - registers mixed
@@ -150,10 +151,13 @@ def run_design(
     values = check_values(values)
     participants = _participants_table(participants)
     options = {k: v for k, v in options.items() if v is not None}
+    evidence = {k: options.pop(k) for k in ("equivalence", "bayes_factor", "prior_scale") if k in options}
     _check_options(func, design, options)
 
     results = func(values, participants=participants, confidence=confidence, **options)
     results = results.reset_index(drop=True)
+    if evidence:
+        results = add_evidence(results, design=design, **evidence)
 
     # corrections across regions, per term (the design is constant within one call)
     for column in ("p_holm", "p_fdr", "p_bonferroni"):

@@ -462,7 +462,7 @@ def two_group(
         effect_size_type="g", effect_size_ci_low=r["g_low"], effect_size_ci_high=r["g_high"],
         df_method="welch" if welch else "student", contrast=contrast, group_column=group, levels=",".join(levels),
         excluded_ids=[join_ids(e) for e in excluded], **diag, **coverage,
-        n_first=r["n1"].astype(int), n_second=r["n2"].astype(int),
+        n_first=r["n1"].astype(int), n_second=r["n2"].astype(int), sd_pooled=r["sd_pooled"],
         brown_forsythe_p=brown_forsythe(y1.to_numpy(float), y2.to_numpy(float)),
     )  # fmt: skip
     warn_diagnostics(rows, context=context, stacklevel=4)
