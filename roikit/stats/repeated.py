@@ -115,6 +115,8 @@ def repeated_measures(
     contrasts: pd.DataFrame | None = None,
     region_table: pd.DataFrame | None = None,
     between_observed: bool = True,
+    posthoc: bool = False,
+    posthoc_correction: str = "holm",
 ) -> pd.DataFrame:
     """Repeated-measures ANOVA in every region (or set of regions), with sphericity corrections.
 
@@ -136,6 +138,13 @@ def repeated_measures(
     between_observed : bool
         Whether the between factor is measured (e.g. age group; the default) rather than assigned; it enters
         generalised eta squared differently (Olejnik & Algina 2003).
+    posthoc : bool
+        Add pairwise comparisons of every within factor's levels: paired t-tests of the participants' marginal
+        means (averaged over the other within factors), rows with term ``"route: novel - familiar"``.
+    posthoc_correction : str
+        Correction across the pairs of one factor in one region (``holm``, ``fdr``, ``bonferroni``, ``none``),
+        written to ``p_posthoc`` with the number of pairs in ``posthoc_family``; ``run_design`` passes the
+        analysis' primary correction.
 
     Returns
     -------
@@ -301,7 +310,44 @@ def repeated_measures(
             mauchly_p=cols["mauchly_p"], generalized_eta2=cols["generalized_eta2"], within=",".join(names_all),
             contrast=",".join(dict.fromkeys(cell_of.values())),
         ))  # fmt: skip
+    if posthoc:
+        frames.append(_posthoc(unit_names, arrays, kept, excluded, names_all, c_levels + r_levels, confidence,
+                               posthoc_correction))
     return pd.concat(frames, ignore_index=True)
+
+
+def _posthoc(unit_names, arrays, kept, excluded, names, levels, confidence, correction):
+    """Pairwise paired t-tests of each within factor's marginal means, corrected within factor and unit."""
+    from .corrections import adjust
+    from .designs import one_sample_matrix
+
+    shape = [len(lv) for lv in levels]
+    out = []
+    for f, (factor, labels) in enumerate(zip(names, levels)):
+        pairs = list(itertools.combinations(range(len(labels)), 2))
+        p_all = np.full((len(pairs), len(unit_names)), np.nan)
+        rows = []
+        for k, (a, b) in enumerate(pairs):
+            diffs = np.full((max(len(x) for x in arrays), len(unit_names)), np.nan)
+            for u, (y, keep) in enumerate(zip(arrays, kept)):
+                cube = y[keep].reshape((-1, *shape))
+                marg = np.moveaxis(cube, f + 1, 1).reshape(cube.shape[0], shape[f], -1).mean(axis=2)
+                diffs[: keep.sum(), u] = marg[:, a] - marg[:, b]
+            r = one_sample_matrix(diffs, confidence=confidence)
+            p_all[k] = r["p"]
+            rows.append((f"{factor}: {labels[a]} - {labels[b]}", r))
+        p_adj = np.vstack([adjust(p_all[:, u], correction) if correction != "none" else p_all[:, u]
+                           for u in range(len(unit_names))]).T
+        for k, (term, r) in enumerate(rows):
+            out.append(result_rows(
+                unit_names, design="repeated-measures", term=term, confidence=confidence, n=r["n"].astype(int),
+                estimate=r["mean"], se=r["se"], df=r["df"], statistic=r["t"], statistic_type="t", p=r["p"],
+                ci_low=r["ci_low"], ci_high=r["ci_high"], effect_size=r["d"], effect_size_type="d_z",
+                effect_size_ci_low=r["d_low"], effect_size_ci_high=r["d_high"], df_method="student",
+                excluded_ids=[join_ids(e) for e in excluded], within=",".join(names), p_posthoc=p_adj[k],
+                posthoc_correction=correction, posthoc_family=len(pairs),
+            ))  # fmt: skip
+    return pd.concat(out, ignore_index=True)
 
 
 @register("region-difference")

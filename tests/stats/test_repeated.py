@@ -194,3 +194,25 @@ def test_region_difference_is_the_paired_test_of_the_two_regions():
     assert res.loc[0, "p"] == pytest.approx(ref.pvalue, rel=1e-10)
     assert res.loc[0, "effect_size"] == pytest.approx(np.mean(a - b) / np.std(a - b, ddof=1), rel=1e-12)
     assert res.loc[0, "region"] == "left hippocampus - right hippocampus"
+
+
+def test_posthoc_pairs_are_paired_tests_of_marginal_means_with_holm():
+    from scipy import stats
+    from statsmodels.stats.multitest import multipletests
+
+    df = pg.read_dataset("rm_anova2")
+    values = _long(df, "Performance", "Subject", ["Time", "Metric"])
+    res = run_design(values, "repeated-measures", within="Time,Metric", contrasts=_contrasts(df, ["Time", "Metric"]),
+                     posthoc=True)
+    post = res[res["term"].str.startswith("Metric: ")].set_index("term")
+    assert len(post) == 3 and (post["posthoc_family"] == 3).all()
+    wide = df.groupby(["Subject", "Metric"])["Performance"].mean().unstack()
+    # scipy.stats.ttest_rel on the participants' marginal means; statsmodels multipletests for Holm
+    levels = list(dict.fromkeys(df["Metric"]))
+    pairs = [(a, b) for i, a in enumerate(levels) for b in levels[i + 1:]]
+    ref = [stats.ttest_rel(wide[a], wide[b]) for a, b in pairs]
+    holm = multipletests([r.pvalue for r in ref], method="holm")[1]
+    for (a, b), r, ph in zip(pairs, ref, holm):
+        row = post.loc[f"Metric: {a} - {b}"]
+        assert row["statistic"] == pytest.approx(r.statistic, rel=1e-10)
+        assert row["p_posthoc"] == pytest.approx(ph, rel=1e-10)
