@@ -785,6 +785,10 @@ def _check_analyses(c: _Checker, raw: dict, *, contrasts, participants, columns,
             c.add(f"{key}.correct", str(exc))
         permutations = c.integer(block, "permutations", key, 0, minimum=0) or 0
         seed = c.integer(block, "seed", key, None, minimum=0)
+        if not permutations and isinstance(correct, (str, list)) and "fwe" in str(correct).lower():
+            c.add(f"{key}.correct", "fwe (max-statistic permutation family-wise p) needs permutations; add "
+                                    "permutations = 5000 and a seed to this [[analysis]], or choose holm, fdr, "
+                                    "bonferroni or none")
         if permutations and design not in PERMUTATIONS:
             c.add(f"{key}.permutations", f"design {design!r} has no permutation test; designs with one: "
                                          f"{', '.join(PERMUTATIONS)}")
