@@ -109,6 +109,12 @@ def _short(name: str, ext: str = ".png") -> str:
     return name if len(name) <= limit else name[:limit].rstrip("-_")
 
 
+def _term_slug(term: str) -> str:
+    """``group[T.younger]`` -> ``group-younger``; ``C(sex)[T.M]:age`` -> ``sex-m-x-age``."""
+    term = re.sub(r"\bC\(([^),]+)[^)]*\)", r"\1", str(term)).replace("[T.", "[").replace(":", "-x-")
+    return slug(term)
+
+
 def _figure_plan(values: pd.DataFrame, results: pd.DataFrame, participants: pd.DataFrame | None,
                  correct: str | None = None, labels: Labels | None = None) -> list[dict]:
     """What to draw for each analysis: dicts with name, analysis, make (callable -> Figure), caption, width."""
@@ -160,7 +166,7 @@ def _figure_plan(values: pd.DataFrame, results: pd.DataFrame, participants: pd.D
                 if _numeric_column(values, participants, term):
                     group = next((g for g in _formula_columns(key.get("formula", ""))
                                   if _numeric_column(values, participants, g) is False), None)
-                    plan.append(dict(name=_short(f"{prefix}_covariate-{slug(term)}"), caption=(
+                    plan.append(dict(name=_short(f"{prefix}_covariate-{_term_slug(term)}"), caption=(
                         f"{escape_markup(title)}: region values against {escape_markup(labels.variable(term))}. The line is the simple "
                         "least-squares fit with its 95% confidence band; each panel's title quotes the model's "
                         "coefficient b, which is adjusted for the other terms."),
@@ -211,7 +217,7 @@ def _figure_plan(values: pd.DataFrame, results: pd.DataFrame, participants: pd.D
                 marks = (f"Filled squares survive the {correction_name(primary, long=True)} correction across the "
                          f"{size} region{'s' if size != 1 else ''} ({corrected_p_symbol(primary)} < .05); open "
                          "squares do not.")
-            name = f"{prefix}_forest" if len(drawn_terms) == 1 else _short(f"{prefix}_forest-{slug(term)}")
+            name = f"{prefix}_forest" if len(drawn_terms) == 1 else _short(f"{prefix}_forest-{_term_slug(term)}")
             plan.append(dict(name=name, width="single", caption=(
                 f"{escape_markup(title)}, {escape_markup(label)}: estimates with their 95% CIs across regions. "
                 f"{marks} The dashed line marks zero."),

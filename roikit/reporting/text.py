@@ -175,9 +175,8 @@ def _contrast_label(name: str, labels: Labels) -> str:
 
 def _analysed_contrasts(results: pd.DataFrame) -> list[str]:
     out: list[str] = []
-    for column in ("contrast", "versus"):
-        for v in col(results, column):
-            out += [c.strip() for c in text(v).split(",") if c.strip()]
+    for a, b in zip(col(results, "contrast"), col(results, "versus")):  # each analysis's contrast, then versus
+        out += [c.strip() for v in (a, b) for c in text(v).split(",") if c.strip()]
     return ordered_unique(out)
 
 
@@ -458,17 +457,17 @@ def _random_phrase(rows: pd.DataFrame, labels: Labels) -> str:
     for cell in ordered_unique(text(v) for v in col(rows, "random") if text(v)):
         bits = [b.strip() for b in cell.replace("-", "+").split("+") if b.strip()]
         if "0" not in bits:
-            parts.append("a by-participant random intercept")
+            parts.append("a by-participant intercept")
         for b in bits:
             if b not in ("0", "1"):
-                parts.append(f"a by-participant random slope of {escape_markup(labels.variable(b))}")
+                parts.append(f"a by-participant slope of {escape_markup(labels.variable(b))}")
     if not parts and "sd_participant" in rows.columns:
-        parts.append("a by-participant random intercept")
+        parts.append("a by-participant intercept")
     for column, what in (("crossed", "crossed"), ("nested", "nested")):
         for cell in ordered_unique(text(v) for v in col(rows, column) if text(v)):
             for c in ids(cell):
                 inside = " within participant" if what == "nested" else ""
-                parts.append(f"a {what} random intercept for {escape_markup(labels.variable(c))}{inside}")
+                parts.append(f"a {what} intercept for {escape_markup(labels.variable(c))}{inside}")
     s = join_words(parts)
     corr = [c for c in rows.columns if c.startswith("corr_participant_") and has_values(rows, c)]
     if corr:
@@ -533,7 +532,7 @@ def _design_sentence(number_: int, key: dict, rows: pd.DataFrame, labels: Labels
         s = (f"{lead} fitted a linear mixed-effects model to {what} of each region by {how}, with "
              f"{_predictors(formula, rows, key, labels, participants)} as fixed "
              f"{'effect' if len([t for t in ordered_unique(rows['term'].map(text)) if not is_intercept(t)]) == 1 else 'effects'}"
-             f" and {_random_phrase(rows, labels)}")
+             f" and, as random effects, {_random_phrase(rows, labels)}")
     elif design == "fixed-effects":
         s = (f"For comparison only, analysis {number_} combined the {contrast} values in a fixed-effects "
              "(inverse-variance) model that treats the participants as fixed; it describes these participants "
@@ -587,6 +586,8 @@ def _correction_sentences(numbered, cite: Citations, override: str | None) -> li
         rows_of.setdefault(k, rows)
     total = len(numbered)
     out = []
+    also = ordered_unique(m for _n, _k, rows in numbered for m in ("holm", "fdr", "bonferroni")
+                          if has_values(rows, f"p_{m}") and m not in [k[0] for k in settings])
     for (method, sizes, perms), numbers in settings.items():
         where = _analyses_phrase(numbers, total)
         fam = (count(sizes[0], "region") if len(sizes) == 1 else
@@ -597,6 +598,9 @@ def _correction_sentences(numbered, cite: Citations, override: str | None) -> li
         else:
             out.append(f"{where}, *p* values were adjusted across the {fam} tested for each term with "
                        f"{_correction_phrase(method, rows_of[(method, sizes, perms)], cite)}.")
+    if also:
+        out.append("The tables also give *p* values adjusted with "
+                   + join_words(_correction_phrase(m, numbered[0][2], cite) for m in also) + ".")
     return out
 
 

@@ -82,8 +82,9 @@ class StudyRun:
                          + ", ".join(f"{k} x{v}" for k, v in counts.items()) + "; listed in provenance.json)")
         else:
             lines.append("  warnings: none")
-        lines.append(f"  outputs: {self.out}{os.sep} (report.html, group_results.tsv, region_values.tsv, tables/, "
-                     "figures/, methods.md, provenance.json)")
+        lines.append(f"  outputs: {self.out}{os.sep} (report.html, methods.md/.docx, results.md/.docx, "
+                     "references.bib, group_results.tsv, region_values.tsv, tables/, figures/, index.tsv, "
+                     "provenance.json)")
         return "\n".join(lines)
 
 def _primary_of(correct) -> str:
@@ -210,7 +211,10 @@ def run_study(
             if study.participants_path is not None:
                 inputs.append({"role": "participants", "path": os.fspath(study.participants_path),
                                "sha256": sha256_file(study.participants_path)})
+            from ..reporting._common import read_sidecar_labels
+
             write_report(values, results, participants=study.participants, out=tmp, overwrite=True,
+                         labels=read_sidecar_labels(study.participants_path),
                          provenance={"inputs": inputs, "options": {"command": "roikit run", "out": os.fspath(out)}},
                          title=study.title, circular=study.circular, figures=figures,
                          figure_formats=tuple(figure_formats))

@@ -43,8 +43,8 @@ def test_methods_text_labels_and_random_effects(values, results_by_design, parti
     rows["corr_participant_load"] = [0.21, -0.35, 0.10][: len(rows)] * (len(rows) // 3) + [0.0] * (len(rows) % 3)
     labels = {"load": {"LongName": "memory load"}, "town": {"LongName": "town"}}
     text = methods_text(values, rows, participants=participants, style="plain", labels=labels)
-    assert "a by-participant random intercept, a by-participant random slope of memory load and a crossed random " \
-           "intercept for town" in text
+    assert ("as random effects, a by-participant intercept, a by-participant slope of memory load and a crossed "
+            "intercept for town") in text
     assert "correlation between the by-participant intercept and slope of memory load estimated" in text
     assert "r ranged from -.35 to .21" in text
 
