@@ -35,6 +35,7 @@ from ._common import (
     check_columns,
     col,
     has_values,
+    ids,
     ordered_unique,
     slug,
     split_analyses,
@@ -55,6 +56,7 @@ from .references import bibtex, reference_list
 from .text import (
     SCOPE_STATEMENT,
     _analysed_contrasts,
+    _ranges,
     assumptions,
     caution_details,
     cautions,
@@ -245,7 +247,7 @@ def _docx(path: Path, title: str, paragraphs: list[str], *, overwrite: bool, hea
     import docx
     from docx.shared import Pt
 
-    from .format import _parse
+    from .format import _latex_number, _parse
 
     document = docx.Document()
     style = document.styles["Normal"]
@@ -258,7 +260,7 @@ def _docx(path: Path, title: str, paragraphs: list[str], *, overwrite: bool, hea
             continue
         p = document.add_paragraph()
         for content, kind in _parse(para):
-            run = p.add_run(content)
+            run = p.add_run(_latex_number(content))  # a true minus sign before numbers
             run.italic = kind == "i"
             run.font.subscript = kind == "sub"
             run.font.superscript = kind == "sup"
@@ -430,7 +432,8 @@ def write_report(
         rmd += ["## Cautions", ""] + [f"- {render(c['text'], 'markdown')}" for c in found] + [""]
         if len(details):
             rmd += ["| Participant | Problem | Region | Analyses |", "|:--|:--|:--|:--|"]
-            rmd += [f"| {r.participant_id} | {r.problem} | {r.region} | {r.analyses} |" for r in details.itertuples()]
+            rmd += [f"| {r.participant_id} | {r.problem} | {r.region} | {_ranges(ids(r.analyses))} |"
+                    for r in details.itertuples()]
             rmd += [""]
     results_path = listed(atomic_write_bytes(out / "results.md", "\n".join(rmd).encode("utf-8"), overwrite=overwrite),
                           "all", "results (Markdown)", "Results in APA style, with the cautions")
@@ -447,7 +450,8 @@ def write_report(
         if len(details):
             detail_html = ('<table class="apa caution-details"><thead><tr><th>Participant</th><th>Problem</th>'
                            "<th>Region</th><th>Analyses</th></tr></thead><tbody>" + "".join(
-                               "<tr>" + "".join(f"<td>{_html.escape(str(v))}</td>" for v in r) + "</tr>"
+                               "<tr>" + "".join(f"<td>{_html.escape(str(v))}</td>" for v in
+                                                (*r[:3], _ranges(ids(r[3])))) + "</tr>"
                                for r in details.itertuples(index=False)) + "</tbody></table>")
         sections.append(Section("cautions", "Cautions", ["<ul>" + "".join(
             f'<li data-kind="{c["kind"]}">{render(c["text"], "html")}</li>' for c in found) + "</ul>",

@@ -477,7 +477,8 @@ def results_tables(results: pd.DataFrame, *, start: int = 1, correct: str | None
     tables: list[ReportTable] = []
     number_ = start
     for i, (key, rows) in enumerate(split_analyses(results), start=1):
-        analysis = int(number(key["analysis"])) if np.isfinite(number(key.get("analysis"))) else i
+        # the analysis number of a study run, else counted from the first table's number
+        analysis = int(number(key["analysis"])) if np.isfinite(number(key.get("analysis"))) else start - 1 + i
         primary = primary_correction(rows, correct)
         extra = dict(primary=primary, labels=labels, participants=participants, analysis=analysis)
         stat_types = ordered_unique(rows["statistic_type"].map(lambda v: text(v, "t")))
