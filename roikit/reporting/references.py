@@ -165,6 +165,72 @@ REFERENCES: dict[str, Reference] = {r.key: r for r in [
   editor = {Harlow, Lisa L. and Mulaik, Stanley A. and Steiger, James H.},
   pages = {221--257}, publisher = {Lawrence Erlbaum Associates}, address = {Mahwah, NJ}, year = {1997}
 }"""),
+    _r("greenhouse1959", "Greenhouse & Geisser, 1959",
+       "Greenhouse, S. W., & Geisser, S. (1959). On methods in the analysis of profile data. *Psychometrika, "
+       "24*(2), 95–112. https://doi.org/10.1007/BF02289823",
+       """@article{greenhouse1959,
+  author = {Greenhouse, Samuel W. and Geisser, Seymour},
+  title = {On methods in the analysis of profile data},
+  journal = {Psychometrika},
+  volume = {24}, number = {2}, pages = {95--112}, year = {1959},
+  doi = {10.1007/BF02289823}
+}"""),
+    _r("huynh1976", "Huynh & Feldt, 1976",
+       "Huynh, H., & Feldt, L. S. (1976). Estimation of the Box correction for degrees of freedom from sample "
+       "data in randomized block and split-plot designs. *Journal of Educational Statistics, 1*(1), 69–82. "
+       "https://doi.org/10.3102/10769986001001069",
+       """@article{huynh1976,
+  author = {Huynh, Huynh and Feldt, Leonard S.},
+  title = {Estimation of the {Box} correction for degrees of freedom from sample data in randomized block and
+           split-plot designs},
+  journal = {Journal of Educational Statistics},
+  volume = {1}, number = {1}, pages = {69--82}, year = {1976},
+  doi = {10.3102/10769986001001069}
+}"""),
+    _r("mauchly1940", "Mauchly, 1940",
+       "Mauchly, J. W. (1940). Significance test for sphericity of a normal *n*-variate distribution. *The Annals "
+       "of Mathematical Statistics, 11*(2), 204–209. https://doi.org/10.1214/aoms/1177731915",
+       """@article{mauchly1940,
+  author = {Mauchly, John W.},
+  title = {Significance test for sphericity of a normal n-variate distribution},
+  journal = {The Annals of Mathematical Statistics},
+  volume = {11}, number = {2}, pages = {204--209}, year = {1940},
+  doi = {10.1214/aoms/1177731915}
+}"""),
+    _r("olejnik2003", "Olejnik & Algina, 2003",
+       "Olejnik, S., & Algina, J. (2003). Generalized eta and omega squared statistics: Measures of effect size "
+       "for some common research designs. *Psychological Methods, 8*(4), 434–447. "
+       "https://doi.org/10.1037/1082-989X.8.4.434",
+       """@article{olejnik2003,
+  author = {Olejnik, Stephen and Algina, James},
+  title = {Generalized eta and omega squared statistics: Measures of effect size for some common research designs},
+  journal = {Psychological Methods},
+  volume = {8}, number = {4}, pages = {434--447}, year = {2003},
+  doi = {10.1037/1082-989X.8.4.434}
+}"""),
+    _r("rouder2009", "Rouder et al., 2009",
+       "Rouder, J. N., Speckman, P. L., Sun, D., Morey, R. D., & Iverson, G. (2009). Bayesian *t* tests for "
+       "accepting and rejecting the null hypothesis. *Psychonomic Bulletin & Review, 16*(2), 225–237. "
+       "https://doi.org/10.3758/PBR.16.2.225",
+       """@article{rouder2009,
+  author = {Rouder, Jeffrey N. and Speckman, Paul L. and Sun, Dongchu and Morey, Richard D. and Iverson, Geoffrey},
+  title = {Bayesian t tests for accepting and rejecting the null hypothesis},
+  journal = {Psychonomic Bulletin \\& Review},
+  volume = {16}, number = {2}, pages = {225--237}, year = {2009},
+  doi = {10.3758/PBR.16.2.225}
+}"""),
+    _r("schuirmann1987", "Schuirmann, 1987",
+       "Schuirmann, D. J. (1987). A comparison of the two one-sided tests procedure and the power approach for "
+       "assessing the equivalence of average bioavailability. *Journal of Pharmacokinetics and "
+       "Biopharmaceutics, 15*(6), 657–680. https://doi.org/10.1007/BF01068419",
+       """@article{schuirmann1987,
+  author = {Schuirmann, Donald J.},
+  title = {A comparison of the two one-sided tests procedure and the power approach for assessing the equivalence
+           of average bioavailability},
+  journal = {Journal of Pharmacokinetics and Biopharmaceutics},
+  volume = {15}, number = {6}, pages = {657--680}, year = {1987},
+  doi = {10.1007/BF01068419}
+}"""),
     _r("roikit", f"roikit developers, 2026",
        f"roikit developers. (2026). *roikit: Region-of-interest group analysis of first-level contrast maps* "
        f"(Version {__version__}) [Computer software].",

@@ -533,12 +533,46 @@ def _design_sentence(number_: int, key: dict, rows: pd.DataFrame, labels: Labels
              f"{_predictors(formula, rows, key, labels, participants)} as fixed "
              f"{'effect' if len([t for t in ordered_unique(rows['term'].map(text)) if not is_intercept(t)]) == 1 else 'effects'}"
              f" and, as random effects, {_random_phrase(rows, labels)}")
+    elif design == "repeated-measures":
+        effects = [escape_markup(term_label(t, key, labels, participants, [])) for t in
+                   ordered_unique(rows["term"].map(text))]
+        what = (f"the {escape_markup(join_words(compress_labels([labels.level('contrast', c) for c in contrasts])))} "
+                "values" if contrasts else "the values")
+        s = (f"{lead} tested {join_words(effects)} in a repeated-measures analysis of variance of {what} of each "
+             "region (participants as the random factor)")
+        checks = []
+        if has_values(rows, "mauchly_p"):
+            checks.append(f"sphericity was checked with Mauchly's test ({cite.cite('mauchly1940')})")
+        if has_values(rows, "p_gg"):
+            checks.append("*p* values were also computed with the Greenhouse–Geisser "
+                          f"({cite.cite('greenhouse1959')}) and Huynh–Feldt ({cite.cite('huynh1976')}) corrections "
+                          "of the degrees of freedom" if has_values(rows, "p_hf") else
+                          f"*p* values were also computed with the Greenhouse–Geisser correction "
+                          f"({cite.cite('greenhouse1959')})")
+        if has_values(rows, "generalized_eta2"):
+            checks.append(f"generalized *η*^{{2}} ({cite.cite('olejnik2003')}) is reported beside partial *η*^{{2}}")
+        if checks:
+            s += "; " + "; ".join(checks)
+        df = ""
+    elif design == "region-difference":
+        pairs = [escape_markup(t.replace(" - ", " − ")) for t in ordered_unique(rows["term"].map(text))]
+        s = (f"{lead} compared regions within participants ({join_words(pairs)}) on {contrast} with paired *t*-tests "
+             "of each participant's difference between the two regions")
+        df = ""
     elif design == "fixed-effects":
         s = (f"For comparison only, analysis {number_} combined the {contrast} values in a fixed-effects "
              "(inverse-variance) model that treats the participants as fixed; it describes these participants "
              "only and makes no inference about the population")
     else:
         s = f"{lead} applied the {escape_markup(design)} design to the {contrast or 'region'} values"
+    if has_values(rows, "bf10"):
+        scale = ordered_unique(number(v) for v in col(rows, "prior_scale") if np.isfinite(number(v)))
+        s += (f"; JZS Bayes factors *BF*_{{10}} ({cite.cite('rouder2009')}) used a Cauchy prior on the standardised "
+              f"effect with scale *r* = {format_number(scale[0], 3, leading_zero=False) if scale else '.707'}")
+    if has_values(rows, "p_equivalence"):
+        bound = ordered_unique(number(v) for v in col(rows, "equivalence_bound") if np.isfinite(number(v)))
+        s += (f"; equivalence was tested with two one-sided tests ({cite.cite('schuirmann1987')}) against "
+              f"±{format_number(bound[0], 2) if bound else 'the bound'} in standardised effect-size units")
     if df and design in ("precision-weighted", "fixed-effects"):
         s += f"; the test used {df}"
     elif df and design == "mixed":
@@ -640,6 +674,8 @@ def _symbols_sentence(results: pd.DataFrame, cite: Citations, primaries: list[st
         if m != "none":
             symbols.append(f"{corrected_p_symbol(m)} = *p* adjusted by the {correction_name(m, long=True)} method"
                            .replace("by the no method", "uncorrected"))
+    if has_values(results, "bf10"):
+        symbols.append("*BF*_{10} = Bayes factor of an effect against none")
     symbols.append("CI = confidence interval")
     s = "Symbols: " + "; ".join(symbols) + "."
     if defs:

@@ -214,7 +214,8 @@ def run_study(
             from ..reporting._common import read_sidecar_labels
 
             write_report(values, results, participants=study.participants, out=tmp, overwrite=True,
-                         labels=read_sidecar_labels(study.participants_path),
+                         labels={**read_sidecar_labels(getattr(study, "contrasts_path", None)),
+                                 **read_sidecar_labels(study.participants_path)},
                          provenance={"inputs": inputs, "options": {"command": "roikit run", "out": os.fspath(out)}},
                          title=study.title, circular=study.circular, figures=figures,
                          figure_formats=tuple(figure_formats))

@@ -125,3 +125,21 @@ def test_assumptions_and_scope(results):
     assert any("upper bound" in a for a in lines)
     assert "clinical decisions about an individual patient" in SCOPE_STATEMENT
     assert "ethics approval and local clinical practice" in SCOPE_STATEMENT
+
+
+def test_methods_sentences_for_round_two_columns(values, results_by_design, participants):
+    import numpy as np
+
+    one = results_by_design["one-sample"].copy()
+    one[["bf10", "prior_scale", "p_equivalence", "equivalence_bound"]] = [3.2, np.sqrt(2) / 2, 0.2, 0.3]
+    rm = results_by_design["one-sample"].copy()
+    rm[["design", "term", "statistic_type", "contrast"]] = ["repeated-measures", "route:group", "F", "novel,familiar"]
+    rm[["mauchly_p", "p_gg", "p_hf", "generalized_eta2"]] = [0.3, 0.01, 0.01, 0.1]
+    text = methods_text(values, pd.concat([one, rm]), participants=participants, style="plain")
+    text = text.replace("\u00a0", " ")
+    # prior scale sqrt(2)/2 = .707 (bounded by nothing, but APA writes r without a leading zero)
+    assert "JZS Bayes factors BF_10 (Rouder et al., 2009) used a Cauchy prior" in text and "r = .707" in text
+    assert "two one-sided tests (Schuirmann, 1987) against ±0.30" in text
+    assert "tested route × group in a repeated-measures analysis of variance of the novel and familiar values" in text
+    assert "Mauchly's test (Mauchly, 1940)" in text and "Greenhouse–Geisser (Greenhouse & Geisser, 1959)" in text
+    assert "BF_10 = Bayes factor" in text
