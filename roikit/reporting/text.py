@@ -384,8 +384,8 @@ def _region_sentences(prov: dict, values: pd.DataFrame | None, cite: Citations) 
                      if c is not None and r is not None else "a sphere")
             world = f"{escape_markup(str(space))} coordinates" if space else "the maps' world coordinates"
             n = _voxels(g["items"][0][1])
-            out.append(f"The region {escape_markup(g['items'][0][0])} was {shape} ({world}){ref}"
-                       f"{', ' + n if n else ''}.")
+            out.append(f"The region {escape_markup(g['items'][0][0])}{f' ({n})' if n else ''} was {shape} in "
+                       f"{world}{ref}.")
         elif kind == "mask":
             n = _voxels(g["items"][0][1])
             out.append(f"The region {escape_markup(g['items'][0][0])} was the mask image "

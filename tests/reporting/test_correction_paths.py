@@ -102,3 +102,20 @@ def test_cli_correct_errors(tmp_path, values):
     base = ["stats", str(path), "--design", "one-sample", "--contrast", "novel", "--out", str(tmp_path / "r.tsv")]
     assert main(base + ["--correct", "fwe"]) == 2
     assert main(base + ["--correct", "sidak"]) == 2
+
+
+def test_cli_records_the_primary_correction_in_the_sidecar(tmp_path, values):
+    import json
+
+    from roikit._tables import write_table
+    from roikit.cli import main
+
+    path = tmp_path / "values.tsv"
+    write_table(path, values)
+    out = tmp_path / "r.tsv"
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        assert main(["stats", str(path), "--design", "one-sample", "--contrast", "novel", "--out", str(out),
+                     "--correct", "bonferroni,holm"]) == 0
+    sidecar = json.loads(out.with_suffix(".json").read_text())
+    assert sidecar["options"]["primary_correction"] == "bonferroni"

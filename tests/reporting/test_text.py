@@ -20,7 +20,7 @@ def test_methods_text_from_provenance(values, results, participants):
     assert "sub-30 had no valid voxel" in text and "left out of that region’s tests only" in text  # with its reason
     assert "atlas image wayfinding_atlas.nii.gz with its label table wayfinding_atlas.tsv, on the maps' grid" in text
     assert "left hippocampus (412 voxels)" in text
-    assert "a sphere of radius 6 mm centred at (8, -52, 12) mm" in text and "655 voxels" in text
+    assert "retrosplenial cortex (655 voxels) was a sphere of radius 6 mm centred at (8, -52, 12) mm in the maps' world coordinates." in text
     assert "resampled onto the maps' grid by nearest-neighbour interpolation" in text
     assert "the mean of the first-level contrast estimates" in text
     assert "Welch's unequal-variance t-tests and Welch–Satterthwaite degrees of freedom (Welch, 1947" in text

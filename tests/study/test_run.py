@@ -226,7 +226,7 @@ def test_study_correction_space_and_citation_reach_every_output(study_dir):
     methods = (out / "methods.md").read_text()
     assert "In analysis 1, *p* values were adjusted" in methods and "the Bonferroni method (Dunn, 1961)" in methods
     assert "in MNI152NLin2009cAsym space" in methods and "(Invented atlas, 2026)" in methods
-    assert "(MNI152NLin2009cAsym coordinates)" in methods
+    assert "mm in MNI152NLin2009cAsym coordinates." in methods
     assert "*p*_Bonferroni" in (out / "results.md").read_text()
     sidecar = json.loads((out / "group_results.json").read_text())
     assert [a["primary_correction"] for a in sidecar["analyses"]] == ["bonferroni", "holm"]
