@@ -231,6 +231,24 @@ REFERENCES: dict[str, Reference] = {r.key: r for r in [
   volume = {15}, number = {6}, pages = {657--680}, year = {1987},
   doi = {10.1007/BF01068419}
 }"""),
+    _r("iglewicz1993", "Iglewicz & Hoaglin, 1993",
+       "Iglewicz, B., & Hoaglin, D. C. (1993). *How to detect and handle outliers*. ASQC Quality Press.",
+       """@book{iglewicz1993,
+  author = {Iglewicz, Boris and Hoaglin, David C.},
+  title = {How to Detect and Handle Outliers},
+  publisher = {ASQC Quality Press}, address = {Milwaukee, WI}, year = {1993}
+}"""),
+    _r("kriegeskorte2009", "Kriegeskorte et al., 2009",
+       "Kriegeskorte, N., Simmons, W. K., Bellgowan, P. S. F., & Baker, C. I. (2009). Circular analysis in systems "
+       "neuroscience: The dangers of double dipping. *Nature Neuroscience, 12*(5), 535–540. "
+       "https://doi.org/10.1038/nn.2303",
+       """@article{kriegeskorte2009,
+  author = {Kriegeskorte, Nikolaus and Simmons, W. Kyle and Bellgowan, Patrick S. F. and Baker, Chris I.},
+  title = {Circular analysis in systems neuroscience: The dangers of double dipping},
+  journal = {Nature Neuroscience},
+  volume = {12}, number = {5}, pages = {535--540}, year = {2009},
+  doi = {10.1038/nn.2303}
+}"""),
     _r("roikit", f"roikit developers, 2026",
        f"roikit developers. (2026). *roikit: Region-of-interest group analysis of first-level contrast maps* "
        f"(Version {__version__}) [Computer software].",

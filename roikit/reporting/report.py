@@ -419,6 +419,7 @@ def write_report(
                                              labels=names, correct=correct)
     result_paragraphs = results_parts(results, labels=names, participants=participants, correct=correct)
     references = reference_list(cited)
+    cited_all = list(dict.fromkeys(cited + [c["cites"] for c in found if c.get("cites")]))
     md = ["# Methods", ""] + [render(p, "markdown") + "\n" for p in method_paragraphs]
     md += ["## References", ""] + [render(r, "markdown") + "\n" for r in references]
     methods_path = listed(atomic_write_bytes(out / "methods.md", "\n".join(md).encode("utf-8"), overwrite=overwrite),
@@ -439,7 +440,7 @@ def write_report(
                           "all", "results (Markdown)", "Results in APA style, with the cautions")
     results_docx = listed(_docx(out / "results.docx", "Results", result_paragraphs, overwrite=overwrite),
                           "all", "results (Word)", "Results in APA style")
-    bib_path = listed(atomic_write_bytes(out / "references.bib", bibtex(cited).encode("utf-8"), overwrite=overwrite),
+    bib_path = listed(atomic_write_bytes(out / "references.bib", bibtex(cited_all).encode("utf-8"), overwrite=overwrite),
                       "all", "references (BibTeX)", "The works the methods text cites, roikit included")
     assumption_lines = assumptions(results)
 
@@ -468,7 +469,8 @@ def write_report(
         "<ul>" + "".join(f"<li>{render(a, 'html')}</li>" for a in assumption_lines) + "</ul>",
         f"<p>{_html.escape(SCOPE_STATEMENT)}</p>"]))
     sections.append(Section("references", "References", [
-        "<ul class=\"references\">" + "".join(f"<li>{render(r, 'html')}</li>" for r in references) + "</ul>"]))
+        "<ul class=\"references\">" + "".join(f"<li>{render(r, 'html')}</li>" for r in reference_list(cited_all))
+        + "</ul>"]))
     if figure_errors:
         sections.append(Section("not-drawn", "Figures not drawn", [
             "<ul>" + "".join(f"<li>{_html.escape(e)}</li>" for e in figure_errors) + "</ul>"]))

@@ -254,7 +254,7 @@ def cautions(
             f"Circular region definition: {escape_markup(join_words(circ_tested))} "
             f"{'was' if len(circ_tested) == 1 else 'were'} defined from the same data that are tested; read "
             f"{'its' if len(circ_tested) == 1 else 'their'} results as descriptive or confirm them in independent "
-            "data (Kriegeskorte et al., 2009).")})
+            "data (Kriegeskorte et al., 2009)."), "cites": "kriegeskorte2009"})
     numbered = _numbered(results)
     for number_, key, rows in numbered:
         name = f"Analysis {number_} ({_design_short(key.get('design', ''))})"
@@ -489,10 +489,11 @@ def _design_sentence(number_: int, key: dict, rows: pd.DataFrame, labels: Labels
     lead = f"Analysis {number_}"
     formula = key.get("formula", "")
     if design == "one-sample":
-        s = f"{lead} tested the mean {contrast} value against zero in each region with one-sample *t*-tests"
+        s = (f"{lead} tested the mean {contrast} value against zero in each region with one-sample *t*-tests "
+             "(*df* = *n* − 1)")
     elif design == "paired":
         s = (f"{lead} compared {contrast} with {_contrast_label(key.get('versus', ''), labels)} within participants "
-             "with paired *t*-tests (a one-sample test of each participant's difference)")
+             "with paired *t*-tests, one-sample tests of each participant's difference (*df* = *n* − 1)")
     elif design == "two-group":
         g = key.get("group_column", "")
         levels = [labels.level(g, lv) for lv in key.get("levels", "").split(",") if lv]
@@ -753,6 +754,11 @@ def methods_parts(
                   "voxel had a missing value for that region.")
     if not prov:
         extraction += " The extraction settings were not recorded with the values table; the defaults are assumed."
+    if "n_outliers" in results.columns or "outlier_ids" in results.columns:
+        extraction += (" In every test, values with a modified *z* score above 3.5 "
+                       f"({cite.cite('iglewicz1993')}) were flagged as outliers and kept in the analysis.")
+    if "n_low_coverage" in results.columns or "low_coverage_ids" in results.columns:
+        extraction += (" Participants with valid data in fewer than half of a region's voxels were flagged and kept.")
     paragraphs.append(" ".join(region_sentences + [extraction]))
     # designs: one sentence each, then one sentence per correction setting
     designs = [_design_sentence(n, key, rows, labels, participants, cite) for n, key, rows in numbered]
