@@ -345,7 +345,8 @@ _LATEX_ESCAPES = {
     "<": r"$<$", ">": r"$>$", "Δ": r"$\Delta$",
 }
 _MD_SPECIAL = re.compile(r"([\\*`|]|<(?=[A-Za-z/!?])|(?<!\w)_|_(?!\w))")
-_SUPERSCRIPTS = str.maketrans("0123456789+-()n", "⁰¹²³⁴⁵⁶⁷⁸⁹⁺⁻⁽⁾ⁿ")
+_SUPERSCRIPT_FROM, _SUPERSCRIPT_TO = "0123456789+-()nabcdefghij", "⁰¹²³⁴⁵⁶⁷⁸⁹⁺⁻⁽⁾ⁿᵃᵇᶜᵈᵉᶠᵍʰⁱʲ"
+_SUPERSCRIPTS = str.maketrans(_SUPERSCRIPT_FROM, _SUPERSCRIPT_TO)
 
 
 def latex_escape(text: str) -> str:
@@ -386,8 +387,8 @@ def render(markup: str, style: Style = "plain", *, numbers: bool = True) -> str:
             if kind == "sub":
                 out.append("_" + text)
             elif kind == "sup":
-                sup = text.translate(_SUPERSCRIPTS)
-                out.append(sup if all(ch not in "0123456789+-()n" for ch in sup) else "^" + text)
+                whole = all(ch in _SUPERSCRIPT_FROM for ch in text)
+                out.append(text.translate(_SUPERSCRIPTS) if whole else f"^{text}^")  # pandoc's superscript
             else:
                 esc = _MD_SPECIAL.sub(r"\\\g<0>", text)
                 out.append(f"*{esc}*" if kind == "i" else esc)

@@ -378,8 +378,7 @@ def write_report(
     for t in all_tables:
         analysis = t.name.split("-", 1)[0][1:] if t.name.startswith("a") and t.name[1:2].isdigit() else "n/a"
         for path in t.write(out / "tables", overwrite=overwrite):
-            table_paths.append(listed(path, analysis, f"table ({path.suffix[1:]})", t.caption("markup")
-                                      if False else f"Table {t.number}. {t.title}"))
+            table_paths.append(listed(path, analysis, f"table ({path.suffix[1:]})", f"Table {t.number}. {t.title}"))
         t.to_docx(document=document)
         document.add_paragraph()
     import io
