@@ -754,11 +754,13 @@ def methods_parts(
                   "voxel had a missing value for that region.")
     if not prov:
         extraction += " The extraction settings were not recorded with the values table; the defaults are assumed."
+    flagged = []
     if "n_outliers" in results.columns or "outlier_ids" in results.columns:
-        extraction += (" In every test, values with a modified *z* score above 3.5 "
-                       f"({cite.cite('iglewicz1993')}) were flagged as outliers and kept in the analysis.")
+        flagged.append(f"values with a modified *z* score above 3.5 ({cite.cite('iglewicz1993')})")
     if "n_low_coverage" in results.columns or "low_coverage_ids" in results.columns:
-        extraction += (" Participants with valid data in fewer than half of a region's voxels were flagged and kept.")
+        flagged.append("participants with valid data in fewer than half of a region's voxels")
+    if flagged:
+        extraction += f" In every test, {join_words(flagged)} were flagged and kept in the analysis."
     paragraphs.append(" ".join(region_sentences + [extraction]))
     # designs: one sentence each, then one sentence per correction setting
     designs = [_design_sentence(n, key, rows, labels, participants, cite) for n, key, rows in numbered]
