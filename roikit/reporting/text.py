@@ -835,7 +835,7 @@ def _join(paragraphs: Sequence[str], style: Style) -> str:
 
 # --------------------------------------------------------------------------------------------- results
 def _family_lead(method: str, size: int, term: str | None) -> str:
-    where = f"For {escape_markup(term)}, across" if term else "Across"
+    where = (f"For {'the ' if term == 'intercept' else ''}{escape_markup(term)}, across" if term else "Across")
     regions = count(size, "region")
     if method == "none":
         return f"{where} the {regions}, *p* values are uncorrected (family of {regions})."

@@ -76,7 +76,7 @@ def test_results_text_no_effect_size_for_intercepts(results_by_design):
     glm = results_by_design["glm"].copy()
     glm.loc[glm.term == "Intercept", ["effect_size", "effect_size_type"]] = [0.5, "partial_eta2"]
     text = results_text(glm, style="plain").replace("\u00a0", " ")
-    intercept = text[text.index("For intercept"):text.index("For age")]
+    intercept = text[text.index("For the intercept"):text.index("For age")]
     assert "η²" not in intercept and "b = 0.42" in intercept
     with_effects = results_text(glm, style="plain", intercept_effect_sizes=True)
     assert with_effects.count("η²") > text.count("η²")
