@@ -81,6 +81,7 @@ def run(args: argparse.Namespace) -> int:
                            provenance={"inputs": inputs, "options": options}, title=args.title,
                            circular=args.circular, correct=args.correct, labels=labels)
     n_fig = sum(1 for p in written["figures"] if p.suffix == ".png")
-    print(f"roikit report: wrote {len(written['tables'])} table files, {n_fig} figures, "
-          f"{written['methods'].name}, {written['html'].name} and {written['provenance'].name} in {out}")
+    print(f"roikit report: wrote {len(written['tables'])} table files, {n_fig} figures, methods and results "
+          f"(.md, .docx), {written['references'].name}, {written['html'].name}, {written['provenance'].name} and "
+          f"{written['index'].name} (every file with its caption) in {out}")
     return 0

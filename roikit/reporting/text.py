@@ -627,11 +627,11 @@ def _correction_sentences(numbered, cite: Citations, override: str | None) -> li
         where = _analyses_phrase(numbers, total)
         fam = (count(sizes[0], "region") if len(sizes) == 1 else
                f"{join_words(map(str, sizes), 'or')} regions")
+        lead = f"{where}, *p* values" if total > 1 else "The *p* values"
         if method == "none":
-            out.append(f"{where}, *p* values were not corrected for multiple comparisons (uncorrected; each "
-                       f"family held {fam}).")
+            out.append(f"{lead} were not corrected for multiple comparisons (uncorrected; each family held {fam}).")
         else:
-            out.append(f"{where}, *p* values were adjusted across the {fam} tested for each term with "
+            out.append(f"{lead} were adjusted across the {fam} tested for each term with "
                        f"{_correction_phrase(method, rows_of[(method, sizes, perms)], cite)}.")
     if also:
         out.append("The tables also give *p* values adjusted with "
