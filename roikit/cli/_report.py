@@ -26,6 +26,9 @@ def add_parser(subparsers) -> None:
     p.add_argument("--out", required=True, metavar="DIR", help="output directory")
     p.add_argument("--overwrite", action="store_true", help="replace existing report files")
     p.add_argument("--title", default="Region-of-interest group analysis", help="report title")
+    p.add_argument("--contrasts", metavar="contrasts.tsv", default=None,
+                   help="contrasts table; its JSON sidecar (LongName, Levels) names contrasts and their variables in "
+                   "the text and tables")
     p.add_argument("--correct", metavar="NAME", default=None,
                    help="primary correction to report (text, table notes, figure markers) instead of the results' "
                    "own (the first entry of their correction column): holm, fdr, bonferroni, fwe or none; it must "
@@ -59,7 +62,8 @@ def run(args: argparse.Namespace) -> int:
     participants = read_table(args.participants, label_columns=("participant_id",)) if args.participants else None
     from ..reporting._common import read_sidecar_labels
 
-    labels = read_sidecar_labels(args.participants) if args.participants else {}
+    labels = {**(read_sidecar_labels(args.contrasts) if args.contrasts else {}),
+              **(read_sidecar_labels(args.participants) if args.participants else {})}
     side = _sidecar(values_path)
     prov = side.get("provenance") if isinstance(side.get("provenance"), dict) else {}
     if prov:

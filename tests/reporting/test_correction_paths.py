@@ -119,3 +119,12 @@ def test_cli_records_the_primary_correction_in_the_sidecar(tmp_path, values):
                      "--correct", "bonferroni,holm"]) == 0
     sidecar = json.loads(out.with_suffix(".json").read_text())
     assert sidecar["options"]["primary_correction"] == "bonferroni"
+
+
+def test_contrast_labels_from_a_contrasts_sidecar(values, results_by_design, participants):
+    # BIDS sidecar "Levels" of the contrast column: short codes get their names
+    labels = {"contrast": {"Levels": {"nov": "novel routes"}}}
+    rows = results_by_design["one-sample"].assign(contrast="nov")
+    v = values.assign(contrast=values["contrast"].replace({"novel": "nov"}))
+    text = methods_text(v, rows, participants=participants, labels=labels, style="plain")
+    assert "tested the mean novel routes value" in text and "first-level contrast novel routes" in text
