@@ -197,6 +197,14 @@ def _image_on_grid(path, grid: Grid, *, volume=None, what: str, atol: float, log
 class _Source:
     kind = "source"
 
+    def _described(self, src: dict) -> dict:
+        """Add the optional ``space`` and ``citation`` the user gave to a realised source record."""
+        for name in ("space", "citation"):
+            value = getattr(self, name, None)
+            if value:
+                src[name] = str(value)
+        return src
+
     def realise(self, grid: Grid, *, atol: float, log: list) -> list[_Region]:  # pragma: no cover - interface
         raise NotImplementedError
 
@@ -221,6 +229,8 @@ class Atlas(_Source):
 
     image: str | os.PathLike
     labels: str | os.PathLike | pd.DataFrame
+    space: str | None = None
+    citation: str | None = None
     kind = "atlas"
 
     def realise(self, grid, *, atol, log):
@@ -257,10 +267,10 @@ class Atlas(_Source):
             if int(index) not in by_label:
                 continue
             s, e = by_label[int(index)]
-            regions.append(_Region(str(name), np.sort(vox[s:e]), None,
+            regions.append(_Region(str(name), np.sort(vox[s:e]), None, self._described(
                                    {"kind": "atlas", "image": os.fspath(self.image),
                                     "labels": os.fspath(labels_name) if not isinstance(labels_name, str) else labels_name,
-                                    "index": int(index)}))
+                                    "index": int(index)})))
         return regions
 
 
@@ -278,13 +288,15 @@ class Mask(_Source):
 
     name: str
     image: str | os.PathLike
+    space: str | None = None
+    citation: str | None = None
     kind = "mask"
 
     def realise(self, grid, *, atol, log):
         data = _image_on_grid(self.image, grid, what=f"mask {self.name!r}", atol=atol, log=log)
         flat = data.ravel(order="F")
         vox = np.flatnonzero(np.isfinite(flat) & (flat != 0))
-        return [_Region(self.name, vox, None, {"kind": "mask", "image": os.fspath(self.image)})]
+        return [_Region(self.name, vox, None, self._described({"kind": "mask", "image": os.fspath(self.image)}))]
 
 
 @dataclass(frozen=True)
@@ -303,6 +315,8 @@ class Sphere(_Source):
     name: str
     center: tuple[float, float, float]
     radius: float
+    space: str | None = None
+    citation: str | None = None
     kind = "sphere"
 
     def __post_init__(self):
@@ -320,7 +334,7 @@ class Sphere(_Source):
         reach = self.radius / grid.voxel_sizes.min() + 1
         lo = np.maximum(np.floor(centre_vox - reach), 0).astype(int)
         hi = np.minimum(np.ceil(centre_vox + reach), np.array(grid.shape) - 1).astype(int)
-        src = {"kind": "sphere", "center_mm": list(self.center), "radius_mm": self.radius}
+        src = self._described({"kind": "sphere", "center_mm": list(self.center), "radius_mm": self.radius})
         if np.any(hi < lo):
             return [_Region(self.name, np.empty(0, dtype=np.int64), None, src)]
         ii, jj, kk = np.meshgrid(*(np.arange(a, b + 1) for a, b in zip(lo, hi)), indexing="ij")
@@ -354,6 +368,8 @@ class ProbabilityMap(_Source):
     threshold: float
     name: str | None = None
     labels: str | os.PathLike | pd.DataFrame | None = None
+    space: str | None = None
+    citation: str | None = None
     kind = "probability"
 
     def __post_init__(self):
@@ -382,7 +398,7 @@ class ProbabilityMap(_Source):
             data = _image_on_grid(self.image, grid, volume=volume, what=f"probability map {name!r}", atol=atol, log=log)
             flat = data.ravel(order="F")
             vox = np.flatnonzero(np.isfinite(flat) & (flat >= self.threshold))
-            src = {"kind": "probability", "image": os.fspath(self.image), "threshold": self.threshold}
+            src = self._described({"kind": "probability", "image": os.fspath(self.image), "threshold": self.threshold})
             if index is not None:
                 src["volume"] = index
             regions.append(_Region(name, vox, flat[vox].astype(np.float64), src))

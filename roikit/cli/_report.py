@@ -26,6 +26,13 @@ def add_parser(subparsers) -> None:
     p.add_argument("--out", required=True, metavar="DIR", help="output directory")
     p.add_argument("--overwrite", action="store_true", help="replace existing report files")
     p.add_argument("--title", default="Region-of-interest group analysis", help="report title")
+    p.add_argument("--contrasts", metavar="contrasts.tsv", default=None,
+                   help="contrasts table; its JSON sidecar (LongName, Levels) names contrasts and their variables in "
+                   "the text and tables")
+    p.add_argument("--correct", metavar="NAME", default=None,
+                   help="primary correction to report (text, table notes, figure markers) instead of the results' "
+                   "own (the first entry of their correction column): holm, fdr, bonferroni, fwe or none; it must "
+                   "be one the results table carries")
     p.add_argument("--circular", action="append", default=[], metavar="REGION",
                    help="region defined from the same data that are tested (adds a circularity caution; repeatable)")
     p.set_defaults(func=run)
@@ -53,6 +60,10 @@ def run(args: argparse.Namespace) -> int:
     values = read_table(values_path)
     results = read_table(results_path)
     participants = read_table(args.participants, label_columns=("participant_id",)) if args.participants else None
+    from ..reporting._common import read_sidecar_labels
+
+    labels = {**(read_sidecar_labels(args.contrasts) if args.contrasts else {}),
+              **(read_sidecar_labels(args.participants) if args.participants else {})}
     side = _sidecar(values_path)
     prov = side.get("provenance") if isinstance(side.get("provenance"), dict) else {}
     if prov:
@@ -72,8 +83,9 @@ def run(args: argparse.Namespace) -> int:
         options["results_options"] = {k: results_side[k] for k in ("options", "design", "seed") if k in results_side}
     written = write_report(values, results, participants=participants, out=out, overwrite=args.overwrite,
                            provenance={"inputs": inputs, "options": options}, title=args.title,
-                           circular=args.circular)
+                           circular=args.circular, correct=args.correct, labels=labels)
     n_fig = sum(1 for p in written["figures"] if p.suffix == ".png")
-    print(f"roikit report: wrote {len(written['tables'])} table files, {n_fig} figures, "
-          f"{written['methods'].name}, {written['html'].name} and {written['provenance'].name} in {out}")
+    print(f"roikit report: wrote {len(written['tables'])} table files, {n_fig} figures, methods and results "
+          f"(.md, .docx), {written['references'].name}, {written['html'].name}, {written['provenance'].name} and "
+          f"{written['index'].name} (every file with its caption) in {out}")
     return 0

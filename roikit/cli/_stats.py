@@ -10,6 +10,7 @@ from .. import __version__
 from .._tables import check_output, read_table, sha256_file, sidecar_path, write_table
 from ..errors import UsageError
 from ..stats import COLUMN_DESCRIPTIONS, available_designs, run_design
+from ..stats.corrections import correction_choices_text, parse_corrections
 
 #: Command-line design options, passed to the design in snake_case when given.
 _DESIGN_OPTIONS = ("contrast", "versus", "group", "levels", "welch", "formula", "tau2", "random", "crossed")
@@ -41,7 +42,9 @@ def add_parser(subparsers) -> None:
     p.add_argument("--participants", metavar="participants.tsv", help="participants table (groups, covariates)")
     p.add_argument("--out", required=True, metavar="RESULTS.tsv", help="output table")
     p.add_argument("--correct", default="holm,fdr", metavar="LIST",
-                   help="corrections across regions: comma-separated holm, fdr, bonferroni (default holm,fdr)")
+                   help="corrections across regions, comma-separated; the FIRST is the primary one that text, table "
+                   "notes, figure markers and summaries use: holm, fdr, bonferroni, fwe (max-statistic permutations; "
+                   "needs --permutations N), none (uncorrected). Default holm,fdr")
     p.add_argument("--permutations", type=int, default=0, metavar="N",
                    help="permutations for the max-statistic family-wise p (p_fwe); default 0 (none)")
     p.add_argument("--seed", type=int, default=None, metavar="S", help="seed of the permutations (recorded)")
@@ -57,6 +60,13 @@ def run(args: argparse.Namespace) -> int:
         raise UsageError(f"--design {args.design!r} is not available; expected one of: {', '.join(available_designs())}")
     if args.permutations < 0:
         raise UsageError(f"--permutations must be 0 or more, got {args.permutations}")
+    try:
+        corrections = parse_corrections(args.correct)
+    except UsageError:
+        raise UsageError(f"--correct {args.correct!r}: {correction_choices_text()}") from None
+    if "fwe" in corrections and not args.permutations:
+        raise UsageError(f"--correct {args.correct}: fwe (max-statistic permutation family-wise p) needs "
+                         "--permutations N, e.g. --permutations 5000")
     values = read_table(args.values)
     participants = (
         read_table(args.participants, label_columns=("participant_id",)) if args.participants else None
@@ -91,13 +101,15 @@ def run(args: argparse.Namespace) -> int:
             "design": args.design,
             **options,
             "correct": args.correct,
+            "primary_correction": results["correction"].iloc[0].split(",")[0] if len(results) else None,
             "permutations": args.permutations,
             "seed": seeds[0] if seeds else args.seed,
             "confidence": args.confidence,
         },
         "inputs": inputs,
         "software": {"roikit": __version__},
-        "note": "p_holm and p_fdr adjust across the regions of the same design and term (family_size). "
+        "note": "p_holm and p_fdr adjust across the regions of the same design and term (family_size); the first "
+        "entry of the correction column is the primary correction. "
         "For research group analysis, not for clinical decisions.",
     }
     path = write_table(out, results, sidecar=sidecar, overwrite=args.overwrite)

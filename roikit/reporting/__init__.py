@@ -32,7 +32,15 @@ from .format import format_ci, format_df, format_number, format_p, in_text
 from .html import report_html
 from .report import write_report
 from .tables import ReportTable, descriptives, descriptives_table, results_table, results_tables
-from .text import SCOPE_STATEMENT, assumptions, cautions, methods_text, results_text
+from .text import (
+    SCOPE_STATEMENT,
+    assumptions,
+    caution_details,
+    caution_lines,
+    cautions,
+    methods_text,
+    results_text,
+)
 
 __all__ = [
     "write_report",
@@ -60,6 +68,8 @@ __all__ = [
     "methods_text",
     "results_text",
     "cautions",
+    "caution_lines",
+    "caution_details",
     "assumptions",
     "SCOPE_STATEMENT",
     "report_html",

@@ -50,7 +50,7 @@ from ._common import (
     ordered_unique,
     text,
 )
-from .format import BOUNDED_EFFECTS, format_ci, format_number, format_p, is_missing
+from .format import BOUNDED_EFFECTS, correction_name, format_ci, format_number, format_p, is_missing
 
 __all__ = [
     "OKABE_ITO",
@@ -599,9 +599,9 @@ def forest_plot(
     measure : {"auto", "effect_size", "estimate"}
         ``auto`` uses the effect size when every row has one with its CI, else the estimate.
     correction : str, optional
-        Adjusted p deciding survival (``holm``, ``fdr``, ``fwe``); default: the first method in the rows'
-        ``correction`` column that has a ``p_<method>`` column. Without any, the uncorrected p is used and the
-        legend says so.
+        Adjusted p deciding survival and named in the legend (``holm``, ``fdr``, ``bonferroni``, ``fwe``, or
+        ``none`` for the uncorrected p); default: the primary correction, the first entry of the rows'
+        ``correction`` column. Without any adjusted p, the uncorrected p is used and the legend says so.
     alpha : float
         Significance level.
     annotate : bool
@@ -628,14 +628,10 @@ def forest_plot(
     rows = rows[keep]
     if len(rows) == 0:
         raise UsageError(f"nothing to draw: no row has a finite {measure} (F rows have none); choose design/term")
-    if correction is None:
-        for cell in col(rows, "correction"):
-            for method in ids(cell):
-                if has_values(rows, f"p_{method}"):
-                    correction = method
-                    break
-            if correction:
-                break
+    if correction is None:  # the primary correction: the first entry of the rows' correction column
+        from ._common import primary_correction
+
+        correction = primary_correction(rows)
     pcol = f"p_{correction}" if correction and has_values(rows, f"p_{correction}") else "p"
     multi_term = rows[["design", "term"]].astype(str).drop_duplicates().shape[0] > 1
     labels = [text(r["region"]) + (f" · {text(r['term'])}" if multi_term else "") for _, r in rows.iterrows()]
@@ -657,7 +653,7 @@ def forest_plot(
         for yi, a, b in zip(y, lo, hi):
             if np.isfinite(a) and np.isfinite(b):
                 ax.plot([a, b], [yi, yi], color="#0072B2", lw=1.2, solid_capstyle="butt", zorder=2)
-        name = {"holm": "Holm", "fdr": "FDR", "fwe": "FWE"}.get(str(correction), str(correction))
+        name = correction_name(str(correction))
         a_txt = format_number(alpha, 3 if alpha * 100 % 1 else 2, leading_zero=False)
         if pcol == "p":
             lab_yes, lab_no = f"p < {a_txt} (uncorrected)", f"p ≥ {a_txt} (uncorrected)"

@@ -51,6 +51,8 @@ __all__ = [
     "estimate_symbol",
     "statistic_symbol",
     "corrected_p_symbol",
+    "correction_name",
+    "CORRECTION_CHOICES",
     "in_text",
     "estimate_decimals",
     "render",
@@ -84,6 +86,20 @@ _EFFECT_MARKUP = {
 }
 _STAT_MARKUP = {"t": "*t*", "z": "*z*", "F": "*F*", "chi2": "*χ*^{2}"}
 _CORRECTION_NAMES = {"holm": "Holm", "fdr": "FDR", "fwe": "FWE", "bonferroni": "Bonferroni"}
+#: Corrections a report can name as its primary one.
+CORRECTION_CHOICES = ("holm", "fdr", "bonferroni", "fwe", "none")
+_CORRECTION_LONG = {"holm": "Holm", "fdr": "Benjamini–Hochberg false discovery rate", "bonferroni": "Bonferroni",
+                    "fwe": "permutation family-wise error", "none": "no"}
+
+
+def correction_name(method: str, *, long: bool = False) -> str:
+    """Name of a correction as a reader knows it: ``holm -> Holm``; ``long`` spells FDR and FWE out."""
+    key = str(method)
+    if key == "permutation-fwe":
+        key = "fwe"
+    if long:
+        return _CORRECTION_LONG.get(key, key)
+    return _CORRECTION_NAMES.get(key, "uncorrected" if key == "none" else key)
 
 
 def is_missing(x: Any) -> bool:
@@ -328,7 +344,9 @@ _LATEX_ESCAPES = {
     "−": r"$-$", "–": "--", "—": "---", "∞": r"$\infty$", "×": r"$\times$", "≥": r"$\geq$", "≤": r"$\leq$",
     "<": r"$<$", ">": r"$>$", "Δ": r"$\Delta$",
 }
-_MD_SPECIAL = re.compile(r"([\\*_`|]|<(?=[A-Za-z/!?]))")
+_MD_SPECIAL = re.compile(r"([\\*`|]|<(?=[A-Za-z/!?])|(?<!\w)_|_(?!\w))")
+_SUPERSCRIPT_FROM, _SUPERSCRIPT_TO = "0123456789+-()nabcdefghij", "⁰¹²³⁴⁵⁶⁷⁸⁹⁺⁻⁽⁾ⁿᵃᵇᶜᵈᵉᶠᵍʰⁱʲ"
+_SUPERSCRIPTS = str.maketrans(_SUPERSCRIPT_FROM, _SUPERSCRIPT_TO)
 
 
 def latex_escape(text: str) -> str:
@@ -363,8 +381,17 @@ def render(markup: str, style: Style = "plain", *, numbers: bool = True) -> str:
             else:
                 out.append(text)
         elif style == "markdown":
-            esc = _MD_SPECIAL.sub(r"\\\1", text)
-            out.append({"i": f"*{esc}*", "sub": f"<sub>{esc}</sub>", "sup": f"<sup>{esc}</sup>"}.get(kind, esc))
+            # no HTML tags in Markdown: subscripts as "_z" (d_z, as APA manuscripts typed in plain text write
+            # them), superscripts as Unicode where one exists (τ²); an underscore inside a word is never escaped
+            # (CommonMark never reads it as emphasis)
+            if kind == "sub":
+                out.append("_" + text)
+            elif kind == "sup":
+                whole = all(ch in _SUPERSCRIPT_FROM for ch in text)
+                out.append(text.translate(_SUPERSCRIPTS) if whole else f"^{text}^")  # pandoc's superscript
+            else:
+                esc = _MD_SPECIAL.sub(r"\\\g<0>", text)
+                out.append(f"*{esc}*" if kind == "i" else esc)
         elif style == "html":
             if numbers:
                 text = _latex_number(text)

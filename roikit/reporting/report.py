@@ -24,10 +24,18 @@ from ..errors import CautionWarning, OutputExistsError, UsageError
 from ._common import (
     REQUIRED_RESULTS,
     REQUIRED_VALUES,
+    Labels,
+    family_size,
+    is_intercept,
+    number,
+    primary_correction,
+    read_sidecar_labels,
+    term_label,
     analysis_title,
     check_columns,
     col,
     has_values,
+    ids,
     ordered_unique,
     slug,
     split_analyses,
@@ -41,15 +49,30 @@ from .figures import (
     save_figure,
     stimulus_plot,
 )
-from .format import escape_markup, render
+from .format import correction_name, corrected_p_symbol, escape_markup, render
 from .html import ReportFigure, Section, figure_html, report_html
 from .tables import ReportTable, descriptives_table, results_tables
-from .text import SCOPE_STATEMENT, assumptions, cautions, methods_text, results_text, software_versions
+from .references import bibtex, reference_list
+from .text import (
+    SCOPE_STATEMENT,
+    _analysed_contrasts,
+    _ranges,
+    assumptions,
+    caution_details,
+    cautions,
+    methods_parts,
+    results_parts,
+    software_versions,
+)
 
 __all__ = ["write_report", "check_report_outputs", "REPORT_OUTPUTS"]
 
 #: What ``write_report`` writes inside ``out``.
-REPORT_OUTPUTS = ("tables", "figures", "methods.md", "report.html", "provenance.json")
+REPORT_OUTPUTS = ("tables", "figures", "methods.md", "methods.docx", "results.md", "results.docx", "references.bib",
+                  "index.tsv", "report.html", "provenance.json")
+
+#: Longest file name roikit writes (analysis number, design and kind keep names short and stable).
+MAX_NAME = 40
 
 _POINTS = ("Each point is one participant (horizontal jitter only); black markers and bars are the estimate and "
            "its 95% confidence interval; the dashed line marks zero.")
@@ -82,14 +105,31 @@ def _numeric_column(values: pd.DataFrame, participants: pd.DataFrame | None, nam
     return None
 
 
-def _figure_plan(values: pd.DataFrame, results: pd.DataFrame, participants: pd.DataFrame | None) -> list[dict]:
-    """What to draw for each analysis: dicts with name, make (callable -> Figure), caption, alt, width."""
+def _short(name: str, ext: str = ".png") -> str:
+    """Cut a file stem so that stem + extension stays within MAX_NAME characters."""
+    limit = MAX_NAME - len(ext)
+    return name if len(name) <= limit else name[:limit].rstrip("-_")
+
+
+def _term_slug(term: str) -> str:
+    """``group[T.younger]`` -> ``group-younger``; ``C(sex)[T.M]:age`` -> ``sex-m-x-age``."""
+    term = re.sub(r"\bC\(([^),]+)[^)]*\)", r"\1", str(term)).replace("[T.", "[").replace(":", "-x-")
+    return slug(term)
+
+
+def _figure_plan(values: pd.DataFrame, results: pd.DataFrame, participants: pd.DataFrame | None,
+                 correct: str | None = None, labels: Labels | None = None) -> list[dict]:
+    """What to draw for each analysis: dicts with name, analysis, make (callable -> Figure), caption, width."""
     plan: list[dict] = []
+    labels = labels or Labels()
     contrasts_all = ordered_unique(values["contrast"].map(text))
-    for key, rows in split_analyses(results):
+    for i, (key, rows) in enumerate(split_analyses(results), start=1):
         design = key["design"]
-        title = analysis_title(key)
-        base = slug(title)
+        title = analysis_title(key, labels=labels)
+        n_analysis = int(number(key["analysis"])) if np.isfinite(number(key.get("analysis"))) else i
+        prefix = f"a{n_analysis}-{slug(design)}"
+        primary = primary_correction(rows, correct)
+        start = len(plan)
         contrast = key.get("contrast") or None
         if contrast is not None and contrast not in contrasts_all:
             contrast = None
@@ -98,29 +138,29 @@ def _figure_plan(values: pd.DataFrame, results: pd.DataFrame, participants: pd.D
         if design in ("one-sample", "fixed-effects") and contrast:
             note = (" The fixed-effects estimate describes only these participants and does not generalise to the "
                     "population." if design == "fixed-effects" else "")
-            plan.append(dict(name=f"participants_{base}", caption=f"{escape_markup(title)}. {_POINTS}{flags}{note}",
+            plan.append(dict(name=f"{prefix}_participants", caption=f"{escape_markup(title)}. {_POINTS}{flags}{note}",
                              make=lambda c=contrast, d=design: participant_figure(values, contrast=c, design=d,
                                                                                   **opts)))
         elif design == "paired" and contrast and key.get("versus") in contrasts_all:
-            plan.append(dict(name=f"participants_{base}", caption=(
+            plan.append(dict(name=f"{prefix}_participants", caption=(
                 f"{escape_markup(title)}. Grey lines connect each participant's values; open points to the right are "
                 f"the within-participant differences with their mean and CI (diamond). {_POINTS}{flags}"),
                 make=lambda c=contrast, v=key["versus"]: participant_figure(values, contrast=c, versus=v, **opts)))
         elif design == "two-group" and contrast and key.get("group_column"):
             levels = [s for s in key.get("levels", "").split(",") if s] or None
-            plan.append(dict(name=f"participants_{base}", caption=(
+            plan.append(dict(name=f"{prefix}_participants", caption=(
                 f"{escape_markup(title)}. Groups differ in colour and marker (Okabe–Ito palette); the diamond is the "
                 f"difference between the group means with its CI. {_POINTS}{flags}"),
                 make=lambda c=contrast, g=key["group_column"], lv=levels: participant_figure(
                     values, contrast=c, group=g, levels=lv, participants=participants, **opts)))
         elif design == "precision-weighted" and contrast:
             if "variance" in values.columns:
-                plan.append(dict(name=f"precision_{base}", caption=(
+                plan.append(dict(name=f"{prefix}_precision", caption=(
                     f"{escape_markup(title)}. Point area is proportional to each participant's weight 1/(*v*_{{i}} + "
                     f"τ^{{2}}); the black marker is the precision-weighted estimate with its CI. {flags.strip()}"),
                     make=lambda c=contrast: participant_figure(values, contrast=c, plot=precision_plot, **opts)))
             else:
-                plan.append(dict(name=f"participants_{base}", caption=f"{escape_markup(title)}. {_POINTS}",
+                plan.append(dict(name=f"{prefix}_participants", caption=f"{escape_markup(title)}. {_POINTS}",
                                  make=lambda c=contrast: participant_figure(values, contrast=c, **opts)))
         elif design == "glm" and contrast:
             drawn = False
@@ -128,8 +168,8 @@ def _figure_plan(values: pd.DataFrame, results: pd.DataFrame, participants: pd.D
                 if _numeric_column(values, participants, term):
                     group = next((g for g in _formula_columns(key.get("formula", ""))
                                   if _numeric_column(values, participants, g) is False), None)
-                    plan.append(dict(name=f"covariate_{slug(term)}_{base}", caption=(
-                        f"{escape_markup(title)}: region values against {escape_markup(term)}. The line is the simple "
+                    plan.append(dict(name=_short(f"{prefix}_covariate-{_term_slug(term)}"), caption=(
+                        f"{escape_markup(title)}: region values against {escape_markup(labels.variable(term))}. The line is the simple "
                         "least-squares fit with its 95% confidence band; each panel's title quotes the model's "
                         "coefficient b, which is adjusted for the other terms."),
                         make=lambda t=term, c=contrast, g=group: participant_figure(
@@ -137,7 +177,7 @@ def _figure_plan(values: pd.DataFrame, results: pd.DataFrame, participants: pd.D
                             **opts)))
                     drawn = True
             if not drawn:
-                plan.append(dict(name=f"participants_{base}", caption=f"{escape_markup(title)}. {_POINTS}",
+                plan.append(dict(name=f"{prefix}_participants", caption=f"{escape_markup(title)}. {_POINTS}",
                                  make=lambda c=contrast: participant_figure(values, contrast=c, **opts)))
         elif design == "mixed":
             crossed = [c[3:] for c in rows.columns if c.startswith("sd_") and c not in ("sd_participant", "sd_residual")
@@ -150,15 +190,17 @@ def _figure_plan(values: pd.DataFrame, results: pd.DataFrame, participants: pd.D
             model_values = values[values["contrast"].map(text).isin(listed)] if listed else values
             if "contrast" in words or crossed:
                 stim = crossed[0] if crossed else "contrast"
-                plan.append(dict(name=f"stimuli_{base}", caption=(
-                    f"{escape_markup(title)}: per-{escape_markup(stim)} estimates (mean and 95% CI across participants, "
+                plan.append(dict(name=f"{prefix}_stimuli", caption=(
+                    f"{escape_markup(title)}: per-{escape_markup(labels.variable(stim))} estimates (mean and 95% CI across participants, "
                     "black) with every participant's value behind them; the dotted line is the mean of the "
                     "per-stimulus means, the dashed line zero."),
                     make=lambda s=stim, g=group, v=model_values: participant_figure(v, stimulus=s, group=g,
                                                                     participants=participants, plot=stimulus_plot,
                                                                     **opts)))
         # forest plots: one per term with an interval (intercepts of models left out)
-        for term in ordered_unique(rows["term"].map(text)):
+        all_terms = ordered_unique(rows["term"].map(text))
+        drawn_terms = [t for t in all_terms if not (is_intercept(t) and len(all_terms) > 1)]
+        for term in all_terms:
             part = rows[rows["term"].map(text) == term]
             if term.lower() in ("intercept", "(intercept)") and design in ("glm", "mixed", "precision-weighted") \
                     and rows["term"].nunique() > 1:
@@ -168,11 +210,22 @@ def _figure_plan(values: pd.DataFrame, results: pd.DataFrame, participants: pd.D
                 continue
             if len(part) < 2:
                 continue
-            plan.append(dict(name=f"forest_{slug(term)}_{base}", width="single", caption=(
-                f"{escape_markup(title)}, term {escape_markup(term)}: estimates with their 95% CIs across regions. "
-                "Filled squares survive the correction for the number of regions (family-wise or false discovery "
-                "rate, as named in the legend); open squares do not. The dashed line marks zero."),
-                make=lambda pt=part: forest_plot(pt).figure))
+            label = term_label(term, key, labels, participants, all_terms)
+            size = family_size(part)
+            if primary == "none":
+                marks = (f"Filled squares have *p* < .05 without correction (uncorrected; family of {size} "
+                         f"region{'s' if size != 1 else ''}); open squares do not.")
+            else:
+                marks = (f"Filled squares survive the {correction_name(primary, long=True)} correction across the "
+                         f"{size} region{'s' if size != 1 else ''} ({corrected_p_symbol(primary)} < .05); open "
+                         "squares do not.")
+            name = f"{prefix}_forest" if len(drawn_terms) == 1 else _short(f"{prefix}_forest-{_term_slug(term)}")
+            plan.append(dict(name=name, width="single", caption=(
+                f"{escape_markup(title)}, {escape_markup(label)}: estimates with their 95% CIs across regions. "
+                f"{marks} The dashed line marks zero."),
+                make=lambda pt=part, c=primary: forest_plot(pt, correction=c).figure))
+        for item in plan[start:]:
+            item["analysis"] = n_analysis
     return plan
 
 
@@ -187,6 +240,39 @@ def check_report_outputs(out: Path, overwrite: bool) -> None:
             "to replace them, or choose another --out directory")
 
 
+def _docx(path: Path, title: str, paragraphs: list[str], *, overwrite: bool, headings: dict | None = None) -> Path:
+    """A Word document of markup paragraphs (italics, subscripts and superscripts as real runs)."""
+    import io
+
+    import docx
+    from docx.shared import Pt
+
+    from .format import _latex_number, _parse
+
+    document = docx.Document()
+    style = document.styles["Normal"]
+    style.font.name = "Times New Roman"
+    style.font.size = Pt(12)
+    document.add_heading(title, level=1)
+    for para in paragraphs:
+        if headings and para in headings:
+            document.add_heading(headings[para], level=2)
+            continue
+        p = document.add_paragraph()
+        for content, kind in _parse(para):
+            run = p.add_run(_latex_number(content))  # a true minus sign before numbers
+            run.italic = kind == "i"
+            run.font.subscript = kind == "sub"
+            run.font.superscript = kind == "sup"
+    buf = io.BytesIO()
+    document.save(buf)
+    return atomic_write_bytes(path, buf.getvalue(), overwrite=overwrite)
+
+
+def _plain(markup: str) -> str:
+    return render(markup, "plain").replace("\t", " ").replace("\n", " ")
+
+
 def write_report(
     values: pd.DataFrame | str | os.PathLike,
     results: pd.DataFrame | str | os.PathLike,
@@ -199,8 +285,11 @@ def write_report(
     circular: Iterable[str] | None = None,
     figures: bool = True,
     figure_formats: tuple[str, ...] = ("pdf", "svg", "png"),
+    correct: str | None = None,
+    labels: dict | None = None,
 ) -> dict[str, Any]:
-    """Write tables, figures, ``methods.md``, ``report.html`` and ``provenance.json`` into ``out``.
+    """Write tables, figures, methods and results text (Markdown and Word), references, an index, a
+    self-contained ``report.html`` and ``provenance.json`` into ``out``.
 
     Parameters
     ----------
@@ -209,7 +298,8 @@ def write_report(
     results : DataFrame or path
         Group results table (one or several analyses).
     participants : DataFrame or path, optional
-        participants.tsv (groups and covariates for the figures and the descriptives).
+        participants.tsv (groups and covariates for the figures and the descriptives); given as a path, its
+        JSON sidecar (``LongName``, ``Levels``) names variables and levels.
     out : path
         Output directory (created).
     overwrite : bool
@@ -225,19 +315,32 @@ def write_report(
         Draw the figures (False for a quick text-and-tables report).
     figure_formats : tuple of str
         Files written per figure (PNG is always written: the HTML embeds it).
+    correct : str, optional
+        The primary correction to report (text, table notes, figure markers) instead of each analysis's own
+        (the first entry of its ``correction`` column); must be one the results carry, or ``none``.
+    labels : dict, optional
+        BIDS sidecar(s) describing participants.tsv / contrasts.tsv columns (``{"group": {"LongName": ...,
+        "Levels": {...}}}``); merged over the participants sidecar.
 
     Returns
     -------
     dict
-        ``tables`` (paths), ``figures`` (paths), ``methods``, ``html``, ``provenance`` (paths) and
-        ``cautions`` (list of ``{"kind", "text"}``).
+        ``tables`` (paths), ``figures`` (paths), ``methods``, ``results``, ``references``, ``index``, ``html``,
+        ``provenance`` (paths) and ``cautions`` (list of ``{"kind", "text", "participant"}``).
 
     Warns
     -----
     CautionWarning
-        One summary when any caution applies (the cautions are written in the report).
+        One warning listing the cautions, one short line each (also in the report).
+
+    Notes
+    -----
+    Output names are short and stable: ``a<analysis>-<design>.<ext>`` for tables and
+    ``a<analysis>-<design>_<kind>.<ext>`` for figures (never longer than 40 characters); ``index.tsv`` lists
+    every written file with its analysis, kind and caption.
     """
     out = Path(out)
+    side = read_sidecar_labels(participants) if isinstance(participants, (str, os.PathLike)) else {}
     values = _as_table(values, "values", REQUIRED_VALUES)
     results = _as_table(results, "results", REQUIRED_RESULTS)
     participants = _as_table(participants, "participants", ("participant_id",))
@@ -247,38 +350,50 @@ def write_report(
         check_columns(participants, ("participant_id",), "participants table")
         participants = participants.copy()
         participants["participant_id"] = participants["participant_id"].astype(str)
+    names = Labels(side, labels or {})
+    for _key, rows in split_analyses(results):  # an unusable --correct stops here, before any work
+        primary_correction(rows, correct, option="--correct" if correct else "correct")
     check_report_outputs(out, overwrite)
     out.mkdir(parents=True, exist_ok=True)
     extra = dict(provenance or {})
     values_prov = values.attrs.get("roikit") or extra.get("values") or {}
+    index: list[dict] = []
+
+    def listed(path: Path, analysis, kind: str, caption: str) -> Path:
+        index.append({"path": os.fspath(path.relative_to(out)), "analysis": analysis, "kind": kind,
+                      "caption": _plain(caption)})
+        return path
 
     # ---------------------------------------------------------------- tables
-    tables = results_tables(results)
+    tables = results_tables(results, correct=correct, labels=names, participants=participants)
     group_cols = [g for g in ordered_unique(text(v) for v in col(results, "group_column") if text(v))
                   if g in values.columns or (participants is not None and g in participants.columns)]
     desc = descriptives_table(values, participants=participants, group=group_cols[0] if group_cols else None,
-                              number=len(tables) + 1)
+                              number=len(tables) + 1, contrasts=_analysed_contrasts(results), labels=names)
     all_tables: list[ReportTable] = tables + [desc]
     table_paths: list[Path] = []
     import docx
 
     document = docx.Document()
     for t in all_tables:
-        table_paths += t.write(out / "tables", overwrite=overwrite)
+        analysis = t.name.split("-", 1)[0][1:] if t.name.startswith("a") and t.name[1:2].isdigit() else "n/a"
+        for path in t.write(out / "tables", overwrite=overwrite):
+            table_paths.append(listed(path, analysis, f"table ({path.suffix[1:]})", f"Table {t.number}. {t.title}"))
         t.to_docx(document=document)
         document.add_paragraph()
     import io
 
     buf = io.BytesIO()
     document.save(buf)
-    table_paths.append(atomic_write_bytes(out / "tables" / "all_tables.docx", buf.getvalue(), overwrite=overwrite))
+    path = atomic_write_bytes(out / "tables" / "all_tables.docx", buf.getvalue(), overwrite=overwrite)
+    table_paths.append(listed(path, "all", "tables (docx)", "Every table in one Word document"))
 
     # ---------------------------------------------------------------- figures
     figure_items: list[ReportFigure] = []
     figure_paths: list[Path] = []
     figure_errors: list[str] = []
     if figures:
-        for i, item in enumerate(_figure_plan(values, results, participants), start=1):
+        for item in _figure_plan(values, results, participants, correct=correct, labels=names):
             try:
                 fig = item["make"]()
             except UsageError as exc:  # a figure that cannot be drawn is reported, never silently skipped
@@ -287,34 +402,63 @@ def write_report(
             formats = tuple(dict.fromkeys(tuple(figure_formats) + ("png",)))
             paths = save_figure(fig, out / "figures" / item["name"], width=item.get("width"), formats=formats,
                                 overwrite=overwrite)
-            figure_paths += paths
+            number_ = len(figure_items) + 1
+            for p in paths:
+                figure_paths.append(listed(p, item.get("analysis", "n/a"), f"figure ({p.suffix[1:]})",
+                                           f"Figure {number_}. {item['caption']}"))
             png = next(p for p in paths if p.suffix == ".png").read_bytes()
             alt = re.sub(r"[*_{}^\\]", "", item["caption"]).split(". ")[0]
-            figure_items.append(ReportFigure(png=png, alt=alt, caption=item["caption"], number=len(figure_items) + 1,
+            figure_items.append(ReportFigure(png=png, alt=alt, caption=item["caption"], number=number_,
                                              name=item["name"], width_mm=float(fig.get_size_inches()[0] * 25.4)))
 
     # ---------------------------------------------------------------- text
     found = cautions(results, provenance=values_prov, circular=circular)
-    methods_md = methods_text(values, results, participants=participants, provenance=values_prov, style="markdown")
-    results_md = results_text(results, style="markdown")
-    assumption_lines = assumptions(results)
-    md = [f"# {title}", "", f"> {SCOPE_STATEMENT}", "", "## Methods", "", methods_md, "## Results", "", results_md]
+    details = caution_details(results)
+    method_paragraphs, cited = methods_parts(values, results, participants=participants, provenance=values_prov,
+                                             labels=names, correct=correct)
+    result_paragraphs = results_parts(results, labels=names, participants=participants, correct=correct)
+    references = reference_list(cited)
+    cited_all = list(dict.fromkeys(cited + [c["cites"] for c in found if c.get("cites")]))
+    md = ["# Methods", ""] + [render(p, "markdown") + "\n" for p in method_paragraphs]
+    md += ["## References", ""] + [render(r, "markdown") + "\n" for r in references]
+    methods_path = listed(atomic_write_bytes(out / "methods.md", "\n".join(md).encode("utf-8"), overwrite=overwrite),
+                          "all", "methods (Markdown)", "Methods section with its reference list")
+    docx_paragraphs = method_paragraphs + ["\x00refs"] + references
+    methods_docx = listed(_docx(out / "methods.docx", "Methods", docx_paragraphs, overwrite=overwrite,
+                                headings={"\x00refs": "References"}),
+                          "all", "methods (Word)", "Methods section with its reference list")
+    rmd = ["# Results", ""] + [render(p, "markdown") + "\n" for p in result_paragraphs]
     if found:
-        md += ["## Cautions", ""] + [f"- {render(c['text'], 'markdown')}" for c in found] + [""]
-    md += ["## Assumptions", ""] + [f"- {render(a, 'markdown')}" for a in assumption_lines] + [""]
-    if figure_errors:
-        md += ["## Figures not drawn", ""] + [f"- {e}" for e in figure_errors] + [""]
-    methods_path = atomic_write_bytes(out / "methods.md", "\n".join(md).encode("utf-8"), overwrite=overwrite)
+        rmd += ["## Cautions", ""] + [f"- {render(c['text'], 'markdown')}" for c in found] + [""]
+        if len(details):
+            rmd += ["| Participant | Problem | Region | Analyses |", "|:--|:--|:--|:--|"]
+            rmd += [f"| {r.participant_id} | {r.problem} | {r.region} | {_ranges(ids(r.analyses))} |"
+                    for r in details.itertuples()]
+            rmd += [""]
+    results_path = listed(atomic_write_bytes(out / "results.md", "\n".join(rmd).encode("utf-8"), overwrite=overwrite),
+                          "all", "results (Markdown)", "Results in APA style, with the cautions")
+    results_docx = listed(_docx(out / "results.docx", "Results", result_paragraphs, overwrite=overwrite),
+                          "all", "results (Word)", "Results in APA style")
+    bib_path = listed(atomic_write_bytes(out / "references.bib", bibtex(cited_all).encode("utf-8"), overwrite=overwrite),
+                      "all", "references (BibTeX)", "The works the methods text cites, roikit included")
+    assumption_lines = assumptions(results)
 
     # ---------------------------------------------------------------- html
     sections: list[Section] = []
     if found:
+        detail_html = ""
+        if len(details):
+            detail_html = ('<table class="apa caution-details"><thead><tr><th>Participant</th><th>Problem</th>'
+                           "<th>Region</th><th>Analyses</th></tr></thead><tbody>" + "".join(
+                               "<tr>" + "".join(f"<td>{_html.escape(str(v))}</td>" for v in
+                                                (*r[:3], _ranges(ids(r[3])))) + "</tr>"
+                               for r in details.itertuples(index=False)) + "</tbody></table>")
         sections.append(Section("cautions", "Cautions", ["<ul>" + "".join(
-            f'<li data-kind="{c["kind"]}">{render(c["text"], "html")}</li>' for c in found) + "</ul>"],
-            css_class="cautions"))
-    sections.append(Section("methods", "Methods", [methods_text(values, results, participants=participants,
-                                                                provenance=values_prov, style="html")]))
-    body = [results_text(results, style="html")]
+            f'<li data-kind="{c["kind"]}">{render(c["text"], "html")}</li>' for c in found) + "</ul>",
+            detail_html], css_class="cautions"))
+    sections.append(Section("methods", "Methods", ["\n".join(f"<p>{render(p, 'html')}</p>"
+                                                              for p in method_paragraphs)]))
+    body = ["\n".join(f"<p>{render(p, 'html')}</p>" for p in result_paragraphs)]
     body += [f'<div class="table-wrap">{t.to_html()}</div>' for t in tables]
     sections.append(Section("results", "Results", body))
     if figure_items:
@@ -323,6 +467,9 @@ def write_report(
     sections.append(Section("assumptions", "Assumptions and scope", [
         "<ul>" + "".join(f"<li>{render(a, 'html')}</li>" for a in assumption_lines) + "</ul>",
         f"<p>{_html.escape(SCOPE_STATEMENT)}</p>"]))
+    sections.append(Section("references", "References", [
+        "<ul class=\"references\">" + "".join(f"<li>{render(r, 'html')}</li>" for r in reference_list(cited_all))
+        + "</ul>"]))
     if figure_errors:
         sections.append(Section("not-drawn", "Figures not drawn", [
             "<ul>" + "".join(f"<li>{_html.escape(e)}</li>" for e in figure_errors) + "</ul>"]))
@@ -334,34 +481,46 @@ def write_report(
     sections.append(Section("provenance", "Provenance", [
         f'<dl class="provenance">{prov_items}<dt>software</dt><dd>'
         + _html.escape(", ".join(f"{k} {v}" for k, v in versions.items())) + "</dd></dl>",
-        "<p>Full details (inputs with SHA-256, versions, options, seeds) are in provenance.json.</p>"]))
+        "<p>Full details (inputs with SHA-256, versions, options, seeds) are in provenance.json; every file of "
+        "this report is listed in index.tsv.</p>"]))
     page = report_html(title=title, scope=SCOPE_STATEMENT, sections=sections,
                        footer=f"Written by roikit {__version__} on {created}.")
-    html_path = atomic_write_bytes(out / "report.html", page.encode("utf-8"), overwrite=overwrite)
+    html_path = listed(atomic_write_bytes(out / "report.html", page.encode("utf-8"), overwrite=overwrite),
+                       "all", "report (HTML)", "The whole report in one self-contained page")
 
-    # ---------------------------------------------------------------- provenance
+    # ---------------------------------------------------------------- provenance and index
     seeds = ordered_unique(text(v) for v in col(results, "seed") if text(v))
-    outputs = [p for p in table_paths + figure_paths + [methods_path, html_path]]
+    outputs = table_paths + figure_paths + [methods_path, methods_docx, results_path, results_docx, bib_path,
+                                            html_path]
     record = {
         "kind": "roikit report",
         "roikit_version": __version__,
         "created": created,
         "versions": versions,
         "inputs": extra.get("inputs", []),
-        "options": {"title": title, "circular": list(circular or []), "figures": figures,
+        "options": {"title": title, "circular": list(circular or []), "figures": figures, "correct": correct,
                     **extra.get("options", {})},
         "seeds": seeds,
-        "analyses": [dict(k) for k, _ in split_analyses(results)],
+        "analyses": [dict(k, primary_correction=primary_correction(r, correct)) for k, r in split_analyses(results)],
         "cautions": [c["kind"] for c in found],
         "figures_not_drawn": figure_errors,
         "values_provenance": values_prov,
         "outputs": [{"path": os.fspath(p.relative_to(out)), "sha256": sha256_file(p)} for p in outputs],
     }
     prov_path = write_json(out / "provenance.json", record, overwrite=overwrite)
+    listed(prov_path, "all", "provenance (JSON)", "Inputs with SHA-256, versions, options and seeds")
+    index.append({"path": "index.tsv", "analysis": "all", "kind": "index (TSV)", "caption": "This list"})
+    frame = pd.DataFrame(index, columns=["path", "analysis", "kind", "caption"])
+    index_path = atomic_write_bytes(out / "index.tsv", frame.to_csv(sep="\t", index=False).encode("utf-8"),
+                                    overwrite=overwrite)
+    long_names = [p for p in frame["path"] if len(Path(p).name) > MAX_NAME]
+    if long_names:  # a safety net: names are built short, so this means a bug
+        raise RuntimeError(f"roikit wrote file names longer than {MAX_NAME} characters: {long_names}")
     if found:
-        kinds = ordered_unique(c["kind"] for c in found)
+        lines = [render(c["text"], "plain") for c in found]
         warnings.warn(CautionWarning(
-            f"the report carries {len(found)} caution(s) ({', '.join(kinds)}); read them in {html_path}"),
-            stacklevel=2)
-    return {"tables": table_paths, "figures": figure_paths, "methods": methods_path, "html": html_path,
-            "provenance": prov_path, "cautions": found}
+            f"the report carries {len(found)} caution(s) (details in {html_path}):\n" + "\n".join(
+                "  " + line for line in lines)), stacklevel=2)
+    return {"tables": table_paths, "figures": figure_paths, "methods": methods_path, "methods_docx": methods_docx,
+            "results": results_path, "results_docx": results_docx, "references": bib_path, "index": index_path,
+            "html": html_path, "provenance": prov_path, "cautions": found}

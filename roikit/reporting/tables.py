@@ -26,6 +26,11 @@ import pandas as pd
 from .._tables import atomic_write_bytes, check_output
 from ..errors import UsageError
 from ._common import (
+    Labels,
+    family_size,
+    is_intercept,
+    primary_correction,
+    term_label,
     REQUIRED_RESULTS,
     REQUIRED_VALUES,
     analysis_title,
@@ -42,6 +47,7 @@ from ._common import (
     text,
 )
 from .format import (
+    correction_name,
     BOUNDED_EFFECTS,
     MISSING,
     corrected_p_symbol,
@@ -362,6 +368,7 @@ def cell_formatters() -> dict[str, Any]:
         "p_holm": lambda r: format_p(r.get("p_holm")),
         "p_fdr": lambda r: format_p(r.get("p_fdr")),
         "p_fwe": lambda r: format_p(r.get("p_fwe")),
+        "p_bonferroni": lambda r: format_p(r.get("p_bonferroni")),
         "effect_size": lambda r: format_number(r.get("effect_size"), leading_zero=not bounded(r)),
         "effect_ci": lambda r: format_ci(r.get("effect_size_ci_low"), r.get("effect_size_ci_high"),
                                          leading_zero=not bounded(r)),
@@ -388,29 +395,36 @@ def _flags(row: dict) -> list[tuple[str, list[str]]]:
     return out
 
 
-def _family_sentence(rows: pd.DataFrame, corrected: list[str]) -> str | None:
-    if not corrected:
-        sizes = ordered_unique(col(rows, "family_size"))
-        size = int(number(sizes[0])) if sizes else rows["region"].nunique()
-        if size > 1:
-            return (f"*p* values are not corrected for multiple comparisons across the {size} regions tested "
-                    f"(uncorrected family).")
-        return None
-    sizes = [int(number(s)) for s in ordered_unique(col(rows, "family_size")) if np.isfinite(number(s))]
-    size_text = ", ".join(str(s) for s in sizes) if sizes else str(rows["region"].nunique())
-    names = []
-    for method in corrected:
-        desc = CORRECTION_TEXT.get(method, method)
+def _family_sentence(rows: pd.DataFrame, corrected: list[str], primary: str = "holm") -> str | None:
+    """One sentence: the primary correction (or "uncorrected") and the family size, then any other adjusted p."""
+    sizes = ordered_unique(family_size(rows[rows["term"].map(text) == t]) for t in ordered_unique(rows["term"].map(text)))
+    size_text = " or ".join(str(s) for s in sizes) if sizes else str(rows["region"].nunique())
+    noun = "region" if sizes == [1] else "regions"
+    names = {"holm": "Holm (1979) step-down family-wise error correction",
+             "fdr": "Benjamini–Hochberg (1995) false discovery rate adjustment",
+             "bonferroni": "Bonferroni correction",
+             "fwe": "maximum-statistic permutation family-wise error correction (Westfall & Young, 1993)"}
+
+    def describe(method):
+        desc = names.get(method, escape_markup(method))
         if method == "fwe":
             perms = ordered_unique(col(rows, "permutations"))
-            seeds = ordered_unique(col(rows, "seed"))
+            seeds = [text(v) for v in ordered_unique(col(rows, "seed")) if text(v) and len(text(v)) <= 10]
             if perms:
                 desc += f", {int(number(perms[0])):,} permutations"
             if seeds:
-                desc += f", seed {text(seeds[0])}"
-        names.append(f"{corrected_p_symbol(method)}: {desc}")
-    return ("Adjusted *p* values across the regions of this family (family size = " + size_text + "): "
-            + "; ".join(names) + ".")
+                desc += f", seed {seeds[0]}"
+        return desc
+
+    if primary == "none":
+        s = f"*p* values are uncorrected for multiple comparisons (family of {size_text} {noun} per term)."
+    else:
+        s = (f"{corrected_p_symbol(primary)} = *p* after {describe(primary)} across the {size_text} {noun} of each "
+             "term (the primary correction).")
+    others = [m for m in corrected if m != primary]
+    if others:
+        s += " Also given: " + "; ".join(f"{corrected_p_symbol(m)}, {describe(m)}" for m in others) + "."
+    return s
 
 
 def _estimate_sentence(key: dict, rows: pd.DataFrame) -> str:
@@ -432,7 +446,8 @@ def _estimate_sentence(key: dict, rows: pd.DataFrame) -> str:
     return "*b* = fixed-effect coefficient (in the units of the region values)."
 
 
-def results_tables(results: pd.DataFrame, *, start: int = 1) -> list[ReportTable]:
+def results_tables(results: pd.DataFrame, *, start: int = 1, correct: str | None = None,
+                   labels: Labels | dict | None = None, participants: pd.DataFrame | None = None) -> list[ReportTable]:
     """Format a group results table as APA tables: one per analysis and kind of test (*t*/*z* or *F*).
 
     Parameters
@@ -442,6 +457,12 @@ def results_tables(results: pd.DataFrame, *, start: int = 1) -> list[ReportTable
         ``df1``, ``tau2``, ``i2``, ``outlier_ids`` are used when present).
     start : int
         Number of the first table.
+    correct : str, optional
+        Primary correction instead of each analysis's own (the first entry of ``correction``).
+    labels : dict or Labels, optional
+        BIDS sidecar(s) naming variables and levels (terms such as ``group (younger vs older)``).
+    participants : DataFrame, optional
+        participants.tsv (tells the reference level of a factor).
 
     Returns
     -------
@@ -452,16 +473,21 @@ def results_tables(results: pd.DataFrame, *, start: int = 1) -> list[ReportTable
         superscript letters explained in the note.
     """
     check_columns(results, REQUIRED_RESULTS, "results table")
+    labels = labels if isinstance(labels, Labels) else Labels(labels or {})
     tables: list[ReportTable] = []
     number_ = start
-    for key, rows in split_analyses(results):
+    for i, (key, rows) in enumerate(split_analyses(results), start=1):
+        # the analysis number of a study run, else counted from the first table's number
+        analysis = int(number(key["analysis"])) if np.isfinite(number(key.get("analysis"))) else start - 1 + i
+        primary = primary_correction(rows, correct)
+        extra = dict(primary=primary, labels=labels, participants=participants, analysis=analysis)
         stat_types = ordered_unique(rows["statistic_type"].map(lambda v: text(v, "t")))
         for stat in stat_types:
             part = rows[rows["statistic_type"].map(lambda v: text(v, "t")) == stat]
             if stat == "F" and len(stat_types) > 1:
-                tables.append(_build(key, part, stat, number_, suffix="omnibus"))
+                tables.append(_build(key, part, stat, number_, suffix="omnibus", **extra))
             else:
-                tables.append(_build(key, part, stat, number_))
+                tables.append(_build(key, part, stat, number_, **extra))
             number_ += 1
     return tables
 
@@ -476,7 +502,9 @@ def results_table(results: pd.DataFrame, **kwargs) -> ReportTable:
     return tables[0]
 
 
-def _build(key: dict, rows: pd.DataFrame, stat: str, number_: int, suffix: str = "") -> ReportTable:
+def _build(key: dict, rows: pd.DataFrame, stat: str, number_: int, suffix: str = "", *, primary: str = "holm",
+           labels: Labels | None = None, participants: pd.DataFrame | None = None,
+           analysis: int | None = None) -> ReportTable:
     records = [dict(r) for _, r in rows.iterrows()]
     terms = ordered_unique(rows["term"].map(text))
     # term-major order, regions in their order of appearance
@@ -499,7 +527,8 @@ def _build(key: dict, rows: pd.DataFrame, stat: str, number_: int, suffix: str =
         columns.append(Column("df", "*df*_{2}"))
     columns.append(Column("statistic", statistic_symbol(stat)))
     columns.append(Column("p", "*p*"))
-    corrected = [m for m in ("holm", "fdr", "fwe") if has_values(rows, f"p_{m}")]
+    corrected = [m for m in ("holm", "fdr", "fwe", "bonferroni") if has_values(rows, f"p_{m}")]
+    corrected = ([primary] if primary in corrected else []) + [m for m in corrected if m != primary]
     for m in corrected:
         columns.append(Column(f"p_{m}", corrected_p_symbol(m)))
     effect_types = ordered_unique(col(rows, "effect_size_type"))
@@ -527,10 +556,12 @@ def _build(key: dict, rows: pd.DataFrame, stat: str, number_: int, suffix: str =
             if detail not in flagged.setdefault(kind, []):
                 flagged[kind].append(detail)
         cell = {"region": escape_markup(region) + ("^{" + ",".join(marks) + "}" if marks else ""),
-                "term": escape_markup(text(r["term"]))}
+                "term": escape_markup(term_label(text(r["term"]), key, labels, participants, terms))}
         for c in columns:
             if c.key in fmt:
                 cell[c.key] = fmt[c.key](r)
+        if is_intercept(r["term"]) and len(terms) > 1:  # no effect size for an intercept
+            cell["effect_size"] = cell["effect_ci"] = MISSING
         cells.append(cell)
         row_ids.append({"design": design, "region": region, "term": text(r["term"]),
                         "contrast": text(r.get("contrast")), "statistic-type": stat})
@@ -545,7 +576,7 @@ def _build(key: dict, rows: pd.DataFrame, stat: str, number_: int, suffix: str =
     if methods:
         note.append("Reference distribution: " + "; ".join(DF_METHOD_TEXT.get(text(m), escape_markup(text(m)))
                                                           for m in methods) + ".")
-    family = _family_sentence(rows, corrected)
+    family = _family_sentence(rows, corrected, primary)
     if family:
         note.append(family)
     for etype in effect_types:
@@ -560,11 +591,11 @@ def _build(key: dict, rows: pd.DataFrame, stat: str, number_: int, suffix: str =
     for kind, letter in letters.items():
         note.append(f"^{{{letter}}} {_FLAG_TEXT[kind]}: " + "; ".join(flagged[kind]) + ".")
 
-    title = analysis_title(key)
+    title = analysis_title(key, labels=labels)
     if suffix:
         title += f" ({suffix} tests)"
     title_markup = escape_markup(title[0].upper() + title[1:])
-    name = "results_" + slug(title)
+    name = f"a{analysis if analysis is not None else number_}-{slug(design)}" + (f"-{suffix}" if suffix else "")
     return ReportTable(name=name, title=title_markup, columns=columns, rows=cells, row_ids=row_ids, note=note,
                        number=number_)
 
@@ -648,35 +679,71 @@ def descriptives_table(
     group: str | None = None,
     value: str = "value",
     number: int | None = None,
+    contrasts: Sequence[str] | None = None,
+    labels: Labels | dict | None = None,
+    max_columns: int = 8,
 ) -> ReportTable:
-    """The descriptives (see :func:`descriptives`) as a formatted :class:`ReportTable`."""
+    """The descriptives (see :func:`descriptives`) in a wide layout: one row per region, one column per contrast
+    (and group), each cell *M* (*SD*).
+
+    Parameters
+    ----------
+    contrasts : sequence of str, optional
+        Only these contrasts (the analysed ones), in this order.
+    labels : dict or Labels, optional
+        BIDS sidecar(s) naming the group and contrast levels.
+    max_columns : int
+        Groups get their own columns only while contrasts x groups stays within this many columns.
+    """
+    labels = labels if isinstance(labels, Labels) else Labels(labels or {})
+    if contrasts:
+        keep = [c for c in contrasts if c in set(data["contrast"].map(text))]
+        data = data[data["contrast"].map(text).isin(keep)]
+    n_contrasts = data["contrast"].map(text).nunique()
+    if group is not None:
+        levels = group_of(data, participants, group)
+        n_groups = levels.nunique() if levels is not None else 1
+        if n_contrasts * n_groups > max_columns:
+            group = None
     desc = descriptives(data, participants=participants, group=group, value=value)
+    order = list(contrasts) if contrasts else ordered_unique(desc["contrast"])
+    desc["contrast"] = pd.Categorical(desc["contrast"], categories=[c for c in order if c in set(desc["contrast"])])
+    for k in ("group", "session_id"):
+        if k in desc.columns:
+            desc[k] = pd.Categorical(desc[k], categories=ordered_unique(desc[k]))
+    keys = ["contrast"] + (["group"] if "group" in desc.columns else []) + (
+        ["session_id"] if "session_id" in desc.columns else [])
+    column_keys = ordered_unique(tuple(r[k] for k in keys) for _, r in desc.sort_values(keys, kind="stable").iterrows())
+    ns = ordered_unique(int(v) for v in desc["n"])
     columns = [Column("region", "Region", "l")]
-    if "session_id" in desc.columns:
-        columns.append(Column("session_id", "Session", "l"))
-    columns.append(Column("contrast", "Contrast", "l"))
-    if "group" in desc.columns:
-        columns.append(Column("group", escape_markup(str(group)).capitalize(), "l"))
-    columns += [Column("n", "*n*")]
-    if desc["n_missing"].sum() > 0:
-        columns.append(Column("n_missing", "Missing"))
-    columns += [Column("mean", "*M*"), Column("sd", "*SD*"), Column("se", "*SE*")]
+    for ck in column_keys:
+        head = labels.level("contrast", ck[0])
+        if "group" in desc.columns:
+            head += f", {labels.level(group, ck[1])}"
+        if "session_id" in desc.columns:
+            head += f", {ck[-1]}"
+        columns.append(Column("|".join(map(str, ck)), escape_markup(head), "c"))
     if "coverage" in desc.columns:
         columns.append(Column("coverage", "Coverage"))
     rows, row_ids = [], []
-    for _, r in desc.iterrows():
-        cell = {c: escape_markup(text(r[c])) for c in ("region", "session_id", "contrast", "group") if c in desc}
-        cell.update({"n": format_df(r["n"]), "n_missing": format_df(r["n_missing"]), "mean": format_number(r["mean"]),
-                     "sd": format_number(r["sd"]), "se": format_number(r["se"])})
+    for region, part in desc.groupby("region", sort=False, observed=True):
+        cell = {"region": escape_markup(text(region))}
+        for _, r in part.iterrows():
+            ck = "|".join(str(r[k]) for k in keys)
+            m = f"{format_number(r['mean'])} ({format_number(r['sd'])})"
+            cell[ck] = m if len(ns) == 1 else f"{m}, {format_df(r['n'])}"
         if "coverage" in desc.columns:
-            cell["coverage"] = format_percent(r["coverage"])
+            cell["coverage"] = format_percent(part["coverage"].mean())
         rows.append(cell)
-        row_ids.append({k: text(r[k]) for k in ("region", "session_id", "contrast", "group") if k in desc})
-    note = ["*n* = participants with a value; *M* = mean; *SD* = standard deviation (*n* − 1 denominator); "
-            "*SE* = *SD*/√*n*."]
+        row_ids.append({"region": text(region)})
+    note = [("Cells are *M* (*SD*); " if len(ns) == 1 else "Cells are *M* (*SD*), *n*; ")
+            + "*M* = mean; *SD* = standard deviation (*n* − 1 denominator)"
+            + (f"; *n* = {ns[0]} participants with a value per cell." if len(ns) == 1 else "; *n* = participants "
+               "with a value.")]
+    note.append("Only the contrasts analysed are shown." if contrasts else "All contrasts are shown.")
     if "coverage" in desc.columns:
-        note.append("Coverage = mean percentage of the region's voxels with valid data.")
-    if "n_missing" in [c.key for c in columns]:
-        note.append("Missing = participants without a value (no valid voxel or no map).")
+        note.append("Coverage = mean percentage of the region's voxels with valid data, across the cells.")
+    if int(desc["n_missing"].sum()) > 0:
+        note.append(f"{int(desc['n_missing'].sum())} values were missing (no valid voxel or no map).")
     return ReportTable(name="descriptives", title="Region values by region and contrast", columns=columns,
                        rows=rows, row_ids=row_ids, note=note, number=number)

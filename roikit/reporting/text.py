@@ -20,28 +20,49 @@ import numpy as np
 import pandas as pd
 
 from ._common import (
-    DESIGN_NAMES,
     REQUIRED_RESULTS,
     REQUIRED_VALUES,
+    Labels,
     analysis_title,
     check_columns,
     col,
+    compress_labels,
+    count,
+    family_size,
     flag,
     has_values,
     ids,
+    is_intercept,
+    join_words,
     number,
     ordered_unique,
+    primary_correction,
     split_analyses,
+    term_label,
     text,
 )
-from .format import Style, escape_markup, format_df, format_number, in_text, is_missing, render
-from .tables import CORRECTION_TEXT, DF_METHOD_TEXT
+from .format import (
+    Style,
+    corrected_p_symbol,
+    correction_name,
+    escape_markup,
+    format_df,
+    format_number,
+    in_text,
+    is_missing,
+    render,
+)
+from .references import Citations, reference_list
 
 __all__ = [
     "SCOPE_STATEMENT",
     "methods_text",
+    "methods_parts",
     "results_text",
+    "results_parts",
     "cautions",
+    "caution_lines",
+    "caution_details",
     "assumptions",
     "software_versions",
     "circular_regions",
@@ -102,18 +123,126 @@ def circular_regions(provenance: dict | None, extra: Iterable[str] | None = None
     return ordered_unique(n for n in names if n)
 
 
+# --------------------------------------------------------------------------------------------- helpers
+_NBSP = "\u00a0"
+
+
+def _nbsp(markup: str) -> str:
+    """Non-breaking spaces around ``=``, ``<`` and ``>`` (a statistic never splits across lines)."""
+    for op in ("=", "<", ">", "≥", "≤"):
+        markup = markup.replace(f" {op} ", f"{_NBSP}{op}{_NBSP}")
+    return markup
+
+
+def _analysis_number(rows: pd.DataFrame, fallback: int) -> int:
+    a = [number(v) for v in col(rows, "analysis")]
+    a = [v for v in a if np.isfinite(v)]
+    return int(a[0]) if a else fallback
+
+
+def _numbered(results: pd.DataFrame) -> list[tuple[int, dict, pd.DataFrame]]:
+    return [(_analysis_number(rows, i), key, rows) for i, (key, rows) in enumerate(split_analyses(results), start=1)]
+
+
+def _ranges(numbers: Sequence[int]) -> str:
+    """``[1, 2, 3, 5] -> "1–3 and 5"``."""
+    numbers = sorted(set(int(n) for n in numbers))
+    parts, i = [], 0
+    while i < len(numbers):
+        j = i
+        while j + 1 < len(numbers) and numbers[j + 1] == numbers[j] + 1:
+            j += 1
+        parts.append(f"{numbers[i]}–{numbers[j]}" if j - i >= 2 else ", ".join(map(str, numbers[i:j + 1])))
+        i = j + 1
+    return join_words(", ".join(parts).split(", "))
+
+
+def _analyses_phrase(numbers: Sequence[int], total: int) -> str:
+    if len(set(numbers)) == total and total > 1:
+        return "In every analysis"
+    if len(set(numbers)) == 1:
+        return f"In analysis {numbers[0]}"
+    return f"In analyses {_ranges(numbers)}"
+
+
+def _cap(s: str) -> str:
+    return s[:1].upper() + s[1:] if s else s
+
+
+def _contrast_label(name: str, labels: Labels) -> str:
+    return escape_markup(labels.level("contrast", name))
+
+
+def _analysed_contrasts(results: pd.DataFrame) -> list[str]:
+    out: list[str] = []
+    for a, b in zip(col(results, "contrast"), col(results, "versus")):  # each analysis's contrast, then versus
+        out += [c.strip() for v in (a, b) for c in text(v).split(",") if c.strip()]
+    return ordered_unique(out)
+
+
+def _design_short(design: str) -> str:
+    return {"one-sample": "one-sample t-tests", "paired": "paired t-tests", "two-group": "two-group comparison",
+            "glm": "general linear model", "precision-weighted": "precision-weighted model",
+            "mixed": "mixed-effects model", "fixed-effects": "fixed-effects combination",
+            "repeated-measures": "repeated-measures ANOVA",
+            "region-difference": "region difference"}.get(design, design)
+
+
 # --------------------------------------------------------------------------------------------- cautions
+def _who_regions(regions: list[str]) -> str:
+    shown = f" ({join_words(regions)})" if len(regions) <= 2 else ""
+    return count(len(regions), "region") + shown
+
+
+def caution_details(results: pd.DataFrame) -> pd.DataFrame:
+    """Every participant-level flag of the results, one row per participant x problem x region.
+
+    Returns
+    -------
+    DataFrame
+        ``participant_id``, ``problem`` (``robust outlier``, ``low coverage``, ``missing value``), ``region``,
+        ``analyses`` (comma-separated analysis numbers).
+    """
+    check_columns(results, REQUIRED_RESULTS, "results table")
+    found: dict[tuple[str, str, str], list[int]] = {}
+    for number_, _key, rows in _numbered(results):
+        for problem, column in (("robust outlier", "outlier_ids"), ("low coverage", "low_coverage_ids"),
+                                ("missing value", "excluded_ids")):
+            for region, cell in zip(rows["region"].map(text), col(rows, column)):
+                for who in ids(cell):
+                    where = found.setdefault((who, problem, region), [])
+                    if number_ not in where:
+                        where.append(number_)
+    rows_out = [{"participant_id": who, "problem": problem, "region": region,
+                 "analyses": ",".join(map(str, where))} for (who, problem, region), where in found.items()]
+    out = pd.DataFrame(rows_out, columns=["participant_id", "problem", "region", "analyses"])
+    order = {"robust outlier": 0, "low coverage": 1, "missing value": 2}
+    if len(out):
+        out = out.assign(_o=out["problem"].map(order)).sort_values(["participant_id", "_o"], kind="stable")
+        out = out.drop(columns="_o").reset_index(drop=True)
+    return out
+
+
+_PROBLEM_TEXT = {
+    "robust outlier": ("robust outlier (modified *z* > 3.5)", "kept in the tests; check for artefacts"),
+    "low coverage": ("fewer than half of the region's voxels valid", "kept in the tests"),
+    "missing value": ("missing value", "left out of those regions' tests only"),
+}
+
+
 def cautions(
     results: pd.DataFrame,
     *,
     provenance: dict | None = None,
     circular: Iterable[str] | None = None,
 ) -> list[dict[str, str]]:
-    """Cautions that apply to these results, each ``{"kind", "text"}`` (text in markup).
+    """Cautions that apply to these results, each one short line: ``{"kind", "text"}`` (text in markup).
 
-    Kinds: ``circular`` (region defined from the same data), ``uncorrected`` (a family of several regions
-    without adjusted p), ``fixed-effects`` (no population inference), ``low-coverage``, ``non-convergence``,
-    ``boundary``, ``outliers``, ``excluded`` (missing values).
+    One line per problem and participant (``sub-25: robust outlier (modified z > 3.5) in 6 regions, 5 analyses;
+    kept in the tests``), one per analysis for model problems; :func:`caution_details` lists every region.
+    Kinds: ``circular``, ``uncorrected`` (a family of several regions reported without correction),
+    ``fixed-effects`` (no population inference), ``non-convergence``, ``boundary``, ``outliers``,
+    ``low-coverage``, ``excluded`` (missing values). Each dict also has ``participant`` (or ``""``).
     """
     check_columns(results, REQUIRED_RESULTS, "results table")
     out: list[dict[str, str]] = []
@@ -121,72 +250,68 @@ def cautions(
     tested = set(results["region"].map(text))
     circ_tested = [c for c in circ if c in tested] or circ
     if circ_tested:
-        out.append({"kind": "circular", "text": (
-            f"Circular region definition: {escape_markup(', '.join(circ_tested))} "
-            f"{'was' if len(circ_tested) == 1 else 'were'} defined from the same data that are tested here. "
-            "Selecting a region because of an effect and then testing that effect in the same data inflates the "
-            "estimate and the false-positive rate (Kriegeskorte et al., 2009); read these results as descriptive "
-            "or confirm them in independent data.")})
-    pooled: dict[str, dict[str, list[str]]] = {}
-    analyses = split_analyses(results)
-    for key, rows in analyses:
-        title = escape_markup(analysis_title(key))
+        out.append({"kind": "circular", "participant": "", "text": (
+            f"Circular region definition: {escape_markup(join_words(circ_tested))} "
+            f"{'was' if len(circ_tested) == 1 else 'were'} defined from the same data that are tested; read "
+            f"{'its' if len(circ_tested) == 1 else 'their'} results as descriptive or confirm them in independent "
+            "data (Kriegeskorte et al., 2009)."), "cites": "kriegeskorte2009"})
+    numbered = _numbered(results)
+    for number_, key, rows in numbered:
+        name = f"Analysis {number_} ({_design_short(key.get('design', ''))})"
+        uncorrected = []
         for term in ordered_unique(rows["term"].map(text)):
             part = rows[rows["term"].map(text) == term]
-            size = ordered_unique(col(part, "family_size"))
-            family = int(number(size[0])) if size and np.isfinite(number(size[0])) else part["region"].nunique()
-            corrected = any(has_values(part, f"p_{m}") for m in ("holm", "fdr", "fwe", "bonferroni"))
-            methods = [m for cell in col(part, "correction") for m in ids(cell) if m not in ("none",)]
-            if family > 1 and not corrected and not methods:
-                out.append({"kind": "uncorrected", "text": (
-                    f"Uncorrected family ({title}, term {escape_markup(term)}): {family} regions were tested "
-                    "without correction for multiple comparisons, so at the 5% level about "
-                    f"{format_number(0.05 * family, 2)} false positives are expected when no region has an "
-                    "effect; report the adjusted *p* values or justify each region a priori.")})
+            if primary_correction(part) == "none" and family_size(part) > 1:
+                uncorrected.append(family_size(part))
+        if uncorrected:
+            k = max(uncorrected)
+            out.append({"kind": "uncorrected", "participant": "", "text": (
+                f"{name}: {count(k, 'region')} reported without correction for multiple comparisons; about "
+                f"{format_number(0.05 * k, 2)} false positives are expected at α = .05 when no region has an "
+                "effect.")})
         if any(flag(v) is False for v in col(rows, "population_inference")) or key.get("design") == "fixed-effects":
             n = ordered_unique(col(rows, "n"))
-            n_text = f"{format_df(n[0])} " if len(n) == 1 else ""
-            out.append({"kind": "fixed-effects", "text": (
-                f"Fixed-effects result ({title}): it describes only these {n_text}participants and does not "
-                "generalise to the population they were drawn from, because it ignores the variability between "
-                "participants. Use it for teaching or for single-group description, not for claims about people "
-                "in general; population inference needs a random-effects design (e.g. one-sample).")})
-        for kind, column in (("low-coverage", "low_coverage_ids"), ("outliers", "outlier_ids"),
-                             ("excluded", "excluded_ids")):
-            for region in ordered_unique(rows["region"].map(text)):
-                who = ordered_unique(i for v in col(rows[rows["region"].map(text) == region], column) for i in ids(v))
-                if who:
-                    item = f"{escape_markup(region)} ({escape_markup(', '.join(who))})"
-                    pooled.setdefault(kind, {}).setdefault(item, []).append(title)
+            n_text = f"these {format_df(n[0])} participants" if len(n) == 1 else "these participants"
+            out.append({"kind": "fixed-effects", "participant": "", "text": (
+                f"{name}: fixed effects describe {n_text} only; no inference about the population.")})
         bad = ordered_unique(r for r, c in zip(rows["region"].map(text), col(rows, "converged")) if flag(c) is False)
         if bad:
-            out.append({"kind": "non-convergence", "text": (
-                f"Non-convergence ({title}): the fit did not converge for {escape_markup(', '.join(bad))}; its "
-                "estimates and standard errors are unreliable. Simplify the random-effects structure or check the "
-                "data.")})
+            out.append({"kind": "non-convergence", "participant": "", "text": (
+                f"{name}: the fit did not converge in {escape_markup(_who_regions(bad))}; its estimates are "
+                "unreliable.")})
         edge = ordered_unique(r for r, c in zip(rows["region"].map(text), col(rows, "boundary")) if flag(c) is True)
         if edge:
-            out.append({"kind": "boundary", "text": (
-                f"Boundary fit ({title}): a variance component was estimated at zero for "
-                f"{escape_markup(', '.join(edge))} (a singular fit). The model is then equivalent to a simpler one; "
-                "the between-participant variability may be too small to estimate with these data.")})
-    for kind in ("low-coverage", "outliers", "excluded"):
-        if kind not in pooled:
-            continue
-        items = "; ".join(item + ("" if len(where) == len(analyses) else f" [{', '.join(where)}]")
-                          for item, where in pooled[kind].items())
-        if kind == "low-coverage":
-            sentence = (f"Low coverage: participants with valid data in fewer than half of the region's voxels: {items}. "
-                        "Their values rest on a part of the region; they are kept in the tests and marked in the "
-                        "figures.")
-        elif kind == "outliers":
-            sentence = (f"Outliers: values with modified *z* > 3.5 (Iglewicz & Hoaglin, 1993): {items}. They are kept "
-                        "in the tests and marked in the figures; check them for artefacts before interpreting.")
-        else:
-            sentence = (f"Missing values: participants left out of a region's tests because their value is missing: "
-                        f"{items}.")
-        out.append({"kind": kind, "text": sentence})
+            terms = ordered_unique(t for v in col(rows, "boundary_terms") for t in ids(v))
+            what = (f"variance of {escape_markup(join_words(terms))}" if terms else "a variance component")
+            out.append({"kind": "boundary", "participant": "", "text": (
+                f"{name}: {what} estimated at zero in {escape_markup(_who_regions(edge))}; a singular fit, so the "
+                "model reduces to a simpler one there.")})
+    details = caution_details(results)
+    kinds = {"robust outlier": "outliers", "low coverage": "low-coverage", "missing value": "excluded"}
+    for (who, problem), part in details.groupby(["participant_id", "problem"], sort=False):
+        regions = ordered_unique(part["region"])
+        analyses = ordered_unique(a for cell in part["analyses"] for a in ids(cell))
+        what, then = _PROBLEM_TEXT[problem]
+        out.append({"kind": kinds[problem], "participant": who, "text": (
+            f"{escape_markup(who)}: {what} in {escape_markup(_who_regions(regions))}, "
+            f"{count(len(analyses), 'analysis', 'analyses')}; {then}.")})
     return out
+
+
+def caution_lines(
+    results: pd.DataFrame,
+    *,
+    provenance: dict | None = None,
+    circular: Iterable[str] | None = None,
+    style: Style = "plain",
+) -> list[str]:
+    """The cautions as short lines, ready for stderr (``style="plain"``) or a report (any style).
+
+    This is the aggregation the report and the command line share: one line per problem and participant
+    (``sub-25: robust outlier (modified z > 3.5) in 6 regions, 5 analyses; kept in the tests; check for
+    artefacts.``) and one per analysis for model problems; details per region are in :func:`caution_details`.
+    """
+    return [render(c["text"], style) for c in cautions(results, provenance=provenance, circular=circular)]
 
 
 # --------------------------------------------------------------------------------------------- methods
@@ -197,7 +322,26 @@ def _file_name(path) -> str:
     return PurePath(str(path)).name if path else ""
 
 
-def _region_sentences(prov: dict, values: pd.DataFrame | None) -> list[str]:
+def _voxel_size(prov: dict) -> str:
+    grid = prov.get("grid") if isinstance(prov.get("grid"), dict) else {}
+    affine = grid.get("affine")
+    try:
+        a = np.asarray(affine, dtype=float)[:3, :3]
+        sizes = np.sqrt((a ** 2).sum(axis=0))
+    except (TypeError, ValueError, IndexError):
+        return ""
+    if not np.all(np.isfinite(sizes)) or sizes.size != 3:
+        return ""
+    if np.allclose(sizes, sizes[0], atol=1e-3):
+        return f"{format_number(sizes[0], 1).rstrip('0').rstrip('.')} mm isotropic voxels"
+    return " × ".join(format_number(v, 1).rstrip("0").rstrip(".") for v in sizes) + " mm voxels"
+
+
+def _voxels(n: Any) -> str:
+    return count(int(n), "voxel") if not is_missing(n) and np.isfinite(number(n)) else ""
+
+
+def _region_sentences(prov: dict, values: pd.DataFrame | None, cite: Citations) -> list[str]:
     voxels: dict[str, int] = {}
     if values is not None and "n_voxels" in values.columns:
         for region, part in values.groupby("region", sort=False):
@@ -205,114 +349,437 @@ def _region_sentences(prov: dict, values: pd.DataFrame | None) -> list[str]:
             if len(nv):
                 voxels[str(region)] = int(nv.median())
     records = [r for r in prov.get("regions", []) or [] if isinstance(r, dict)]
-    by_kind: dict[str, list[str]] = {}
-    atlases: dict[tuple[str, str], list[str]] = {}
+    size = _voxel_size(prov)
+    groups: dict[tuple, dict] = {}
     for rec in records:
         name = str(rec.get("region", rec.get("name", "")))
         src = rec.get("source") if isinstance(rec.get("source"), dict) else rec
         kind = str(src.get("kind", rec.get("kind", "region")))
         n = rec.get("n_voxels", voxels.get(name))
-        vox = f", {int(n):,} voxels" if not is_missing(n) else ""
         if kind == "atlas":
-            label = f"label {src['index']}" if not is_missing(src.get("index")) else ""
-            inner = (label + vox).lstrip(", ")
-            atlases.setdefault((str(src.get("image", "")), str(src.get("labels", ""))), []).append(
-                f"{escape_markup(name)}" + (f" ({inner})" if inner else ""))
+            gkey = ("atlas", str(src.get("image", "")), str(src.get("labels", "")))
+        elif kind == "probability":
+            gkey = ("probability", str(src.get("image", "")), str(src.get("threshold", "")))
+        else:
+            gkey = (kind, name)
+        g = groups.setdefault(gkey, {"kind": kind, "src": src, "items": []})
+        g["items"].append((name, n))
+    out = []
+    for gkey, g in groups.items():
+        src, kind = g["src"], g["kind"]
+        space = src.get("space")
+        where = f"in {escape_markup(str(space))} space" if space else "on the maps' grid"
+        ref = f" ({escape_markup(str(src['citation']))})" if src.get("citation") else ""
+        items = [f"{escape_markup(n)} ({_voxels(v)})" if _voxels(v) else escape_markup(n) for n, v in g["items"]]
+        k = len(g["items"])
+        if kind == "atlas":
+            out.append(f"{_cap(count(k, 'region', words=True))} came from the atlas image "
+                       f"{escape_markup(_file_name(src.get('image')))}{ref} with its label table "
+                       f"{escape_markup(_file_name(src.get('labels')))}, {where}: {join_words(items)}.")
         elif kind == "sphere":
             c = src.get("center_mm", src.get("center"))
             r = src.get("radius_mm", src.get("radius"))
-            where = (f"a sphere of radius {format_number(r, 1)} mm centred at ({', '.join(format_number(v, 1) for v in c)}) mm"
+            shape = (f"a sphere of radius {format_number(r, 1).rstrip('0').rstrip('.')} mm centred at "
+                     f"({', '.join(format_number(v, 1).rstrip('0').rstrip('.') for v in c)}) mm"
                      if c is not None and r is not None else "a sphere")
-            by_kind.setdefault("sphere", []).append(f"{escape_markup(name)}: {where}{vox}")
-        elif kind in ("mask", "probability"):
-            image = escape_markup(_file_name(src.get("image", "")))
-            extra = f" thresholded at {src['threshold']}" if kind == "probability" and "threshold" in src else ""
-            by_kind.setdefault(kind, []).append(f"{escape_markup(name)}: {kind} image {image}{extra}{vox}")
+            world = f"{escape_markup(str(space))} coordinates" if space else "the maps' world coordinates"
+            n = _voxels(g["items"][0][1])
+            out.append(f"The region {escape_markup(g['items'][0][0])}{f' ({n})' if n else ''} was {shape} in "
+                       f"{world}{ref}.")
+        elif kind == "mask":
+            n = _voxels(g["items"][0][1])
+            out.append(f"The region {escape_markup(g['items'][0][0])} was the mask image "
+                       f"{escape_markup(_file_name(src.get('image')))}{ref}, {where}{', ' + n if n else ''}.")
+        elif kind == "probability":
+            thr = src.get("threshold")
+            out.append(f"{_cap(count(k, 'region', words=True))} came from the probability map "
+                       f"{escape_markup(_file_name(src.get('image')))}{ref}, {where}, thresholded at "
+                       f"{escape_markup(str(thr))}: {join_words(items)}.")
         else:
-            by_kind.setdefault("other", []).append(f"{escape_markup(name)} ({escape_markup(kind)}{vox})")
-    out = []
-    for (image, labels), names in atlases.items():
-        image, labels = _file_name(image), _file_name(labels)
-        out.append(f"From the atlas image {escape_markup(image)} with the label table {escape_markup(labels)}: "
-                   + "; ".join(names) + ".")
-    if by_kind.get("sphere"):
-        out.append("Spheres (world coordinates as given by the user): " + "; ".join(by_kind["sphere"]) + ".")
-    for kind in ("mask", "probability", "other"):
-        if by_kind.get(kind):
-            out.append(f"{kind.capitalize()} regions: " + "; ".join(by_kind[kind]) + ".")
+            out.append(f"{_cap(count(k, 'region', words=True))} were derived ({escape_markup(kind)}): "
+                       f"{join_words(items)}.")
     if not records and voxels:
-        out.append("Region sizes on the maps' grid: " + "; ".join(
-            f"{escape_markup(r)} ({n:,} voxels)" for r, n in voxels.items()) + ". (How the regions were defined "
-            "was not recorded with the values table.)")
+        out.append("The regions had " + join_words(f"{escape_markup(r)} ({count(n, 'voxel')})"
+                                                   for r, n in voxels.items())
+                   + " on the maps' grid (how they were defined was not recorded with the values table).")
+    if size:
+        out.append(f"The maps' grid had {size}.")
     for rec in prov.get("resampling", []) or []:
         if isinstance(rec, dict):
-            what = escape_markup(str(rec.get("what", rec.get("region", "a region image"))))
+            what = escape_markup(str(rec.get("what", rec.get("region", "region image"))))
             image = escape_markup(_file_name(rec.get("image", "")))
-            method = escape_markup(str(rec.get("method", "nearest neighbour")))
-            out.append(f"The {what} {image} was resampled onto the maps' grid by {method} interpolation.".replace(
-                "  ", " "))
+            out.append(f"The {what} image {image} was resampled onto the maps' grid by nearest-neighbour "
+                       "interpolation.".replace("  ", " "))
     return out
 
 
-def _design_sentence(key: dict, rows: pd.DataFrame) -> str:
-    design = key.get("design", "")
-    contrast = escape_markup(key.get("contrast", ""))
-    methods = ordered_unique(col(rows, "df_method"))
-    df_text = "; ".join(DF_METHOD_TEXT.get(text(m), escape_markup(text(m))) for m in methods)
-    formula = escape_markup(key.get("formula", ""))
-    if design == "one-sample":
-        s = f"One-sample *t*-tests compared the mean {contrast} value with zero in each region"
-    elif design == "paired":
-        s = (f"Paired *t*-tests compared {contrast} with {escape_markup(key.get('versus', ''))} within "
-             "participants in each region (the test of the mean within-participant difference against zero)")
-    elif design == "two-group":
-        levels = key.get("levels", "").split(",")
-        welch = "welch" in [text(m) for m in methods]
-        s = (f"{'Welch' if welch else 'Student'} two-sample *t*-tests compared {escape_markup(' and '.join(levels))} "
-             f"participants (column {escape_markup(key.get('group_column', ''))}) on the {contrast} contrast")
-        if has_values(rows, "brown_forsythe_p"):
-            s += "; equality of variances was checked with the Brown–Forsythe test"
-    elif design == "glm":
-        centred = ordered_unique(i for v in col(rows, "centered") for i in ids(v))
-        s = (f"A general linear model ({formula}) was fitted to the {contrast} values of each region by ordinary "
-             "least squares")
-        if centred:
-            s += f", with {escape_markup(', '.join(centred))} mean-centred"
-        s += "; leverage and Cook's distance were computed for every participant"
-    elif design == "precision-weighted":
-        tau = ordered_unique(col(rows, "tau2_method"))
-        s = (f"A precision-weighted random-effects model{f' ({formula})' if formula else ''} combined the "
-             f"{contrast} values, weighting each participant by 1/(*v*_{{i}} + τ^{{2}}) with *v*_{{i}} the "
-             "first-level sampling variance and τ^{2} the between-participant variance "
-             f"(estimated by {escape_markup(', '.join(str(t).upper() for t in tau) or 'REML')})")
-    elif design == "mixed":
-        sds = [c[3:] for c in rows.columns if c.startswith("sd_") and c not in ("sd_participant", "sd_residual")
-               and has_values(rows, c)]
-        s = (f"A linear mixed-effects model ({formula}) with random effects per participant"
-             f"{' and a crossed random intercept for ' + escape_markup(', '.join(sds)) if sds else ''} was fitted "
-             "to each region by restricted maximum likelihood (REML)")
-    elif design == "fixed-effects":
-        s = (f"For comparison only, a fixed-effects combination of the {contrast} values was computed; it treats the "
-             "participants as fixed and describes only them, not the population")
-    else:
-        s = f"The {escape_markup(design)} design was applied to the {contrast} values"
-    if df_text:
-        s += f" ({df_text})"
-    s += "."
-    corrections = ordered_unique(m for v in col(rows, "correction") for m in ids(v))
-    sizes = ordered_unique(int(number(v)) for v in col(rows, "family_size") if np.isfinite(number(v)))
-    if corrections and corrections != ["none"]:
-        names = "; ".join(CORRECTION_TEXT.get(m, escape_markup(m)) for m in corrections)
-        s += (f" *p* values were adjusted across the {', '.join(map(str, sizes)) or rows['region'].nunique()} "
-              f"regions of the family ({names}).")
-    else:
-        s += " *p* values were not adjusted for multiple comparisons."
-    perms = ordered_unique(int(number(v)) for v in col(rows, "permutations") if number(v) > 0)
-    if perms:
-        seeds = ordered_unique(text(v) for v in col(rows, "seed"))
-        s += (f" Family-wise *p* values came from {perms[0]:,} permutations (maximum statistic across regions; "
-              f"seed {escape_markup(', '.join(seeds) or 'not recorded')}).")
+_DF_TEXT = {
+    "student": "Student's *t* distribution",
+    "welch": "Welch–Satterthwaite degrees of freedom",
+    "residual": "the model's residual degrees of freedom",
+    "knapp-hartung": "the Knapp–Hartung adjustment",
+    "knha": "the Knapp–Hartung adjustment",
+    "knha-truncated": "the Knapp–Hartung adjustment with its scaling factor truncated below at 1",
+    "knapp-hartung-truncated": "the Knapp–Hartung adjustment with its scaling factor truncated below at 1",
+    "z": "the standard normal distribution",
+    "satterthwaite": "Satterthwaite degrees of freedom",
+    "kenward-roger": "Kenward–Roger degrees of freedom",
+}
+_TAU2_TEXT = {"reml": ("restricted maximum likelihood", "viechtbauer2005"),
+              "ml": ("maximum likelihood", "viechtbauer2005"),
+              "dl": ("the DerSimonian–Laird estimator", "dersimonian1986"),
+              "pm": ("the Paule–Mandel estimator", "paule1982")}
+
+
+def _df_phrase(rows: pd.DataFrame, cite: Citations) -> str:
+    parts = []
+    for m in ordered_unique(text(v).lower() for v in col(rows, "df_method") if text(v)):
+        phrase = _DF_TEXT.get(m, escape_markup(m))
+        if m in ("welch",):
+            phrase += f" ({cite.cite('welch1947', 'satterthwaite1946')})"
+        elif m == "satterthwaite":
+            phrase += f" ({cite.cite('satterthwaite1946')})"
+        elif m.startswith("kn"):
+            phrase += f" ({cite.cite('knapp2003')})"
+        parts.append(phrase)
+    return join_words(parts)
+
+
+def _predictors(formula: str, rows: pd.DataFrame, key: dict, labels: Labels,
+                participants: pd.DataFrame | None) -> str:
+    terms = [t for t in ordered_unique(rows["term"].map(text)) if not is_intercept(t)]
+    names = [term_label(t, key, labels, participants, terms) for t in terms]
+    return join_words(escape_markup(n) for n in names) if names else "an intercept only"
+
+
+def _random_phrase(rows: pd.DataFrame, labels: Labels) -> str:
+    parts = []
+    for cell in ordered_unique(text(v) for v in col(rows, "random") if text(v)):
+        bits = [b.strip() for b in cell.replace("-", "+").split("+") if b.strip()]
+        if "0" not in bits:
+            parts.append("a by-participant intercept")
+        for b in bits:
+            if b not in ("0", "1"):
+                parts.append(f"a by-participant slope of {escape_markup(labels.variable(b))}")
+    if not parts and "sd_participant" in rows.columns:
+        parts.append("a by-participant intercept")
+    for column, what in (("crossed", "crossed"), ("nested", "nested")):
+        for cell in ordered_unique(text(v) for v in col(rows, column) if text(v)):
+            for c in ids(cell):
+                inside = " within participant" if what == "nested" else ""
+                parts.append(f"a {what} intercept for {escape_markup(labels.variable(c))}{inside}")
+    s = join_words(parts)
+    corr = [c for c in rows.columns if c.startswith("corr_participant_") and has_values(rows, c)]
+    if corr:
+        slopes = [escape_markup(labels.variable(c[len("corr_participant_"):])) for c in corr]
+        r = pd.to_numeric(pd.concat([rows[c] for c in corr]), errors="coerce").dropna()
+        rng = (f"; across regions *r* ranged from {format_number(r.min(), 2, leading_zero=False)} to "
+               f"{format_number(r.max(), 2, leading_zero=False)}" if len(r) else "")
+        s += (f", with the correlation between the by-participant intercept and slope of {join_words(slopes)} "
+              f"estimated{rng}")
     return s
+
+
+def _design_sentence(number_: int, key: dict, rows: pd.DataFrame, labels: Labels,
+                     participants: pd.DataFrame | None, cite: Citations) -> str:
+    design = key.get("design", "")
+    contrast = _contrast_label(key.get("contrast", ""), labels) if key.get("contrast") else ""
+    contrasts = [c for c in text(key.get("contrast")).split(",") if c]
+    df = _df_phrase(rows, cite)
+    lead = f"Analysis {number_}"
+    formula = key.get("formula", "")
+    if design == "one-sample":
+        s = (f"{lead} tested the mean {contrast} value against zero in each region with one-sample *t*-tests "
+             "(*df* = *n* − 1)")
+    elif design == "paired":
+        s = (f"{lead} compared {contrast} with {_contrast_label(key.get('versus', ''), labels)} within participants "
+             "with paired *t*-tests, one-sample tests of each participant's difference (*df* = *n* − 1)")
+    elif design == "two-group":
+        g = key.get("group_column", "")
+        levels = [labels.level(g, lv) for lv in key.get("levels", "").split(",") if lv]
+        gname = labels.description(g) or labels.variable(g)
+        welch = "welch" in [text(m).lower() for m in col(rows, "df_method")]
+        test = "Welch's unequal-variance *t*-tests" if welch else "Student's two-sample *t*-tests (pooled variance)"
+        s = (f"{lead} compared {escape_markup(join_words(levels))} participants ({escape_markup(gname)}) on "
+             f"{contrast} with {test}")
+        if welch:
+            s += f" and Welch–Satterthwaite degrees of freedom ({cite.cite('welch1947', 'satterthwaite1946')})"
+        if has_values(rows, "brown_forsythe_p"):
+            s += f"; the Brown–Forsythe test ({cite.cite('brown1974')}) checked the equality of variances"
+        df = ""
+    elif design == "glm":
+        centred = [escape_markup(labels.variable(c)) for v in col(rows, "centered") for c in ids(v)]
+        centred = ordered_unique(centred)
+        s = (f"{lead} regressed the {contrast} values of each region on "
+             f"{_predictors(formula, rows, key, labels, participants)} by ordinary least squares")
+        if centred:
+            s += f" ({join_words(centred)} mean-centred)"
+        s += ", testing each coefficient with a *t* test on the residual degrees of freedom"
+        df = ""
+    elif design == "precision-weighted":
+        tau = ordered_unique(text(v).lower() for v in col(rows, "tau2_method") if text(v)) or ["reml"]
+        est = join_words(f"{_TAU2_TEXT[t][0]} ({cite.cite(_TAU2_TEXT[t][1])})" if t in _TAU2_TEXT
+                         else escape_markup(t) for t in tau)
+        s = (f"{lead} combined the {contrast} values of each region in a precision-weighted random-effects model, "
+             "weighting each participant by 1/(*v*_{i} + *τ*^{2}), where *v*_{i} is the participant's first-level "
+             f"sampling variance and *τ*^{{2}} the between-participant variance, estimated by {est}")
+        if formula and [t for t in rows["term"].map(text) if t not in ("mean",) and not is_intercept(t)]:
+            s += f", with {_predictors(formula, rows, key, labels, participants)} as moderators"
+    elif design == "mixed":
+        est = ordered_unique(text(v).lower() for v in col(rows, "estimation") if text(v)) or ["reml"]
+        how = "restricted maximum likelihood (REML)" if est[0] == "reml" else "maximum likelihood"
+        what = (f"the {escape_markup(join_words(compress_labels([labels.level('contrast', c) for c in contrasts])))} values"
+                if contrasts else "the values")
+        s = (f"{lead} fitted a linear mixed-effects model to {what} of each region by {how}, with "
+             f"{_predictors(formula, rows, key, labels, participants)} as fixed "
+             f"{'effect' if len([t for t in ordered_unique(rows['term'].map(text)) if not is_intercept(t)]) == 1 else 'effects'}"
+             f" and, as random effects, {_random_phrase(rows, labels)}")
+    elif design == "repeated-measures":
+        effects = [escape_markup(term_label(t, key, labels, participants, [])) for t in
+                   ordered_unique(rows["term"].map(text))]
+        what = (f"the {escape_markup(join_words(compress_labels([labels.level('contrast', c) for c in contrasts])))} "
+                "values" if contrasts else "the values")
+        s = (f"{lead} tested {join_words(effects)} in a repeated-measures analysis of variance of {what} of each "
+             "region (participants as the random factor)")
+        checks = []
+        if has_values(rows, "mauchly_p"):
+            checks.append(f"sphericity was checked with Mauchly's test ({cite.cite('mauchly1940')})")
+        if has_values(rows, "p_gg"):
+            checks.append("*p* values were also computed with the Greenhouse–Geisser "
+                          f"({cite.cite('greenhouse1959')}) and Huynh–Feldt ({cite.cite('huynh1976')}) corrections "
+                          "of the degrees of freedom" if has_values(rows, "p_hf") else
+                          f"*p* values were also computed with the Greenhouse–Geisser correction "
+                          f"({cite.cite('greenhouse1959')})")
+        if has_values(rows, "generalized_eta2"):
+            checks.append(f"generalized *η*^{{2}} ({cite.cite('olejnik2003')}) is reported beside partial *η*^{{2}}")
+        if checks:
+            s += "; " + "; ".join(checks)
+        df = ""
+    elif design == "region-difference":
+        pairs = [escape_markup(t.replace(" - ", " − ")) for t in ordered_unique(rows["term"].map(text))]
+        s = (f"{lead} compared regions within participants ({join_words(pairs)}) on {contrast} with paired *t*-tests "
+             "of each participant's difference between the two regions")
+        df = ""
+    elif design == "fixed-effects":
+        s = (f"For comparison only, analysis {number_} combined the {contrast} values in a fixed-effects "
+             "(inverse-variance) model that treats the participants as fixed; it describes these participants "
+             "only and makes no inference about the population")
+    else:
+        s = f"{lead} applied the {escape_markup(design)} design to the {contrast or 'region'} values"
+    if has_values(rows, "bf10"):
+        scale = ordered_unique(number(v) for v in col(rows, "prior_scale") if np.isfinite(number(v)))
+        s += (f"; JZS Bayes factors *BF*_{{10}} ({cite.cite('rouder2009')}) used a Cauchy prior on the standardised "
+              f"effect with scale *r* = {format_number(scale[0], 3, leading_zero=False) if scale else '.707'}")
+    if has_values(rows, "p_equivalence"):
+        bound = ordered_unique(number(v) for v in col(rows, "equivalence_bound") if np.isfinite(number(v)))
+        s += (f"; equivalence was tested with two one-sided tests ({cite.cite('schuirmann1987')}) against "
+              f"±{format_number(bound[0], 2) if bound else 'the bound'} in standardised effect-size units")
+    if df and design in ("precision-weighted", "fixed-effects"):
+        s += f"; the test used {df}"
+    elif df and design == "mixed":
+        s += f"; fixed effects were tested with {df}"
+    elif df and design not in ("one-sample", "paired", "two-group", "glm"):
+        s += f"; the reference distribution was {df}"
+    return s + "."
+
+
+def _correction_phrase(method: str, rows: pd.DataFrame, cite: Citations) -> str:
+    if method == "holm":
+        return f"Holm's step-down method ({cite.cite('holm1979')})"
+    if method == "fdr":
+        return f"the Benjamini–Hochberg false discovery rate procedure ({cite.cite('benjamini1995')})"
+    if method == "bonferroni":
+        return f"the Bonferroni method ({cite.cite('dunn1961')})"
+    if method == "fwe":
+        perms = ordered_unique(int(number(v)) for v in col(rows, "permutations") if number(v) > 0)
+        schemes = ordered_unique(text(v) for v in col(rows, "permutation_scheme") if text(v))
+        exact = any(flag(v) is True for v in col(rows, "permutation_exact"))
+        seeds = ordered_unique(text(v) for v in col(rows, "seed") if text(v) and text(v) != "generator")
+        detail = []
+        if perms:
+            detail.append(("all " if exact else "") + f"{perms[0]:,} {escape_markup(schemes[0]) + ' ' if schemes else ''}"
+                          f"permutation{'s' if perms[0] != 1 else ''}")
+        if seeds and not exact:
+            detail.append(f"random seed {escape_markup(seeds[0])}" if len(seeds[0]) <= 10 else
+                          "random seed recorded in the results table")
+        return (f"the maximum-statistic permutation method ({cite.cite('westfall1993')}"
+                + (f"; {', '.join(detail)}" if detail else "") + ")")
+    return escape_markup(method)
+
+
+def _correction_sentences(numbered, cite: Citations, override: str | None) -> list[str]:
+    """One sentence per distinct correction setting (not one per analysis)."""
+    settings: dict[tuple, list[int]] = {}
+    rows_of: dict[tuple, pd.DataFrame] = {}
+    for number_, _key, rows in numbered:
+        method = primary_correction(rows, override)
+        sizes = tuple(sorted({family_size(rows[rows["term"].map(text) == t])
+                              for t in ordered_unique(rows["term"].map(text))}))
+        perms = tuple(ordered_unique(text(v) for v in col(rows, "permutations"))) if method == "fwe" else ()
+        k = (method, sizes, perms)
+        settings.setdefault(k, []).append(number_)
+        rows_of.setdefault(k, rows)
+    total = len(numbered)
+    out = []
+    also = ordered_unique(m for _n, _k, rows in numbered for m in ("holm", "fdr", "bonferroni")
+                          if has_values(rows, f"p_{m}") and m not in [k[0] for k in settings])
+    for (method, sizes, perms), numbers in settings.items():
+        where = _analyses_phrase(numbers, total)
+        fam = (count(sizes[0], "region") if len(sizes) == 1 else
+               f"{join_words(map(str, sizes), 'or')} regions")
+        lead = f"{where}, *p* values" if total > 1 else "The *p* values"
+        if method == "none":
+            out.append(f"{lead} were not corrected for multiple comparisons (uncorrected; each family held {fam}).")
+        else:
+            out.append(f"{lead} were adjusted across the {fam} tested for each term with "
+                       f"{_correction_phrase(method, rows_of[(method, sizes, perms)], cite)}.")
+    if also:
+        out.append("The tables also give *p* values adjusted with "
+                   + join_words(_correction_phrase(m, numbered[0][2], cite) for m in also) + ".")
+    return out
+
+
+_EFFECT_DEFS = {
+    "d": "*d* = *M*/*SD*, the mean divided by the standard deviation across participants",
+    "d_z": "*d*_{z} = *M*_{diff}/*SD*_{diff}, the mean within-participant difference divided by the standard "
+           "deviation of the differences",
+    "g": "Hedges' *g* = *J* × (*M*_{1} − *M*_{2})/*S*_{pooled}, with the exact small-sample factor *J* ({hedges})",
+    "partial_eta2": "partial *η*^{2} = *SS*_{effect}/(*SS*_{effect} + *SS*_{error})",
+    "d_total": "*d*_{total} = the estimate divided by √(*τ*^{2} + *v̄*), with *v̄* the typical first-level "
+               "sampling variance (no interval)",
+    "generalized_eta2": "generalized *η*^{2}",
+}
+
+
+def _symbols_sentence(results: pd.DataFrame, cite: Citations, primaries: list[str]) -> str | None:
+    rows = results[~results["term"].map(is_intercept)] if len(results) else results
+    types = ordered_unique(text(v) for v in col(rows, "effect_size_type") if text(v))
+    defs = []
+    for t in types:
+        d = _EFFECT_DEFS.get(t)
+        if d is None:
+            continue
+        if "{hedges}" in d:
+            d = d.replace("{hedges}", cite.cite("hedges1981"))
+        defs.append(d)
+    designs = set(results["design"].map(text))
+    symbols = []
+    if designs & {"one-sample", "fixed-effects", "precision-weighted"}:
+        symbols.append("*M* = mean")
+    if designs & {"paired", "two-group"}:
+        symbols.append("*M*_{diff} = mean difference")
+    if designs & {"glm", "mixed", "precision-weighted"} and any(
+            not is_intercept(t) and t != "mean" for t in results["term"].map(text)):
+        symbols.append("*b* = regression coefficient")
+    for m in ordered_unique(primaries):
+        if m != "none":
+            symbols.append(f"{corrected_p_symbol(m)} = *p* adjusted by the {correction_name(m, long=True)} method"
+                           .replace("by the no method", "uncorrected"))
+    if has_values(results, "bf10"):
+        symbols.append("*BF*_{10} = Bayes factor of an effect against none")
+    symbols.append("CI = confidence interval")
+    s = "Symbols: " + "; ".join(symbols) + "."
+    if defs:
+        s += " Effect sizes: " + "; ".join(defs)
+        if any(t in ("d", "d_z", "g") for t in types) and has_values(rows, "effect_size_ci_low"):
+            s += (f". Their confidence intervals invert the noncentral *t* distribution "
+                  f"({cite.cite('steiger1997')})")
+        s += "."
+    return s
+
+
+def methods_parts(
+    values: pd.DataFrame | None,
+    results: pd.DataFrame,
+    *,
+    participants: pd.DataFrame | None = None,
+    provenance: dict | None = None,
+    labels: Labels | dict | None = None,
+    correct: str | None = None,
+) -> tuple[list[str], list[str]]:
+    """The methods paragraphs (markup) and the keys of the works they cite (see :mod:`.references`)."""
+    check_columns(results, REQUIRED_RESULTS, "results table")
+    if values is not None:
+        check_columns(values, REQUIRED_VALUES, "region values table")
+    labels = labels if isinstance(labels, Labels) else Labels(labels or {})
+    prov = _prov(provenance if provenance is not None else (values.attrs.get("roikit") if values is not None else None))
+    cite = Citations()
+    numbered = _numbered(results)
+    paragraphs: list[str] = []
+    # participants, exclusions, contrasts
+    s = ""
+    analysed = _analysed_contrasts(results)
+    if values is not None:
+        used = values[values["contrast"].map(text).isin(analysed)] if analysed else values
+        ids_all = ordered_unique(used["participant_id"].map(text))
+        s = f"Region values were available for {count(len(ids_all), 'participant')}"
+        group_cols = ordered_unique(text(v) for v in col(results, "group_column") if text(v))
+        if not group_cols and participants is not None:
+            group_cols = [c for c in ("group",) if c in participants.columns]
+        if participants is not None and group_cols and group_cols[0] in participants.columns:
+            gc = group_cols[0]
+            sub = participants[participants["participant_id"].astype(str).isin(ids_all)]
+            counts = sub[gc].map(text).value_counts(sort=False)
+            gname = labels.description(gc) or labels.variable(gc)
+            s += (f" ({escape_markup(gname)}: " + "; ".join(
+                f"{escape_markup(labels.level(gc, k))}, *n* = {v}" for k, v in counts.items()) + ")")
+        s += "."
+    details = caution_details(results)
+    missing = details[details["problem"] == "missing value"] if len(details) else details
+    if len(missing):
+        for who, part in missing.groupby("participant_id", sort=False):
+            regions = ordered_unique(part["region"])
+            reason = "had no valid voxel or no map"
+            if values is not None and "n_valid" in values.columns:
+                v = values[(values["participant_id"].map(text) == who) & values["region"].map(text).isin(regions)]
+                if len(v) and (pd.to_numeric(v["n_valid"], errors="coerce").fillna(0) == 0).all():
+                    reason = "had no valid voxel"
+            s += (f" {escape_markup(who)} {reason} in {escape_markup(join_words(regions))} and was left out of "
+                  f"{'that region’s' if len(regions) == 1 else 'those regions’'} tests only.")
+    elif values is not None:
+        s += " No participant was excluded from any test."
+    if analysed:
+        shown = compress_labels([labels.level("contrast", c) for c in analysed])
+        s += (f" The analyses used the first-level {'contrast' if len(analysed) == 1 else 'contrasts'} "
+              f"{escape_markup(join_words(shown))}.")
+    if s:
+        paragraphs.append(s.strip())
+    # regions and extraction
+    region_sentences = _region_sentences(prov, values, cite)
+    statistic = _STATISTICS.get(str(prov.get("statistic", "mean")), escape_markup(str(prov.get("statistic", "mean"))))
+    keep_zeros = flag(prov.get("keep_zeros"))
+    rule = "voxels with non-finite values" + ("" if keep_zeros else " or values of exactly zero")
+    extraction = (f"Each participant's value in a region was {statistic} of the first-level contrast estimates over "
+                  f"the region's valid voxels; {rule} were treated as missing, and a participant without any valid "
+                  "voxel had a missing value for that region.")
+    if not prov:
+        extraction += " The extraction settings were not recorded with the values table; the defaults are assumed."
+    flagged = []
+    if "n_outliers" in results.columns or "outlier_ids" in results.columns:
+        flagged.append(f"values with a modified *z* score above 3.5 ({cite.cite('iglewicz1993')})")
+    if "n_low_coverage" in results.columns or "low_coverage_ids" in results.columns:
+        flagged.append("participants with valid data in fewer than half of a region's voxels")
+    if flagged:
+        extraction += f" In every test, {join_words(flagged)} were flagged and kept in the analysis."
+    paragraphs.append(" ".join(region_sentences + [extraction]))
+    # designs: one sentence each, then one sentence per correction setting
+    designs = [_design_sentence(n, key, rows, labels, participants, cite) for n, key, rows in numbered]
+    primaries = [primary_correction(rows, correct) for _, _, rows in numbered]
+    paragraphs.append(" ".join(designs + _correction_sentences(numbered, cite, correct)))
+    sym = _symbols_sentence(results, cite, primaries)
+    if sym:
+        paragraphs.append(sym)
+    versions = software_versions()
+    versions.pop("roikit", None)
+    from .. import __version__
+
+    names = {"python": "Python", "numpy": "NumPy", "scipy": "SciPy", "pandas": "pandas",
+             "statsmodels": "statsmodels", "nibabel": "NiBabel", "matplotlib": "Matplotlib"}
+    paragraphs.append(
+        f"Analyses were run with roikit {escape_markup(__version__)} ({cite.cite('roikit')}) in "
+        + join_words(f"{names.get(k, escape_markup(k))} {escape_markup(str(v))}" for k, v in versions.items())
+        + ".")
+    return [_nbsp(p) for p in paragraphs], list(cite.keys)
 
 
 def methods_text(
@@ -322,8 +789,13 @@ def methods_text(
     participants: pd.DataFrame | None = None,
     provenance: dict | None = None,
     style: Style = "markdown",
+    labels: Labels | dict | None = None,
+    correct: str | None = None,
+    references: bool = False,
 ) -> str:
-    """A methods section: participants and exclusions, regions, summary statistic, designs, software.
+    """A methods section generated from what was run: participants and exclusions, the analysed contrasts,
+    regions (source, space, voxel size and counts), extraction, one sentence per design, one per correction
+    setting, symbols and effect sizes, software.
 
     Parameters
     ----------
@@ -332,76 +804,26 @@ def methods_text(
     results : DataFrame
         Group results table.
     participants : DataFrame, optional
-        participants.tsv (group sizes).
+        participants.tsv (group sizes, reference levels of factors).
     provenance : dict, optional
         Extraction provenance (the values sidecar's ``provenance``); absent parts are left out gracefully.
     style : {"markdown", "html", "plain", "latex"}
+    labels : dict or Labels, optional
+        BIDS sidecar(s) of participants.tsv / contrasts.tsv (``LongName``, ``Levels``) for human names.
+    correct : str, optional
+        Primary correction to report instead of the results' own (must be one the table carries).
+    references : bool
+        Append the reference list of the works cited.
 
     Returns
     -------
     str
         Paragraphs separated by blank lines (HTML: ``<p>`` elements).
     """
-    check_columns(results, REQUIRED_RESULTS, "results table")
-    if values is not None:
-        check_columns(values, REQUIRED_VALUES, "region values table")
-    prov = _prov(provenance if provenance is not None else (values.attrs.get("roikit") if values is not None else None))
-    paragraphs: list[str] = []
-    # participants
-    if values is not None:
-        ids_all = ordered_unique(values["participant_id"].map(text))
-        s = f"Region values were available for {len(ids_all)} participants"
-        group_cols = ordered_unique(text(v) for v in col(results, "group_column") if text(v))
-        if participants is not None and group_cols and group_cols[0] in participants.columns:
-            gc = group_cols[0]
-            sub = participants[participants["participant_id"].astype(str).isin(ids_all)]
-            counts = sub[gc].map(text).value_counts(sort=False)
-            s += " (" + ", ".join(f"{escape_markup(k)}: *n* = {v}" for k, v in counts.items()) + ")"
-        s += "."
-        contrasts = ordered_unique(values["contrast"].map(text))
-        s += f" Contrasts: {escape_markup(', '.join(contrasts))}."
-    else:
-        s = ""
-    excluded = ordered_unique(i for v in col(results, "excluded_ids") for i in ids(v))
-    if excluded:
-        s += (f" {len(excluded)} participant{'s' if len(excluded) > 1 else ''} "
-              f"({escape_markup(', '.join(excluded))}) lacked a value in at least one region and "
-              f"{'were' if len(excluded) > 1 else 'was'} left out of that region's tests only.")
-    elif values is not None:
-        s += " No participant was excluded."
-    if s:
-        paragraphs.append(s.strip())
-    # regions and extraction
-    region_sentences = _region_sentences(prov, values)
-    statistic = _STATISTICS.get(str(prov.get("statistic", "mean")), escape_markup(str(prov.get("statistic", "mean"))))
-    keep_zeros = flag(prov.get("keep_zeros"))
-    rule = ("voxels with non-finite values" + ("" if keep_zeros else " or exactly zero") +
-            " were treated as missing")
-    extraction = (f"Each participant's value in a region was {statistic} of the first-level contrast estimates over "
-                  f"the region's valid voxels ({rule}); a participant without any valid voxel has a missing value. "
-                  "Coverage is the share of the region's voxels that were valid.")
-    if not prov:
-        extraction += " (The extraction settings were not recorded with the values table; the defaults are assumed.)"
-    paragraphs.append(" ".join(region_sentences + [extraction]))
-    # designs
-    for key, rows in split_analyses(results):
-        paragraphs.append(_design_sentence(key, rows))
-    effect_types = ordered_unique(text(v) for v in col(results, "effect_size_type") if text(v))
-    if effect_types:
-        defs = {"d": "*d* = *M*/*SD*", "d_z": "*d*_{z} = mean difference/*SD* of the differences",
-                "g": "Hedges' *g* with the exact small-sample correction (Hedges, 1981)",
-                "partial_eta2": "partial *η*^{2}"}
-        s = "Effect sizes: " + "; ".join(defs.get(t, escape_markup(t)) for t in effect_types)
-        if any(t in ("d", "d_z", "g") for t in effect_types):
-            s += "; confidence intervals for *d*, *d*_{z} and *g* invert the noncentral *t* distribution " \
-                 "(Steiger & Fouladi, 1997)"
-        paragraphs.append(s + ".")
-    versions = dict(prov.get("versions", {}) or {})
-    versions.update({k: v for k, v in software_versions().items() if k not in versions})
-    if prov.get("roikit_version"):
-        versions["roikit (extraction)"] = prov["roikit_version"]
-    paragraphs.append("Software: " + ", ".join(f"{escape_markup(k)} {escape_markup(str(v))}"
-                                               for k, v in versions.items()) + ".")
+    paragraphs, keys = methods_parts(values, results, participants=participants, provenance=provenance,
+                                     labels=labels, correct=correct)
+    if references:
+        paragraphs = paragraphs + ["References"] + reference_list(keys)
     return _join(paragraphs, style)
 
 
@@ -412,48 +834,91 @@ def _join(paragraphs: Sequence[str], style: Style) -> str:
 
 
 # --------------------------------------------------------------------------------------------- results
-def _primary_correction(rows: pd.DataFrame) -> str | None:
-    for cell in col(rows, "correction"):
-        for m in ids(cell):
-            if has_values(rows, f"p_{m}"):
-                return m
-    for m in ("holm", "fdr", "fwe"):
-        if has_values(rows, f"p_{m}"):
-            return m
-    return None
+def _family_lead(method: str, size: int, term: str | None) -> str:
+    where = (f"For {'the ' if term == 'intercept' else ''}{escape_markup(term)}, across" if term else "Across")
+    regions = count(size, "region")
+    if method == "none":
+        return f"{where} the {regions}, *p* values are uncorrected (family of {regions})."
+    name = {"holm": "with the Holm method", "fdr": "for the Benjamini–Hochberg false discovery rate",
+            "bonferroni": "with the Bonferroni method",
+            "fwe": "for the family-wise error by maximum-statistic permutation"}.get(method, escape_markup(method))
+    return f"{where} the {regions}, *p* values were adjusted {name} ({corrected_p_symbol(method)})."
 
 
-def results_text(results: pd.DataFrame, *, style: Style = "markdown", alpha: float = 0.05) -> str:
-    """One APA results paragraph per analysis, each region's test in words and numbers.
-
-    Each region gets its in-text string (estimate and CI, statistic, *p*, the primary adjusted *p* and the
-    effect size with its CI); the paragraph ends with which regions survive the correction at ``alpha``.
-    """
+def results_parts(
+    results: pd.DataFrame,
+    *,
+    alpha: float = 0.05,
+    labels: Labels | dict | None = None,
+    participants: pd.DataFrame | None = None,
+    correct: str | None = None,
+    intercept_effect_sizes: bool = False,
+) -> list[str]:
+    """The results paragraphs (markup), one per analysis; see :func:`results_text`."""
     check_columns(results, REQUIRED_RESULTS, "results table")
+    labels = labels if isinstance(labels, Labels) else Labels(labels or {})
+    a_txt = format_number(alpha, 3 if alpha * 100 % 1 else 2, leading_zero=False)
     paragraphs = []
-    for key, rows in split_analyses(results):
-        corr = _primary_correction(rows)
-        heading = escape_markup(analysis_title(key))
+    for number_, key, rows in _numbered(results):
+        terms = ordered_unique(rows["term"].map(text))
         parts = []
-        for term in ordered_unique(rows["term"].map(text)):
+        for term in terms:
             part = rows[rows["term"].map(text) == term]
-            lead = f"Term {escape_markup(term)}: " if rows["term"].map(text).nunique() > 1 else ""
-            items = [f"{escape_markup(text(r['region']))}, {in_text(r, style='markup', estimate=True, correction=corr)}"
-                     for _, r in part.iterrows()]
-            pcol = f"p_{corr}" if corr else "p"
+            corr = primary_correction(part, correct)
+            size = family_size(part)
+            label = term_label(term, key, labels, participants, terms) if len(terms) > 1 else None
+            sentences = [_family_lead(corr, size, label)]
+            for _, r in part.iterrows():
+                row = r.copy()
+                if is_intercept(term) and not intercept_effect_sizes:
+                    row["effect_size"] = np.nan
+                body = in_text(row, style="markup", estimate=True, correction=None if corr == "none" else corr)
+                sentences.append(f"{_cap(escape_markup(text(r['region'])))}: {body}.")
+            pcol = "p" if corr == "none" else f"p_{corr}"
             surv = [text(r["region"]) for _, r in part.iterrows() if number(r.get(pcol)) < alpha]
-            name = {"holm": "Holm", "fdr": "FDR", "fwe": "FWE"}.get(corr or "", "")
-            if corr:
-                verdict = (f"After {name} correction across the {len(part)} regions, "
-                           + (f"{escape_markup(', '.join(surv))} {'remains' if len(surv) == 1 else 'remain'} "
-                              f"significant at α = {format_number(alpha, 2, leading_zero=False)}."
-                              if surv else "no region remains significant at α = "
-                              f"{format_number(alpha, 2, leading_zero=False)}."))
+            if corr == "none":
+                verdict = (f"Without correction, {len(surv)} of the {count(size, 'region')} had *p* < {a_txt}"
+                           + (f": {escape_markup(join_words(surv))}." if surv else "."))
+            elif surv:
+                verdict = (f"{_cap(join_words(escape_markup(x) for x in surv))} "
+                           f"{'remains' if len(surv) == 1 else 'remain'} significant after correction "
+                           f"(α = {a_txt}; {len(surv)} of {size}).")
             else:
-                verdict = "These *p* values are uncorrected."
-            parts.append(lead + "; ".join(items) + ". " + verdict)
-        paragraphs.append(f"*{heading}.* " + " ".join(parts))
-    return _join(paragraphs, style)
+                verdict = f"No region remains significant after correction (α = {a_txt})."
+            parts.append(" ".join(sentences + [verdict]))
+        title = escape_markup(analysis_title(key, labels=labels))
+        paragraphs.append(_nbsp(f"*Analysis {number_}: {title}.* " + " ".join(parts)))
+    return paragraphs
+
+
+def results_text(
+    results: pd.DataFrame,
+    *,
+    style: Style = "markdown",
+    alpha: float = 0.05,
+    labels: Labels | dict | None = None,
+    participants: pd.DataFrame | None = None,
+    correct: str | None = None,
+    intercept_effect_sizes: bool = False,
+) -> str:
+    """APA results, one paragraph per analysis: for each term (a family) one sentence naming the primary
+    correction and the family size, then one sentence per region in the table's order (estimate and CI,
+    statistic, *p*, the primary adjusted *p*, the effect size and its CI), then which regions survive.
+
+    Parameters
+    ----------
+    correct : str, optional
+        Primary correction instead of the results' own (first entry of ``correction``); ``none`` reports
+        uncorrected *p* with the family size.
+    intercept_effect_sizes : bool
+        Give effect sizes for intercept terms (left out by default: they rarely mean anything).
+
+    Notes
+    -----
+    Non-breaking spaces surround ``=``, ``<`` and ``>`` (APA 7th ed., 6.43-6.46 number formats).
+    """
+    return _join(results_parts(results, alpha=alpha, labels=labels, participants=participants, correct=correct,
+                               intercept_effect_sizes=intercept_effect_sizes), style)
 
 
 # --------------------------------------------------------------------------------------------- assumptions

@@ -114,8 +114,11 @@ def run_design(
     participants : DataFrame or path, optional
         participants.tsv (keyed by participant_id), needed for groups and covariates.
     correct : str or sequence of str
-        Corrections across regions within design and term: any of ``holm``, ``fdr`` (Benjamini-Hochberg),
-        ``bonferroni``. ``p_holm`` and ``p_fdr`` are always written; ``bonferroni`` adds ``p_bonferroni``.
+        Corrections across regions within design and term, the first being the PRIMARY one (used by the text,
+        table notes, figure markers and run summary): ``holm``, ``fdr`` (Benjamini-Hochberg), ``bonferroni``,
+        ``fwe`` (max-statistic permutations; needs ``permutations``) or ``none`` (uncorrected primary report).
+        ``p_holm`` and ``p_fdr`` are always written; ``bonferroni`` adds ``p_bonferroni``, permutations ``p_fwe``.
+        The ``correction`` column lists what the rows carry, primary first.
     permutations : int
         Number of permutations for the max-statistic family-wise p (``p_fwe``); 0 for none. When the number of
         distinct permutations is at most this, they are enumerated exactly.
@@ -144,10 +147,14 @@ def run_design(
     """
     func = get_design(design)
     confidence = check_confidence(confidence)
-    corrections = parse_corrections(correct)
+    corrections = parse_corrections(correct) or ("none",)
     if isinstance(permutations, (bool, np.bool_)) or not isinstance(permutations, (int, np.integer)) or permutations < 0:
         raise UsageError(f"permutations must be a non-negative integer, got {permutations!r}")
     permutations = int(permutations)
+    if "fwe" in corrections and not permutations:
+        raise UsageError(
+            "correction 'fwe' (max-statistic permutation family-wise p) needs permutations: pass permutations=N "
+            "(--permutations N, e.g. 5000), or choose holm, fdr, bonferroni or none")
     values = check_values(values)
     participants = _participants_table(participants)
     options = {k: v for k, v in options.items() if v is not None}
@@ -171,10 +178,11 @@ def run_design(
         results.loc[index, "p_fdr"] = adjust(p, "fdr")
         if "bonferroni" in corrections:
             results.loc[index, "p_bonferroni"] = adjust(p, "bonferroni")
-    applied = [c for c in CORRECTIONS if c in corrections]
-    if permutations:
-        applied.append("permutation-fwe")
-    results["correction"] = ",".join(applied) if applied else "none"
+    # primary first, in the order asked; then what else the rows carry (permutations add fwe)
+    applied = list(corrections)
+    if permutations and "fwe" not in applied:
+        applied.append("fwe")
+    results["correction"] = ",".join(applied)
 
     if permutations:
         permute = PERMUTATIONS.get(design)

@@ -131,7 +131,8 @@ COLUMN_DESCRIPTIONS: dict[str, str] = {
     "df_method": "degrees-of-freedom method: student, welch, residual, knapp-hartung, z, satterthwaite",
     "df1": "numerator degrees of freedom of an F row; n/a otherwise",
     "family_size": "number of regions in the correction family (same design and term)",
-    "correction": "multiple-comparison corrections applied across regions",
+    "correction": "multiple-comparison corrections across regions, comma-separated; the first is the primary one "
+                  "(the one text, table notes, figures and summaries use; 'none' = uncorrected)",
     "permutations": "number of permutations used for p_fwe (0 if none)",
     "seed": "random seed of the permutations (n/a if none or exact enumeration)",
     "population_inference": "true for random/mixed-effects designs (generalise to the population); false for "

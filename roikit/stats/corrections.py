@@ -12,12 +12,28 @@ import numpy as np
 
 from ..errors import UsageError
 
-__all__ = ["CORRECTIONS", "adjust", "bonferroni", "holm", "fdr_bh", "parse_corrections"]
+__all__ = ["CORRECTIONS", "PRIMARY_CHOICES", "adjust", "bonferroni", "holm", "fdr_bh", "parse_corrections",
+           "primary_correction", "correction_choices_text"]
 
 Correction = Literal["bonferroni", "holm", "fdr"]
 
 #: Corrections known to roikit, in the order their columns are written.
 CORRECTIONS = ("holm", "fdr", "bonferroni")
+
+#: Every name ``correct`` accepts; the first listed is the PRIMARY correction (the one text, notes, figure markers
+#: and the run summary use). ``fwe`` is the max-statistic permutation family-wise p (needs permutations);
+#: ``none`` means the primary report is uncorrected (the adjusted columns are still written).
+PRIMARY_CHOICES = ("holm", "fdr", "bonferroni", "fwe", "none")
+
+_ALIASES = {"bh": "fdr", "fdr_bh": "fdr", "benjamini-hochberg": "fdr", "permutation-fwe": "fwe",
+            "permutation": "fwe", "maxt": "fwe"}
+
+
+def correction_choices_text(python: bool = False) -> str:
+    """The valid names and what ``fwe`` needs, for error messages."""
+    need = "permutations=N" if python else "--permutations N"
+    return (f"valid names: holm, fdr (Benjamini-Hochberg), bonferroni, fwe (max-statistic permutations; needs "
+            f"{need}), none (uncorrected); list several separated by commas, the first is the primary one")
 
 
 def _prepare(p: Sequence[float]) -> tuple[np.ndarray, np.ndarray]:
@@ -88,14 +104,14 @@ _FUNCTIONS = {"bonferroni": bonferroni, "holm": holm, "fdr": fdr_bh}
 
 
 def parse_corrections(correct: str | Sequence[str] | None) -> tuple[str, ...]:
-    """Normalise ``correct`` ("holm,fdr", ["holm", "fdr"], "none", None) to a tuple of known names (no duplicates).
+    """Normalise ``correct`` ("holm,fdr", ["fwe", "holm"], "none", None) to a tuple of known names (no duplicates).
 
-    ``p_holm`` and ``p_fdr`` are written whatever is chosen (the contract's columns); the choice is recorded in the
-    ``correction`` column and decides whether ``p_bonferroni`` is added.
+    The order is kept: the first entry is the PRIMARY correction. ``none`` may only come first (an uncorrected
+    primary report; later entries still get their columns). ``None`` or an empty string give ``()``. ``p_holm`` and
+    ``p_fdr`` are written whatever is chosen (the contract's columns); ``bonferroni`` adds ``p_bonferroni`` and
+    ``fwe`` needs permutations (``p_fwe``).
     """
     if correct is None:
-        return ()
-    if isinstance(correct, str) and correct.strip().lower() in ("", "none"):
         return ()
     if isinstance(correct, str):
         items = [c.strip() for c in correct.split(",") if c.strip()]
@@ -103,14 +119,21 @@ def parse_corrections(correct: str | Sequence[str] | None) -> tuple[str, ...]:
         items = [str(c).strip() for c in correct]
     out: list[str] = []
     for c in items:
-        key = c.lower()
-        if key in ("bh", "fdr_bh", "benjamini-hochberg"):
-            key = "fdr"
-        if key not in _FUNCTIONS:
-            raise UsageError(f"unknown correction {c!r}; expected a comma-separated list of {', '.join(CORRECTIONS)}")
+        key = _ALIASES.get(c.lower(), c.lower())
+        if key not in PRIMARY_CHOICES:
+            raise UsageError(f"unknown correction {c!r}; {correction_choices_text()}")
+        if key == "none" and out:
+            raise UsageError(f"correction 'none' must come first (it makes the primary report uncorrected), got "
+                             f"{', '.join(items)}; write \"none,{','.join(out)}\" or drop 'none'")
         if key not in out:
             out.append(key)
     return tuple(out)
+
+
+def primary_correction(correct: str | Sequence[str] | None) -> str:
+    """The primary correction of a ``correct`` value or of a results ``correction`` cell (``none`` when empty)."""
+    items = parse_corrections(correct)
+    return items[0] if items else "none"
 
 
 def adjust(p: Sequence[float], method: Correction) -> np.ndarray:

@@ -82,26 +82,34 @@ class StudyRun:
                          + ", ".join(f"{k} x{v}" for k, v in counts.items()) + "; listed in provenance.json)")
         else:
             lines.append("  warnings: none")
-        lines.append(f"  outputs: {self.out}{os.sep} (report.html, group_results.tsv, region_values.tsv, tables/, "
-                     "figures/, methods.md, provenance.json)")
+        lines.append(f"  outputs: {self.out}{os.sep} (report.html, methods.md/.docx, results.md/.docx, "
+                     "references.bib, group_results.tsv, region_values.tsv, tables/, figures/, index.tsv, "
+                     "provenance.json)")
         return "\n".join(lines)
 
+def _primary_of(correct) -> str:
+    from ..stats.corrections import primary_correction
+
+    return primary_correction(correct)
+
+
 def _survivors(part: pd.DataFrame, alpha: float) -> str:
-    """'k/n regions with p_holm < alpha (names); FDR: m/n' for one term of one analysis."""
+    """'p < .05 after Holm correction: k/n regions (names)' for one term of one analysis, by its PRIMARY correction
+    (the first entry of the ``correction`` column; ``none``: uncorrected)."""
+    from ..reporting.format import correction_name
+
     n = int(part["p"].notna().sum())
-    out = []
-    for column, name in (("p_holm", "Holm"), ("p_fdr", "FDR"), ("p_fwe", "permutation FWE")):
-        if column not in part.columns or part[column].isna().all():
-            continue
-        hit = part.loc[part[column] < alpha, "region"].tolist()
-        text = f"{name} {len(hit)}/{n}"
-        if column == "p_holm" and hit:
-            text += f" ({_listing(hit, 5)})"
-        out.append(text)
-    if not out:
+    cell = part["correction"].dropna().astype(str).iloc[0] if "correction" in part.columns and \
+        part["correction"].notna().any() else "none"
+    primary = _primary_of(cell)
+    column = f"p_{primary}"
+    if primary == "none" or column not in part.columns or part[column].isna().all():
         hit = part.loc[part["p"] < alpha, "region"].tolist()
-        out.append(f"uncorrected {len(hit)}/{n}")
-    return f"p < {alpha:g} after correction: " + "; ".join(out)
+        head = f"p < {alpha:g} uncorrected ({n} region{'s' if n != 1 else ''} tested)"
+    else:
+        hit = part.loc[part[column] < alpha, "region"].tolist()
+        head = f"p < {alpha:g} after {correction_name(primary)} correction"
+    return f"{head}: {len(hit)}/{n}" + (f" ({_listing(hit, 5)})" if hit else "")
 
 def _existing_outputs(out: Path) -> list[Path]:
     return [out / name for name in OUTPUTS if (out / name).exists()]
@@ -203,7 +211,11 @@ def run_study(
             if study.participants_path is not None:
                 inputs.append({"role": "participants", "path": os.fspath(study.participants_path),
                                "sha256": sha256_file(study.participants_path)})
+            from ..reporting._common import read_sidecar_labels
+
             write_report(values, results, participants=study.participants, out=tmp, overwrite=True,
+                         labels={**read_sidecar_labels(getattr(study, "contrasts_path", None)),
+                                 **read_sidecar_labels(study.participants_path)},
                          provenance={"inputs": inputs, "options": {"command": "roikit run", "out": os.fspath(out)}},
                          title=study.title, circular=study.circular, figures=figures,
                          figure_formats=tuple(figure_formats))
@@ -254,6 +266,7 @@ def _results_sidecar(study: Study, results: pd.DataFrame, per_analysis: list) ->
                        "one row per analysis x region x term",
         "columns": columns,
         "analyses": [{"analysis": a.number, "design": a.design, **a.options, "correct": a.correct,
+                      "primary_correction": _primary_of(a.correct),
                       "permutations": a.permutations, "seed": a.seed, "confidence": a.confidence}
                      for a in study.analyses],
         "note": "p_holm and p_fdr adjust across the regions of the same analysis and term (family_size). "

@@ -44,10 +44,10 @@ STUDY_KEYS: dict[str, tuple[str, ...]] = {
     "study": ("title", "participants"),
     "maps": ("effect", "variance", "list"),
     "regions": ("atlas", "labels", "sphere", "mask", "probability", "split_hemispheres", "within", "select",
-                "rename", "circular"),
-    "regions.sphere": ("name", "center", "radius"),
-    "regions.mask": ("name", "image"),
-    "regions.probability": ("image", "threshold", "name", "labels"),
+                "rename", "circular", "space", "citation"),
+    "regions.sphere": ("name", "center", "radius", "space", "citation"),
+    "regions.mask": ("name", "image", "space", "citation"),
+    "regions.probability": ("image", "threshold", "name", "labels", "space", "citation"),
     "extraction": ("statistic", "keep_zeros", "jobs"),
     "analysis": ("design", "contrast", "versus", "group", "levels", "welch", "formula", "random", "crossed",
                  "tau2", "correct", "permutations", "seed", "confidence"),
@@ -74,7 +74,8 @@ FORMULA_TRANSFORMS = ("C", "center", "log", "scale", "standardize")
 
 #: What ``run_study`` writes into the output folder (besides the cache).
 OUTPUTS = ("region_values.tsv", "region_values.json", "group_results.tsv", "group_results.json", "tables",
-           "figures", "report.html", "methods.md", "provenance.json")
+           "figures", "report.html", "methods.md", "provenance.json", "methods.docx", "results.md", "results.docx",
+           "references.bib", "index.tsv")
 
 #: Folder (inside the output folder) holding the extraction cache.
 CACHE_FOLDER = ".cache"
@@ -95,6 +96,17 @@ def _type_name(value: Any) -> str:
 def _suggest(word: str, choices: Iterable[str]) -> str:
     close = difflib.get_close_matches(str(word), [str(c) for c in choices], n=1, cutoff=0.6)
     return f"; did you mean {close[0]!r}?" if close else ""
+
+
+def _described(c, block: dict, key: str) -> dict:
+    """The optional ``space`` and ``citation`` strings of a region source (for the methods text)."""
+    out = {}
+    for name in ("space", "citation"):
+        if name in block:
+            value = c.string(block, name, key)
+            if value is not None:
+                out[name] = value
+    return out
 
 
 def _listing(items: Iterable[Any], limit: int = 12) -> str:
@@ -532,7 +544,7 @@ def _check_regions(c: _Checker, raw: dict) -> tuple[RegionSet | None, list[str] 
             try:
                 table = read_label_table(labels)
                 names += table["name"].tolist()
-                sources.append(Atlas(atlas, labels=labels))
+                sources.append(Atlas(atlas, labels=labels, **_described(c, section, "regions")))
                 names_known = True
             except RoikitError as exc:
                 c.add("regions.labels", str(exc))
@@ -561,7 +573,8 @@ def _check_regions(c: _Checker, raw: dict) -> tuple[RegionSet | None, list[str] 
             c.add(f"{key}.radius", f"must be a positive number of mm, found {radius!r}")
             ok = False
         if ok:
-            sources.append(Sphere(name, center=tuple(float(v) for v in center), radius=float(radius)))
+            sources.append(Sphere(name, center=tuple(float(v) for v in center), radius=float(radius),
+                                  **_described(c, block, key)))
     for key, block in blocks("mask"):
         c.keys(block, key, "regions.mask")
         name = c.string(block, "name", key, required=True)
@@ -569,7 +582,7 @@ def _check_regions(c: _Checker, raw: dict) -> tuple[RegionSet | None, list[str] 
         if name is not None:
             names.append(name)
         if name is not None and image is not None:
-            sources.append(Mask(name, image))
+            sources.append(Mask(name, image, **_described(c, block, key)))
     for key, block in blocks("probability"):
         c.keys(block, key, "regions.probability")
         image = c.file(block, "image", key, required=True, what="probability map")
@@ -592,7 +605,8 @@ def _check_regions(c: _Checker, raw: dict) -> tuple[RegionSet | None, list[str] 
                     names += read_label_table(labels)["name"].tolist()
                 else:
                     names.append(name)
-                sources.append(ProbabilityMap(image, threshold=float(threshold), name=name, labels=labels))
+                sources.append(ProbabilityMap(image, threshold=float(threshold), name=name, labels=labels,
+                                              **_described(c, block, key)))
             except RoikitError as exc:
                 c.add(f"{key}.labels", str(exc))
                 names_known = False
@@ -785,6 +799,10 @@ def _check_analyses(c: _Checker, raw: dict, *, contrasts, participants, columns,
             c.add(f"{key}.correct", str(exc))
         permutations = c.integer(block, "permutations", key, 0, minimum=0) or 0
         seed = c.integer(block, "seed", key, None, minimum=0)
+        if not permutations and isinstance(correct, (str, list)) and "fwe" in str(correct).lower():
+            c.add(f"{key}.correct", "fwe (max-statistic permutation family-wise p) needs permutations; add "
+                                    "permutations = 5000 and a seed to this [[analysis]], or choose holm, fdr, "
+                                    "bonferroni or none")
         if permutations and design not in PERMUTATIONS:
             c.add(f"{key}.permutations", f"design {design!r} has no permutation test; designs with one: "
                                          f"{', '.join(PERMUTATIONS)}")

@@ -148,3 +148,13 @@ def test_render_escapes_user_text():
     assert render(escape_markup(name), "markdown") == r"left \*hippo\*\_{x} & \<b>"
     with pytest.raises(UsageError, match="style must be one of"):
         render("x", "rtf")
+
+
+def test_markdown_has_no_html_tags_and_no_needless_escapes():
+    from roikit.reporting.format import render
+
+    # subscripts as "_z" (as STYLE.md writes d_z), superscripts as Unicode where one exists
+    assert render("*d*_{z} = 0.49, *η*^{2}_{p}, τ^{2}, route_accuracy", "markdown") == \
+        "*d*_z = 0.49, *η*²_p, τ², route_accuracy"
+    assert render("hippocampus^{a}", "markdown") == "hippocampusᵃ"
+    assert "<sub>" not in render("*M*_{diff}", "markdown") and "\\_" not in render("a_b", "markdown")

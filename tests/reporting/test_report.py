@@ -1,6 +1,7 @@
 """write_report and `roikit report`: outputs, overwrite refusal, and every HTML table number checked."""
 
 import json
+import os
 import re
 import warnings
 from html.parser import HTMLParser
@@ -8,6 +9,7 @@ from html.parser import HTMLParser
 import numpy as np
 import pandas as pd
 import pytest
+from pathlib import Path
 
 from roikit._tables import sha256_file, write_table
 from roikit.cli import main
@@ -62,6 +64,7 @@ def _parse(path):
 
 @pytest.fixture(scope="module")
 def full_report(tmp_path_factory, values, results, participants):
+    _RESULTS[:] = [results]
     out = tmp_path_factory.mktemp("full") / "report"
     with pytest.warns(CautionWarning, match="caution"):
         written = write_report(values, results, participants=participants, out=out, figures=False)
@@ -74,13 +77,27 @@ def test_outputs_written(full_report):
         assert (out / name).is_file()
     assert (out / "tables" / "descriptives.docx").is_file()
     assert (out / "tables" / "all_tables.docx").is_file()
-    assert len(list((out / "tables").glob("results_*.tex"))) == 8
+    assert len(list((out / "tables").glob("a*-*.tex"))) == 8
     prov = json.loads((out / "provenance.json").read_text())
     assert prov["versions"]["numpy"]
     assert prov["values_provenance"]["statistic"] == "mean"
     assert {o["path"]: o["sha256"] for o in prov["outputs"]}["report.html"] == sha256_file(out / "report.html")
     md = (out / "methods.md").read_text()
-    assert "## Cautions" in md and "clinical decisions about an individual patient" in md
+    # methods.md is the pasteable methods section: no caution block, no research-use statement, references at the end
+    assert "## Cautions" not in md and "clinical decisions" not in md and "## References" in md
+    assert "Holm, S. (1979)" in md and "roikit developers. (2026)" in md
+    assert "<sub>" not in md and "\\_" not in md and "[T." not in md and "~" not in md
+    assert "## Cautions" in (out / "results.md").read_text()
+    assert "clinical decisions about an individual patient" in (out / "report.html").read_text()
+    bib = (out / "references.bib").read_text()
+    assert "@article{holm1979" in bib and "@software{roikit" in bib
+    for name in ("methods.docx", "results.docx"):
+        assert (out / name).stat().st_size > 1000
+    index = pd.read_csv(out / "index.tsv", sep="\t")
+    written_files = {os.fspath(p.relative_to(out)) for p in out.rglob("*") if p.is_file()}
+    assert set(index["path"]) == written_files  # every written file is listed, nothing else
+    assert index["caption"].notna().all() and index["kind"].notna().all()
+    assert max(len(Path(p).name) for p in written_files) <= 40
 
 
 def test_every_number_in_the_html_tables_equals_the_results(full_report, results):
@@ -105,8 +122,8 @@ def test_every_number_in_the_html_tables_equals_the_results(full_report, results
                 text = text.replace("−", "-")
                 if column == "region":
                     assert text.startswith(row["region"])
-                elif column == "term":
-                    assert text == row["term"]
+                elif column == "term":  # a human label: no formula syntax
+                    assert text and "[T." not in text and "_" not in text
                 else:
                     assert column in fmt, f"unvalidated column {column}"
                     assert text == fmt[column](row), (attrs, column)
@@ -121,21 +138,30 @@ def test_descriptives_in_the_html_equal_pandas(full_report, values, participants
     desc = [t for t in parsed.tables if t["head"] and t["head"][0] == ("region", "Region")
             and any(c == "coverage" for c, _ in t["head"])][0]
     merged = values.merge(participants, on="participant_id")
-    assert len([r for r in desc["rows"] if r[1]]) == merged.groupby(["region", "contrast", "group"]).ngroups
+    # wide layout: one row per region, one column per analysed contrast x group, cells "M (SD)"
+    assert len([r for r in desc["rows"] if r[1]]) == merged["region"].nunique()
+    checked = 0
     for attrs, cells in desc["rows"]:
         if not cells:
             continue
-        part = merged[(merged.region == attrs["data-region"]) & (merged.contrast == attrs["data-contrast"])
-                      & (merged.group == attrs["data-group"])]
-        x = part.value.dropna()
-        # independent computation with pandas (mean, std with ddof=1)
-        expected = {"n": format_df(len(x)), "n_missing": format_df(part.value.isna().sum()),
-                    "mean": format_number(x.mean()), "sd": format_number(x.std(ddof=1)),
-                    "se": format_number(x.std(ddof=1) / np.sqrt(len(x))),
-                    "coverage": format_percent(100 * (part.n_valid / part.n_voxels).mean())}
         for column, text in cells:
-            if column in expected:
-                assert text.replace("−", "-") == expected[column], (attrs, column)
+            if "|" not in column:
+                continue
+            contrast, group = column.split("|")
+            part = merged[(merged.region == attrs["data-region"]) & (merged.contrast == contrast)
+                          & (merged.group == group)]
+            x = part.value.dropna()
+            # independent computation with pandas (mean, std with ddof=1)
+            expected = f"{format_number(x.mean())} ({format_number(x.std(ddof=1))})"
+            assert text.replace("−", "-") in (expected, f"{expected}, {format_df(len(x))}"), (attrs, column)
+            checked += 1
+    results = _RESULTS[0]
+    analysed = {c for column in ("contrast", "versus") for v in results[column].dropna() for c in str(v).split(",")}
+    assert analysed and analysed < set(merged.contrast)  # only the analysed contrasts are described
+    assert checked == merged[merged.contrast.isin(analysed)].groupby(["region", "contrast", "group"]).ngroups
+
+
+_RESULTS: list = []  # the results table of the full report (set by the fixture)
 
 
 def test_html_is_self_contained(full_report):
@@ -145,7 +171,7 @@ def test_html_is_self_contained(full_report):
     html = (out / "report.html").read_text()
     assert "@media print" in html
     assert "does not generalise to the population" in html
-    assert "Circular region definition" in html
+    assert "Circular region definition" in html and "Kriegeskorte" in html
 
 
 def test_refuses_to_overwrite(full_report, values, results):
@@ -161,10 +187,9 @@ def test_report_with_figures(tmp_path, values, results_by_design, participants):
         written = write_report(values, results, participants=participants, out=tmp_path / "r",
                                figure_formats=("png",))
     names = sorted(p.name for p in written["figures"])
-    assert names == ["covariate_age_general-linear-model-novel-value-age-group.png",
-                     "forest_age_general-linear-model-novel-value-age-group.png",
-                     "forest_novel-familiar_paired-t-tests-novel-vs-familiar.png",
-                     "participants_paired-t-tests-novel-vs-familiar.png"]
+    # short, stable names: analysis number, design, kind (and term when an analysis has several)
+    assert names == ["a1-paired_forest.png", "a1-paired_participants.png", "a2-glm_covariate-age.png",
+                     "a2-glm_forest-age.png"]
     parsed = _parse(written["html"])
     assert len(parsed.images) == 4
     assert all(img["src"].startswith("data:image/png;base64,") and img["alt"] for img in parsed.images)
@@ -187,7 +212,7 @@ def test_cli_report(tmp_path, values, results_by_design, participants, capsys):
     assert [i["role"] for i in prov["inputs"]][:3] == ["values", "results", "participants"]
     assert prov["inputs"][0]["sha256"] == sha256_file(values_path)
     html = (out / "report.html").read_text()
-    assert "retrosplenial cortex, left hippocampus were defined from the same data" in html
+    assert "retrosplenial cortex and left hippocampus were defined from the same data" in html
     # the TSV round trip keeps the numbers: same table cells as from the DataFrame
     assert "5.47" in html
     # an existing report is not overwritten without --overwrite (exit 1, one line on stderr)

@@ -41,8 +41,8 @@ def test_cells_equal_the_formatted_results(results_by_design):
 def test_note_names_correction_family_size_and_flags(results_by_design):
     table = results_table(results_by_design["one-sample"])
     note = table.note_text("plain")
-    assert "family size = 3" in note
-    assert "Holm (1979)" in note and "Benjamini–Hochberg (1995)" in note
+    assert "across the 3 regions of each term (the primary correction)" in note
+    assert "p_Holm = p after Holm (1979)" in note and "Also given: p_FDR, Benjamini–Hochberg (1995)" in note
     assert "sub-12" in note and "sub-05" in note and "sub-30" in note
     # flags are superscript letters on the region cell
     assert table.rows[0]["region"].endswith("^{a}")
@@ -51,7 +51,23 @@ def test_note_names_correction_family_size_and_flags(results_by_design):
 def test_uncorrected_family_is_said(results_by_design):
     rows = results_by_design["one-sample"].drop(columns=["p_holm", "p_fdr"]).assign(correction="")
     note = results_table(rows).note_text("plain")
-    assert "not corrected for multiple comparisons across the 3 regions" in note
+    assert "uncorrected for multiple comparisons (family of 3 regions per term)" in note
+
+
+@pytest.mark.parametrize("primary", ["holm", "fdr", "bonferroni", "none"])
+def test_note_and_columns_follow_the_primary_correction(results_by_design, primary):
+    rows = results_by_design["one-sample"].copy()
+    rows["p_bonferroni"] = np.minimum(1, rows["p"] * 3)
+    rows["correction"] = f"{primary},holm,fdr" if primary != "none" else "none"
+    table = results_table(rows)
+    note = table.note_text("plain")
+    keys = [c.key for c in table.columns]
+    if primary == "none":
+        assert "p values are uncorrected" in note and "family of 3 regions" in note
+    else:
+        name = {"holm": "Holm", "fdr": "FDR", "bonferroni": "Bonferroni"}[primary]
+        assert f"p_{name} = p after" in note and "(the primary correction)" in note
+        assert keys[keys.index("p") + 1] == f"p_{primary}"  # the primary adjusted p comes first
 
 
 def test_fixed_effects_note(results_by_design):
@@ -78,7 +94,7 @@ def test_precision_weighted_columns(results_by_design):
 def test_markdown_latex_html_tsv(results_by_design):
     table = results_table(results_by_design["two-group"])
     md = table.to_markdown()
-    assert "| Region | *n* | *M*<sub>diff</sub> |" in md
+    assert "| Region | *n* | *M*_diff |" in md and "<sub>" not in md  # no HTML tags in Markdown
     assert "22.82" in md  # Welch df kept to two decimals
     tex = table.to_latex()
     for part in (r"\toprule", r"\midrule", r"\bottomrule", r"\textit{t}", r"\begin{tabular}{lrrcrrrrrrc}"):
@@ -139,8 +155,10 @@ def test_descriptives_against_pandas(values, participants):
 
 
 def test_descriptives_table_and_errors(values, participants):
-    table = descriptives_table(values, participants=participants, group="group")
-    assert [c.key for c in table.columns][:4] == ["region", "contrast", "group", "n"]
-    assert "Missing" in table.headers("plain")
+    table = descriptives_table(values, participants=participants, group="group", contrasts=["novel"])
+    # wide: regions as rows, one column per analysed contrast x group
+    assert [c.key for c in table.columns] == ["region", "novel|younger", "novel|older", "coverage"]
+    assert [r["region"] for r in table.rows] == ["left hippocampus", "right hippocampus", "retrosplenial cortex"]
+    assert "missing" in table.note_text("plain") and "Only the contrasts analysed" in table.note_text("plain")
     with pytest.raises(UsageError, match="group column 'site'"):
         descriptives(values, group="site")

@@ -31,6 +31,9 @@ def test_nan_left_out_of_family():
 def test_parse():
     assert parse_corrections("holm,fdr") == ("holm", "fdr")
     assert parse_corrections(["bonferroni", "BH"]) == ("bonferroni", "fdr")
-    assert parse_corrections("none") == () and parse_corrections(None) == ()
-    with pytest.raises(UsageError, match="unknown correction 'sidak'"):
+    assert parse_corrections("none") == ("none",) and parse_corrections(None) == ()
+    assert parse_corrections("fwe,holm") == ("fwe", "holm")  # order kept: the first is the primary
+    with pytest.raises(UsageError, match="unknown correction 'sidak'.*fwe .*needs --permutations N"):
         parse_corrections("holm,sidak")
+    with pytest.raises(UsageError, match="'none' must come first"):
+        parse_corrections("holm,none")

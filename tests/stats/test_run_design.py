@@ -86,3 +86,14 @@ def test_participants_path_and_string_labels(tmp_path, values):
         res = run_design(values, "two-group", contrast="novel", group="group", levels=["older", "younger"],
                          participants=path)
     assert (res["term"] == "older - younger").all() and (res["n"] == 20).all()
+
+
+def test_primary_correction_first_and_fwe_needs_permutations(values):
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        res = run_design(values, "one-sample", contrast="novel", correct="bonferroni,holm")
+        none = run_design(values, "one-sample", contrast="novel", correct="none")
+    assert (res["correction"] == "bonferroni,holm").all()  # the first entry is the primary one
+    assert (none["correction"] == "none").all() and "p_holm" in none.columns  # contract columns still written
+    with pytest.raises(UsageError, match="'fwe'.*needs permutations.*--permutations N"):
+        run_design(values, "one-sample", contrast="novel", correct="fwe")

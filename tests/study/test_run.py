@@ -18,6 +18,7 @@ from roikit.errors import DesignError, OutputExistsError
 from roikit.extraction import extract
 from roikit.stats import run_design
 from roikit.study import load_study, run_study
+from roikit.study.schema import StudyError
 
 from conftest import write_participant
 
@@ -169,7 +170,7 @@ def test_command_line_run_with_figures(study_dir):
     status, out, err = _cli(["run", str(study_dir / "study.toml")])
     assert status == 0, err
     assert out.startswith("roikit run: Wayfinding study (tiny test copy)\n")
-    assert "p < 0.05 after correction: Holm" in out
+    assert "p < 0.05 after Holm correction: " in out  # the primary correction (default holm,fdr)
     assert (study_dir / "results" / "report.html").is_file()
     assert any((study_dir / "results" / "figures").glob("*.png"))
     status, out, err = _cli(["run", str(study_dir / "study.toml")])
@@ -207,3 +208,32 @@ def test_extract_study_uses_the_same_cache_as_run(study_dir, count_reads):
     run = run_study(study_dir / "study.toml", figures=False)
     assert count_reads == [] and run.reused == 16
     pd.testing.assert_frame_equal(run.values, values)
+
+
+def test_study_correction_space_and_citation_reach_every_output(study_dir):
+    text = (study_dir / "study.toml").read_text()
+    text = text.replace('labels = "atlas.tsv"\n', 'labels = "atlas.tsv"\nspace = "MNI152NLin2009cAsym"\n'
+                        'citation = "Invented atlas, 2026"\n')
+    text = text.replace('radius = 4.0\n', 'radius = 4.0\nspace = "MNI152NLin2009cAsym"\n')
+    text = text.replace('contrast = "novel"\n\n[[analysis]]', 'contrast = "novel"\ncorrect = "bonferroni"\n\n[[analysis]]')
+    (study_dir / "study.toml").write_text(text)
+    run = run_study(study_dir / "study.toml", figures=False)
+    out = study_dir / "results"
+    first = run.results[run.results["analysis"] == 1]
+    assert (first["correction"] == "bonferroni").all() and first["p_bonferroni"].notna().all()
+    summary = run.summary()
+    assert "after Bonferroni correction" in summary and "after Holm correction" in summary  # analyses 1 and 2
+    methods = (out / "methods.md").read_text()
+    assert "In analysis 1, *p* values were adjusted" in methods and "the Bonferroni method (Dunn, 1961)" in methods
+    assert "in MNI152NLin2009cAsym space" in methods and "(Invented atlas, 2026)" in methods
+    assert "mm in MNI152NLin2009cAsym coordinates." in methods
+    assert "*p*_Bonferroni" in (out / "results.md").read_text()
+    sidecar = json.loads((out / "group_results.json").read_text())
+    assert [a["primary_correction"] for a in sidecar["analyses"]] == ["bonferroni", "holm"]
+
+
+def test_study_fwe_without_permutations_is_refused(study_dir):
+    text = (study_dir / "study.toml").read_text().replace('contrast = "novel"\n\n', 'contrast = "novel"\ncorrect = "fwe"\n\n', 1)
+    (study_dir / "study.toml").write_text(text)
+    with pytest.raises(StudyError, match="analysis\\[1\\].correct: fwe .*needs permutations; add permutations = 5000"):
+        load_study(study_dir / "study.toml")
