@@ -43,7 +43,7 @@ from .figures import (
 )
 from .format import escape_markup, render
 from .html import ReportFigure, Section, figure_html, report_html
-from .tables import ReportTable, descriptives_table, results_tables
+from .tables import ReportTable, descriptives_table, results_tables, word_document
 from .text import SCOPE_STATEMENT, assumptions, cautions, methods_text, results_text, software_versions
 
 __all__ = ["write_report", "check_report_outputs", "REPORT_OUTPUTS"]
@@ -260,9 +260,7 @@ def write_report(
                               number=len(tables) + 1)
     all_tables: list[ReportTable] = tables + [desc]
     table_paths: list[Path] = []
-    import docx
-
-    document = docx.Document()
+    document = word_document()
     for t in all_tables:
         table_paths += t.write(out / "tables", overwrite=overwrite)
         t.to_docx(document=document)

@@ -153,6 +153,10 @@ class ReportTable:
     def headers(self, style: str = "plain") -> list[str]:
         return [render(c.header, style) for c in self.columns]
 
+    def cells_markup(self) -> list[list[str]]:
+        """The cells as markup, one list per row in column order."""
+        return [[row.get(c.key, MISSING) for c in self.columns] for row in self.rows]
+
     def cells(self, style: str = "plain") -> list[list[str]]:
         return [[render(row.get(c.key, MISSING), style) for c in self.columns] for row in self.rows]
 
@@ -247,22 +251,28 @@ class ReportTable:
     def to_docx(self, path: os.PathLike | str | None = None, *, document=None, overwrite: bool = False):
         """Add the table to a python-docx ``Document`` (a new one if none) in APA layout; save to ``path``.
 
+        APA layout: the bold table number, the italic title on the next line, horizontal rules only (above and
+        below the header, below the last row), the note below. Column widths come from the text they hold (Times
+        metrics, 9 pt): numbers and region names are never broken; a table too wide for a portrait page goes into
+        a landscape section of its own. The header row repeats on every page and no row splits across pages.
+        A new document gets 2.5 cm margins and 10 pt Times New Roman (see :func:`word_document`).
+
         Returns the Document.
         """
-        import docx
         from docx.enum.table import WD_TABLE_ALIGNMENT
         from docx.enum.text import WD_ALIGN_PARAGRAPH
         from docx.shared import Pt
 
-        from .format import _parse
+        from .format import _latex_number, _parse
 
         if path is not None:
             check_output(path, overwrite=overwrite)
-        doc = document if document is not None else docx.Document()
+        doc = document if document is not None else word_document()
+        layout = _word_layout(self, doc)
+        section = _word_orientation(doc, landscape=layout["landscape"])
+        size = layout["size"]
 
         def add_runs(paragraph, markup: str, *, size: float | None = None, bold: bool = False):
-            from .format import _latex_number
-
             for content, kind in _parse(markup):
                 run = paragraph.add_run(_latex_number(content))
                 run.italic = kind == "i"
@@ -272,25 +282,50 @@ class ReportTable:
                 if size:
                     run.font.size = Pt(size)
 
+        def tight(paragraph, keep: bool):
+            fmt = paragraph.paragraph_format
+            fmt.space_before = Pt(0)
+            fmt.space_after = Pt(0)
+            fmt.line_spacing = 1.0
+            fmt.keep_with_next = keep
+
         label = f"Table {self.number}" if self.number else "Table"
         p = doc.add_paragraph()
         add_runs(p, label, bold=True)
+        p.paragraph_format.keep_with_next = True
+        p.paragraph_format.space_after = Pt(2)
         p = doc.add_paragraph()
         add_runs(p, "*" + self.title.replace("*", "") + "*")
+        p.paragraph_format.keep_with_next = True
+        p.paragraph_format.space_after = Pt(6)
         table = doc.add_table(rows=1 + len(self.rows), cols=len(self.columns))
         table.alignment = WD_TABLE_ALIGNMENT.CENTER
+        table.autofit = False
+        _word_widths(table, layout["widths"])
         word_rows = list(table.rows)  # cells fetched once per row (table.cell(i, j) is slow)
+        # short tables stay on one page with their title and note (every row kept with the next one)
+        keep_all = len(self.rows) <= _WORD_KEEP_ROWS
         for cell, c in zip(word_rows[0].cells, self.columns):
-            cell.paragraphs[0].alignment = WD_ALIGN_PARAGRAPH.LEFT if c.align == "l" else WD_ALIGN_PARAGRAPH.CENTER
-            add_runs(cell.paragraphs[0], c.header, size=9)
-        for word_row, row in zip(word_rows[1:], self.rows):
+            par = cell.paragraphs[0]
+            par.alignment = WD_ALIGN_PARAGRAPH.LEFT if c.align == "l" else WD_ALIGN_PARAGRAPH.CENTER
+            tight(par, True)
+            add_runs(par, c.header, size=size)
+        for i, (word_row, row) in enumerate(zip(word_rows[1:], self.rows)):
+            last = i == len(self.rows) - 1
             for cell, c in zip(word_row.cells, self.columns):
-                cell.paragraphs[0].alignment = WD_ALIGN_PARAGRAPH.LEFT if c.align == "l" else WD_ALIGN_PARAGRAPH.RIGHT
-                add_runs(cell.paragraphs[0], row.get(c.key, MISSING), size=9)
+                par = cell.paragraphs[0]
+                par.alignment = WD_ALIGN_PARAGRAPH.LEFT if c.align == "l" else WD_ALIGN_PARAGRAPH.RIGHT
+                if c.align != "l":  # right-aligned numbers, centred as a block under the header
+                    par.paragraph_format.right_indent = Pt(layout["spare"] / 2)
+                # the last row stays with the note below; a long table may break between the other rows
+                tight(par, keep_all or last)
+                add_runs(par, row.get(c.key, MISSING), size=size)
+        _word_rows(table)
         _apa_borders(table)
         if self.note:
             p = doc.add_paragraph()
-            add_runs(p, "*Note.* " + " ".join(self.note), size=9)
+            p.paragraph_format.space_before = Pt(4)
+            add_runs(p, "*Note.* " + " ".join(self.note), size=size)
         if path is not None:
             buf = io.BytesIO()
             doc.save(buf)
@@ -338,6 +373,137 @@ def _apa_borders(table) -> None:
         set_border(cell, "bottom", 4)
     for cell in rows[-1].cells:
         set_border(cell, "bottom", 8)
+
+
+# ---------------------------------------------------------------------------------------------- word layout
+_WORD_MARGIN_CM = 2.5
+_WORD_BODY_PT = 10.0
+_WORD_TABLE_PT = (9.0, 8.0)
+_WORD_CELL_MARGIN_PT = 2.85  # 0.1 cm left and right of each cell (Word's default is 0.19 cm)
+_WORD_CELL_PAD_PT = 2 * _WORD_CELL_MARGIN_PT + 1.5  # both margins plus a little air against rounding
+_WORD_KEEP_ROWS = 40
+
+
+def word_document():
+    """A new python-docx Document set up for tables: 2.5 cm margins, Times New Roman 10 pt body text.
+
+    The page size is the template's (US Letter, as APA style asks); pass this to ``ReportTable.to_docx`` to
+    collect several tables in one file.
+    """
+    import docx
+    from docx.shared import Cm, Pt
+
+    doc = docx.Document()
+    for section in doc.sections:
+        section.left_margin = section.right_margin = Cm(_WORD_MARGIN_CM)
+        section.top_margin = section.bottom_margin = Cm(_WORD_MARGIN_CM)
+    normal = doc.styles["Normal"]
+    normal.font.name = "Times New Roman"
+    normal.font.size = Pt(_WORD_BODY_PT)
+    return doc
+
+
+def _word_layout(table: "ReportTable", doc) -> dict:
+    """Column widths (points), font size and orientation for a Word table.
+
+    Each column's natural width is its widest cell (header or body, Times metrics) plus the cell padding. Tried in
+    order, the first that fits the text width wins: portrait at 9 pt; portrait with headers and text columns
+    other than the first wrapped at spaces; the same two in landscape; landscape at 8 pt; last, every column
+    scaled to the landscape width. Numeric cells and the first (region) column never wrap while any step fits.
+    Spare width is shared equally so the table spans the text block.
+    """
+    from . import _measure
+
+    section = doc.sections[-1]
+    short, long = sorted((section.page_width, section.page_height))
+    portrait = (short - section.left_margin - section.right_margin) / 12700  # EMU -> points
+    landscape = (long - section.left_margin - section.right_margin) / 12700
+    cells = table.cells_markup()
+
+    def measure(size: float, wrap: bool) -> list[float]:
+        out = []
+        for j, c in enumerate(table.columns):
+            body = [row[j] for row in cells]
+            head = _measure.longest_word(c.header, size) if wrap else _measure.width(c.header, size)
+            if wrap and c.align == "l" and j > 0:
+                widest = max((_measure.longest_word(b, size) for b in body), default=0.0)
+            else:
+                widest = max((_measure.width(b, size) for b in body), default=0.0)
+            out.append(max(head, widest) + _WORD_CELL_PAD_PT)
+        return out
+
+    attempts = [(False, _WORD_TABLE_PT[0], False), (False, _WORD_TABLE_PT[0], True),
+                (True, _WORD_TABLE_PT[0], False), (True, _WORD_TABLE_PT[0], True),
+                (True, _WORD_TABLE_PT[1], False), (True, _WORD_TABLE_PT[1], True)]
+    for land, size, wrap in attempts:
+        widths = measure(size, wrap)
+        room = landscape if land else portrait
+        if sum(widths) <= room:
+            spare = (room - sum(widths)) / len(widths)
+            return {"landscape": land, "size": size, "widths": [w + spare for w in widths], "spare": spare}
+    widths = measure(_WORD_TABLE_PT[1], True)
+    return {"landscape": True, "size": _WORD_TABLE_PT[1],
+            "widths": [w * landscape / sum(widths) for w in widths], "spare": 0.0}
+
+
+def _word_orientation(doc, *, landscape: bool):
+    """Make the last section portrait or landscape; a new section (new page) if text already sits in it."""
+    from docx.enum.section import WD_ORIENT, WD_SECTION
+
+    section = doc.sections[-1]
+    is_landscape = section.page_width > section.page_height
+    if is_landscape == landscape:
+        return section
+    if len(doc.element.body) > 1:  # more than the section properties: content exists, start a new page
+        section = doc.add_section(WD_SECTION.NEW_PAGE)
+    width, height = section.page_width, section.page_height
+    section.orientation = WD_ORIENT.LANDSCAPE if landscape else WD_ORIENT.PORTRAIT
+    section.page_width, section.page_height = height, width
+    return section
+
+
+def _word_widths(table, widths_pt: list[float]) -> None:
+    """Fixed layout with the given column widths (grid, every cell, and the table width)."""
+    from docx.oxml import OxmlElement
+    from docx.oxml.ns import qn
+    from docx.shared import Pt
+
+    tbl_pr = table._tbl.tblPr
+    layout = OxmlElement("w:tblLayout")
+    layout.set(qn("w:type"), "fixed")
+    tbl_pr.append(layout)
+    tbl_w = tbl_pr.find(qn("w:tblW"))
+    if tbl_w is None:
+        tbl_w = OxmlElement("w:tblW")
+        tbl_pr.append(tbl_w)
+    tbl_w.set(qn("w:type"), "dxa")
+    tbl_w.set(qn("w:w"), str(int(round(sum(widths_pt) * 20))))
+    margins = OxmlElement("w:tblCellMar")
+    for edge in ("left", "right"):
+        element = OxmlElement(f"w:{edge}")
+        element.set(qn("w:w"), str(int(round(_WORD_CELL_MARGIN_PT * 20))))
+        element.set(qn("w:type"), "dxa")
+        margins.append(element)
+    tbl_pr.append(margins)
+    for grid_col, w in zip(table._tbl.tblGrid.findall(qn("w:gridCol")), widths_pt):
+        grid_col.set(qn("w:w"), str(int(round(w * 20))))
+    for j, column in enumerate(table.columns):
+        column.width = Pt(widths_pt[j])
+    for row in table.rows:
+        for cell, w in zip(row.cells, widths_pt):
+            cell.width = Pt(w)
+
+
+def _word_rows(table) -> None:
+    """The header row repeats on each page (w:tblHeader); no row splits across pages (w:cantSplit)."""
+    from docx.oxml import OxmlElement
+    from docx.oxml.ns import qn
+
+    for i, row in enumerate(table.rows):
+        tr_pr = row._tr.get_or_add_trPr()
+        tr_pr.append(OxmlElement("w:cantSplit"))
+        if i == 0:
+            tr_pr.append(OxmlElement("w:tblHeader"))
 
 
 # ---------------------------------------------------------------------------------------------- results
