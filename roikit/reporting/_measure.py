@@ -18,6 +18,10 @@ from .format import _latex_number, _parse
 # widths (1/1000 em) of characters the Times AFM files lack; Times-like values (common practice, no source)
 _TIMES_EXTRA = {"−": 564, "–": 500, "—": 1000, "η": 500, "τ": 440, "χ": 500, "ω": 650, "μ": 500, "Δ": 612,
                 "²": 300, "√": 550, "×": 564, "≥": 549, "≤": 549, "∞": 713, "\u00a0": 250, "±": 564}
+# the same for Computer Modern, where these come from the math fonts (cmsy10/cmmi10 advances; from memory)
+_TEX_EXTRA = {"−": 778, "<": 778, ">": 778, "–": 500, "—": 1000, "η": 497, "τ": 437, "χ": 626, "ω": 622,
+              "μ": 603, "Δ": 833, "²": 350, "√": 833, "×": 778, "≥": 778, "≤": 778, "∞": 1000, "±": 778,
+              "~": 778, "\u00a0": 333}
 _SCRIPT = 0.7
 
 
@@ -58,8 +62,8 @@ def _tex(name: str) -> dict[str, float]:
     return widths
 
 
-def _chars(text: str, table: dict[str, float]) -> float:
-    return sum(table.get(ch, _TIMES_EXTRA.get(ch, 500.0)) for ch in text)
+def _chars(text: str, table: dict[str, float], extra: dict[str, float]) -> float:
+    return sum(extra.get(ch) or table.get(ch, 500.0) for ch in text)
 
 
 def width(markup: str, size: float, *, face: str = "times") -> float:
@@ -70,7 +74,8 @@ def width(markup: str, size: float, *, face: str = "times") -> float:
     for content, kind in _parse(markup):
         content = _latex_number(content)
         scale = _SCRIPT if kind in ("sub", "sup") else 1.0
-        total += _chars(content, italic if kind == "i" else upright) * scale
+        extra = _TIMES_EXTRA if face == "times" else _TEX_EXTRA
+        total += _chars(content, italic if kind == "i" else upright, extra) * scale
     return total * size / 1000.0
 
 

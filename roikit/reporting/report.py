@@ -43,7 +43,7 @@ from .figures import (
 )
 from .format import escape_markup, render
 from .html import ReportFigure, Section, figure_html, report_html
-from .tables import ReportTable, descriptives_table, results_tables, word_document
+from .tables import ReportTable, descriptives_table, results_tables, word_document, write_latex_preamble
 from .text import SCOPE_STATEMENT, assumptions, cautions, methods_text, results_text, software_versions
 
 __all__ = ["write_report", "check_report_outputs", "REPORT_OUTPUTS"]
@@ -265,6 +265,7 @@ def write_report(
         table_paths += t.write(out / "tables", overwrite=overwrite)
         t.to_docx(document=document)
         document.add_paragraph()
+    table_paths.append(write_latex_preamble(out / "tables", all_tables, overwrite=overwrite))
     import io
 
     buf = io.BytesIO()

@@ -16,6 +16,7 @@ from __future__ import annotations
 import html as _html
 import io
 import os
+import re
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any, Iterable, Sequence
@@ -69,6 +70,9 @@ __all__ = [
     "descriptives",
     "descriptives_table",
     "cell_formatters",
+    "latex_preamble",
+    "write_latex_preamble",
+    "word_document",
     "estimate_decimals",
     "CORRECTION_TEXT",
     "DF_METHOD_TEXT",
@@ -200,26 +204,54 @@ class ReportTable:
 
     # ------------------------------------------------------------------ latex
     def to_latex(self) -> str:
-        """A LaTeX ``table`` with a booktabs ``tabular`` (needs ``\\usepackage{booktabs}``)."""
+        """A LaTeX table that fits an article's text block; needs the packages in ``tables/preamble.tex``.
+
+        Sized with Computer Modern metrics for a 10 pt ``article`` (text block 345 x 550 pt): ``\\small`` with
+        normal, then narrower column gaps, then ``\\footnotesize``; a table still too wide goes onto a landscape page
+        (``pdflscape``), at ``\\scriptsize`` (7 pt) as the last step. A short table is a ``table`` float whose
+        tabular shrinks to ``\\linewidth`` only if it is still wider (``\\roikitfit``, defined in the preamble);
+        a long one is a ``longtable`` that continues across pages with its header repeated. Only ASCII is written
+        (see :func:`latex_preamble`).
+        """
+        plan = _latex_layout(self)
         spec = "".join(c.align for c in self.columns)
         label = f"tab:{slug(self.name)}"
-        lines = [
-            r"\begin{table}[htbp]",
-            r"\centering",
-            rf"\caption{{{render(self.title, 'latex')}}}",
-            rf"\label{{{label}}}",
-            rf"\begin{{tabular}}{{{spec}}}",
-            r"\toprule",
-            " & ".join(self.headers("latex")) + r" \\",
-            r"\midrule",
-        ]
-        lines += [" & ".join(r) + r" \\" for r in self.cells("latex")]
-        lines.append(r"\bottomrule")
-        lines.append(r"\end{tabular}")
-        if self.note:
-            lines.append(r"\par\smallskip")
-            lines.append(r"\begin{minipage}{\linewidth}\footnotesize " + self.note_text("latex") + r"\end{minipage}")
-        lines.append(r"\end{table}")
+        head = " & ".join(self.headers("latex")) + r" \\"
+        body = [" & ".join(r) + r" \\" for r in self.cells("latex")]
+        title = _latex_breaks(render(self.title, "latex"))
+        note = _latex_breaks(self.note_text("latex")) if self.note else ""
+        number = f"Table {self.number}" if self.number else "Table"
+        lines = [f"% {number}: needs \\input{{preamble}} (roikit tables/preamble.tex) in the document's preamble"]
+        if plan["landscape"]:
+            lines.append(r"\begin{landscape}")
+        sizing = [plan["size"], rf"\setlength{{\tabcolsep}}{{{plan['tabcolsep']}pt}}"]
+        if plan["long"]:
+            n = len(self.columns)
+            lines += ["{" + sizing[0], sizing[1], r"\setlength{\LTcapwidth}{\linewidth}",
+                      rf"\begin{{longtable}}{{{spec}}}",
+                      rf"\caption{{{title}}}\label{{{label}}} \\",
+                      r"\toprule", head, r"\midrule", r"\endfirsthead",
+                      rf"\multicolumn{{{n}}}{{l}}{{\textit{{Table \thetable\ (continued)}}}} \\",
+                      r"\toprule", head, r"\midrule", r"\endhead",
+                      r"\midrule", rf"\multicolumn{{{n}}}{{r}}{{\textit{{(continued)}}}} \\", r"\endfoot",
+                      r"\bottomrule", r"\endlastfoot"]
+            lines += body
+            lines.append(r"\end{longtable}")
+            if note:
+                lines.append(r"\par\noindent{\footnotesize\raggedright " + note + r"\par}")
+            lines.append("}")
+        else:
+            lines += [r"\begin{table}[htbp]", r"\centering", *sizing,
+                      rf"\caption{{{title}}}", rf"\label{{{label}}}",
+                      r"\roikitfit{%", rf"\begin{{tabular}}{{{spec}}}", r"\toprule", head, r"\midrule"]
+            lines += body
+            lines += [r"\bottomrule", r"\end{tabular}}"]
+            if note:
+                lines.append(r"\par\smallskip")
+                lines.append(r"\begin{minipage}{\linewidth}\footnotesize\raggedright " + note + r"\end{minipage}")
+            lines.append(r"\end{table}")
+        if plan["landscape"]:
+            lines.append(r"\end{landscape}")
         return "\n".join(lines) + "\n"
 
     # ------------------------------------------------------------------ html
@@ -504,6 +536,83 @@ def _word_rows(table) -> None:
         tr_pr.append(OxmlElement("w:cantSplit"))
         if i == 0:
             tr_pr.append(OxmlElement("w:tblHeader"))
+
+
+# ---------------------------------------------------------------------------------------------- latex layout
+_TEX_TEXT_WIDTH_PT = 345.0  # \textwidth of a 10 pt article
+_TEX_TEXT_HEIGHT_PT = 550.0  # \textheight of a 10 pt article on A4 or US Letter (at least)
+_TEX_SIZES = ((r"\small", 9.0), (r"\footnotesize", 8.0), (r"\scriptsize", 7.0))
+_TEX_DESIGN_SIZE = 1.05  # cmr9/cmr8/cmr7 are a little wider than cmr10 scaled down (measured: 224.7 vs 218.7 pt)
+_TEX_LONG_ROWS = {False: 36, True: 22}  # rows above which a table is a longtable (portrait, landscape)
+
+
+def _latex_layout(table: "ReportTable") -> dict:
+    """Font size, column gap, orientation and float/longtable for a LaTeX table (see ``ReportTable.to_latex``)."""
+    from . import _measure
+
+    cells = table.cells_markup()
+    attempts = [(False, 0, 6.0), (False, 0, 3.0), (False, 1, 3.0), (True, 0, 6.0), (True, 0, 3.0), (True, 1, 3.0),
+                (True, 2, 2.0)]
+    chosen = attempts[-1]
+    for land, size_index, gap in attempts:
+        size = _TEX_SIZES[size_index][1]
+        natural = sum(max([_measure.width(c.header, size, face="cm")]
+                          + [_measure.width(row[j], size, face="cm") for row in cells]) * _TEX_DESIGN_SIZE
+                      + 2 * gap for j, c in enumerate(table.columns))
+        room = _TEX_TEXT_HEIGHT_PT if land else _TEX_TEXT_WIDTH_PT
+        if natural <= room:
+            chosen = (land, size_index, gap)
+            break
+    land, size_index, gap = chosen
+    return {"landscape": land, "size": _TEX_SIZES[size_index][0], "tabcolsep": f"{gap:g}",
+            "long": len(table.rows) > _TEX_LONG_ROWS[land]}
+
+
+def _latex_breaks(latex: str) -> str:
+    """Allow line breaks after commas between words (``town1,town2,...`` lists) in captions and notes."""
+    return re.sub(r",(?=[A-Za-z])", r",\\allowbreak{}", latex)
+
+
+_PREAMBLE_PACKAGES = {
+    "booktabs": r"\usepackage{booktabs}   % \toprule, \midrule, \bottomrule",
+    "graphicx": r"\usepackage{graphicx}   % \resizebox, used by \roikitfit",
+    "longtable": r"\usepackage{longtable}  % long tables that continue across pages",
+    "pdflscape": r"\usepackage{pdflscape}  % landscape pages for wide tables",
+}
+
+_FIT_MACRO = r"""% \roikitfit{<tabular>}: the tabular as it is, or shrunk to \linewidth if it is wider
+\newsavebox{\roikitbox}
+\providecommand{\roikitfit}[1]{\sbox{\roikitbox}{#1}%
+  \ifdim\wd\roikitbox>\linewidth\resizebox{\linewidth}{!}{\usebox{\roikitbox}}\else\usebox{\roikitbox}\fi}"""
+
+
+def latex_preamble(tables: Iterable["ReportTable"]) -> str:
+    """The preamble lines the LaTeX tables need: exactly their packages, and ``\\roikitfit`` when a float uses it.
+
+    The tables write only ASCII (no ``inputenc``/``fontenc`` declarations needed) and use ``\\textsubscript``,
+    which the LaTeX kernel has defined since 2015.
+    """
+    needs = {"booktabs"}
+    fit = False
+    for t in tables:
+        plan = _latex_layout(t)
+        needs.add("longtable" if plan["long"] else "graphicx")
+        fit = fit or not plan["long"]
+        if plan["landscape"]:
+            needs.add("pdflscape")
+    lines = ["% Packages the roikit tables in this folder need. In your document's preamble: \\input{preamble}",
+             "% (or copy these lines). Tables are sized for a 10 pt article text block."]
+    lines += [_PREAMBLE_PACKAGES[p] for p in _PREAMBLE_PACKAGES if p in needs]
+    if fit:
+        lines.append(_FIT_MACRO)
+    return "\n".join(lines) + "\n"
+
+
+def write_latex_preamble(directory: os.PathLike | str, tables: Iterable["ReportTable"], *,
+                         overwrite: bool = False) -> Path:
+    """Write ``directory/preamble.tex`` (see :func:`latex_preamble`); returns its path."""
+    return atomic_write_bytes(Path(directory) / "preamble.tex", latex_preamble(tables).encode("ascii"),
+                              overwrite=overwrite)
 
 
 # ---------------------------------------------------------------------------------------------- results
