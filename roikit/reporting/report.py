@@ -287,10 +287,12 @@ def write_report(
             paths = save_figure(fig, out / "figures" / item["name"], width=item.get("width"), formats=formats,
                                 overwrite=overwrite)
             figure_paths += paths
-            png = next(p for p in paths if p.suffix == ".png").read_bytes()
-            alt = re.sub(r"[*_{}^\\]", "", item["caption"]).split(". ")[0]
+            png_path = next(p for p in paths if p.suffix == ".png")
+            png = png_path.read_bytes()
+            alt = render(item["caption"], "plain").split(". ")[0]  # markup rendered: underscores in names stay
             figure_items.append(ReportFigure(png=png, alt=alt, caption=item["caption"], number=len(figure_items) + 1,
-                                             name=item["name"], width_mm=float(fig.get_size_inches()[0] * 25.4)))
+                                             name=item["name"], width_mm=float(fig.get_size_inches()[0] * 25.4),
+                                             file=png_path.relative_to(out).as_posix()))
 
     # ---------------------------------------------------------------- text
     found = cautions(results, provenance=values_prov, circular=circular)

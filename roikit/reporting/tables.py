@@ -61,6 +61,7 @@ from .format import (
     render,
     statistic_symbol,
 )
+from .html import break_points as _html_breaks
 
 __all__ = [
     "Column",
@@ -256,13 +257,23 @@ class ReportTable:
 
     # ------------------------------------------------------------------ html
     def to_html(self, *, table_id: str | None = None) -> str:
-        """An HTML ``<table>`` (class ``apa``) whose cells carry ``data-column`` and rows ``data-*`` identities."""
+        """An HTML ``<table>`` (class ``apa``) whose cells carry ``data-column`` and rows ``data-*`` identities.
+
+        The table sits in its own horizontal scroll frame (``div.table-scroll``, keyboard-focusable), so a wide
+        table never widens the page; the report's styles draw a shadow at a clipped edge and a "scroll" hint.
+        Captions and notes get break points after commas between words (``town1,<wbr>town2``).
+        """
         esc = _html.escape
         tid = esc(table_id or slug(self.name), quote=True)
-        out = [f'<figure class="table" id="{tid}">']
+        # a long table may break across printed pages (between rows, header repeated); a short one never does
+        kind = "table long" if len(self.rows) > _HTML_LONG_ROWS else "table"
+        out = [f'<figure class="{kind}" id="{tid}">']
         label = f"Table {self.number}" if self.number else "Table"
         out.append(f'<figcaption><span class="table-number">{label}</span><br><span class="table-title">'
-                   f"{render(self.title, 'html')}</span></figcaption>")
+                   f"{_html_breaks(render(self.title, 'html'))}</span></figcaption>")
+        out.append('<p class="scroll-hint" aria-hidden="true">scroll \u2192</p>')
+        out.append(f'<div class="table-scroll" tabindex="0" role="region" aria-label="{esc(label)}, scrolls '
+                   'sideways">')
         out.append('<table class="apa">')
         out.append("<thead><tr>" + "".join(
             f'<th data-column="{esc(c.key, quote=True)}" class="{c.align}">{h}</th>'
@@ -273,9 +284,9 @@ class ReportTable:
             out.append(f"<tr{attrs}>" + "".join(
                 f'<td data-column="{esc(c.key, quote=True)}" class="{c.align}">{v}</td>'
                 for c, v in zip(self.columns, cells)) + "</tr>")
-        out.append("</tbody></table>")
+        out.append("</tbody></table></div>")
         if self.note:
-            out.append(f'<p class="table-note">{self.note_text("html")}</p>')
+            out.append(f'<p class="table-note">{_html_breaks(self.note_text("html"))}</p>')
         out.append("</figure>")
         return "\n".join(out) + "\n"
 
@@ -408,6 +419,7 @@ def _apa_borders(table) -> None:
 
 
 # ---------------------------------------------------------------------------------------------- word layout
+_HTML_LONG_ROWS = 40  # rows of a printed table that may not fit one A4/Letter page (7.5 pt rows, with its note)
 _WORD_MARGIN_CM = 2.5
 _WORD_BODY_PT = 10.0
 _WORD_TABLE_PT = (9.0, 8.0)

@@ -30,7 +30,7 @@ def study() -> tuple[pd.DataFrame, pd.DataFrame]:
         for r, region in enumerate(REGIONS):
             base = rng.normal(0.1, 0.4)
             effect = 0.5 - 0.1 * r + 0.01 * (accuracy[i] - 65)
-            for contrast, shift in (("novel", effect), ("familiar", 0.0)):
+            for contrast, shift in (("novel_route", effect), ("familiar_route", 0.0)):
                 rows.append((pid, contrast, region, base + shift + rng.normal(0, 0.3), 400 + 10 * r,
                              400 + 10 * r - int(rng.integers(0, 15)), float(rng.uniform(0.02, 0.2))))
             for k, town in enumerate(TOWNS):
@@ -39,7 +39,7 @@ def study() -> tuple[pd.DataFrame, pd.DataFrame]:
     values = pd.DataFrame(rows, columns=["participant_id", "contrast", "region", "value", "n_voxels", "n_valid",
                                          "variance"])
     # one outlier, so the tables carry flag letters and a longer note
-    values.loc[(values.participant_id == "sub-25") & (values.contrast == "novel")
+    values.loc[(values.participant_id == "sub-25") & (values.contrast == "novel_route")
                & (values.region == "left hippocampus"), "value"] = 4.0
     return values, participants
 
@@ -51,12 +51,12 @@ def results(values: pd.DataFrame, participants: pd.DataFrame) -> pd.DataFrame:
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
         return pd.concat([
-            run_design(values, "one-sample", contrast="novel"),
-            run_design(values, "two-group", contrast="novel", group="group", levels="younger,older",
+            run_design(values, "one-sample", contrast="novel_route"),
+            run_design(values, "two-group", contrast="novel_route", group="group", levels="younger,older",
                        participants=participants, welch=True),
-            run_design(values, "glm", contrast="novel", formula="value ~ route_accuracy + group",
+            run_design(values, "glm", contrast="novel_route", formula="value ~ route_accuracy + group",
                        participants=participants),
-            run_design(values, "precision-weighted", contrast="novel"),
+            run_design(values, "precision-weighted", contrast="novel_route"),
             run_design(towns, "mixed", formula="value ~ group", random="1", crossed="contrast",
                        participants=participants),
         ], ignore_index=True)
