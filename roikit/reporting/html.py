@@ -69,10 +69,10 @@ p.scroll-hint { position: absolute; top: 0; right: 0; margin: 0; font-size: .8re
   @media (max-width: 60rem) { p.scroll-hint { opacity: 1; } }
 }
 @keyframes roikit-scroll-hint { 0%, 85% { opacity: 1; } 100% { opacity: 0; } }
-table.apa { border-collapse: collapse; margin: .4rem 0; font-size: .86rem; font-variant-numeric: tabular-nums;
+table.apa { border-collapse: collapse; margin: .4rem 0; font-size: .84rem; font-variant-numeric: tabular-nums;
             border-top: 2px solid var(--rule); border-bottom: 2px solid var(--rule); }
-table.apa th { border-bottom: 1px solid var(--rule); font-weight: normal; padding: .25rem .5rem; }
-table.apa td { padding: .15rem .5rem; white-space: nowrap; }
+table.apa th { border-bottom: 1px solid var(--rule); font-weight: normal; padding: .25rem .45rem; }
+table.apa td { padding: .15rem .45rem; white-space: nowrap; }
 table.apa .r { text-align: right; } table.apa .l { text-align: left; } table.apa .c { text-align: center; }
 p.table-note { font-size: .8rem; max-width: 60rem; }
 dl.provenance dt { font-weight: bold; } dl.provenance dd { margin: 0 0 .4rem 1rem; font-family: monospace;
