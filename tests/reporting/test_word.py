@@ -30,9 +30,8 @@ def converted(tmp_path_factory):
     soffice, _, _ = _tool("soffice"), _tool("pdfinfo"), _tool("pdftotext")
     folder = tmp_path_factory.mktemp("word")
     values, participants = _wide_study.study()
-    tables = results_tables(_wide_study.results(values, participants))
-    tables.append(descriptives_table(values, number=len(tables) + 1))
-    tables.append(_long_table(values))
+    results = results_tables(_wide_study.results(values, participants))
+    tables = [*results, descriptives_table(values, number=len(results) + 1), _long_table(values)]
     combined = word_document()
     paths = {}
     for t in tables:
@@ -45,7 +44,7 @@ def converted(tmp_path_factory):
                            "--outdir", str(folder / "pdf"), *map(str, paths.values()), str(folder / "all.docx")],
                           capture_output=True, text=True, timeout=300)
     assert done.returncode == 0, done.stderr[-2000:]
-    return {"folder": folder, "tables": tables, "docx": paths}
+    return {"folder": folder, "tables": tables, "results": results, "docx": paths}
 
 
 def _long_table(values) -> ReportTable:
@@ -69,7 +68,7 @@ def _text(pdf) -> str:
 
 
 def test_results_tables_fit_one_page_with_unbroken_region_names(converted):
-    results = [t for t in converted["tables"] if t.name.startswith("results")]
+    results = converted["results"]
     assert max(len(t.rows) for t in results) == 30 and min(len(t.rows) for t in results) == 10
     for t in results:
         pdf = converted["folder"] / "pdf" / f"{t.name}.pdf"
