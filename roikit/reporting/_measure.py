@@ -25,7 +25,7 @@ _TEX_EXTRA = {"−": 778, "<": 778, ">": 778, "–": 500, "—": 1000, "η": 497
 _SCRIPT = 0.7
 
 
-@functools.lru_cache(maxsize=None)
+@functools.cache
 def _afm(name: str) -> dict[str, float]:
     """Advance widths (1/1000 em) by character from one of matplotlib's AFM files."""
     path = os.path.join(matplotlib.get_data_path(), "fonts", "afm", name)
@@ -42,7 +42,7 @@ def _afm(name: str) -> dict[str, float]:
     return widths
 
 
-@functools.lru_cache(maxsize=None)
+@functools.cache
 def _tex(name: str) -> dict[str, float]:
     """Advance widths (1/1000 em) of the printable ASCII characters in a Computer Modern font."""
     from matplotlib import ft2font

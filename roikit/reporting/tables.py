@@ -312,7 +312,7 @@ class ReportTable:
             check_output(path, overwrite=overwrite)
         doc = document if document is not None else word_document()
         layout = _word_layout(self, doc)
-        section = _word_orientation(doc, landscape=layout["landscape"])
+        _word_orientation(doc, landscape=layout["landscape"])
         size = layout["size"]
 
         def add_runs(paragraph, markup: str, *, size: float | None = None, bold: bool = False):
@@ -541,7 +541,6 @@ def _word_widths(table, widths_pt: list[float]) -> None:
 def _word_rows(table) -> None:
     """The header row repeats on each page (w:tblHeader); no row splits across pages (w:cantSplit)."""
     from docx.oxml import OxmlElement
-    from docx.oxml.ns import qn
 
     for i, row in enumerate(table.rows):
         tr_pr = row._tr.get_or_add_trPr()

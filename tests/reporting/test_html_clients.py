@@ -180,4 +180,4 @@ def test_print_keeps_figures_and_tables_whole(report, browser, tmp_path):
             assert len(first_cells) == box["rows"]
             for region in set(first_cells):
                 assert home[0].count(region) >= first_cells.count(region), (number, region)
-    print(f"printed report: {len(pages)} pages, {n_figures} figures")  # noqa: T201 - shown with -s
+    print(f"printed report: {len(pages)} pages, {n_figures} figures")
