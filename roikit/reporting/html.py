@@ -61,6 +61,7 @@ figure.table { position: relative; timeline-scope: --table-scroll; }
 .table-scroll:focus-visible { outline: 2px solid var(--accent); }
 p.scroll-hint { position: absolute; top: 0; right: 0; margin: 0; font-size: .8rem; color: var(--accent);
                 font-family: sans-serif; opacity: 0; pointer-events: none; }
+p.scroll-hint::after { content: "scroll \\2192"; }
 @supports (animation-timeline: scroll()) {
   /* shown only while the table overflows its frame (an inactive timeline leaves it hidden), fading at the end */
   p.scroll-hint { animation: roikit-scroll-hint linear both; animation-timeline: --table-scroll; }

@@ -271,7 +271,8 @@ class ReportTable:
         label = f"Table {self.number}" if self.number else "Table"
         out.append(f'<figcaption><span class="table-number">{label}</span><br><span class="table-title">'
                    f"{_html_breaks(render(self.title, 'html'))}</span></figcaption>")
-        out.append('<p class="scroll-hint" aria-hidden="true">scroll \u2192</p>')
+        # the hint's text comes from the report's CSS, so a table pasted elsewhere shows none
+        out.append('<p class="scroll-hint" aria-hidden="true"></p>')
         out.append(f'<div class="table-scroll" tabindex="0" role="region" aria-label="{esc(label)}, scrolls '
                    'sideways">')
         out.append('<table class="apa">')
@@ -592,7 +593,7 @@ _PREAMBLE_PACKAGES = {
 }
 
 _FIT_MACRO = r"""% \roikitfit{<tabular>}: the tabular as it is, or shrunk to \linewidth if it is wider
-\newsavebox{\roikitbox}
+\ifdefined\roikitbox\else\newsavebox{\roikitbox}\fi
 \providecommand{\roikitfit}[1]{\sbox{\roikitbox}{#1}%
   \ifdim\wd\roikitbox>\linewidth\resizebox{\linewidth}{!}{\usebox{\roikitbox}}\else\usebox{\roikitbox}\fi}"""
 

@@ -27,6 +27,7 @@ _MEASURE = """JSON.stringify({
   frames: [...document.querySelectorAll('.table-scroll')].map(f => ({
     scroll: f.scrollWidth, client: f.clientWidth, right: f.getBoundingClientRect().right,
     hint: Number(getComputedStyle(f.closest('figure').querySelector('.scroll-hint')).opacity),
+    hintText: getComputedStyle(f.closest('figure').querySelector('.scroll-hint'), '::after').content,
     shadow: getComputedStyle(f).backgroundImage})),
   outside: [...document.querySelectorAll('body *')].filter(e => !e.closest('.table-scroll')
       && e.getBoundingClientRect().right > document.documentElement.clientWidth + 0.5)
@@ -82,7 +83,7 @@ def test_no_sideways_page_scroll_tables_scroll_in_their_frame(report, browser, w
         assert frame["right"] <= client_width + 0.5
         if frame["scroll"] > frame["client"] + 1:  # a wide table: the cue is visible
             overflowing += 1
-            assert frame["hint"] > 0.9, frame
+            assert frame["hint"] > 0.9 and frame["hintText"] == '"scroll \u2192"', frame
             assert frame["shadow"].count("gradient") == 4
         else:
             assert frame["hint"] == 0, frame
