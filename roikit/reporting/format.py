@@ -31,6 +31,7 @@ from __future__ import annotations
 import html as _html
 import math
 import re
+import unicodedata
 from decimal import ROUND_HALF_UP, Decimal
 from typing import Any, Literal, Mapping
 
@@ -338,20 +339,45 @@ def _parse(markup: str) -> list[tuple[str, str]]:
 
 
 _LATEX_ESCAPES = {
-    "\\": r"\textbackslash{}", "&": r"\&", "%": r"\%", "$": r"\$", "#": r"\#", "_": r"\_",
-    "{": r"\{", "}": r"\}", "~": r"\textasciitilde{}", "^": r"\textasciicircum{}",
+    "\\": r"$\backslash$", "&": r"\&", "%": r"\%", "$": r"\$", "#": r"\#", "_": r"\_",
+    "{": r"\{", "}": r"\}", "~": r"$\sim$", "^": r"\^{}", "|": r"$|$",
     "η": r"$\eta$", "ω": r"$\omega$", "χ": r"$\chi$", "τ": r"$\tau$", "μ": r"$\mu$", "²": r"\textsuperscript{2}",
     "−": r"$-$", "–": "--", "—": "---", "∞": r"$\infty$", "×": r"$\times$", "≥": r"$\geq$", "≤": r"$\leq$",
-    "<": r"$<$", ">": r"$>$", "Δ": r"$\Delta$",
+    "<": r"$<$", ">": r"$>$", "Δ": r"$\Delta$", "√": r"$\surd$", "±": r"$\pm$", "≈": r"$\approx$",
+    "·": r"$\cdot$", "…": r"\dots{}", "\u00a0": "~", "‘": "`", "’": "'", "“": "``", "”": "''", "°": r"$^{\circ}$",
+    "α": r"$\alpha$", "β": r"$\beta$", "γ": r"$\gamma$", "δ": r"$\delta$", "ε": r"$\varepsilon$",
+    "θ": r"$\theta$", "λ": r"$\lambda$", "π": r"$\pi$", "ρ": r"$\rho$", "σ": r"$\sigma$", "φ": r"$\phi$",
+    "ψ": r"$\psi$", "Σ": r"$\Sigma$", "³": r"\textsuperscript{3}", "¹": r"\textsuperscript{1}",
+    "ß": r"{\ss}", "æ": r"{\ae}", "ø": r"{\o}", "å": r"{\aa}", "Æ": r"{\AE}", "Ø": r"{\O}", "Å": r"{\AA}",
 }
+# accents LaTeX writes with a command in its default (OT1) encoding: combining character -> command
+_LATEX_ACCENTS = {"\u0301": "'", "\u0300": "`", "\u0302": "^", "\u0308": '"', "\u0303": "~", "\u0304": "=",
+                  "\u0327": "c", "\u030c": "v", "\u0306": "u", "\u030a": "r", "\u030b": "H"}
+
+
 _MD_SPECIAL = re.compile(r"([\\*`|]|<(?=[A-Za-z/!?])|(?<!\w)_|_(?!\w))")
 _SUPERSCRIPT_FROM, _SUPERSCRIPT_TO = "0123456789+-()nabcdefghij", "⁰¹²³⁴⁵⁶⁷⁸⁹⁺⁻⁽⁾ⁿᵃᵇᶜᵈᵉᶠᵍʰⁱʲ"
 _SUPERSCRIPTS = str.maketrans(_SUPERSCRIPT_FROM, _SUPERSCRIPT_TO)
 
 
+def _latex_char(ch: str) -> str:
+    if ch in _LATEX_ESCAPES:
+        return _LATEX_ESCAPES[ch]
+    if ch.isascii():
+        return ch
+    # a letter with an accent -> the accent command; anything else -> its closest ASCII, or "?" (no declaration
+    # needed in any document: the tables compile with pdflatex in the default encoding)
+    parts = unicodedata.normalize("NFD", ch)
+    if len(parts) == 2 and parts[0].isascii() and parts[1] in _LATEX_ACCENTS:
+        accent = _LATEX_ACCENTS[parts[1]]
+        return f"\\{accent}{{{parts[0]}}}" if accent.isalpha() else f"{{\\{accent}{parts[0]}}}"
+    ascii_ = unicodedata.normalize("NFKD", ch).encode("ascii", "ignore").decode("ascii")
+    return latex_escape(ascii_) if ascii_ else "?"
+
+
 def latex_escape(text: str) -> str:
-    """Escape plain text for LaTeX (special characters, Greek letters, dashes)."""
-    return "".join(_LATEX_ESCAPES.get(ch, ch) for ch in str(text))
+    """Escape plain text for LaTeX: special characters, Greek letters, dashes, accents; ASCII output only."""
+    return "".join(_latex_char(ch) for ch in str(text))
 
 
 def _latex_number(text: str) -> str:

@@ -51,7 +51,7 @@ from .figures import (
 )
 from .format import correction_name, corrected_p_symbol, escape_markup, render
 from .html import ReportFigure, Section, figure_html, report_html
-from .tables import ReportTable, descriptives_table, results_tables
+from .tables import ReportTable, descriptives_table, results_tables, word_document, write_latex_preamble
 from .references import bibtex, reference_list
 from .text import (
     SCOPE_STATEMENT,
@@ -372,15 +372,15 @@ def write_report(
                               number=len(tables) + 1, contrasts=_analysed_contrasts(results), labels=names)
     all_tables: list[ReportTable] = tables + [desc]
     table_paths: list[Path] = []
-    import docx
-
-    document = docx.Document()
+    document = word_document()
     for t in all_tables:
         analysis = t.name.split("-", 1)[0][1:] if t.name.startswith("a") and t.name[1:2].isdigit() else "n/a"
         for path in t.write(out / "tables", overwrite=overwrite):
             table_paths.append(listed(path, analysis, f"table ({path.suffix[1:]})", f"Table {t.number}. {t.title}"))
         t.to_docx(document=document)
         document.add_paragraph()
+    table_paths.append(listed(write_latex_preamble(out / "tables", all_tables, overwrite=overwrite), "n/a",
+                              "LaTeX preamble", "The LaTeX packages the tables need (input it in the preamble)"))
     import io
 
     buf = io.BytesIO()
@@ -406,10 +406,12 @@ def write_report(
             for p in paths:
                 figure_paths.append(listed(p, item.get("analysis", "n/a"), f"figure ({p.suffix[1:]})",
                                            f"Figure {number_}. {item['caption']}"))
-            png = next(p for p in paths if p.suffix == ".png").read_bytes()
-            alt = re.sub(r"[*_{}^\\]", "", item["caption"]).split(". ")[0]
+            png_path = next(p for p in paths if p.suffix == ".png")
+            png = png_path.read_bytes()
+            alt = render(item["caption"], "plain").split(". ")[0]  # markup rendered: underscores in names stay
             figure_items.append(ReportFigure(png=png, alt=alt, caption=item["caption"], number=number_,
-                                             name=item["name"], width_mm=float(fig.get_size_inches()[0] * 25.4)))
+                                             name=item["name"], width_mm=float(fig.get_size_inches()[0] * 25.4),
+                                             file=png_path.relative_to(out).as_posix()))
 
     # ---------------------------------------------------------------- text
     found = cautions(results, provenance=values_prov, circular=circular)

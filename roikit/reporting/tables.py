@@ -16,6 +16,7 @@ from __future__ import annotations
 import html as _html
 import io
 import os
+import re
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any, Iterable, Sequence
@@ -66,6 +67,7 @@ from .format import (
     render,
     statistic_symbol,
 )
+from .html import break_points as _html_breaks
 
 __all__ = [
     "Column",
@@ -75,6 +77,9 @@ __all__ = [
     "descriptives",
     "descriptives_table",
     "cell_formatters",
+    "latex_preamble",
+    "write_latex_preamble",
+    "word_document",
     "estimate_decimals",
     "CORRECTION_TEXT",
     "DF_METHOD_TEXT",
@@ -159,6 +164,10 @@ class ReportTable:
     def headers(self, style: str = "plain") -> list[str]:
         return [render(c.header, style) for c in self.columns]
 
+    def cells_markup(self) -> list[list[str]]:
+        """The cells as markup, one list per row in column order."""
+        return [[row.get(c.key, MISSING) for c in self.columns] for row in self.rows]
+
     def cells(self, style: str = "plain") -> list[list[str]]:
         return [[render(row.get(c.key, MISSING), style) for c in self.columns] for row in self.rows]
 
@@ -202,37 +211,76 @@ class ReportTable:
 
     # ------------------------------------------------------------------ latex
     def to_latex(self) -> str:
-        """A LaTeX ``table`` with a booktabs ``tabular`` (needs ``\\usepackage{booktabs}``)."""
+        """A LaTeX table that fits an article's text block; needs the packages in ``tables/preamble.tex``.
+
+        Sized with Computer Modern metrics for a 10 pt ``article`` (text block 345 x 550 pt): ``\\small`` with
+        normal, then narrower column gaps, then ``\\footnotesize``; a table still too wide goes onto a landscape page
+        (``pdflscape``), at ``\\scriptsize`` (7 pt) as the last step. A short table is a ``table`` float whose
+        tabular shrinks to ``\\linewidth`` only if it is still wider (``\\roikitfit``, defined in the preamble);
+        a long one is a ``longtable`` that continues across pages with its header repeated. Only ASCII is written
+        (see :func:`latex_preamble`).
+        """
+        plan = _latex_layout(self)
         spec = "".join(c.align for c in self.columns)
         label = f"tab:{slug(self.name)}"
-        lines = [
-            r"\begin{table}[htbp]",
-            r"\centering",
-            rf"\caption{{{render(self.title, 'latex')}}}",
-            rf"\label{{{label}}}",
-            rf"\begin{{tabular}}{{{spec}}}",
-            r"\toprule",
-            " & ".join(self.headers("latex")) + r" \\",
-            r"\midrule",
-        ]
-        lines += [" & ".join(r) + r" \\" for r in self.cells("latex")]
-        lines.append(r"\bottomrule")
-        lines.append(r"\end{tabular}")
-        if self.note:
-            lines.append(r"\par\smallskip")
-            lines.append(r"\begin{minipage}{\linewidth}\footnotesize " + self.note_text("latex") + r"\end{minipage}")
-        lines.append(r"\end{table}")
+        head = " & ".join(self.headers("latex")) + r" \\"
+        body = [" & ".join(r) + r" \\" for r in self.cells("latex")]
+        title = _latex_breaks(render(self.title, "latex"))
+        note = _latex_breaks(self.note_text("latex")) if self.note else ""
+        number = f"Table {self.number}" if self.number else "Table"
+        lines = [f"% {number}: needs \\input{{preamble}} (roikit tables/preamble.tex) in the document's preamble"]
+        if plan["landscape"]:
+            lines.append(r"\begin{landscape}")
+        sizing = [plan["size"], rf"\setlength{{\tabcolsep}}{{{plan['tabcolsep']}pt}}"]
+        if plan["long"]:
+            n = len(self.columns)
+            lines += ["{" + sizing[0], sizing[1], r"\setlength{\LTcapwidth}{\linewidth}",
+                      rf"\begin{{longtable}}{{{spec}}}",
+                      rf"\caption{{{title}}}\label{{{label}}} \\",
+                      r"\toprule", head, r"\midrule", r"\endfirsthead",
+                      rf"\multicolumn{{{n}}}{{l}}{{\textit{{Table \thetable\ (continued)}}}} \\",
+                      r"\toprule", head, r"\midrule", r"\endhead",
+                      r"\midrule", rf"\multicolumn{{{n}}}{{r}}{{\textit{{(continued)}}}} \\", r"\endfoot",
+                      r"\bottomrule", r"\endlastfoot"]
+            lines += body
+            lines.append(r"\end{longtable}")
+            if note:
+                lines.append(r"\par\noindent{\footnotesize\raggedright " + note + r"\par}")
+            lines.append("}")
+        else:
+            lines += [r"\begin{table}[htbp]", r"\centering", *sizing,
+                      rf"\caption{{{title}}}", rf"\label{{{label}}}",
+                      r"\roikitfit{%", rf"\begin{{tabular}}{{{spec}}}", r"\toprule", head, r"\midrule"]
+            lines += body
+            lines += [r"\bottomrule", r"\end{tabular}}"]
+            if note:
+                lines.append(r"\par\smallskip")
+                lines.append(r"\begin{minipage}{\linewidth}\footnotesize\raggedright " + note + r"\end{minipage}")
+            lines.append(r"\end{table}")
+        if plan["landscape"]:
+            lines.append(r"\end{landscape}")
         return "\n".join(lines) + "\n"
 
     # ------------------------------------------------------------------ html
     def to_html(self, *, table_id: str | None = None) -> str:
-        """An HTML ``<table>`` (class ``apa``) whose cells carry ``data-column`` and rows ``data-*`` identities."""
+        """An HTML ``<table>`` (class ``apa``) whose cells carry ``data-column`` and rows ``data-*`` identities.
+
+        The table sits in its own horizontal scroll frame (``div.table-scroll``, keyboard-focusable), so a wide
+        table never widens the page; the report's styles draw a shadow at a clipped edge and a "scroll" hint.
+        Captions and notes get break points after commas between words (``town1,<wbr>town2``).
+        """
         esc = _html.escape
         tid = esc(table_id or slug(self.name), quote=True)
-        out = [f'<figure class="table" id="{tid}">']
+        # a long table may break across printed pages (between rows, header repeated); a short one never does
+        kind = "table long" if len(self.rows) > _HTML_LONG_ROWS else "table"
+        out = [f'<figure class="{kind}" id="{tid}">']
         label = f"Table {self.number}" if self.number else "Table"
         out.append(f'<figcaption><span class="table-number">{label}</span><br><span class="table-title">'
-                   f"{render(self.title, 'html')}</span></figcaption>")
+                   f"{_html_breaks(render(self.title, 'html'))}</span></figcaption>")
+        # the hint's text comes from the report's CSS, so a table pasted elsewhere shows none
+        out.append('<p class="scroll-hint" aria-hidden="true"></p>')
+        out.append(f'<div class="table-scroll" tabindex="0" role="region" aria-label="{esc(label)}, scrolls '
+                   'sideways">')
         out.append('<table class="apa">')
         out.append("<thead><tr>" + "".join(
             f'<th data-column="{esc(c.key, quote=True)}" class="{c.align}">{h}</th>'
@@ -243,9 +291,9 @@ class ReportTable:
             out.append(f"<tr{attrs}>" + "".join(
                 f'<td data-column="{esc(c.key, quote=True)}" class="{c.align}">{v}</td>'
                 for c, v in zip(self.columns, cells)) + "</tr>")
-        out.append("</tbody></table>")
+        out.append("</tbody></table></div>")
         if self.note:
-            out.append(f'<p class="table-note">{self.note_text("html")}</p>')
+            out.append(f'<p class="table-note">{_html_breaks(self.note_text("html"))}</p>')
         out.append("</figure>")
         return "\n".join(out) + "\n"
 
@@ -253,22 +301,28 @@ class ReportTable:
     def to_docx(self, path: os.PathLike | str | None = None, *, document=None, overwrite: bool = False):
         """Add the table to a python-docx ``Document`` (a new one if none) in APA layout; save to ``path``.
 
+        APA layout: the bold table number, the italic title on the next line, horizontal rules only (above and
+        below the header, below the last row), the note below. Column widths come from the text they hold (Times
+        metrics, 9 pt): numbers and region names are never broken; a table too wide for a portrait page goes into
+        a landscape section of its own. The header row repeats on every page and no row splits across pages.
+        A new document gets 2.5 cm margins and 10 pt Times New Roman (see :func:`word_document`).
+
         Returns the Document.
         """
-        import docx
         from docx.enum.table import WD_TABLE_ALIGNMENT
         from docx.enum.text import WD_ALIGN_PARAGRAPH
         from docx.shared import Pt
 
-        from .format import _parse
+        from .format import _latex_number, _parse
 
         if path is not None:
             check_output(path, overwrite=overwrite)
-        doc = document if document is not None else docx.Document()
+        doc = document if document is not None else word_document()
+        layout = _word_layout(self, doc)
+        _word_orientation(doc, landscape=layout["landscape"])
+        size = layout["size"]
 
         def add_runs(paragraph, markup: str, *, size: float | None = None, bold: bool = False):
-            from .format import _latex_number
-
             for content, kind in _parse(markup):
                 run = paragraph.add_run(_latex_number(content))
                 run.italic = kind == "i"
@@ -278,25 +332,50 @@ class ReportTable:
                 if size:
                     run.font.size = Pt(size)
 
+        def tight(paragraph, keep: bool):
+            fmt = paragraph.paragraph_format
+            fmt.space_before = Pt(0)
+            fmt.space_after = Pt(0)
+            fmt.line_spacing = 1.0
+            fmt.keep_with_next = keep
+
         label = f"Table {self.number}" if self.number else "Table"
         p = doc.add_paragraph()
         add_runs(p, label, bold=True)
+        p.paragraph_format.keep_with_next = True
+        p.paragraph_format.space_after = Pt(2)
         p = doc.add_paragraph()
         add_runs(p, "*" + self.title.replace("*", "") + "*")
+        p.paragraph_format.keep_with_next = True
+        p.paragraph_format.space_after = Pt(6)
         table = doc.add_table(rows=1 + len(self.rows), cols=len(self.columns))
         table.alignment = WD_TABLE_ALIGNMENT.CENTER
+        table.autofit = False
+        _word_widths(table, layout["widths"])
         word_rows = list(table.rows)  # cells fetched once per row (table.cell(i, j) is slow)
+        # short tables stay on one page with their title and note (every row kept with the next one)
+        keep_all = len(self.rows) <= _WORD_KEEP_ROWS
         for cell, c in zip(word_rows[0].cells, self.columns):
-            cell.paragraphs[0].alignment = WD_ALIGN_PARAGRAPH.LEFT if c.align == "l" else WD_ALIGN_PARAGRAPH.CENTER
-            add_runs(cell.paragraphs[0], c.header, size=9)
-        for word_row, row in zip(word_rows[1:], self.rows):
+            par = cell.paragraphs[0]
+            par.alignment = WD_ALIGN_PARAGRAPH.LEFT if c.align == "l" else WD_ALIGN_PARAGRAPH.CENTER
+            tight(par, True)
+            add_runs(par, c.header, size=size)
+        for i, (word_row, row) in enumerate(zip(word_rows[1:], self.rows)):
+            last = i == len(self.rows) - 1
             for cell, c in zip(word_row.cells, self.columns):
-                cell.paragraphs[0].alignment = WD_ALIGN_PARAGRAPH.LEFT if c.align == "l" else WD_ALIGN_PARAGRAPH.RIGHT
-                add_runs(cell.paragraphs[0], row.get(c.key, MISSING), size=9)
+                par = cell.paragraphs[0]
+                par.alignment = WD_ALIGN_PARAGRAPH.LEFT if c.align == "l" else WD_ALIGN_PARAGRAPH.RIGHT
+                if c.align != "l":  # right-aligned numbers, centred as a block under the header
+                    par.paragraph_format.right_indent = Pt(layout["spare"] / 2)
+                # the last row stays with the note below; a long table may break between the other rows
+                tight(par, keep_all or last)
+                add_runs(par, row.get(c.key, MISSING), size=size)
+        _word_rows(table)
         _apa_borders(table)
         if self.note:
             p = doc.add_paragraph()
-            add_runs(p, "*Note.* " + " ".join(self.note), size=9)
+            p.paragraph_format.space_before = Pt(4)
+            add_runs(p, "*Note.* " + " ".join(self.note), size=size)
         if path is not None:
             buf = io.BytesIO()
             doc.save(buf)
@@ -344,6 +423,214 @@ def _apa_borders(table) -> None:
         set_border(cell, "bottom", 4)
     for cell in rows[-1].cells:
         set_border(cell, "bottom", 8)
+
+
+# ---------------------------------------------------------------------------------------------- word layout
+_HTML_LONG_ROWS = 40  # rows of a printed table that may not fit one A4/Letter page (7.5 pt rows, with its note)
+_WORD_MARGIN_CM = 2.5
+_WORD_BODY_PT = 10.0
+_WORD_TABLE_PT = (9.0, 8.0)
+_WORD_CELL_MARGIN_PT = 2.85  # 0.1 cm left and right of each cell (Word's default is 0.19 cm)
+_WORD_CELL_PAD_PT = 2 * _WORD_CELL_MARGIN_PT + 1.5  # both margins plus a little air against rounding
+_WORD_KEEP_ROWS = 40
+
+
+def word_document():
+    """A new python-docx Document set up for tables: 2.5 cm margins, Times New Roman 10 pt body text.
+
+    The page size is the template's (US Letter, as APA style asks); pass this to ``ReportTable.to_docx`` to
+    collect several tables in one file.
+    """
+    import docx
+    from docx.shared import Cm, Pt
+
+    doc = docx.Document()
+    for section in doc.sections:
+        section.left_margin = section.right_margin = Cm(_WORD_MARGIN_CM)
+        section.top_margin = section.bottom_margin = Cm(_WORD_MARGIN_CM)
+    normal = doc.styles["Normal"]
+    normal.font.name = "Times New Roman"
+    normal.font.size = Pt(_WORD_BODY_PT)
+    return doc
+
+
+def _word_layout(table: "ReportTable", doc) -> dict:
+    """Column widths (points), font size and orientation for a Word table.
+
+    Each column's natural width is its widest cell (header or body, Times metrics) plus the cell padding. Tried in
+    order, the first that fits the text width wins: portrait at 9 pt; portrait with headers and text columns
+    other than the first wrapped at spaces; the same two in landscape; landscape at 8 pt; last, every column
+    scaled to the landscape width. Numeric cells and the first (region) column never wrap while any step fits.
+    Spare width is shared equally so the table spans the text block.
+    """
+    from . import _measure
+
+    section = doc.sections[-1]
+    short, long = sorted((section.page_width, section.page_height))
+    portrait = (short - section.left_margin - section.right_margin) / 12700  # EMU -> points
+    landscape = (long - section.left_margin - section.right_margin) / 12700
+    cells = table.cells_markup()
+
+    def measure(size: float, wrap: bool) -> list[float]:
+        out = []
+        for j, c in enumerate(table.columns):
+            body = [row[j] for row in cells]
+            head = _measure.longest_word(c.header, size) if wrap else _measure.width(c.header, size)
+            if wrap and c.align == "l" and j > 0:
+                widest = max((_measure.longest_word(b, size) for b in body), default=0.0)
+            else:
+                widest = max((_measure.width(b, size) for b in body), default=0.0)
+            out.append(max(head, widest) + _WORD_CELL_PAD_PT)
+        return out
+
+    attempts = [(False, _WORD_TABLE_PT[0], False), (False, _WORD_TABLE_PT[0], True),
+                (True, _WORD_TABLE_PT[0], False), (True, _WORD_TABLE_PT[0], True),
+                (True, _WORD_TABLE_PT[1], False), (True, _WORD_TABLE_PT[1], True)]
+    for land, size, wrap in attempts:
+        widths = measure(size, wrap)
+        room = landscape if land else portrait
+        if sum(widths) <= room:
+            spare = (room - sum(widths)) / len(widths)
+            return {"landscape": land, "size": size, "widths": [w + spare for w in widths], "spare": spare}
+    widths = measure(_WORD_TABLE_PT[1], True)
+    return {"landscape": True, "size": _WORD_TABLE_PT[1],
+            "widths": [w * landscape / sum(widths) for w in widths], "spare": 0.0}
+
+
+def _word_orientation(doc, *, landscape: bool):
+    """Make the last section portrait or landscape; a new section (new page) if text already sits in it."""
+    from docx.enum.section import WD_ORIENT, WD_SECTION
+
+    section = doc.sections[-1]
+    is_landscape = section.page_width > section.page_height
+    if is_landscape == landscape:
+        return section
+    if len(doc.element.body) > 1:  # more than the section properties: content exists, start a new page
+        section = doc.add_section(WD_SECTION.NEW_PAGE)
+    width, height = section.page_width, section.page_height
+    section.orientation = WD_ORIENT.LANDSCAPE if landscape else WD_ORIENT.PORTRAIT
+    section.page_width, section.page_height = height, width
+    return section
+
+
+def _word_widths(table, widths_pt: list[float]) -> None:
+    """Fixed layout with the given column widths (grid, every cell, and the table width)."""
+    from docx.oxml import OxmlElement
+    from docx.oxml.ns import qn
+    from docx.shared import Pt
+
+    tbl_pr = table._tbl.tblPr
+    layout = OxmlElement("w:tblLayout")
+    layout.set(qn("w:type"), "fixed")
+    tbl_pr.append(layout)
+    tbl_w = tbl_pr.find(qn("w:tblW"))
+    if tbl_w is None:
+        tbl_w = OxmlElement("w:tblW")
+        tbl_pr.append(tbl_w)
+    tbl_w.set(qn("w:type"), "dxa")
+    tbl_w.set(qn("w:w"), str(int(round(sum(widths_pt) * 20))))
+    margins = OxmlElement("w:tblCellMar")
+    for edge in ("left", "right"):
+        element = OxmlElement(f"w:{edge}")
+        element.set(qn("w:w"), str(int(round(_WORD_CELL_MARGIN_PT * 20))))
+        element.set(qn("w:type"), "dxa")
+        margins.append(element)
+    tbl_pr.append(margins)
+    for grid_col, w in zip(table._tbl.tblGrid.findall(qn("w:gridCol")), widths_pt):
+        grid_col.set(qn("w:w"), str(int(round(w * 20))))
+    for j, column in enumerate(table.columns):
+        column.width = Pt(widths_pt[j])
+    for row in table.rows:
+        for cell, w in zip(row.cells, widths_pt):
+            cell.width = Pt(w)
+
+
+def _word_rows(table) -> None:
+    """The header row repeats on each page (w:tblHeader); no row splits across pages (w:cantSplit)."""
+    from docx.oxml import OxmlElement
+
+    for i, row in enumerate(table.rows):
+        tr_pr = row._tr.get_or_add_trPr()
+        tr_pr.append(OxmlElement("w:cantSplit"))
+        if i == 0:
+            tr_pr.append(OxmlElement("w:tblHeader"))
+
+
+# ---------------------------------------------------------------------------------------------- latex layout
+_TEX_TEXT_WIDTH_PT = 345.0  # \textwidth of a 10 pt article
+_TEX_TEXT_HEIGHT_PT = 550.0  # \textheight of a 10 pt article on A4 or US Letter (at least)
+_TEX_SIZES = ((r"\small", 9.0), (r"\footnotesize", 8.0), (r"\scriptsize", 7.0))
+_TEX_DESIGN_SIZE = 1.05  # cmr9/cmr8/cmr7 are a little wider than cmr10 scaled down (measured: 224.7 vs 218.7 pt)
+_TEX_LONG_ROWS = {False: 36, True: 22}  # rows above which a table is a longtable (portrait, landscape)
+
+
+def _latex_layout(table: "ReportTable") -> dict:
+    """Font size, column gap, orientation and float/longtable for a LaTeX table (see ``ReportTable.to_latex``)."""
+    from . import _measure
+
+    cells = table.cells_markup()
+    attempts = [(False, 0, 6.0), (False, 0, 3.0), (False, 1, 3.0), (True, 0, 6.0), (True, 0, 3.0), (True, 1, 3.0),
+                (True, 2, 2.0)]
+    chosen = attempts[-1]
+    for land, size_index, gap in attempts:
+        size = _TEX_SIZES[size_index][1]
+        natural = sum(max([_measure.width(c.header, size, face="cm")]
+                          + [_measure.width(row[j], size, face="cm") for row in cells]) * _TEX_DESIGN_SIZE
+                      + 2 * gap for j, c in enumerate(table.columns))
+        room = _TEX_TEXT_HEIGHT_PT if land else _TEX_TEXT_WIDTH_PT
+        if natural <= room:
+            chosen = (land, size_index, gap)
+            break
+    land, size_index, gap = chosen
+    return {"landscape": land, "size": _TEX_SIZES[size_index][0], "tabcolsep": f"{gap:g}",
+            "long": len(table.rows) > _TEX_LONG_ROWS[land]}
+
+
+def _latex_breaks(latex: str) -> str:
+    """Allow line breaks after commas between words (``town1,town2,...`` lists) in captions and notes."""
+    return re.sub(r",(?=[A-Za-z])", r",\\allowbreak{}", latex)
+
+
+_PREAMBLE_PACKAGES = {
+    "booktabs": r"\usepackage{booktabs}   % \toprule, \midrule, \bottomrule",
+    "graphicx": r"\usepackage{graphicx}   % \resizebox, used by \roikitfit",
+    "longtable": r"\usepackage{longtable}  % long tables that continue across pages",
+    "pdflscape": r"\usepackage{pdflscape}  % landscape pages for wide tables",
+}
+
+_FIT_MACRO = r"""% \roikitfit{<tabular>}: the tabular as it is, or shrunk to \linewidth if it is wider
+\ifdefined\roikitbox\else\newsavebox{\roikitbox}\fi
+\providecommand{\roikitfit}[1]{\sbox{\roikitbox}{#1}%
+  \ifdim\wd\roikitbox>\linewidth\resizebox{\linewidth}{!}{\usebox{\roikitbox}}\else\usebox{\roikitbox}\fi}"""
+
+
+def latex_preamble(tables: Iterable["ReportTable"]) -> str:
+    """The preamble lines the LaTeX tables need: exactly their packages, and ``\\roikitfit`` when a float uses it.
+
+    The tables write only ASCII (no ``inputenc``/``fontenc`` declarations needed) and use ``\\textsubscript``,
+    which the LaTeX kernel has defined since 2015.
+    """
+    needs = {"booktabs"}
+    fit = False
+    for t in tables:
+        plan = _latex_layout(t)
+        needs.add("longtable" if plan["long"] else "graphicx")
+        fit = fit or not plan["long"]
+        if plan["landscape"]:
+            needs.add("pdflscape")
+    lines = ["% Packages the roikit tables in this folder need. In your document's preamble: \\input{preamble}",
+             "% (or copy these lines). Tables are sized for a 10 pt article text block."]
+    lines += [_PREAMBLE_PACKAGES[p] for p in _PREAMBLE_PACKAGES if p in needs]
+    if fit:
+        lines.append(_FIT_MACRO)
+    return "\n".join(lines) + "\n"
+
+
+def write_latex_preamble(directory: os.PathLike | str, tables: Iterable["ReportTable"], *,
+                         overwrite: bool = False) -> Path:
+    """Write ``directory/preamble.tex`` (see :func:`latex_preamble`); returns its path."""
+    return atomic_write_bytes(Path(directory) / "preamble.tex", latex_preamble(tables).encode("ascii"),
+                              overwrite=overwrite)
 
 
 # ---------------------------------------------------------------------------------------------- results
