@@ -59,7 +59,9 @@ def _valid_entry(entry, n_regions: int, has_var: bool) -> bool:
     if not isinstance(entry, dict) or not isinstance(entry.get("input"), dict):
         return False
     lists = ("value", "n_valid") + (("variance",) if has_var else ())
-    return all(isinstance(entry.get(k), list) and len(entry[k]) == n_regions for k in lists)
+    return all(isinstance(entry.get(k), list) and len(entry[k]) == n_regions
+               and all(x is None or (isinstance(x, (int, float)) and not isinstance(x, bool)) for x in entry[k])
+               for k in lists)
 
 
 def _read_cache(path: Path, fingerprint: str) -> dict:
@@ -73,10 +75,12 @@ def _read_cache(path: Path, fingerprint: str) -> dict:
         warnings.warn(RoikitWarning(f"{path}: unreadable extraction cache ({exc}); it is discarded and rebuilt "
                                     "(every map is read again)"), stacklevel=3)
         return {}
-    if isinstance(cache, dict) and cache.get("format") != _CACHE_FORMAT and "format" in cache:
+    layout = isinstance(cache, dict) and isinstance(cache.get("format"), int) and \
+        isinstance(cache.get("fingerprint"), str) and isinstance(cache.get("maps"), dict) and \
+        isinstance(cache.get("provenance", {}), dict)
+    if layout and cache["format"] != _CACHE_FORMAT:
         return {}  # another version's cache: rebuilt quietly
-    if not isinstance(cache, dict) or not isinstance(cache.get("maps"), dict) or \
-            not isinstance(cache.get("provenance", {}), dict):
+    if not layout:
         warnings.warn(RoikitWarning(f"{path}: malformed extraction cache (not roikit's layout); it is discarded "
                                     "and rebuilt (every map is read again)"), stacklevel=3)
         return {}
@@ -139,7 +143,12 @@ def _extract_with_cache(study: Study, out: Path, *, progress: bool | None, analy
     has_var = "variance_path" in maps.columns
     keyed = [_content_key(_sha256(r["path"]), _volume(r), _sha256(r.get("variance_path")) if has_var else None)
              for r in rows]
-    hits = [entries.get(k) if _valid_entry(entries.get(k), n_regions, has_var) else None for k in keyed]
+    broken = [k for k, e in entries.items() if not _valid_entry(e, n_regions, has_var)]
+    if broken:
+        warnings.warn(RoikitWarning(f"{cache_path}: {len(broken)} malformed cache entries discarded (those maps "
+                                    "are read again)"), stacklevel=3)
+        entries = {k: e for k, e in entries.items() if k not in broken}
+    hits = [entries.get(k) for k in keyed]
     todo = [i for i, h in enumerate(hits) if h is None]
 
     values = np.full((len(rows), n_regions), np.nan)
