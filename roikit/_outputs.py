@@ -79,7 +79,12 @@ def command_line() -> Iterator[None]:
 
 def consent_hint() -> str:
     """``pass --overwrite`` on the command line, ``pass overwrite=True`` in Python."""
-    return "pass --overwrite" if _CLI.get() else "pass overwrite=True"
+    return f"pass {consent_option()}"
+
+
+def consent_option() -> str:
+    """``--overwrite`` on the command line, ``overwrite=True`` in Python."""
+    return "--overwrite" if _CLI.get() else "overwrite=True"
 
 
 def _now() -> str:
@@ -603,5 +608,5 @@ def _umask() -> int:
     return mask
 
 
-__all__ = ["MANIFEST", "LOCK", "PLAN", "command_line", "consent_hint", "read_manifest", "folder_lock", "recover",
+__all__ = ["MANIFEST", "LOCK", "PLAN", "command_line", "consent_hint", "consent_option", "read_manifest", "folder_lock", "recover",
            "check_folder", "FolderOutputs", "check_files", "write_files"]
