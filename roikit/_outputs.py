@@ -271,7 +271,11 @@ def recover(folder: os.PathLike | str) -> bool:
             raise OutputExistsError(
                 f"{plan_path}: an interrupted replacement of outputs left an unreadable plan ({exc}); check the "
                 f"folder's files by hand, then delete {PLAN}") from exc
-        _roll_forward(folder, plan)
+        try:
+            _roll_forward(folder, plan)
+        except OSError as exc:
+            raise _os_error(exc, f"{folder}: cannot finish replacing the outputs of an interrupted earlier run "
+                                 f"(plan {PLAN})") from exc
         finished = True
         warnings.warn(RoikitWarning(
             f"{folder}: finished replacing outputs that an interrupted earlier run had started "

@@ -120,7 +120,8 @@ def _identity(study: Study, out: Path) -> dict:
         relative = os.path.relpath(path, os.path.abspath(out)).replace(os.sep, "/")
     except ValueError:  # another drive (Windows)
         relative = None
-    return {"study_file": os.fspath(path), "study_file_from_out": relative, "title": study.title}
+    return {"study_file": os.fspath(path), "study_file_from_out": relative, "title": study.title,
+            "study_sha256": sha256_file(path)}  # recorded, not compared: editing the study file keeps its folder
 
 
 #: Identity keys that make a results folder "this study's" (either suffices: a moved project still matches).
