@@ -129,13 +129,17 @@ def _os_error(exc: OSError, what: str) -> RoikitError:
 
 
 def read_manifest(folder: os.PathLike | str) -> dict | None:
-    """The folder's manifest, or None when there is none. A malformed one is None with a warning."""
+    """The folder's manifest, or None when there is none. A malformed one is None with a warning.
+
+    A folder written before manifests existed is recognised from its ``provenance.json`` (see
+    :func:`_legacy_manifest`).
+    """
     path = Path(folder) / MANIFEST
     try:
         with open(path, encoding="utf-8") as fh:
             data = json.load(fh)
     except FileNotFoundError:
-        return None
+        return _legacy_manifest(Path(folder))
     except (OSError, ValueError) as exc:
         warnings.warn(RoikitWarning(f"{path}: unreadable manifest ({exc}); the folder's files are treated as not "
                                     "written by roikit"), stacklevel=3)
@@ -148,6 +152,35 @@ def read_manifest(folder: os.PathLike | str) -> dict | None:
     owner = data.get("owner")
     data["owner"] = owner if isinstance(owner, dict) else None
     return data
+
+
+def _legacy_manifest(folder: Path) -> dict | None:
+    """The manifest of a folder that an earlier roikit (before manifests) wrote, from its ``provenance.json``.
+
+    ``roikit run`` and ``roikit report`` recorded every output with its SHA-256 there. Only the files that
+    still hold those bytes count as roikit's (plus ``provenance.json`` itself); anything else is the user's.
+    """
+    try:
+        with open(folder / "provenance.json", encoding="utf-8") as fh:
+            record = json.load(fh)
+    except (OSError, ValueError):
+        return None
+    if not isinstance(record, dict) or record.get("kind") not in ("roikit run", "roikit report") or \
+            not isinstance(record.get("outputs"), list):
+        return None
+    files = {}
+    for item in record["outputs"] + [{"path": "provenance.json", "sha256": None}]:
+        rel = item.get("path") if isinstance(item, dict) else None
+        if not isinstance(rel, str) or rel.startswith(("/", "..")) or not (folder / rel).is_file():
+            continue
+        entry = _record(folder / rel, record["kind"], "folder")
+        if item.get("sha256") not in (None, entry["sha256"]):
+            continue  # changed since: the user's now
+        files[rel] = entry
+    run = record.get("run") if isinstance(record.get("run"), dict) else {}
+    identity = {"study_file": run["study_file"]} if isinstance(run.get("study_file"), str) else None
+    return {**_empty_manifest(), "owner": {"writer": record["kind"], "identity": identity, "legacy": True},
+            "files": files}
 
 
 def _empty_manifest() -> dict:

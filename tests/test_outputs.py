@@ -216,3 +216,19 @@ def test_files_rerun_without_consent_and_a_foreign_file_needs_it(tmp_path):
     # a folder-owner's rerun keeps the single files of another command (they are not its set)
     manifest = json.loads((tmp_path / MANIFEST).read_text())
     assert {e["writer"] for e in manifest["files"].values()} == {"roikit extract"}
+
+
+def test_a_folder_written_before_manifests_is_recognised_from_its_provenance(tmp_path):
+    out = tmp_path / "results"
+    (out / "figures").mkdir(parents=True)
+    old = {"report.html": "old report", "figures/a.png": "old a", "figures/edited.png": "as written"}
+    for rel, text in old.items():
+        (out / rel).write_text(text)
+    outputs_list = [{"path": rel, "sha256": outputs._sha256(out / rel)} for rel in old]
+    (out / "figures" / "edited.png").write_text("edited by the user since")
+    (out / "figures" / "mine.png").write_text("mine")
+    (out / "provenance.json").write_text(json.dumps({"kind": "roikit run", "outputs": outputs_list,
+                                                     "run": {"study_file": "/s/study.toml"}}))
+    # the same study: a rerun without consent; its unchanged outputs are replaced, the rest is kept
+    _write_set(out, NEW, **IDENTITY)
+    assert _tree(out) == {**NEW, "figures/edited.png": "edited by the user since", "figures/mine.png": "mine"}
