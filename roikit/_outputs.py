@@ -461,9 +461,8 @@ def check_folder(folder: os.PathLike | str, *, writer: str, identity: dict | Non
             why = (f"holds the outputs of {owner.get('writer', 'another command')}"
                    + (f" for {label}" if label else "") + (f", not of {what}" if what else ""))
         raise OutputExistsError(
-            f"{folder}: {why}; {consent_hint()} to write {writer}'s outputs there (only files roikit wrote, and "
-            "files with the same names as new outputs, are replaced; other files are kept), or choose another "
-            "output folder")
+            f"{folder}: {why}; {consent_hint()} to write there anyway (other files are kept unless an output has "
+            "their name), or choose another output folder")
     changed = [rel for rel, e in manifest["files"].items()
                if e.get("set") == "folder" and _changed(folder / rel, e)]
     if changed:
