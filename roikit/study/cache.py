@@ -141,14 +141,15 @@ def _extract_with_cache(study: Study, out: Path, *, progress: bool | None, analy
     maps = _analysed_maps(study) if analysed_only else study.maps
     rows = maps.to_dict("records")
     has_var = "variance_path" in maps.columns
+    # an empty cache needs no digests up front: extraction records the digest of what it reads
     keyed = [_content_key(_sha256(r["path"]), _volume(r), _sha256(r.get("variance_path")) if has_var else None)
-             for r in rows]
+             for r in rows] if entries else [None] * len(rows)
     broken = [k for k, e in entries.items() if not _valid_entry(e, n_regions, has_var)]
     if broken:
         warnings.warn(RoikitWarning(f"{cache_path}: {len(broken)} malformed cache entries discarded (those maps "
                                     "are read again)"), stacklevel=3)
         entries = {k: e for k, e in entries.items() if k not in broken}
-    hits = [entries.get(k) for k in keyed]
+    hits = [entries.get(k) if k is not None else None for k in keyed]
     todo = [i for i, h in enumerate(hits) if h is None]
 
     values = np.full((len(rows), n_regions), np.nan)
