@@ -19,6 +19,7 @@ from typing import Any, Iterable
 import numpy as np
 import pandas as pd
 
+from ._outputs import consent_hint, write_files
 from .errors import InputFileError, OutputExistsError, UsageError
 
 __all__ = [
@@ -41,7 +42,7 @@ def check_output(path: os.PathLike | str, *, overwrite: bool) -> Path:
     path = Path(path)
     if path.exists() and not overwrite:
         raise OutputExistsError(
-            f"{path}: file exists; pass --overwrite (overwrite=True) to replace it, or choose another path"
+            f"{path}: file exists; {consent_hint()} to replace it, or choose another path"
         )
     return path
 
@@ -97,8 +98,7 @@ def to_jsonable(obj: Any) -> Any:
 
 def write_json(path: os.PathLike | str, obj: Any, *, overwrite: bool = False) -> Path:
     """Write ``obj`` as indented JSON, atomically."""
-    text = json.dumps(to_jsonable(obj), indent=2, ensure_ascii=False) + "\n"
-    return atomic_write_bytes(path, text.encode("utf-8"), overwrite=overwrite)
+    return atomic_write_bytes(path, _json_bytes(obj), overwrite=overwrite)
 
 
 def _format_cell(x: Any) -> str:
@@ -124,8 +124,12 @@ def write_table(
     *,
     sidecar: dict | None = None,
     overwrite: bool = False,
+    writer: str | None = None,
 ) -> Path:
     """Write a tidy table as TSV (``n/a`` for missing, exact floats) and its JSON sidecar.
+
+    The table and its sidecar are written as one set: both go to temporary files first and are then renamed
+    into place, so a failure leaves neither half (never a table without its sidecar).
 
     Parameters
     ----------
@@ -136,19 +140,45 @@ def write_table(
     sidecar : dict, optional
         Written as JSON beside the table (``x.tsv`` -> ``x.json``).
     overwrite : bool
-        Replace existing files.
+        Replace existing files (with ``writer``: files that are not unchanged outputs of ``writer``).
+    writer : str, optional
+        The command writing the table (e.g. ``"roikit extract"``): the files are recorded in the folder's
+        manifest, a rerun of the same command replaces them without ``overwrite``, and the switch is
+        recoverable after a crash (:mod:`roikit._outputs`).
     """
-    path = check_output(path, overwrite=overwrite)
-    if sidecar is not None:
-        check_output(sidecar_path(path), overwrite=overwrite)
+    path = Path(path)
     lines = ["\t".join(str(c) for c in data.columns)]
     columns = [data[c].tolist() for c in data.columns]
     for row in zip(*columns):
         lines.append("\t".join(_format_cell(x) for x in row))
-    atomic_write_bytes(path, ("\n".join(lines) + "\n").encode("utf-8"), overwrite=overwrite)
+    files = {path.name: ("\n".join(lines) + "\n").encode("utf-8")}
     if sidecar is not None:
-        write_json(sidecar_path(path), sidecar, overwrite=overwrite)
+        files[sidecar_path(path).name] = _json_bytes(sidecar)
+    if writer is not None:
+        write_files(path.parent, files, writer=writer, overwrite=overwrite)
+        return path
+    for name in files:
+        check_output(path.parent / name, overwrite=overwrite)
+    path.parent.mkdir(parents=True, exist_ok=True)
+    temps: dict[str, str] = {}
+    try:
+        for name, content in files.items():
+            fd, temps[name] = tempfile.mkstemp(prefix=f".{name}.", suffix=".tmp", dir=path.parent)
+            with os.fdopen(fd, "wb") as fh:
+                fh.write(content)
+            os.chmod(temps[name], 0o666 & ~_umask())
+        for name, tmp in temps.items():
+            os.replace(tmp, path.parent / name)
+    except BaseException:
+        for tmp in temps.values():
+            if os.path.exists(tmp):
+                os.unlink(tmp)
+        raise
     return path
+
+
+def _json_bytes(obj: Any) -> bytes:
+    return (json.dumps(to_jsonable(obj), indent=2, ensure_ascii=False) + "\n").encode("utf-8")
 
 
 def read_table(path: os.PathLike | str, *, label_columns: Iterable[str] = LABEL_COLUMNS) -> pd.DataFrame:

@@ -21,6 +21,8 @@ __all__ = [
     "MapDiscoveryError",
     "ExtractionError",
     "OutputExistsError",
+    "OutputLockedError",
+    "OutputWriteError",
     "DesignError",
     "ConvergenceError",
     "RoikitWarning",
@@ -68,6 +70,14 @@ class ExtractionError(RoikitError, RuntimeError):
 
 class OutputExistsError(RoikitError, FileExistsError):
     """An output file exists and overwriting was not allowed."""
+
+
+class OutputLockedError(RoikitError, BlockingIOError):
+    """Another roikit command is writing into the same output folder (its lock file is held)."""
+
+
+class OutputWriteError(RoikitError, OSError):
+    """An output could not be written (permissions, disk full); nothing half-written is left in place."""
 
 
 class DesignError(RoikitError, ValueError):

@@ -18,11 +18,13 @@ order, optionally through a pool of processes or any
 from __future__ import annotations
 
 import concurrent.futures as cf
+import contextlib
 import datetime as _dt
 import glob
 import hashlib
 import os
 import re
+import time
 import warnings
 from dataclasses import dataclass
 from pathlib import Path
@@ -59,6 +61,9 @@ __all__ = [
 ]
 
 STATISTICS = ("mean", "median", "trimmed-mean", "weighted-mean")
+
+#: The writer recorded in the output folder's manifest for region values tables (Python and command line).
+VALUES_WRITER = "roikit extract"
 
 #: Proportion cut from each end for the trimmed mean (20%, Wilcox 2012, common practice).
 TRIM = 0.2
@@ -446,8 +451,44 @@ def _portable(exc: Exception, path: str) -> Exception:
 _WORKER_STATE: dict = {}
 
 
-def _init_worker(index, names, statistic, keep_zeros):
+def _init_worker(index, names, statistic, keep_zeros, parent=None):
+    _watch_parent(parent)
     _WORKER_STATE.update(index=index, names=names, statistic=statistic, keep_zeros=keep_zeros)
+
+
+def _watch_parent(parent: int | None, *, every: float = 0.5) -> None:
+    """Make a pool worker leave when the process that started it dies (even by SIGKILL), and ignore Ctrl-C.
+
+    Without this, a killed ``roikit`` leaves its workers blocked on their task pipe forever. Linux: the kernel
+    sends SIGTERM on the parent's death (``prctl(PR_SET_PDEATHSIG)``). Everywhere: a daemon thread checks every
+    ``every`` seconds that the parent process id is unchanged (an orphan is adopted by another process) and
+    ends the worker otherwise. Ctrl-C reaches the whole process group; the parent handles it (keeps what was
+    extracted, stops the workers), so workers ignore it.
+    """
+    import signal
+    import sys
+    import threading
+
+    with contextlib.suppress(ValueError, OSError):  # only possible in the main thread
+        signal.signal(signal.SIGINT, signal.SIG_IGN)
+    if parent is None:
+        parent = os.getppid()
+    if sys.platform.startswith("linux"):
+        with contextlib.suppress(Exception):
+            import ctypes
+
+            libc = ctypes.CDLL(None, use_errno=True)
+            libc.prctl(1, int(signal.SIGTERM), 0, 0, 0)  # 1 = PR_SET_PDEATHSIG
+    if os.getppid() != parent:  # the parent died before the line above took effect
+        os._exit(1)
+
+    def watch():
+        while True:
+            time.sleep(every)
+            if os.getppid() != parent:
+                os._exit(1)
+
+    threading.Thread(target=watch, name="roikit-parent-watch", daemon=True).start()
 
 
 def _run_tasks_in_worker(tasks):
@@ -587,6 +628,7 @@ def extract(
     variances = np.full((n_maps, n_regions), np.nan) if has_var else None
     digests: list = [None] * n_maps
     vdigests: list = [None] * n_maps
+    done = np.zeros(n_maps, dtype=bool)
 
     failures: list[tuple[int, BaseException]] = []
 
@@ -601,6 +643,7 @@ def extract(
             if has_var:
                 variances[i] = var
             digests[i], vdigests[i] = dig, vdig
+            done[i] = True
 
     bar = _progress(n_maps, progress, "extracting")
     try:
@@ -622,18 +665,31 @@ def extract(
             batches = [(s, tasks[s:s + size]) for s in range(0, n_maps, size)]
             if executor is None:
                 with cf.ProcessPoolExecutor(n_jobs, initializer=_init_worker,
-                                            initargs=(index, names, statistic, keep_zeros)) as pool:
-                    _stream(lambda batch: pool.submit(_run_tasks_in_worker, batch), batches, collect, bar,
-                            max_in_flight=2 * n_jobs)
+                                            initargs=(index, names, statistic, keep_zeros, os.getpid())) as pool:
+                    try:
+                        _stream(lambda batch: pool.submit(_run_tasks_in_worker, batch), batches, collect, bar,
+                                max_in_flight=2 * n_jobs)
+                    except BaseException:  # an interrupt: stop the workers now instead of finishing their batches
+                        pool.shutdown(wait=False, cancel_futures=True)
+                        for proc in list((getattr(pool, "_processes", None) or {}).values()):
+                            with contextlib.suppress(Exception):
+                                proc.terminate()
+                        raise
             else:
                 _stream(lambda batch: executor.submit(_run_tasks, batch, index, names, statistic, keep_zeros),
                         batches, collect, bar, max_in_flight=2 * max(1, getattr(executor, "_max_workers", 2)))
+    except KeyboardInterrupt as exc:
+        # keep what was finished: the caller (e.g. the study cache) can store it before giving up
+        exc.partial_values = assemble_values(maps, names, realised.n_voxels, values, n_valid, variances)
+        exc.completed = np.flatnonzero(done).tolist()
+        exc.inputs = _input_records(maps, tasks, digests, vdigests)
+        raise
     finally:
         bar.close()
 
     table = assemble_values(maps, names, realised.n_voxels, values, n_valid, variances)
     if failures:
-        _raise_failures(failures, tasks, table)
+        _raise_failures(failures, tasks, table, _input_records(maps, tasks, digests, vdigests))
     _warn_empty(table)
     table.attrs["roikit"] = {
         "kind": "region values",
@@ -645,15 +701,20 @@ def extract(
         "missing_rule": "NaN voxels are missing" + ("" if keep_zeros else "; voxels exactly 0 are missing"),
         "region_sources": region_sources,
         **realised.provenance(),
-        "inputs": [
-            {k: v for k, v in {
-                "participant_id": r.participant_id, "contrast": r.contrast,
-                "session_id": getattr(r, "session_id", None), "path": t.path, "volume": t.volume,
-                "sha256": d, "variance_path": t.variance_path, "variance_sha256": vd}.items() if v is not None}
-            for r, t, d, vd in zip(maps.itertuples(index=False), tasks, digests, vdigests)
-        ],
+        "inputs": _input_records(maps, tasks, digests, vdigests),
     }
     return table
+
+
+def _input_records(maps: pd.DataFrame, tasks, digests, vdigests) -> list[dict]:
+    """Provenance of every input map: labels, path, volume, SHA-256 of the bytes read (None: not read)."""
+    return [
+        {k: v for k, v in {
+            "participant_id": r.participant_id, "contrast": r.contrast,
+            "session_id": getattr(r, "session_id", None), "path": t.path, "volume": t.volume,
+            "sha256": d, "variance_path": t.variance_path, "variance_sha256": vd}.items() if v is not None}
+        for r, t, d, vd in zip(maps.itertuples(index=False), tasks, digests, vdigests)
+    ]
 
 
 def _batch_size(n_maps: int, n_workers: int) -> int:
@@ -691,11 +752,12 @@ def _stream(submit, batches, collect, bar, *, max_in_flight: int):
         submit_one()
 
 
-def _raise_failures(failures, tasks, table: pd.DataFrame):
+def _raise_failures(failures, tasks, table: pd.DataFrame, inputs: list | None = None):
     """Raise after all maps are done: one failure re-raised as is, several as one ExtractionError.
 
-    Either way the exception carries ``partial_values`` (the table with the failed maps' rows n/a)
-    and ``failures`` (path, exception) pairs, so a long run loses nothing that succeeded.
+    Either way the exception carries ``partial_values`` (the table with the failed maps' rows n/a),
+    ``failures`` (path, exception) pairs, ``completed`` (positions of the maps that were extracted) and
+    ``inputs`` (their provenance records), so a long run loses nothing that succeeded.
     """
     listed = [(tasks[i].path, exc) for i, exc in failures]
     if len(listed) == 1:
@@ -709,6 +771,9 @@ def _raise_failures(failures, tasks, table: pd.DataFrame):
         exc = ExtractionError(f"{len(listed)} of {len(tasks)} maps failed, the others were extracted: {shown}{more}")
     exc.partial_values = table
     exc.failures = listed
+    failed = {i for i, _ in failures}
+    exc.completed = [i for i in range(len(tasks)) if i not in failed]
+    exc.inputs = inputs
     raise exc
 
 
@@ -748,8 +813,10 @@ def _warn_empty(table: pd.DataFrame) -> None:
 def write_values(path: str | os.PathLike, values: pd.DataFrame, *, overwrite: bool = False) -> Path:
     """Write the region values table as TSV with its JSON sidecar (columns described, provenance).
 
+    The table and its sidecar are written as one set and recorded in the folder's manifest, so writing them
+    again (a rerun) needs no ``overwrite``; replacing files roikit did not write (or that changed since) does.
     Returns the path written.
     """
     columns = {c: VALUE_COLUMNS.get(c, "") for c in values.columns}
     sidecar = {"columns": columns, "provenance": values.attrs.get("roikit", {})}
-    return write_table(path, values, sidecar=sidecar, overwrite=overwrite)
+    return write_table(path, values, sidecar=sidecar, overwrite=overwrite, writer=VALUES_WRITER)

@@ -1,6 +1,7 @@
 """Tests for roikit.extraction: finding maps and the streaming extraction engine."""
 
 import concurrent.futures as cf
+import json
 import os
 import warnings
 
@@ -238,7 +239,7 @@ def test_map_list_and_participants(tmp_path, tiny_study):
     assert table["participant_id"].tolist() == ["sub-007", "sub-01"] and np.isnan(table["age"].iloc[1])
 
 
-def test_write_values_is_atomic_and_refuses_to_overwrite(tiny_study, tmp_path):
+def test_write_values_is_atomic_reruns_and_refuses_foreign_files(tiny_study, tmp_path):
     values = extract(find_maps(tiny_study["pattern"]), RegionSet([Atlas(tiny_study["atlas"], tiny_study["labels"])]))
     out = write_values(tmp_path / "values.tsv", values)
     back = pd.read_csv(out, sep="\t", dtype={"participant_id": str})
@@ -250,10 +251,44 @@ def test_write_values_is_atomic_and_refuses_to_overwrite(tiny_study, tmp_path):
     assert side["provenance"]["regions"][0]["n_voxels"] == 80
     from roikit.errors import OutputExistsError
 
-    with pytest.raises(OutputExistsError, match="file exists; pass --overwrite"):
+    # its own earlier output (listed in the folder's manifest, unchanged) is replaced without overwrite
+    write_values(tmp_path / "values.tsv", values)
+    manifest = json.loads((tmp_path / ".roikit-manifest.json").read_text())
+    assert {manifest["files"][n]["writer"] for n in ("values.tsv", "values.json")} == {"roikit extract"}
+    # a file roikit did not write, or one changed since, needs consent (Python spelling in Python)
+    (tmp_path / "values.json").write_text("{}")
+    with pytest.raises(OutputExistsError, match=r"values.json: file exists and is not an unchanged output of "
+                                                r"roikit extract; pass overwrite=True"):
         write_values(tmp_path / "values.tsv", values)
+    (tmp_path / "mine.tsv").write_text("x\n1\n")
+    with pytest.raises(OutputExistsError, match="pass overwrite=True"):
+        write_values(tmp_path / "mine.tsv", values)
     write_values(tmp_path / "values.tsv", values, overwrite=True)
-    assert not [p for p in os.listdir(tmp_path) if p.endswith(".tmp")]
+    assert not [p for p in os.listdir(tmp_path) if p.endswith(".tmp") or p.startswith(".roikit-staging")]
+
+
+def test_write_values_never_leaves_a_table_without_its_sidecar(tiny_study, tmp_path, monkeypatch):
+    """Issue 13: a full disk while writing the sidecar left a TSV without it, and the rerun was refused."""
+    import roikit._outputs as outputs
+
+    values = extract(find_maps(tiny_study["pattern"]), RegionSet([Atlas(tiny_study["atlas"], tiny_study["labels"])]))
+    real_open = open
+
+    def full_disk(path, mode="r", *args, **kwargs):
+        if "w" in mode and str(path).endswith("values.json"):
+            raise OSError(28, "No space left on device", str(path))
+        return real_open(path, mode, *args, **kwargs)
+
+    monkeypatch.setattr(outputs, "open", full_disk, raising=False)
+    from roikit.errors import OutputWriteError
+
+    out = tmp_path / "derivatives"
+    with pytest.raises(OutputWriteError, match="No space left on device"):
+        write_values(out / "values.tsv", values)
+    assert sorted(os.listdir(out)) == []  # neither half, no staging folder, no lock
+    monkeypatch.undo()
+    write_values(out / "values.tsv", values)  # the rerun works
+    assert sorted(os.listdir(out)) == [".roikit-manifest.json", "values.json", "values.tsv"]
 
 
 def test_failed_maps_do_not_lose_the_others(tiny_study, tmp_path):

@@ -58,10 +58,12 @@ def main(argv: list[str] | None = None) -> int:
     if args.command is None:
         parser.print_help(sys.stderr)
         return 2
+    from .._outputs import command_line
+
     previous = warnings.formatwarning
     warnings.formatwarning = _format_warning
     try:
-        with warnings.catch_warnings():
+        with warnings.catch_warnings(), command_line():
             warnings.simplefilter("always", RoikitWarning)
             return int(args.func(args) or 0)
     except UsageError as exc:
@@ -70,8 +72,9 @@ def main(argv: list[str] | None = None) -> int:
     except RoikitError as exc:
         print(f"roikit {args.command}: error: {exc}", file=sys.stderr)
         return 1
-    except KeyboardInterrupt:
-        print(f"roikit {args.command}: interrupted", file=sys.stderr)
+    except KeyboardInterrupt as exc:
+        detail = f" ({exc.args[0]})" if exc.args and isinstance(exc.args[0], str) else ""
+        print(f"roikit {args.command}: interrupted{detail}", file=sys.stderr)
         return 130
     finally:
         warnings.formatwarning = previous

@@ -5,9 +5,10 @@ from __future__ import annotations
 import argparse
 import sys
 
-from .._tables import check_output, sidecar_path
+from .._outputs import check_files
+from .._tables import sidecar_path
 from ..errors import ExtractionError, UsageError
-from ..extraction import extract, find_maps, read_map_list, write_values
+from ..extraction import VALUES_WRITER, extract, find_maps, read_map_list, write_values
 from ._sources import add_region_options, region_set_from_args
 
 
@@ -36,7 +37,8 @@ def add_parser(subparsers) -> None:
                    help="run on a Dask cluster whose scheduler listens at ADDRESS (e.g. tcp://10.0.0.5:8786); "
                         "needs the `distributed` extra")
     p.add_argument("--quiet", action="store_true", help="no progress bar or summary")
-    p.add_argument("--overwrite", action="store_true", help="replace existing output files")
+    p.add_argument("--overwrite", action="store_true", help="replace files roikit extract did not write (its own earlier "
+                   "output is replaced without it)")
     p.set_defaults(func=run)
 
 
@@ -54,8 +56,8 @@ def _dask_client(address: str):
 def run(args: argparse.Namespace) -> int:
     if args.jobs < 1:
         raise UsageError(f"--jobs must be at least 1, got {args.jobs}")
-    check_output(args.out, overwrite=args.overwrite)
-    check_output(sidecar_path(args.out), overwrite=args.overwrite)
+    # fail fast, before any work: a rerun replaces its own table and sidecar; anything else needs --overwrite
+    check_files([args.out, sidecar_path(args.out)], writer=VALUES_WRITER, overwrite=args.overwrite)
     if (args.maps is None) == (args.map_list is None):
         raise UsageError("give exactly one of --maps PATTERN or --map-list TSV")
     regions = region_set_from_args(args)

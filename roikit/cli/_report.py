@@ -24,7 +24,8 @@ def add_parser(subparsers) -> None:
     p.add_argument("--results", required=True, metavar="RESULTS.tsv", help="group results table (`roikit stats`)")
     p.add_argument("--participants", metavar="participants.tsv", help="participants table (groups, covariates)")
     p.add_argument("--out", required=True, metavar="DIR", help="output directory")
-    p.add_argument("--overwrite", action="store_true", help="replace existing report files")
+    p.add_argument("--overwrite", action="store_true", help="write into a DIR that holds files roikit report did "
+                   "not write (an earlier report there is replaced without it)")
     p.add_argument("--title", default="Region-of-interest group analysis", help="report title")
     p.add_argument("--contrasts", metavar="contrasts.tsv", default=None,
                    help="contrasts table; its JSON sidecar (LongName, Levels) names contrasts and their variables in "

@@ -12,16 +12,19 @@ def add_parser(subparsers) -> None:
         "run",
         help="run a study file: extraction, every analysis and the report",
         description="Validate the study file (TOML; keys mirror the command-line options; paths relative to the "
-        "file) and report every problem at once; then extract the region values (maps unchanged since an earlier "
-        "run into the same folder are taken from its cache in DIR/.cache/), run every [[analysis]] and write "
-        "region_values.tsv, group_results.tsv (with JSON sidecars), tables/, figures/, report.html, methods.md "
-        "and provenance.json into DIR, and print a short summary.",
+        "file) and report every problem at once; then extract the region values of the contrasts the analyses "
+        "use (maps whose bytes an earlier run into the same folder already read are taken from its cache in "
+        "DIR/.cache/), run every [[analysis]] and write region_values.tsv, group_results.tsv (with JSON "
+        "sidecars), tables/, figures/, report.html, methods.md and provenance.json into DIR, and print a short "
+        "summary. Running a study again into its own folder replaces the earlier run's outputs as a set; "
+        "files roikit did not write are kept.",
     )
     p.add_argument("study", metavar="STUDY.toml", help="the study file")
     p.add_argument("--out", metavar="DIR", default=None,
                    help="output folder (default: a folder named results beside the study file)")
     p.add_argument("--overwrite", action="store_true",
-                   help="replace the outputs of an earlier run in DIR (its extraction cache is reused)")
+                   help="write into a DIR that roikit did not write for this study file (not needed to run the "
+                   "same study again; files roikit did not write are kept unless an output has their name)")
     p.add_argument("--no-figures", action="store_true", help="skip the report's figures (faster; tables and text only)")
     p.add_argument("--quiet", action="store_true", help="no progress bar; print only the output folder")
     p.set_defaults(func=run)

@@ -7,12 +7,15 @@ import sys
 from pathlib import Path
 
 from .. import __version__
-from .._tables import check_output, read_table, sha256_file, sidecar_path, write_table
+from .._outputs import check_files
+from .._tables import read_table, sha256_file, sidecar_path, write_table
 from ..errors import UsageError
 from ..stats import COLUMN_DESCRIPTIONS, available_designs, run_design
 from ..stats.corrections import correction_choices_text, parse_corrections
 
 #: Command-line design options, passed to the design in snake_case when given.
+_WRITER = "roikit stats"
+
 _DESIGN_OPTIONS = ("contrast", "versus", "group", "levels", "welch", "formula", "tau2", "random", "crossed")
 
 
@@ -49,13 +52,15 @@ def add_parser(subparsers) -> None:
                    help="permutations for the max-statistic family-wise p (p_fwe); default 0 (none)")
     p.add_argument("--seed", type=int, default=None, metavar="S", help="seed of the permutations (recorded)")
     p.add_argument("--confidence", type=float, default=0.95, metavar="LEVEL", help="confidence level (0.95)")
-    p.add_argument("--overwrite", action="store_true", help="replace existing output files")
+    p.add_argument("--overwrite", action="store_true", help="replace files roikit stats did not write (its own "
+                   "earlier output is replaced without it)")
     p.set_defaults(func=run)
 
 
 def run(args: argparse.Namespace) -> int:
-    out = check_output(args.out, overwrite=args.overwrite)
-    check_output(sidecar_path(out), overwrite=args.overwrite)
+    out = Path(args.out)
+    # fail fast: a rerun replaces its own table and sidecar; anything else needs --overwrite
+    check_files([out, sidecar_path(out)], writer=_WRITER, overwrite=args.overwrite)
     if args.design not in available_designs():
         raise UsageError(f"--design {args.design!r} is not available; expected one of: {', '.join(available_designs())}")
     if args.permutations < 0:
@@ -112,7 +117,7 @@ def run(args: argparse.Namespace) -> int:
         "entry of the correction column is the primary correction. "
         "For research group analysis, not for clinical decisions.",
     }
-    path = write_table(out, results, sidecar=sidecar, overwrite=args.overwrite)
+    path = write_table(out, results, sidecar=sidecar, overwrite=args.overwrite, writer=_WRITER)
     sys.stderr.write(
         f"roikit stats: {args.design}, {results['region'].nunique()} regions x {results['term'].nunique()} term(s) "
         f"-> {path}\n"

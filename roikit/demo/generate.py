@@ -26,6 +26,7 @@ import pandas as pd
 from scipy import ndimage
 
 from .. import __version__
+from .._outputs import consent_hint, consent_option
 from .._tables import write_json, write_table
 from .._typing import PathLike, Seed
 from ..errors import OutputExistsError, UsageError
@@ -387,13 +388,13 @@ def _prepare_target(out: Path, overwrite: bool) -> None:
     if out.exists():
         if not overwrite:
             raise OutputExistsError(
-                f"{out}: folder exists; pass --overwrite (overwrite=True) to replace an earlier demo study, "
+                f"{out}: folder exists; {consent_hint()} to replace an earlier demo study, "
                 "or choose another folder"
             )
         if not out.is_dir() or (any(out.iterdir()) and not _is_demo_study(out)):
             raise OutputExistsError(
                 f"{out}: exists and is not a roikit demo study (no ground_truth.json written by roikit.demo); "
-                "refusing to replace it even with overwrite; choose another folder"
+                f"refusing to replace it even with {consent_option()}; choose another folder"
             )
 
 

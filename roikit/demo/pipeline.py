@@ -13,6 +13,7 @@ from pathlib import Path
 
 import pandas as pd
 
+from .._outputs import consent_hint, consent_option
 from .._typing import PathLike, Seed
 from ..errors import OutputExistsError
 from ..extraction import find_maps
@@ -89,18 +90,18 @@ def _check_targets(out: Path, overwrite: bool) -> None:
     existing = [p for p in (study, results) if p.exists()]
     if existing and not overwrite:
         raise OutputExistsError(
-            f"{existing[0]}: exists; pass --overwrite (overwrite=True) to replace an earlier demo, "
-            "or choose another --out folder"
+            f"{existing[0]}: exists; {consent_hint()} to replace an earlier demo (its study is generated "
+            "again), or choose another output folder"
         )
     if study.exists() and not _is_demo_study(study):
         raise OutputExistsError(
             f"{study}: exists and is not a roikit demo study (no ground_truth.json written by roikit.demo); "
-            "refusing to replace it even with --overwrite; choose another --out folder"
+            f"refusing to replace it even with {consent_option()}; choose another output folder"
         )
     if results.exists() and not study.exists():
         raise OutputExistsError(
             f"{results}: exists but {study} does not, so it is not an earlier demo's results; refusing to "
-            "replace it even with --overwrite; choose another --out folder"
+            f"replace it even with {consent_option()}; choose another output folder"
         )
 
 

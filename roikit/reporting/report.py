@@ -19,8 +19,9 @@ import numpy as np
 import pandas as pd
 
 from .. import __version__
-from .._tables import atomic_write_bytes, check_output, read_table, sha256_file, write_json
-from ..errors import CautionWarning, OutputExistsError, UsageError
+from .._outputs import FolderOutputs, check_folder
+from .._tables import atomic_write_bytes, read_table, sha256_file, write_json
+from ..errors import CautionWarning, UsageError
 from ._common import (
     REQUIRED_RESULTS,
     REQUIRED_VALUES,
@@ -229,15 +230,16 @@ def _figure_plan(values: pd.DataFrame, results: pd.DataFrame, participants: pd.D
     return plan
 
 
+#: The writer recorded in a report folder's manifest (:mod:`roikit._outputs`).
+REPORT_WRITER = "roikit report"
+
+
 def check_report_outputs(out: Path, overwrite: bool) -> None:
-    """Raise OutputExistsError if any report output exists in ``out`` and ``overwrite`` is false."""
-    if overwrite:
-        return
-    existing = [name for name in REPORT_OUTPUTS if (out / name).exists()]
-    if existing:
-        raise OutputExistsError(
-            f"{out}: report output(s) {', '.join(existing)} already exist; pass --overwrite (overwrite=True) "
-            "to replace them, or choose another --out directory")
+    """Raise OutputExistsError unless a report may be written into ``out`` without ``overwrite``.
+
+    A missing or empty folder, or one holding an earlier report (its manifest says so, files unchanged), is fine.
+    """
+    check_folder(out, writer=REPORT_WRITER, overwrite=overwrite)
 
 
 def _docx(path: Path, title: str, paragraphs: list[str], *, overwrite: bool, headings: dict | None = None) -> Path:
@@ -287,9 +289,14 @@ def write_report(
     figure_formats: tuple[str, ...] = ("pdf", "svg", "png"),
     correct: str | None = None,
     labels: dict | None = None,
+    _staged: bool = False,
 ) -> dict[str, Any]:
     """Write tables, figures, methods and results text (Markdown and Word), references, an index, a
     self-contained ``report.html`` and ``provenance.json`` into ``out``.
+
+    The report is written as one set: into a staging folder inside ``out`` first, then switched in; the
+    files of an earlier report in ``out`` (listed in its manifest) are replaced or removed, the folder's other
+    files are kept (see :mod:`roikit._outputs`).
 
     Parameters
     ----------
@@ -303,7 +310,8 @@ def write_report(
     out : path
         Output directory (created).
     overwrite : bool
-        Replace existing outputs; without it, any existing output stops the run before work starts.
+        Write into a folder that holds files roikit did not write as a report (an earlier report there is
+        replaced without it); without it, such a folder stops the run before work starts.
     provenance : dict, optional
         Extra provenance merged into ``provenance.json`` (e.g. the command line's input files with SHA-256,
         options) and, under ``"values"``, the extraction provenance when ``values`` has no ``attrs``.
@@ -340,6 +348,27 @@ def write_report(
     every written file with its analysis, kind and caption.
     """
     out = Path(out)
+    if not _staged:  # write everything into a staging folder, then switch it in as one set
+        options = dict(participants=participants, provenance=provenance, title=title, circular=circular,
+                       figures=figures, figure_formats=figure_formats, correct=correct, labels=labels)
+        with FolderOutputs(out, writer=REPORT_WRITER, overwrite=overwrite) as tx, \
+                warnings.catch_warnings(record=True) as caught:
+            warnings.simplefilter("always")
+            written = write_report(values, results, out=tx.staging, overwrite=True, _staged=True, **options)
+            tx.commit()
+        moved = {}
+        for key, item in written.items():
+            if isinstance(item, Path):
+                moved[key] = out / item.relative_to(tx.staging)
+            elif isinstance(item, list) and all(isinstance(p, Path) for p in item):
+                moved[key] = [out / p.relative_to(tx.staging) for p in item]
+            else:
+                moved[key] = item
+        for w in caught:  # messages naming the staging folder name the output folder instead
+            message = str(w.message).replace(str(tx.staging), str(out))
+            warnings.warn_explicit(w.category(message) if message != str(w.message) else w.message, w.category,
+                                   w.filename, w.lineno)
+        return moved
     side = read_sidecar_labels(participants) if isinstance(participants, (str, os.PathLike)) else {}
     values = _as_table(values, "values", REQUIRED_VALUES)
     results = _as_table(results, "results", REQUIRED_RESULTS)
@@ -353,7 +382,6 @@ def write_report(
     names = Labels(side, labels or {})
     for _key, rows in split_analyses(results):  # an unusable --correct stops here, before any work
         primary_correction(rows, correct, option="--correct" if correct else "correct")
-    check_report_outputs(out, overwrite)
     out.mkdir(parents=True, exist_ok=True)
     extra = dict(provenance or {})
     values_prov = values.attrs.get("roikit") or extra.get("values") or {}

@@ -12,9 +12,9 @@ import numpy as np
 import pandas as pd
 
 from .. import __version__
-from .._tables import write_json
+from .._tables import sha256_file, write_json
 from .._typing import PathLike
-from ..errors import CoverageWarning
+from ..errors import CoverageWarning, RoikitError, RoikitWarning
 from ..extraction import TRIM, assemble_values, extract
 from ..images import check_same_grid, read_header
 from ..regions import Regions
@@ -37,30 +37,54 @@ def _fingerprint(realised: Regions, statistic: str, keep_zeros: bool) -> str:
     return h.hexdigest()
 
 
-def _stamp(path: str | None) -> list | None:
+def _sha256(path: str | None) -> str | None:
+    """SHA-256 of a file's bytes (None for no file): the cache's key, the same digest extraction records."""
     if path is None or (isinstance(path, float) and np.isnan(path)):
         return None
-    st = os.stat(path)
-    return [os.path.abspath(path), int(st.st_size), int(st.st_mtime_ns)]
+    return sha256_file(path)
 
 
-def _map_key(row: dict) -> tuple[str, list]:
-    """Cache key of one map (its file and volume) and the stamp that must match (size, mtime of both files)."""
+def _content_key(effect_sha: str, volume, variance_sha: str | None) -> str:
+    """Cache key of one map: the SHA-256 of its bytes (and of its variance map's) and the volume."""
+    return json.dumps([effect_sha, volume, variance_sha])
+
+
+def _volume(row: dict) -> int | None:
     volume = row.get("volume")
-    volume = None if volume is None or pd.isna(volume) else int(volume)
-    effect = _stamp(row["path"])
-    variance = _stamp(row.get("variance_path"))
-    key = json.dumps([effect[0], volume, None if variance is None else variance[0]])
-    return key, [effect, variance]
+    return None if volume is None or pd.isna(volume) else int(volume)
+
+
+def _valid_entry(entry, n_regions: int, has_var: bool) -> bool:
+    """Whether a cache entry has the shape this run needs (lists of the right length, an input record)."""
+    if not isinstance(entry, dict) or not isinstance(entry.get("input"), dict):
+        return False
+    lists = ("value", "n_valid") + (("variance",) if has_var else ())
+    return all(isinstance(entry.get(k), list) and len(entry[k]) == n_regions
+               and all(x is None or (isinstance(x, (int, float)) and not isinstance(x, bool)) for x in entry[k])
+               for k in lists)
 
 
 def _read_cache(path: Path, fingerprint: str) -> dict:
+    """The cache, or {} when absent, of another extraction, or malformed (with a warning: it is rebuilt)."""
     try:
         with open(path, encoding="utf-8") as fh:
             cache = json.load(fh)
-    except (OSError, ValueError):
+    except FileNotFoundError:
         return {}
-    if not isinstance(cache, dict) or cache.get("fingerprint") != fingerprint or cache.get("format") != _CACHE_FORMAT:
+    except (OSError, ValueError) as exc:
+        warnings.warn(RoikitWarning(f"{path}: unreadable extraction cache ({exc}); it is discarded and rebuilt "
+                                    "(every map is read again)"), stacklevel=3)
+        return {}
+    layout = isinstance(cache, dict) and isinstance(cache.get("format"), int) and \
+        isinstance(cache.get("fingerprint"), str) and isinstance(cache.get("maps"), dict) and \
+        isinstance(cache.get("provenance", {}), dict)
+    if layout and cache["format"] != _CACHE_FORMAT:
+        return {}  # another version's cache: rebuilt quietly
+    if not layout:
+        warnings.warn(RoikitWarning(f"{path}: malformed extraction cache (not roikit's layout); it is discarded "
+                                    "and rebuilt (every map is read again)"), stacklevel=3)
+        return {}
+    if cache.get("fingerprint") != fingerprint:
         return {}
     return cache
 
@@ -69,8 +93,43 @@ def _floats(xs) -> np.ndarray:
     return np.array([np.nan if x is None else x for x in xs], dtype=np.float64)
 
 
-def _extract_with_cache(study: Study, out: Path, *, progress: bool | None) -> tuple[pd.DataFrame, dict]:
-    """Extract every map of the study, reading only maps not in the cache (or changed since)."""
+def analysed_contrasts(study: Study) -> list[str] | None:
+    """The contrasts the study's analyses use, in the maps' order; None when an analysis may use any.
+
+    An analysis names its contrasts with ``contrast`` (a label, or a list for mixed designs) and ``versus``.
+    A mixed design without ``contrast`` models every contrast, and so does any analysis without a ``contrast``
+    option (for example a design that takes its contrasts from elsewhere): then every contrast is extracted.
+    """
+    wanted: set[str] = set()
+    for analysis in study.analyses:
+        contrast = analysis.options.get("contrast")
+        if contrast is None:
+            return None
+        if isinstance(contrast, str):
+            contrast = [c.strip() for c in contrast.split(",")] if analysis.design == "mixed" else [contrast]
+        wanted.update(str(c) for c in contrast)
+        if analysis.options.get("versus") is not None:
+            wanted.add(str(analysis.options["versus"]))
+    return [c for c in pd.unique(study.maps["contrast"]) if c in wanted]
+
+
+def _analysed_maps(study: Study) -> pd.DataFrame:
+    contrasts = analysed_contrasts(study)
+    if contrasts is None:
+        return study.maps
+    return study.maps[study.maps["contrast"].isin(contrasts)].reset_index(drop=True)
+
+
+def _extract_with_cache(study: Study, out: Path, *, progress: bool | None, analysed_only: bool = True
+                        ) -> tuple[pd.DataFrame, dict]:
+    """Extract the maps of the analysed contrasts, reading only maps whose bytes the cache has not seen.
+
+    The cache is keyed by content: the SHA-256 of each map's bytes (and of its variance map's), computed by
+    reading the file (no decompression), so a file replaced by another of the same size and modification time
+    is read again, and a renamed or copied file is not. Freshly extracted maps are stored under the digest of
+    the bytes extraction actually read. When extraction stops early (an interrupt, or maps that failed), the
+    maps finished so far are stored before the exception goes on.
+    """
     realised = study.realised
     names = list(realised.names)
     n_regions = len(names)
@@ -79,13 +138,20 @@ def _extract_with_cache(study: Study, out: Path, *, progress: bool | None) -> tu
     cache = _read_cache(cache_path, fingerprint)
     entries: dict = cache.get("maps", {}) if cache else {}
 
-    maps = study.maps
+    maps = _analysed_maps(study) if analysed_only else study.maps
     rows = maps.to_dict("records")
-    keyed = [_map_key(r) for r in rows]
-    hits = [entries.get(k) if entries.get(k, {}).get("stamp") == s else None for k, s in keyed]
+    has_var = "variance_path" in maps.columns
+    # an empty cache needs no digests up front: extraction records the digest of what it reads
+    keyed = [_content_key(_sha256(r["path"]), _volume(r), _sha256(r.get("variance_path")) if has_var else None)
+             for r in rows] if entries else [None] * len(rows)
+    broken = [k for k, e in entries.items() if not _valid_entry(e, n_regions, has_var)]
+    if broken:
+        warnings.warn(RoikitWarning(f"{cache_path}: {len(broken)} malformed cache entries discarded (those maps "
+                                    "are read again)"), stacklevel=3)
+        entries = {k: e for k, e in entries.items() if k not in broken}
+    hits = [entries.get(k) if k is not None else None for k in keyed]
     todo = [i for i, h in enumerate(hits) if h is None]
 
-    has_var = "variance_path" in maps.columns
     values = np.full((len(rows), n_regions), np.nan)
     n_valid = np.zeros((len(rows), n_regions), dtype=np.int64)
     variances = np.full((len(rows), n_regions), np.nan) if has_var else None
@@ -96,16 +162,55 @@ def _extract_with_cache(study: Study, out: Path, *, progress: bool | None) -> tu
             n_valid[i] = np.asarray(hit["n_valid"], dtype=np.int64)
             if has_var:
                 variances[i] = _floats(hit["variance"])
-            inputs[i] = hit["input"]
+            # the labels and path are this run's (a renamed or copied file keeps its cached values)
+            inputs[i] = {**hit["input"], **{k: v for k, v in _input_of(rows[i]).items()}}
 
     base = cache.get("provenance") if cache else None
+    done = [i for i, h in enumerate(hits) if h is not None]
+
+    def store(done_now: list[int], provenance: dict | None) -> None:
+        kept = {}
+        others = set(study.maps["path"]) - {r["path"] for r in rows}
+        for k, e in entries.items():  # maps of the contrasts not analysed this time stay cached
+            if _valid_entry(e, n_regions, has_var) and e["input"].get("path") in others:
+                kept[k] = e
+        for i in done_now:
+            record = inputs[i]
+            key = _content_key(record.get("sha256"), _volume(rows[i]), record.get("variance_sha256"))
+            kept[key] = {"value": values[i].tolist(), "n_valid": n_valid[i].tolist(),
+                         "variance": variances[i].tolist() if has_var else None, "input": record}
+        prov = {k: v for k, v in (provenance or {}).items() if k not in ("inputs", "cache")}
+        write_json(cache_path, {"format": _CACHE_FORMAT, "fingerprint": fingerprint, "roikit_version": __version__,
+                                "note": "roikit extraction cache, keyed by the SHA-256 of each map's bytes: safe "
+                                        "to delete (the next run re-extracts)",
+                                "provenance": prov, "maps": kept}, overwrite=True)
+
     if todo:
         for i in todo:  # a clear message when a new map is on another grid than the regions
             header = read_header(rows[i]["path"])
             check_same_grid(realised.grid, header.grid, a_name="the regions' grid (the first map's)",
                             b_name=header.path)
-        fresh = extract(maps.iloc[todo].reset_index(drop=True), realised, statistic=study.statistic,
-                        keep_zeros=study.keep_zeros, n_jobs=study.jobs, progress=progress)
+        try:
+            fresh = extract(maps.iloc[todo].reset_index(drop=True), realised, statistic=study.statistic,
+                            keep_zeros=study.keep_zeros, n_jobs=study.jobs, progress=progress)
+        except (KeyboardInterrupt, RoikitError) as exc:
+            partial = getattr(exc, "partial_values", None)
+            completed = getattr(exc, "completed", None)
+            records = getattr(exc, "inputs", None)
+            if partial is not None and completed and records is not None:
+                finished = [todo[j] for j in completed]
+                for j, i in zip(completed, finished):
+                    block = partial.iloc[j * n_regions:(j + 1) * n_regions]
+                    values[i] = block["value"].to_numpy(float)
+                    n_valid[i] = block["n_valid"].to_numpy(np.int64)
+                    if has_var:
+                        variances[i] = block["variance"].to_numpy(float)
+                    inputs[i] = records[j]
+                store(done + finished, base or {})
+                if isinstance(exc, KeyboardInterrupt):
+                    raise KeyboardInterrupt(f"{len(finished)} newly extracted maps of {len(todo)} kept in the "
+                                            f"cache, {cache_path}") from exc
+            raise
         prov = dict(fresh.attrs.get("roikit", {}))
         fresh_inputs = prov.pop("inputs", [])
         base = prov
@@ -121,8 +226,11 @@ def _extract_with_cache(study: Study, out: Path, *, progress: bool | None) -> tu
     base = dict(base or {})
     base["region_sources"] = study.regions.describe()
     base["inputs"] = inputs
+    n_all = len(study.maps)
     base["cache"] = {"extracted": len(todo), "reused": len(rows) - len(todo), "fingerprint": fingerprint,
-                     "path": os.fspath(cache_path)}
+                     "path": os.fspath(cache_path), "key": "sha256 of each map's bytes",
+                     "maps_analysed": len(rows), "maps_found": n_all,
+                     "contrasts_analysed": list(pd.unique(maps["contrast"]))}
     if study.circular:
         base["circular_regions"] = list(study.circular)
 
@@ -135,16 +243,18 @@ def _extract_with_cache(study: Study, out: Path, *, progress: bool | None) -> tu
             f"{len(who)} participant x contrast x region value(s) have no valid voxel and are n/a (rows kept; "
             f"from the extraction cache): {_listing(who)}"), stacklevel=3)
     table.attrs["roikit"] = base
-
-    new_entries = {}
-    for i, (k, s) in enumerate(keyed):
-        new_entries[k] = {"stamp": s, "value": values[i].tolist(), "n_valid": n_valid[i].tolist(),
-                          "variance": variances[i].tolist() if has_var else None, "input": inputs[i]}
-    provenance = {k: v for k, v in base.items() if k not in ("inputs", "cache")}
-    write_json(cache_path, {"format": _CACHE_FORMAT, "fingerprint": fingerprint, "roikit_version": __version__,
-                            "note": "roikit extraction cache: safe to delete (the next run re-extracts)",
-                            "provenance": provenance, "maps": new_entries}, overwrite=True)
+    store(list(range(len(rows))), base)
     return table, base["cache"]
+
+
+def _input_of(row: dict) -> dict:
+    """The labels and paths of a map-table row, as extraction's input records spell them."""
+    record = {"participant_id": row["participant_id"], "contrast": row["contrast"], "path": row["path"]}
+    for key in ("session_id", "variance_path"):
+        value = row.get(key)
+        if value is not None and not (isinstance(value, float) and np.isnan(value)):
+            record[key] = value
+    return record
 
 
 def extract_study(study: Study | PathLike, *, out: PathLike | None = None, progress: bool | None = None
@@ -173,7 +283,7 @@ def extract_study(study: Study | PathLike, *, out: PathLike | None = None, progr
     if not isinstance(study, Study):
         study = load_study(study)
     out = Path(out) if out is not None else study.default_out
-    values, _ = _extract_with_cache(study, out, progress=progress)
+    values, _ = _extract_with_cache(study, out, progress=progress, analysed_only=False)
     return values
 
 

@@ -4,8 +4,6 @@ from __future__ import annotations
 
 import json
 import os
-import shutil
-import tempfile
 import time
 import warnings
 from dataclasses import dataclass
@@ -14,9 +12,10 @@ from typing import Sequence
 
 import pandas as pd
 
+from .._outputs import FolderOutputs
 from .._tables import sha256_file, sidecar_path, write_json, write_table
 from .._typing import PathLike
-from ..errors import OutputExistsError, RoikitError, RoikitWarning
+from ..errors import RoikitError, RoikitWarning
 from ..extraction import VALUE_COLUMNS
 from ..stats import COLUMN_DESCRIPTIONS
 from .cache import _extract_with_cache
@@ -63,8 +62,9 @@ class StudyRun:
         n_regions = self.values["region"].nunique()
         lines = [
             f"roikit run: {study.title}",
-            f"  {n_part} participants, {len(study.maps)} maps ({self.extracted} extracted, {self.reused} from the "
-            f"cache), {n_regions} regions x {len(study.analyses)} analyses",
+            f"  {n_part} participants, {self.extracted + self.reused} maps ({self.extracted} extracted, "
+            f"{self.reused} from the cache{_skipped(study, self.extracted + self.reused)}), "
+            f"{n_regions} regions x {len(study.analyses)} analyses",
         ]
         for analysis, rows in zip(study.analyses, self.per_analysis):
             lines.append(f"  {analysis.label}:")
@@ -93,6 +93,12 @@ def _primary_of(correct) -> str:
     return primary_correction(correct)
 
 
+def _skipped(study: Study, used: int) -> str:
+    """'; 96 maps of contrasts no analysis uses not read' when the analyses use only some contrasts."""
+    rest = len(study.maps) - used
+    return f"; {rest} maps of contrasts no analysis uses not read" if rest > 0 else ""
+
+
 def _survivors(part: pd.DataFrame, alpha: float) -> str:
     """'p < .05 after Holm correction: k/n regions (names)' for one term of one analysis, by its PRIMARY correction
     (the first entry of the ``correction`` column; ``none``: uncorrected)."""
@@ -111,8 +117,24 @@ def _survivors(part: pd.DataFrame, alpha: float) -> str:
         head = f"p < {alpha:g} after {correction_name(primary)} correction"
     return f"{head}: {len(hit)}/{n}" + (f" ({_listing(hit, 5)})" if hit else "")
 
-def _existing_outputs(out: Path) -> list[Path]:
-    return [out / name for name in OUTPUTS if (out / name).exists()]
+#: The writer recorded in a results folder's manifest (:mod:`roikit._outputs`).
+RUN_WRITER = "roikit run"
+
+
+def _identity(study: Study, out: Path) -> dict:
+    """What a results folder was written for: the study file (absolute, and relative to the folder)."""
+    path = Path(os.path.abspath(study.path))
+    try:
+        relative = os.path.relpath(path, os.path.abspath(out)).replace(os.sep, "/")
+    except ValueError:  # another drive (Windows)
+        relative = None
+    return {"study_file": os.fspath(path), "study_file_from_out": relative, "title": study.title,
+            "study_sha256": sha256_file(path)}  # recorded, not compared: editing the study file keeps its folder
+
+
+#: Identity keys that make a results folder "this study's" (either suffices: a moved project still matches).
+_SAME_STUDY = ("study_file", "study_file_from_out")
+
 
 def run_study(
     study: Study | PathLike,
@@ -133,8 +155,11 @@ def run_study(
     out : path, optional
         Output folder; default ``results`` beside the study file.
     overwrite : bool
-        Replace the outputs of an earlier run in ``out`` (only the files and folders listed in
-        :data:`OUTPUTS`; nothing else in the folder is touched).
+        Write into a folder that roikit did not write for this study file (other files, or the outputs of
+        another study or command). Not needed to re-run a study into its own results folder: the files the
+        earlier run wrote (listed in the folder's manifest) are replaced as a set. Files roikit did not write
+        are never replaced or removed, except a file with the very name of a new output, and only with
+        ``overwrite=True``.
     progress : bool, optional
         Progress bar while extracting (default: only for 20 maps or more).
     figures : bool
@@ -153,8 +178,12 @@ def run_study(
     and ``provenance.json``. The extraction cache lives in ``out/.cache/``: a map whose file path, size and
     modification time (and those of its variance map) are unchanged, extracted with the same realised regions
     (SHA-256 of the grid, names, voxels and weights), statistic and zero rule, is not read again. The merged
-    table equals a fresh extraction (tested). Outputs are written to a temporary folder first and moved into
-    place when everything succeeded.
+    table equals a fresh extraction (tested). Only the contrasts the analyses use are extracted.
+
+    Outputs are a transaction (:mod:`roikit._outputs`): a lock stops a second run into the same folder; all
+    outputs are written into a staging folder inside ``out`` and then switched in as one set, replacing the
+    earlier run's own files (its figures are removed even when this run draws none); a crash during the switch
+    is finished by the next run.
 
     Examples
     --------
@@ -165,22 +194,15 @@ def run_study(
     if not isinstance(study, Study):
         study = load_study(study)
     out = Path(out) if out is not None else study.default_out
-    if out.exists() and not out.is_dir():
-        raise OutputExistsError(f"{out}: exists and is not a folder; choose another --out folder")
-    existing = _existing_outputs(out)
-    if existing and not overwrite:
-        raise OutputExistsError(
-            f"{out}: holds the outputs of an earlier run ({', '.join(p.name for p in existing[:4])}"
-            f"{' ...' if len(existing) > 4 else ''}); pass --overwrite (overwrite=True) to replace them (the "
-            "extraction cache is kept, so only new maps are read), or choose another --out folder")
     from ..reporting import write_report
 
     seconds: dict[str, float] = {}
 
-    with warnings.catch_warnings(record=True) as caught:
+    with warnings.catch_warnings(record=True) as caught, \
+            FolderOutputs(out, writer=RUN_WRITER, identity=_identity(study, out), match=_SAME_STUDY,
+                          overwrite=overwrite, what=f"study file {study.path}") as tx:
         warnings.simplefilter("always")
         t0 = time.perf_counter()
-        out.mkdir(parents=True, exist_ok=True)
         values, cache_info = _extract_with_cache(study, out, progress=progress)
         seconds["extraction"] = time.perf_counter() - t0
 
@@ -197,58 +219,43 @@ def run_study(
         seconds["statistics"] = time.perf_counter() - t0
 
         t0 = time.perf_counter()
-        tmp = Path(tempfile.mkdtemp(prefix=".run-tmp-", dir=out))
-        try:
-            written = [
-                write_table(tmp / "region_values.tsv", values,
-                            sidecar={"columns": {c: VALUE_COLUMNS.get(c, "") for c in values.columns},
-                                     "provenance": values.attrs.get("roikit", {})}),
-                write_table(tmp / "group_results.tsv", results,
-                            sidecar=_results_sidecar(study, results, per_analysis)),
-            ]
-            written += [sidecar_path(p) for p in written]
-            inputs = [{"role": "study file", "path": os.fspath(study.path), "sha256": sha256_file(study.path)}]
-            if study.participants_path is not None:
-                inputs.append({"role": "participants", "path": os.fspath(study.participants_path),
-                               "sha256": sha256_file(study.participants_path)})
-            from ..reporting._common import read_sidecar_labels
+        tmp = tx.staging
+        written = [
+            write_table(tmp / "region_values.tsv", values,
+                        sidecar={"columns": {c: VALUE_COLUMNS.get(c, "") for c in values.columns},
+                                 "provenance": values.attrs.get("roikit", {})}),
+            write_table(tmp / "group_results.tsv", results,
+                        sidecar=_results_sidecar(study, results, per_analysis)),
+        ]
+        written += [sidecar_path(p) for p in written]
+        inputs = [{"role": "study file", "path": os.fspath(study.path), "sha256": sha256_file(study.path)}]
+        if study.participants_path is not None:
+            inputs.append({"role": "participants", "path": os.fspath(study.participants_path),
+                           "sha256": sha256_file(study.participants_path)})
+        from ..reporting._common import read_sidecar_labels
 
-            write_report(values, results, participants=study.participants, out=tmp, overwrite=True,
-                         labels={**read_sidecar_labels(getattr(study, "contrasts_path", None)),
-                                 **read_sidecar_labels(study.participants_path)},
-                         provenance={"inputs": inputs, "options": {"command": "roikit run", "out": os.fspath(out)}},
-                         title=study.title, circular=study.circular, figures=figures,
-                         figure_formats=tuple(figure_formats))
-            seconds["report"] = time.perf_counter() - t0
-            for w in caught:  # messages naming the temporary folder name the output folder instead
-                if str(tmp) in str(w.message):
-                    w.message = w.category(str(w.message).replace(str(tmp), str(out)))
-            recorded = [{"category": w.category.__name__, "message": str(w.message)} for w in caught
-                        if issubclass(w.category, RoikitWarning)]
-            seconds["total"] = time.perf_counter() - t_start
-            _extend_provenance(tmp / "provenance.json", study, out, cache_info, per_analysis, recorded, seconds,
-                               written, tmp)
-            _move_into_place(tmp, out)
-        finally:
-            shutil.rmtree(tmp, ignore_errors=True)
+        write_report(values, results, participants=study.participants, out=tmp, overwrite=True, _staged=True,
+                     labels={**read_sidecar_labels(getattr(study, "contrasts_path", None)),
+                             **read_sidecar_labels(study.participants_path)},
+                     provenance={"inputs": inputs, "options": {"command": "roikit run", "out": os.fspath(out)}},
+                     title=study.title, circular=study.circular, figures=figures,
+                     figure_formats=tuple(figure_formats))
+        seconds["report"] = time.perf_counter() - t0
+        for w in caught:  # messages naming the temporary folder name the output folder instead
+            if str(tmp) in str(w.message):
+                w.message = w.category(str(w.message).replace(str(tmp), str(out)))
+        recorded = [{"category": w.category.__name__, "message": str(w.message)} for w in caught
+                    if issubclass(w.category, RoikitWarning)]
+        seconds["total"] = time.perf_counter() - t_start
+        _extend_provenance(tmp / "provenance.json", study, out, cache_info, per_analysis, recorded, seconds,
+                           written, tmp)
+        tx.commit()
     for w in caught:  # re-issue, so callers (and the command line) see them
         warnings.warn_explicit(w.message, w.category, w.filename, w.lineno)
     outputs = {name: out / name for name in OUTPUTS if (out / name).exists()}
     return StudyRun(study=study, out=out, values=values, results=results, per_analysis=per_analysis,
                     outputs=outputs, extracted=cache_info["extracted"], reused=cache_info["reused"],
                     warnings=recorded, seconds=seconds)
-
-def _move_into_place(tmp: Path, out: Path) -> None:
-    """Replace ``out``'s entries by those in ``tmp`` (files and folders), one rename each."""
-    for item in sorted(tmp.iterdir()):
-        target = out / item.name
-        if target.is_dir() and not target.is_symlink():
-            trash = Path(tempfile.mkdtemp(prefix=f".{item.name}.old-", dir=out))
-            os.replace(target, trash / item.name)
-            os.replace(item, target)
-            shutil.rmtree(trash, ignore_errors=True)
-        else:
-            os.replace(item, target)
 
 def _results_sidecar(study: Study, results: pd.DataFrame, per_analysis: list) -> dict:
     extra: dict = {}
@@ -300,7 +307,7 @@ def _extend_provenance(path: Path, study: Study, out: Path, cache_info: dict, pe
         "study": study.raw,
         "out": os.fspath(out),
         "extraction": {"statistic": study.statistic, "keep_zeros": study.keep_zeros, "jobs": study.jobs,
-                       "n_maps": len(study.maps), "regions": list(study.realised.names), "cache": cache_info},
+                       "n_maps": cache_info.get("maps_analysed", len(study.maps)), "regions": list(study.realised.names), "cache": cache_info},
         "circular_regions": list(study.circular),
         "analyses": _analysis_records(study, per_analysis),
         "warnings": recorded,

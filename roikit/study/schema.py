@@ -80,7 +80,7 @@ OUTPUTS = ("region_values.tsv", "region_values.json", "group_results.tsv", "grou
 #: Folder (inside the output folder) holding the extraction cache.
 CACHE_FOLDER = ".cache"
 _CACHE_FILE = "extraction.json"
-_CACHE_FORMAT = 1
+_CACHE_FORMAT = 2  # 2: keyed by the SHA-256 of each map's bytes (1: path, size, time)
 
 _TOML_TYPES = {str: "a string", int: "an integer", float: "a number", bool: "true or false", list: "an array",
                dict: "a table"}

@@ -32,15 +32,21 @@ def test_extract_writes_the_contract_table_and_sidecar(tiny_study, tmp_path, cap
     assert all(len(i["sha256"]) == 64 for i in side["provenance"]["inputs"])
 
 
-def test_extract_refuses_to_overwrite_and_reports_one_line(tiny_study, tmp_path, capsys):
+def test_extract_reruns_but_refuses_foreign_files_in_one_line(tiny_study, tmp_path, capsys):
     out = tmp_path / "values.tsv"
     args = ["extract", "--maps", tiny_study["pattern"], *_sources(tiny_study), "--out", str(out), "--quiet"]
     assert main(args) == 0
     capsys.readouterr()
-    assert main(args) == 1
+    assert main(args) == 0  # its own earlier output: a rerun replaces it
+    mine = tmp_path / "mine.tsv"
+    mine.write_text("my own table\n")
+    foreign = args[:-2] + [str(mine), "--quiet"]
+    assert main(foreign) == 1
     err = capsys.readouterr().err
-    assert err.count("\n") == 1 and "file exists; pass --overwrite" in err
-    assert main(args + ["--overwrite"]) == 0
+    assert err.count("\n") == 1 and "file exists and is not an unchanged output of roikit extract; pass " \
+        "--overwrite" in err and "overwrite=True" not in err
+    assert mine.read_text() == "my own table\n"
+    assert main(foreign + ["--overwrite"]) == 0
 
 
 @pytest.mark.parametrize("args, code, message", [

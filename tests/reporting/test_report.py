@@ -174,10 +174,23 @@ def test_html_is_self_contained(full_report):
     assert "Circular region definition" in html and "Kriegeskorte" in html
 
 
-def test_refuses_to_overwrite(full_report, values, results):
-    out, _ = full_report
-    with pytest.raises(OutputExistsError, match="already exist; pass --overwrite"):
+def test_rewrites_its_own_report_but_refuses_a_foreign_folder(values, results, tmp_path):
+    out = tmp_path / "report"
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", CautionWarning)
         write_report(values, results, out=out, figures=False)
+        (out / "tables" / "my_notes.txt").write_text("mine")
+        again = write_report(values, results, out=out, figures=False)  # its own report: replaced, no consent
+    assert (out / "tables" / "my_notes.txt").read_text() == "mine"
+    assert again["html"] == out / "report.html" and all(p.parent == out / "tables" for p in again["tables"])
+    assert not [n for n in os.listdir(out) if n.startswith(".roikit-staging")]
+    foreign = tmp_path / "foreign"
+    foreign.mkdir()
+    (foreign / "report.html").write_text("my own page")
+    with pytest.raises(OutputExistsError, match=r"holds files roikit did not write \(report.html\); pass "
+                                                r"overwrite=True"):
+        write_report(values, results, out=foreign, figures=False)
+    assert (foreign / "report.html").read_text() == "my own page"
 
 
 def test_report_with_figures(tmp_path, values, results_by_design, participants):
@@ -215,11 +228,16 @@ def test_cli_report(tmp_path, values, results_by_design, participants, capsys):
     assert "retrosplenial cortex and left hippocampus were defined from the same data" in html
     # the TSV round trip keeps the numbers: same table cells as from the DataFrame
     assert "5.47" in html
-    # an existing report is not overwritten without --overwrite (exit 1, one line on stderr)
-    assert main(args) == 1
+    # its own earlier report is replaced without --overwrite; a folder it did not write needs it (exit 1)
+    assert main(args) == 0
+    (tmp_path / "elsewhere").mkdir()
+    (tmp_path / "elsewhere" / "notes.md").write_text("mine")
+    other = args[:-4] + ["--out", str(tmp_path / "elsewhere")] + args[-2:]
+    assert main(other) == 1
     err = capsys.readouterr().err
-    assert err.count("\n") == 1 and "--overwrite" in err
-    assert main(args + ["--overwrite"]) == 0
+    assert err.count("\n") == 1 and "pass --overwrite" in err
+    assert main(other + ["--overwrite"]) == 0
+    assert (tmp_path / "elsewhere" / "notes.md").read_text() == "mine"
     assert main(["report", "--values", str(tmp_path / "nope.tsv"), "--results", str(results_path), "--out",
                  str(tmp_path / "other")]) == 1
 

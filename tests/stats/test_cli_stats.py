@@ -36,12 +36,16 @@ def test_stats_writes_results_and_sidecar(files, capsys):
     assert side["options"]["seed"] == 4 and side["options"]["welch"] is True
     assert side["inputs"]["values"]["sha256"] == sha256_file(vpath)
     assert side["inputs"]["participants"]["sha256"] == sha256_file(ppath)
-    # no overwrite without --overwrite: exit 1, one line on stderr
-    code = main(["stats", str(vpath), "--design", "one-sample", "--contrast", "novel", "--out", str(out)])
-    assert code == 1 and "exists" in capsys.readouterr().err
-    assert main(["stats", str(vpath), "--design", "one-sample", "--contrast", "novel", "--out", str(out),
-                 "--overwrite"]) == 0
+    # its own earlier output is replaced without --overwrite (a rerun)
+    capsys.readouterr()
+    assert main(["stats", str(vpath), "--design", "one-sample", "--contrast", "novel", "--out", str(out)]) == 0
     assert (read_table(out)["term"] == "mean").all()
+    capsys.readouterr()
+    # a file it did not write (here: the values table) needs --overwrite: exit 1, one line on stderr
+    code = main(["stats", str(vpath), "--design", "one-sample", "--contrast", "novel", "--out", str(ppath)])
+    err = capsys.readouterr().err
+    assert code == 1 and "is not an unchanged output of roikit stats; pass --overwrite" in err
+    assert err.count("\n") == 1
 
 
 def test_stats_usage_errors(files, capsys):

@@ -3,6 +3,8 @@
 from __future__ import annotations
 
 import contextlib
+import gzip
+import hashlib
 import io
 import json
 import os
@@ -37,8 +39,10 @@ def count_reads(monkeypatch):
     return read
 
 
-def _fresh_values(study):
-    return extract(study.maps, study.regions, statistic=study.statistic, keep_zeros=study.keep_zeros)
+def _fresh_values(study, contrasts=("novel",)):
+    """A plain extraction of the maps of the contrasts the tiny study's analyses use (only 'novel')."""
+    maps = study.maps[study.maps["contrast"].isin(contrasts)].reset_index(drop=True)
+    return extract(maps, study.regions, statistic=study.statistic, keep_zeros=study.keep_zeros)
 
 
 def test_run_writes_every_output_and_matches_the_api(study_dir, count_reads):
@@ -48,9 +52,10 @@ def test_run_writes_every_output_and_matches_the_api(study_dir, count_reads):
     for name in ("region_values.tsv", "region_values.json", "group_results.tsv", "group_results.json", "tables",
                  "report.html", "methods.md", "provenance.json"):
         assert (out / name).exists(), name
-    assert not [p for p in out.iterdir() if p.name.startswith(".run-tmp")]
-    assert run.extracted == 16 and run.reused == 0
-    assert len(count_reads) == 32  # 16 effect + 16 variance maps
+    assert not [p for p in out.iterdir() if p.name.startswith((".run-tmp", ".roikit-staging", ".roikit-trash"))]
+    # only the analysed contrast ('novel') is read: 8 effect + 8 variance maps, not the 'familiar' ones
+    assert run.extracted == 8 and run.reused == 0
+    assert len(count_reads) == 16 and not [p for p in count_reads if "familiar" in p]
 
     # the values are those of a plain extraction; the results those of run_design on them
     study = load_study(study_dir / "study.toml")
@@ -70,12 +75,13 @@ def test_run_writes_every_output_and_matches_the_api(study_dir, count_reads):
 
     prov = json.loads((out / "provenance.json").read_text())
     assert prov["kind"] == "roikit run"
-    assert prov["run"]["extraction"]["cache"]["extracted"] == 16
+    assert prov["run"]["extraction"]["cache"]["extracted"] == 8
     assert [a["design"] for a in prov["run"]["analyses"]] == ["one-sample", "two-group"]
     assert any(i["role"] == "study file" for i in prov["inputs"])
     assert {o["path"] for o in prov["outputs"]} >= {"region_values.tsv", "group_results.tsv", "report.html"}
     summary = run.summary()
-    assert "8 participants, 16 maps (16 extracted, 0 from the cache), 4 regions x 2 analyses" in summary
+    assert ("8 participants, 8 maps (8 extracted, 0 from the cache; 8 maps of contrasts no analysis uses not "
+            "read), 4 regions x 2 analyses") in summary
     assert "analysis[2] two-group novel:" in summary
 
 
@@ -87,38 +93,70 @@ def _write(values, where):
 
 def test_second_run_extracts_only_the_new_participant(study_dir, count_reads):
     run_study(study_dir / "study.toml", figures=False)
-    assert len(count_reads) == 32
+    assert len(count_reads) == 16
     count_reads.clear()
 
-    # nothing changed: nothing is read
-    again = run_study(study_dir / "study.toml", overwrite=True, figures=False)
-    assert count_reads == [] and again.extracted == 0 and again.reused == 16
+    # nothing changed: nothing is read, and re-running into the study's own results folder needs no overwrite
+    again = run_study(study_dir / "study.toml", figures=False)
+    assert count_reads == [] and again.extracted == 0 and again.reused == 8
 
-    # one participant added (in participants.tsv too): only their 2 effect + 2 variance maps are read
+    # one participant added (in participants.tsv too): only their 'novel' effect + variance maps are read
     write_participant(study_dir, "09", np.random.default_rng(9), shift=0.3)
     people = pd.read_csv(study_dir / "participants.tsv", sep="\t", dtype={"participant_id": str})
     people.loc[len(people)] = ["sub-09", "younger", 23, 75.0]
     people.to_csv(study_dir / "participants.tsv", sep="\t", index=False)
-    run = run_study(study_dir / "study.toml", overwrite=True, figures=False)
+    run = run_study(study_dir / "study.toml", figures=False)
     assert sorted({os.path.basename(p) for p in count_reads}) == [
-        "sub-09_contrast-familiar_effect.nii.gz", "sub-09_contrast-familiar_variance.nii.gz",
         "sub-09_contrast-novel_effect.nii.gz", "sub-09_contrast-novel_variance.nii.gz"]
-    assert run.extracted == 2 and run.reused == 16
+    assert run.extracted == 1 and run.reused == 8
     # the merged table is identical to a fresh extraction of all 9 participants
     fresh = _fresh_values(load_study(study_dir / "study.toml"))
     pd.testing.assert_frame_equal(run.values, fresh)
     assert run.results["n"].max() == 9
-    assert [i["path"] for i in run.values.attrs["roikit"]["inputs"]] == list(run.study.maps["path"])
+    novel = run.study.maps[run.study.maps["contrast"] == "novel"]
+    assert [i["path"] for i in run.values.attrs["roikit"]["inputs"]] == list(novel["path"])
 
-    # a map rewritten (new size/modification time) is read again
+    # a map whose modification time changed but whose bytes did not is not read again (keyed by content)
     count_reads.clear()
     path = study_dir / "maps" / "sub-03_contrast-novel_effect.nii.gz"
-    data = path.read_bytes()
-    os.utime(path, ns=(os.stat(path).st_atime_ns, os.stat(path).st_mtime_ns + 5_000_000_000))
-    run = run_study(study_dir / "study.toml", overwrite=True, figures=False)
+    st = os.stat(path)
+    os.utime(path, ns=(st.st_atime_ns, st.st_mtime_ns + 5_000_000_000))
+    run = run_study(study_dir / "study.toml", figures=False)
+    assert count_reads == [] and run.reused == 9
+
+
+def _gzip_stored(raw: bytes) -> bytes:
+    """gzip without compression: the file size depends only on the data's length, not on the values."""
+    return gzip.compress(raw, compresslevel=0, mtime=0)
+
+
+def test_a_map_replaced_with_the_same_size_and_time_is_read_again(study_dir, count_reads):
+    """Issue 13: the cache was keyed by path, size and mtime, so such a map reused a stale value."""
+    path = study_dir / "maps" / "sub-03_contrast-novel_effect.nii.gz"
+    raw = gzip.decompress(path.read_bytes())
+    path.write_bytes(_gzip_stored(raw))
+    first = run_study(study_dir / "study.toml", figures=False)
+    st = os.stat(path)
+
+    offset = int(np.frombuffer(raw[108:112], "<f4")[0])  # NIfTI-1 vox_offset
+    data = np.frombuffer(raw[offset:], "<f4")
+    new_bytes = _gzip_stored(raw[:offset] + np.where(data != 0, data + 5.0, 0).astype("<f4").tobytes())
+    path.write_bytes(new_bytes)
+    os.utime(path, ns=(st.st_atime_ns, st.st_mtime_ns))
+    assert os.stat(path).st_size == st.st_size and os.stat(path).st_mtime_ns == st.st_mtime_ns
+
+    count_reads.clear()
+    run = run_study(study_dir / "study.toml", figures=False)
     assert sorted(os.path.basename(p) for p in count_reads) == [
         "sub-03_contrast-novel_effect.nii.gz", "sub-03_contrast-novel_variance.nii.gz"]
-    assert path.read_bytes() == data
+    assert run.extracted == 1 and run.reused == 7
+    pd.testing.assert_frame_equal(run.values, _fresh_values(load_study(study_dir / "study.toml")))
+    mine = run.values["participant_id"] == "sub-03"
+    # by construction: every valid voxel moved by +5, so every region mean moves by exactly +5
+    np.testing.assert_allclose(run.values.loc[mine, "value"].to_numpy(),
+                               first.values.loc[mine, "value"].to_numpy() + 5.0, rtol=1e-6)
+    record = [i for i in run.values.attrs["roikit"]["inputs"] if i["path"] == os.fspath(path)][0]
+    assert record["sha256"] == hashlib.sha256(new_bytes).hexdigest()
 
 
 def test_changed_regions_or_statistic_invalidate_the_cache(study_dir, count_reads):
@@ -126,12 +164,12 @@ def test_changed_regions_or_statistic_invalidate_the_cache(study_dir, count_read
     count_reads.clear()
     text = (study_dir / "study.toml").read_text()
     (study_dir / "study.toml").write_text(text.replace("radius = 4.0", "radius = 6.0"))
-    run = run_study(study_dir / "study.toml", overwrite=True, figures=False)
-    assert run.extracted == 16 and len(count_reads) == 32
+    run = run_study(study_dir / "study.toml", figures=False)  # the same study file: its own folder
+    assert run.extracted == 8 and len(count_reads) == 16
     count_reads.clear()
     (study_dir / "study.toml").write_text(text + '\n[extraction]\nstatistic = "median"\n')
-    run = run_study(study_dir / "study.toml", overwrite=True, figures=False)
-    assert run.extracted == 16
+    run = run_study(study_dir / "study.toml", figures=False)
+    assert run.extracted == 8
     pd.testing.assert_frame_equal(run.values, _fresh_values(load_study(study_dir / "study.toml")))
 
 
@@ -139,11 +177,17 @@ def test_outputs_are_not_replaced_without_consent(study_dir):
     out = study_dir / "elsewhere"
     run_study(study_dir / "study.toml", out=out, figures=False)
     (out / "notes.txt").write_text("mine")
+    # the same study into its own folder: a rerun, no consent needed; the user's file is kept
+    run_study(study_dir / "study.toml", out=out, figures=False)
+    assert (out / "notes.txt").read_text() == "mine"
+    # another study file's run into that folder needs consent (Python spelling in Python)
+    other = study_dir / "other.toml"
+    other.write_text((study_dir / "study.toml").read_text())
     before = (out / "group_results.tsv").read_bytes()
-    with pytest.raises(OutputExistsError, match="--overwrite"):
-        run_study(study_dir / "study.toml", out=out, figures=False)
+    with pytest.raises(OutputExistsError, match=r"outputs of roikit run for .*study\.toml.*pass overwrite=True"):
+        run_study(other, out=out, figures=False)
     assert (out / "group_results.tsv").read_bytes() == before
-    run_study(study_dir / "study.toml", out=out, overwrite=True, figures=False)
+    run_study(other, out=out, overwrite=True, figures=False)
     assert (out / "notes.txt").read_text() == "mine"
 
 
@@ -174,7 +218,12 @@ def test_command_line_run_with_figures(study_dir):
     assert (study_dir / "results" / "report.html").is_file()
     assert any((study_dir / "results" / "figures").glob("*.png"))
     status, out, err = _cli(["run", str(study_dir / "study.toml")])
-    assert status == 1 and "--overwrite" in err
+    assert status == 0, err  # re-running a study into its own results folder is the normal case
+    foreign = study_dir / "foreign"
+    foreign.mkdir()
+    (foreign / "draft.docx").write_bytes(b"not roikit's")
+    status, out, err = _cli(["run", str(study_dir / "study.toml"), "--out", str(foreign), "--no-figures"])
+    assert status == 1 and "pass --overwrite" in err and "overwrite=True" not in err and err.count("\n") == 1
 
 
 def test_command_line_reports_all_problems_with_status_2(study_dir):
@@ -206,8 +255,15 @@ def test_extract_study_uses_the_same_cache_as_run(study_dir, count_reads):
     assert len(count_reads) == 32 and values.attrs["roikit"]["cache"]["extracted"] == 16
     count_reads.clear()
     run = run_study(study_dir / "study.toml", figures=False)
-    assert count_reads == [] and run.reused == 16
-    pd.testing.assert_frame_equal(run.values, values)
+    # the run uses only the analysed contrast ('novel'), all from the cache
+    assert count_reads == [] and run.reused == 8 and run.extracted == 0
+    novel = values[values["contrast"] == "novel"].reset_index(drop=True)
+    pd.testing.assert_frame_equal(run.values, novel)
+    # the run kept the cached maps of the contrast it did not analyse
+    again = extract_study(study_dir / "study.toml")
+    assert count_reads == [] and again.attrs["roikit"]["cache"]["reused"] == 16
+
+
 
 
 def test_study_correction_space_and_citation_reach_every_output(study_dir):
