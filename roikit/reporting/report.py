@@ -478,11 +478,13 @@ def write_report(
     if found:
         detail_html = ""
         if len(details):
-            detail_html = ('<table class="apa caution-details"><thead><tr><th>Participant</th><th>Problem</th>'
+            detail_html = ('<figure class="table details" id="caution-details"><p class="scroll-hint" aria-hidden="true"></p>'
+                           '<div class="table-scroll" tabindex="0" role="region" aria-label="Cautions in detail, '
+                           'scrolls sideways"><table class="apa caution-details"><thead><tr><th>Participant</th><th>Problem</th>'
                            "<th>Region</th><th>Analyses</th></tr></thead><tbody>" + "".join(
                                "<tr>" + "".join(f"<td>{_html.escape(str(v))}</td>" for v in
                                                 (*r[:3], _ranges(ids(r[3])))) + "</tr>"
-                               for r in details.itertuples(index=False)) + "</tbody></table>")
+                               for r in details.itertuples(index=False)) + "</tbody></table></div></figure>")
         sections.append(Section("cautions", "Cautions", ["<ul>" + "".join(
             f'<li data-kind="{c["kind"]}">{render(c["text"], "html")}</li>' for c in found) + "</ul>",
             detail_html], css_class="cautions"))
