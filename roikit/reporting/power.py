@@ -1,0 +1,176 @@
+"""Power-curve figures for planning the next study (``roikit plan --figure``).
+
+Power against the number of participants, one line per effect size, the target power marked by a dashed line and
+the n each effect needs by a point on it. Colours are the colour-blind-safe palette of Okabe & Ito (2008), and the
+lines differ in dash pattern too; sizes are a journal column (85 mm) with 7-pt text.
+"""
+
+from __future__ import annotations
+
+from typing import Sequence
+
+import numpy as np
+import pandas as pd
+from matplotlib.figure import Figure
+
+from ..errors import UsageError
+from ..stats.power import T_DESIGNS, alpha_per_test, solve_n, t_power
+from .figures import JOURNAL_WIDTHS_MM, style
+
+__all__ = ["power_curve", "crossed_power_figure"]
+
+_MM = 1 / 25.4
+#: Okabe & Ito (2008) colours, high contrast on white first; each line also has its own dash pattern.
+_COLORS = ("#0072B2", "#D55E00", "#009E73", "#CC79A7", "#E69F00", "#56B4E9", "#000000")
+_DASHES = ("-", (0, (5, 2)), (0, (1.5, 1.5)), (0, (5, 1.5, 1.5, 1.5)), (0, (8, 2)), (0, (3, 3)), (0, (1, 3)))
+_SYMBOL = {"d": "$d$", "d_z": "$d_z$", "g": "$g$"}
+_CORRECTION_NAMES = {"holm": "Holm", "bonferroni": "Bonferroni", "none": "uncorrected"}
+
+
+def _minus(x: float, digits: int = 2) -> str:
+    """A number with a true minus sign (U+2212)."""
+    return f"{x:.{digits}f}".replace("-", "\u2212")
+
+
+def power_curve(
+    data: pd.DataFrame,
+    *,
+    ax=None,
+    n_max: int | None = None,
+    width_mm: float = JOURNAL_WIDTHS_MM["single"],
+    height_mm: float = 62.0,
+):
+    """Power against n for every effect size of a plan table, with the target power and the n needed marked.
+
+    Parameters
+    ----------
+    data : DataFrame
+        A plan table from :func:`roikit.stats.power.plan_t` (or ``plan_from_results``): columns design,
+        effect_size, effect_size_type, n, alpha_per_test, target_power, alternative (ratio from n_second / n for
+        two-group). One line per distinct effect size (at most seven; the largest |effect| first).
+    ax : Axes, optional
+        Draw here; by default a new figure ``width_mm`` x ``height_mm``.
+    n_max : int, optional
+        Right end of the n axis (default: 1.3 x the largest n in the table, at least 10).
+    width_mm, height_mm : float
+        Size of a new figure (default one journal column, 85 mm).
+
+    Returns
+    -------
+    Axes
+    """
+    needed = {"design", "effect_size", "effect_size_type", "n", "alpha_per_test"}
+    missing = sorted(needed - set(data.columns))
+    if missing:
+        raise UsageError(f"power_curve: plan table lacks column(s) {', '.join(missing)}; pass a roikit plan table")
+    rows = data[data["design"].isin(T_DESIGNS) & np.isfinite(pd.to_numeric(data["effect_size"], errors="coerce"))]
+    if rows.empty:
+        raise UsageError("power_curve: no t-design rows with an effect size to draw (designs one-sample, paired, "
+                         "two-group)")
+    design = str(rows["design"].iat[0])
+    a_test = float(rows["alpha_per_test"].iat[0])
+    alternative = str(rows["alternative"].iat[0]) if "alternative" in rows else "two-sided"
+    target = pd.to_numeric(rows.get("target_power", pd.Series(dtype=float)), errors="coerce").dropna()
+    target = float(target.iat[0]) if len(target) else None
+    ratio = 1.0
+    if design == "two-group" and "ratio" in rows and pd.notna(rows["ratio"].iat[0]):
+        ratio = float(rows["ratio"].iat[0])
+    effects = sorted(pd.unique(rows["effect_size"].astype(float)), key=lambda v: -abs(v))[: len(_COLORS)]
+    ns = pd.to_numeric(rows["n"], errors="coerce").dropna()
+    top = int(n_max) if n_max else max(10, int(np.ceil(1.3 * (ns.max() if len(ns) else 10))))
+    grid = np.arange(2, top + 1)
+    es_type = str(rows["effect_size_type"].iat[0])
+    symbol = _SYMBOL.get(es_type, es_type)
+    with style():
+        if ax is None:
+            fig = Figure(figsize=(width_mm * _MM, height_mm * _MM), layout="constrained")
+            ax = fig.add_subplot()
+        for k, d in enumerate(effects):
+            pw = t_power(d, grid, design=design, alpha=a_test, alternative=alternative, ratio=ratio)
+            color, dash = _COLORS[k], _DASHES[k]
+            ax.plot(grid, pw, color=color, ls=dash, lw=1.1, label=f"{symbol} = {_minus(d)}")
+            if target is not None:
+                try:
+                    n_need = solve_n(d, target, design=design, alpha=a_test, alternative=alternative, ratio=ratio)
+                except Exception:  # an effect in the untested direction or too small: no point to mark
+                    n_need = None
+                if n_need is not None and n_need <= top:
+                    ax.plot([n_need], [float(t_power(d, n_need, design=design, alpha=a_test,
+                                                     alternative=alternative, ratio=ratio))],
+                            marker="o", ms=3.5, color=color, mec="white", mew=0.6, zorder=3)
+                    ax.annotate(f"{n_need}", (n_need, target), xytext=(2, -8), textcoords="offset points",
+                                fontsize=7, color=color)
+        if target is not None:
+            ax.axhline(target, color="0.35", lw=0.7, ls=(0, (4, 3)), zorder=0.5,
+                       label=f"target power {target:.2f}".replace("0.", ".", 1))
+        ax.set_xlim(grid[0], grid[-1])
+        ax.set_ylim(0, 1.0)
+        ax.set_yticks([0, 0.2, 0.4, 0.6, 0.8, 1.0], ["0", ".2", ".4", ".6", ".8", "1"])
+        unit = "participants per group" if design == "two-group" else "participants"
+        if design == "two-group" and ratio != 1.0:
+            unit = f"first group; the second {ratio:.3g} times as large"
+        ax.set_xlabel(f"n ({unit})")
+        ax.set_ylabel("power")
+        family = int(rows["family_size"].iat[0]) if "family_size" in rows else 1
+        corr = str(rows["correction"].iat[0]) if "correction" in rows else "none"
+        sided = {"two-sided": "two-sided", "greater": "one-sided", "less": "one-sided"}[alternative]
+        title = f"{design}, {sided} \u03b1 = {_alpha_text(a_test)} per test"
+        if family > 1:
+            title += f"\n({_CORRECTION_NAMES.get(corr, corr)} across {family} regions)"
+        ax.set_title(title, fontsize=7, loc="left")
+        ax.legend(loc="lower right", fontsize=7, handlelength=2.6)
+    return ax
+
+
+def _alpha_text(a: float) -> str:
+    text = f"{a:.4f}".rstrip("0").rstrip(".")
+    return text[1:] if text.startswith("0.") else text
+
+
+def crossed_power_figure(
+    data: pd.DataFrame,
+    *,
+    ax=None,
+    width_mm: float = JOURNAL_WIDTHS_MM["single"],
+    height_mm: float = 62.0,
+):
+    """Power against participants for each number of stimuli (crossed design), with each line's ceiling.
+
+    Parameters
+    ----------
+    data : DataFrame
+        A grid from :func:`roikit.stats.power.crossed_power` (columns n_participants, n_stimuli, power,
+        power_limit; target_power when present).
+    ax : Axes, optional
+    width_mm, height_mm : float
+
+    Returns
+    -------
+    Axes
+    """
+    needed = {"n_participants", "n_stimuli", "power", "power_limit"}
+    missing = sorted(needed - set(data.columns))
+    if missing:
+        raise UsageError(f"crossed_power_figure: grid lacks column(s) {', '.join(missing)}")
+    stimuli = sorted(pd.unique(data["n_stimuli"].astype(int)))[: len(_COLORS)]
+    with style():
+        if ax is None:
+            fig = Figure(figsize=(width_mm * _MM, height_mm * _MM), layout="constrained")
+            ax = fig.add_subplot()
+        for k, q in enumerate(stimuli):
+            part = data[data["n_stimuli"].astype(int) == q].sort_values("n_participants")
+            color = _COLORS[k]
+            ax.plot(part["n_participants"], part["power"], color=color, ls=_DASHES[k], lw=1.1, marker="o", ms=2.5,
+                    label=f"{q} stimuli")
+            limit = float(part["power_limit"].iat[0])
+            if limit < 0.999:
+                ax.axhline(limit, color=color, lw=0.6, ls=(0, (1, 2)), zorder=0.5)
+        if "target_power" in data and pd.notna(data["target_power"]).any():
+            ax.axhline(float(data["target_power"].dropna().iat[0]), color="0.35", lw=0.7, ls=(0, (4, 3)))
+        ax.set_ylim(0, 1.0)
+        ax.set_yticks([0, 0.2, 0.4, 0.6, 0.8, 1.0], ["0", ".2", ".4", ".6", ".8", "1"])
+        ax.set_xlabel("participants")
+        ax.set_ylabel("power")
+        ax.set_title("dotted: ceiling with unlimited participants", fontsize=7, loc="left")
+        ax.legend(loc="lower right", fontsize=7)
+    return ax
