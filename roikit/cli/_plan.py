@@ -16,6 +16,7 @@ from .._tables import check_output, read_table, sha256_file, sidecar_path, write
 from ..errors import CautionWarning, DesignError, UsageError
 
 _DESIGNS = ("one-sample", "paired", "two-group", "precision-weighted", "crossed")
+_MAX_LINES = 12  # summary lines on stderr; the table holds every row
 _LAYOUTS = ("fully-crossed", "stimuli-within-condition", "participants-within-condition", "both-within-condition")
 
 #: Descriptions of the plan table's columns (written to the JSON sidecar, BIDS layout).
@@ -63,6 +64,9 @@ DESCRIPTIONS = {
     "mean_variance": "precision-weighted: mean of the first-level variances drawn from",
     "power_t_approx": "precision-weighted: exact one-sample t power at d_total (equal first-level variances), "
                       "for comparison",
+    "null_rejection": "precision-weighted: share of the same simulated studies with the mean set to 0 that reject "
+                      "(the test's actual size; compare with alpha_per_test)",
+    "null_rejection_mc_se": "Monte Carlo standard error of null_rejection",
     "n_participants": "crossed: participants",
     "n_stimuli": "crossed: stimuli",
     "layout": "crossed: which factor the conditions vary within (Westfall, Kenny & Judd 2014)",
@@ -173,12 +177,17 @@ def run(args: argparse.Namespace) -> int:
         if "design" not in pilot.columns:
             raise DesignError(f"--from {args.pilot}: no 'design' column; expected a `roikit stats` results table")
         designs = list(pd.unique(pilot["design"].astype(str)))
+        if args.design:  # select the pilot's rows of this design (crossed plans come from mixed results)
+            wanted = "mixed" if args.design == "crossed" else args.design
+            if wanted not in designs:
+                raise DesignError(f"--from {args.pilot}: no rows of design {wanted!r}; the table holds "
+                                  f"{', '.join(designs)}")
+            pilot = pilot[pilot["design"].astype(str) == wanted].reset_index(drop=True)
+            designs = [wanted]
         if len(designs) != 1:
-            raise DesignError(f"--from {args.pilot}: one design per plan, found {', '.join(designs)}")
+            raise UsageError(f"--from {args.pilot}: the table holds several designs ({', '.join(designs)}); choose "
+                             "one with --design")
         design = "crossed" if designs[0] == "mixed" else designs[0]
-        if args.design and args.design != design:
-            raise UsageError(f"--design {args.design} disagrees with the pilot's design {designs[0]!r} in "
-                             f"{args.pilot}; drop --design")
     else:
         if not args.design:
             raise UsageError("give --design DESIGN (or --from RESULTS.tsv to plan from a pilot)")
@@ -238,8 +247,11 @@ def run(args: argparse.Namespace) -> int:
         "Notes": notes + ["For research planning, not for clinical decisions."],
     }
     path = write_table(out, table, sidecar=sidecar, overwrite=args.overwrite)
-    for line in summary:
+    shown = summary if len(summary) <= _MAX_LINES else summary[: _MAX_LINES - 1]
+    for line in shown:
         sys.stderr.write(f"roikit plan: {line}\n")
+    if len(shown) < len(summary):
+        sys.stderr.write(f"roikit plan: ... {len(summary) - len(shown)} more row(s) in {path}\n")
     for note in notes:
         if note != pw.INFLATION_NOTE and not note.startswith("the family"):
             sys.stderr.write(f"roikit plan: note: {note}\n")
@@ -437,7 +449,9 @@ def _figure(args, table: pd.DataFrame, design: str) -> list:
 
     if design == "crossed":
         if "region" in table and table["region"].nunique() > 1:
-            table = table[table["region"] == table["region"].iat[0]]
+            # one region per figure: the one whose plan reaches the highest power on the grid
+            best = table.loc[table["power"].astype(float).idxmax(), "region"]
+            table = table[table["region"] == best]
         ax = crossed_power_figure(table)
     elif design == "precision-weighted":
         raise UsageError("--figure: no figure for simulated precision-weighted plans yet; drop --figure")

@@ -134,7 +134,7 @@ def crossed_power_figure(
     width_mm: float = JOURNAL_WIDTHS_MM["single"],
     height_mm: float = 62.0,
 ):
-    """Power against participants for each number of stimuli (crossed design), with each line's ceiling.
+    """Power against participants for each number of stimuli (crossed design), with each line's limit.
 
     Parameters
     ----------
@@ -171,6 +171,9 @@ def crossed_power_figure(
         ax.set_yticks([0, 0.2, 0.4, 0.6, 0.8, 1.0], ["0", ".2", ".4", ".6", ".8", "1"])
         ax.set_xlabel("participants")
         ax.set_ylabel("power")
-        ax.set_title("dotted: ceiling with unlimited participants", fontsize=7, loc="left")
-        ax.legend(loc="lower right", fontsize=7)
+        title = "dotted: the limit with unlimited participants"
+        if "region" in data and data["region"].nunique() == 1:
+            title = f"{data['region'].iat[0]}\n{title}"
+        ax.set_title(title, fontsize=7, loc="left")
+        ax.legend(loc="upper left", fontsize=7)
     return ax

@@ -582,6 +582,8 @@ def plan_from_results(
         rec["note"] = "; ".join(note) if note else None
         out.append(rec)
     table = pd.DataFrame(out)
+    for name in ("n", "n_second", "n_total", "safeguard_n", "safeguard_n_second"):
+        table[name] = table[name].astype("Int64")  # whole numbers, n/a where no n exists
     return table if design == "two-group" else table.drop(columns=["n_second", "safeguard_n_second"])
 
 
@@ -659,7 +661,9 @@ def simulate_precision_weighted(
         effect_size_type, n, power (share of simulated studies with p < alpha_per_test), alpha, alpha_per_test,
         family_size, correction, then solved_for (``power``), method (``simulation``), mc_se
         (``sqrt(power (1 - power) / simulations)``), simulations, seed, mean, tau2, mean_variance,
-        power_t_approx (exact one-sample t power at ``d_total``, for comparison).
+        power_t_approx (exact one-sample t power at ``d_total``, for comparison), null_rejection (share of the
+        same simulated studies, with the mean set to 0, that reject: the test's actual size, to compare with
+        alpha_per_test) and null_rejection_mc_se.
 
     Notes
     -----
@@ -689,17 +693,23 @@ def simulate_precision_weighted(
     bar = _progress(sims * len(ns), "precision-weighted power", progress)
     try:
         for n1 in ns:
-            hits = 0
+            hits = null_hits = 0
             done = 0
             while done < sims:
                 m = min(chunk, sims - done)
                 v = rng.choice(v_pool, size=(n1, m), replace=True)
-                y = float(mean) + rng.standard_normal((n1, m)) * np.sqrt(float(tau2) + v)
-                fit = fit_precision_weighted(y, v, tau2_method=tau2_method, test=test)
-                hits += int(np.sum(fit["p"][:, 0] < a_test))
+                noise = rng.standard_normal((n1, m)) * np.sqrt(float(tau2) + v)
+                # the same draws with the mean at 0 and at the assumed value: the test's size and its power
+                both = np.concatenate([noise, float(mean) + noise], axis=1)
+                fit = fit_precision_weighted(both, np.concatenate([v, v], axis=1), tau2_method=tau2_method,
+                                             test=test)
+                reject = fit["p"][:, 0] < a_test
+                null_hits += int(np.sum(reject[:m]))
+                hits += int(np.sum(reject[m:]))
                 done += m
                 bar.update(m)
             pw = hits / sims
+            size = null_hits / sims
             rows.append({
                 "design": "precision-weighted", "effect_size": d_total, "effect_size_type": "d_total", "n": n1,
                 "power": pw, "alpha": float(alpha), "alpha_per_test": a_test, "family_size": int(family_size),
@@ -707,6 +717,7 @@ def simulate_precision_weighted(
                 "mc_se": math.sqrt(pw * (1 - pw) / sims), "simulations": sims, "seed": recorded,
                 "mean": float(mean), "tau2": float(tau2), "mean_variance": v_mean,
                 "power_t_approx": float(t_power(d_total, n1, design="one-sample", alpha=a_test)),
+                "null_rejection": size, "null_rejection_mc_se": math.sqrt(size * (1 - size) / sims),
             })
     finally:
         bar.close()
@@ -878,7 +889,8 @@ def crossed_power(
         one observation within a condition), effect_size_type, n (participants), power, alpha, alpha_per_test,
         family_size, correction, then solved_for, method (``exact-balanced``), n_participants, n_stimuli,
         layout, effect, se, df, ncp, power_limit (the power with unlimited participants at this number of
-        stimuli: the ceiling a finite stimulus sample imposes), mc_se (n/a: no simulation).
+        stimuli: the ceiling a finite stimulus sample imposes; at finite n the Satterthwaite df are larger, so a
+        grid point near the limit can lie slightly above it), mc_se (n/a: no simulation).
 
     Notes
     -----
