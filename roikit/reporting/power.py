@@ -109,6 +109,7 @@ def power_curve(
         unit = "participants per group" if design == "two-group" else "participants"
         if design == "two-group" and ratio != 1.0:
             unit = f"first group; the second {ratio:.3g} times as large"
+        ax.tick_params(labelsize=7)  # every text at least 7 pt
         ax.set_xlabel(f"n ({unit})")
         ax.set_ylabel("power")
         family = int(rows["family_size"].iat[0]) if "family_size" in rows else 1
@@ -169,6 +170,7 @@ def crossed_power_figure(
             ax.axhline(float(data["target_power"].dropna().iat[0]), color="0.35", lw=0.7, ls=(0, (4, 3)))
         ax.set_ylim(0, 1.0)
         ax.set_yticks([0, 0.2, 0.4, 0.6, 0.8, 1.0], ["0", ".2", ".4", ".6", ".8", "1"])
+        ax.tick_params(labelsize=7)
         ax.set_xlabel("participants")
         ax.set_ylabel("power")
         title = "dotted: the limit with unlimited participants"
