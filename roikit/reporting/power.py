@@ -14,7 +14,7 @@ import pandas as pd
 from matplotlib.figure import Figure
 
 from ..errors import UsageError
-from ..stats.power import T_DESIGNS, alpha_per_test, solve_n, t_power
+from ..stats.power import T_DESIGNS, t_power
 from .figures import JOURNAL_WIDTHS_MM, style
 
 __all__ = ["power_curve", "crossed_power_figure"]
@@ -85,21 +85,20 @@ def power_curve(
         if ax is None:
             fig = Figure(figsize=(width_mm * _MM, height_mm * _MM), layout="constrained")
             ax = fig.add_subplot()
+        labelled: set[int] = set()
         for k, d in enumerate(effects):
             pw = t_power(d, grid, design=design, alpha=a_test, alternative=alternative, ratio=ratio)
             color, dash = _COLORS[k], _DASHES[k]
             ax.plot(grid, pw, color=color, ls=dash, lw=1.1, label=f"{symbol} = {_minus(d)}")
-            if target is not None:
-                try:
-                    n_need = solve_n(d, target, design=design, alpha=a_test, alternative=alternative, ratio=ratio)
-                except Exception:  # an effect in the untested direction or too small: no point to mark
-                    n_need = None
-                if n_need is not None and n_need <= top:
-                    ax.plot([n_need], [float(t_power(d, n_need, design=design, alpha=a_test,
-                                                     alternative=alternative, ratio=ratio))],
-                            marker="o", ms=3.5, color=color, mec="white", mew=0.6, zorder=3)
-                    ax.annotate(f"{n_need}", (n_need, target), xytext=(2, -8), textcoords="offset points",
-                                fontsize=7, color=color)
+            # the table's own rows on this curve: the n solved for, or the n given
+            for r in rows[rows["effect_size"].astype(float) == d].itertuples():
+                n_row, p_row = int(r.n), float(r.power)
+                if 2 <= n_row <= top and np.isfinite(p_row):
+                    ax.plot([n_row], [p_row], marker="o", ms=3.5, color=color, mec="white", mew=0.6, zorder=3)
+                    if n_row not in labelled:  # one label per n (the curves are drawn largest effect first)
+                        labelled.add(n_row)
+                        ax.annotate(f"{n_row}", (n_row, p_row), xytext=(3, -9), textcoords="offset points",
+                                    fontsize=7, color=color)
         if target is not None:
             ax.axhline(target, color="0.35", lw=0.7, ls=(0, (4, 3)), zorder=0.5,
                        label=f"target power {target:.2f}".replace("0.", ".", 1))
@@ -119,12 +118,12 @@ def power_curve(
         if family > 1:
             title += f"\n({_CORRECTION_NAMES.get(corr, corr)} across {family} regions)"
         ax.set_title(title, fontsize=7, loc="left")
-        ax.legend(loc="lower right", fontsize=7, handlelength=2.6)
+        ax.legend(loc="best", fontsize=7, handlelength=2.6)
     return ax
 
 
 def _alpha_text(a: float) -> str:
-    text = f"{a:.4f}".rstrip("0").rstrip(".")
+    text = f"{a:.3g}"
     return text[1:] if text.startswith("0.") else text
 
 
@@ -167,7 +166,9 @@ def crossed_power_figure(
             if limit < 0.999:
                 ax.axhline(limit, color=color, lw=0.6, ls=(0, (1, 2)), zorder=0.5)
         if "target_power" in data and pd.notna(data["target_power"]).any():
-            ax.axhline(float(data["target_power"].dropna().iat[0]), color="0.35", lw=0.7, ls=(0, (4, 3)))
+            target = float(data["target_power"].dropna().iat[0])
+            ax.axhline(target, color="0.35", lw=0.7, ls=(0, (4, 3)),
+                       label=f"target power {target:.2f}".replace("0.", ".", 1))
         ax.set_ylim(0, 1.0)
         ax.set_yticks([0, 0.2, 0.4, 0.6, 0.8, 1.0], ["0", ".2", ".4", ".6", ".8", "1"])
         ax.tick_params(labelsize=7)
@@ -177,5 +178,5 @@ def crossed_power_figure(
         if "region" in data and data["region"].nunique() == 1:
             title = f"{data['region'].iat[0]}\n{title}"
         ax.set_title(title, fontsize=7, loc="left")
-        ax.legend(loc="upper left", fontsize=7)
+        ax.legend(loc="best", fontsize=7)
     return ax

@@ -333,7 +333,12 @@ def detectable_effect(
         hi *= 2
         if hi > 1e6:
             raise DesignError(f"n {n!r}: no effect size reaches power {target}; check n and alpha")
-    return sign * float(optimize.brentq(gap, 0.0, hi, xtol=1e-12, rtol=1e-12))
+    root = float(optimize.brentq(gap, 0.0, hi, xtol=1e-12, rtol=1e-12))
+    for _ in range(20):  # the smallest effect that reaches the target, not one a rounding error short of it
+        if gap(root) >= 0:
+            break
+        root += 1e-12 * max(1.0, root)
+    return sign * root
 
 
 def _as_list(x, name: str, kind=float) -> list:
