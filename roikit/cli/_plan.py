@@ -192,6 +192,14 @@ def run(args: argparse.Namespace) -> int:
         if not args.design:
             raise UsageError("give --design DESIGN (or --from RESULTS.tsv to plan from a pilot)")
         design = args.design
+    if args.ratio != 1.0 and design != "two-group":
+        raise UsageError(f"--ratio applies to the two-group design only, not {design}; drop --ratio")
+    if args.alternative != "two-sided" and design not in pw.T_DESIGNS:
+        raise UsageError(f"--alternative {args.alternative}: the {design} design is planned two-sided only; drop "
+                         "--alternative")
+    for option, value in (("--layout", args.layout), ("--stimuli", args.stimuli)):
+        if value is not None and design != "crossed":
+            raise UsageError(f"{option} applies to the crossed design only, not {design}; drop {option}")
     effects = _list(args.effect_size, "--effect-size")
     ns = _list(args.n, "--n", int)
     family = args.regions if args.regions is not None else 1
@@ -336,6 +344,8 @@ def _precision(args, pilot, effects, ns, family, inputs, notes, pw):
                                                family_size=K, correction=args.correct, simulations=sims,
                                                seed=np.random.default_rng([seed, k]))
         frame["seed"] = seed
+        if args.power is not None:
+            frame["target_power"] = args.power
         if region is not None:
             frame.insert(9, "region", region)
         frames.append(frame)
@@ -445,7 +455,7 @@ def _crossed(args, pilot, effects, ns, family, notes, pw):
 
 def _figure(args, table: pd.DataFrame, design: str) -> list:
     from ..reporting.figures import save_figure
-    from ..reporting.power import crossed_power_figure, power_curve
+    from ..reporting.power import crossed_power_figure, power_curve, simulated_power_figure
 
     if design == "crossed":
         if "region" in table and table["region"].nunique() > 1:
@@ -454,7 +464,7 @@ def _figure(args, table: pd.DataFrame, design: str) -> list:
             table = table[table["region"] == best]
         ax = crossed_power_figure(table)
     elif design == "precision-weighted":
-        raise UsageError("--figure: no figure for simulated precision-weighted plans yet; drop --figure")
+        ax = simulated_power_figure(table)
     else:
         ax = power_curve(table)
     return save_figure(ax.figure, args.figure, overwrite=args.overwrite)

@@ -17,7 +17,7 @@ from ..errors import UsageError
 from ..stats.power import T_DESIGNS, t_power
 from .figures import JOURNAL_WIDTHS_MM, style
 
-__all__ = ["power_curve", "crossed_power_figure"]
+__all__ = ["power_curve", "crossed_power_figure", "simulated_power_figure"]
 
 _MM = 1 / 25.4
 #: Okabe & Ito (2008) colours, high contrast on white first; each line also has its own dash pattern.
@@ -179,4 +179,69 @@ def crossed_power_figure(
             title = f"{data['region'].iat[0]}\n{title}"
         ax.set_title(title, fontsize=7, loc="left")
         ax.legend(loc="best", fontsize=7)
+    return ax
+
+
+def simulated_power_figure(
+    data: pd.DataFrame,
+    *,
+    target: float | None = None,
+    ax=None,
+    width_mm: float = JOURNAL_WIDTHS_MM["single"],
+    height_mm: float = 62.0,
+):
+    """Simulated power against n, one line per region (or per assumed mean), with +/- 2 Monte Carlo SE.
+
+    Parameters
+    ----------
+    data : DataFrame
+        A table from :func:`roikit.stats.power.simulate_precision_weighted` (columns n, power, mc_se; region or
+        mean tells the lines apart). At most seven lines: the ones reaching the highest power.
+    target : float, optional
+        Target power to mark (default: the table's target_power, when present).
+    ax : Axes, optional
+    width_mm, height_mm : float
+
+    Returns
+    -------
+    Axes
+    """
+    needed = {"n", "power", "mc_se"}
+    missing = sorted(needed - set(data.columns))
+    if missing:
+        raise UsageError(f"simulated_power_figure: table lacks column(s) {', '.join(missing)}")
+    key = "region" if "region" in data and data["region"].notna().any() else "mean"
+    order = data.groupby(key, sort=False)["power"].max().sort_values(ascending=False).index[: len(_COLORS)]
+    if target is None and "target_power" in data and pd.notna(data["target_power"]).any():
+        target = float(data["target_power"].dropna().iat[0])
+    many = len(order) > 3
+    with style():
+        if ax is None:
+            fig = Figure(figsize=(width_mm * _MM, (height_mm + (22 if many else 0)) * _MM), layout="constrained")
+            ax = fig.add_subplot()
+        for k, name in enumerate(order):
+            part = data[data[key] == name].sort_values("n")
+            label = str(name) if key == "region" else f"mean {_minus(float(name), 3)}"
+            ax.errorbar(part["n"], part["power"], yerr=2 * part["mc_se"], color=_COLORS[k], ls=_DASHES[k], lw=1.1,
+                        marker="o", ms=2.5, capsize=1.5, elinewidth=0.7, label=label)
+        if target is not None:
+            ax.axhline(target, color="0.35", lw=0.7, ls=(0, (4, 3)),
+                       label=f"target power {target:.2f}".replace("0.", ".", 1))
+        ax.set_ylim(0, 1.0)
+        ax.set_yticks([0, 0.2, 0.4, 0.6, 0.8, 1.0], ["0", ".2", ".4", ".6", ".8", "1"])
+        ax.tick_params(labelsize=7)
+        ax.set_xlabel("participants")
+        ax.set_ylabel("power (simulated, \u00b12 MC SE)")
+        title = "precision-weighted design"
+        if "alpha_per_test" in data:
+            title += f", two-sided \u03b1 = {_alpha_text(float(data['alpha_per_test'].iat[0]))} per test"
+            family = int(data["family_size"].iat[0]) if "family_size" in data else 1
+            if family > 1:
+                corr = str(data["correction"].iat[0])
+                title += f"\n({_CORRECTION_NAMES.get(corr, corr)} across {family} regions)"
+        ax.set_title(title, fontsize=7, loc="left")
+        if many:  # below the axes, clear of the curves
+            ax.legend(loc="upper center", bbox_to_anchor=(0.5, -0.2), ncol=2, fontsize=7)
+        else:
+            ax.legend(loc="best", fontsize=7)
     return ax

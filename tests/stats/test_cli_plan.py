@@ -116,6 +116,12 @@ def test_plan_precision_weighted_simulation(tmp_path, capsys):
         assert main(["plan", "--from", str(rpath), "--values", str(vpath), "--n", "10,20", "--simulations", "200",
                      "--seed", "9", "--power", "0.8", "--out", str(out2)]) == 0
     assert read_table(out2)["power"].tolist() == table["power"].tolist()
+    # the figure: simulated power per region
+    fig = tmp_path / "pw.png"
+    with pytest.warns(CautionWarning):
+        assert main(["plan", "--from", str(rpath), "--values", str(vpath), "--n", "10,20", "--simulations", "50",
+                     "--seed", "9", "--out", str(tmp_path / "plan3.tsv"), "--figure", str(fig)]) == 0
+    assert fig.stat().st_size > 1000
     # without --values: a usage error naming the option
     assert main(["plan", "--from", str(rpath), "--n", "10", "--out", str(tmp_path / "x.tsv")]) == 2
     assert "--values" in capsys.readouterr().err
@@ -131,6 +137,14 @@ def test_plan_crossed_grid_and_figure(tmp_path, capsys):
     assert len(table) == 9 and set(table["n_stimuli"]) == {4, 8, 16}
     assert (table["power_limit"] < 1).all() and (table["method"] == "exact-balanced").all()
     assert (tmp_path / "crossed.png").is_file()
+    # --simulations checks grid points through the mixed-model fitter, seeded
+    out2 = tmp_path / "sim.tsv"
+    assert main(["plan", "--design", "crossed", "--layout", "participants-within-condition", "--effect-size", "1",
+                 "--n", "8", "--stimuli", "4", "--sd-participant", "0.5", "--sd-residual", "1",
+                 "--simulations", "10", "--seed", "3", "--out", str(out2)]) == 0
+    sim = read_table(out2)
+    assert sim["simulations"].iat[0] == 10 and sim["seed"].iat[0] == 3
+    assert 0 <= sim["power_simulated"].iat[0] <= 1 and sim["mc_se"].iat[0] >= 0
 
 
 def test_plan_usage_and_data_errors(tmp_path, capsys):
@@ -146,6 +160,10 @@ def test_plan_usage_and_data_errors(tmp_path, capsys):
     assert main(["plan", "--design", "crossed", "--effect-size", "0.5", "--n", "10", "--stimuli", "4",
                  "--out", out]) == 2
     assert "--layout" in capsys.readouterr().err
+    for extra, name in ((["--ratio", "2"], "--ratio"), (["--stimuli", "4"], "--stimuli")):
+        assert main(["plan", "--design", "paired", "--effect-size", "0.5", "--power", "0.8", "--out", out,
+                     *extra]) == 2
+        assert name in capsys.readouterr().err
     # no overwrite without consent
     assert main(["plan", "--design", "paired", "--effect-size", "0.5", "--power", "0.8", "--out", out]) == 0
     assert main(["plan", "--design", "paired", "--effect-size", "0.5", "--power", "0.8", "--out", out]) == 1
