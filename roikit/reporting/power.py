@@ -11,13 +11,15 @@ from typing import Sequence
 
 import numpy as np
 import pandas as pd
-from matplotlib.figure import Figure
 
 from ..errors import UsageError
-from ..stats.power import T_DESIGNS, t_power
-from .figures import JOURNAL_WIDTHS_MM, style
+from ..stats.power import EFFECT_SIZE_TYPES, T_DESIGNS, sensitivity, t_power
+from .format import format_number
 
-__all__ = ["power_curve", "crossed_power_figure", "simulated_power_figure"]
+__all__ = ["power_curve", "crossed_power_figure", "simulated_power_figure", "sensitivity_sentence"]
+
+#: A journal column (mm), as ``figures.JOURNAL_WIDTHS_MM["single"]`` (matplotlib is imported only to draw).
+_SINGLE_MM = 85.0
 
 _MM = 1 / 25.4
 #: Okabe & Ito (2008) colours, high contrast on white first; each line also has its own dash pattern.
@@ -37,7 +39,7 @@ def power_curve(
     *,
     ax=None,
     n_max: int | None = None,
-    width_mm: float = JOURNAL_WIDTHS_MM["single"],
+    width_mm: float = _SINGLE_MM,
     height_mm: float = 62.0,
 ):
     """Power against n for every effect size of a plan table, with the target power and the n needed marked.
@@ -81,6 +83,10 @@ def power_curve(
     grid = np.arange(2, top + 1)
     es_type = str(rows["effect_size_type"].iat[0])
     symbol = _SYMBOL.get(es_type, es_type)
+    from matplotlib.figure import Figure
+
+    from .figures import style
+
     with style():
         if ax is None:
             fig = Figure(figsize=(width_mm * _MM, height_mm * _MM), layout="constrained")
@@ -131,7 +137,7 @@ def crossed_power_figure(
     data: pd.DataFrame,
     *,
     ax=None,
-    width_mm: float = JOURNAL_WIDTHS_MM["single"],
+    width_mm: float = _SINGLE_MM,
     height_mm: float = 62.0,
 ):
     """Power against participants for each number of stimuli (crossed design), with each line's limit.
@@ -153,6 +159,10 @@ def crossed_power_figure(
     if missing:
         raise UsageError(f"crossed_power_figure: grid lacks column(s) {', '.join(missing)}")
     stimuli = sorted(pd.unique(data["n_stimuli"].astype(int)))[: len(_COLORS)]
+    from matplotlib.figure import Figure
+
+    from .figures import style
+
     with style():
         if ax is None:
             fig = Figure(figsize=(width_mm * _MM, height_mm * _MM), layout="constrained")
@@ -187,7 +197,7 @@ def simulated_power_figure(
     *,
     target: float | None = None,
     ax=None,
-    width_mm: float = JOURNAL_WIDTHS_MM["single"],
+    width_mm: float = _SINGLE_MM,
     height_mm: float = 62.0,
 ):
     """Simulated power against n, one line per region (or per assumed mean), with +/- 2 Monte Carlo SE.
@@ -215,6 +225,10 @@ def simulated_power_figure(
     if target is None and "target_power" in data and pd.notna(data["target_power"]).any():
         target = float(data["target_power"].dropna().iat[0])
     many = len(order) > 3
+    from matplotlib.figure import Figure
+
+    from .figures import style
+
     with style():
         if ax is None:
             fig = Figure(figsize=(width_mm * _MM, (height_mm + (22 if many else 0)) * _MM), layout="constrained")
@@ -245,3 +259,52 @@ def simulated_power_figure(
         else:
             ax.legend(loc="best", fontsize=7)
     return ax
+
+
+_SENTENCE_SYMBOL = {"d": "*d*", "d_z": "*d*_{z}"}
+_CORRECTION_PHRASE = {"holm": "Holm", "bonferroni": "Bonferroni", "fdr": "Benjamini–Hochberg",
+                      "fwe": "permutation family-wise", "permutation-fwe": "permutation family-wise"}
+
+
+def sensitivity_sentence(results: pd.DataFrame, *, power: float = 0.8, alpha: float = 0.05) -> str:
+    """One sentence per t-design analysis: the smallest effect it could detect with ``power`` at its alpha.
+
+    Parameters
+    ----------
+    results : DataFrame
+        Rows of one analysis (or several) of a ``roikit stats`` results table.
+    power, alpha : float
+        As in :func:`roikit.stats.power.sensitivity`.
+
+    Returns
+    -------
+    str
+        roikit markup (``*n*``, ``*d*_{z}``), e.g. "With *n* = 32 per region and *α* = .005 per test (Holm across
+        10 regions, planned at the threshold for the smallest *p* value), the smallest effect detectable with 80%
+        power was *d*_{z} = 0.51."; empty for designs without a closed-form sensitivity.
+
+    Examples
+    --------
+    >>> import pandas as pd
+    >>> rows = pd.DataFrame({"design": ["paired"] * 2, "term": ["novel - familiar"] * 2, "n": [32, 32],
+    ...                      "family_size": [2, 2], "correction": ["holm,fdr"] * 2})
+    >>> sensitivity_sentence(rows)[:40]
+    'With *n* = 32 and *α* = .025 per test (H'
+    """
+    table = sensitivity(results, power=power, alpha=alpha)
+    sentences = []
+    for r in table.itertuples():
+        n = f"*n* = {r.n}" if r.design != "two-group" else f"*n* = {r.n} and {r.n_second} per group"
+        a = _alpha_text(r.alpha_per_test)
+        if r.family_size > 1 and r.correction != "none":
+            name = _CORRECTION_PHRASE.get(r.correction, r.correction)
+            where = (f" ({name} across {r.family_size} regions, planned at its threshold for the smallest *p* "
+                     "value)")
+        elif r.family_size > 1:
+            where = f" (uncorrected across {r.family_size} regions)"
+        else:
+            where = ""
+        symbol = _SENTENCE_SYMBOL.get(EFFECT_SIZE_TYPES.get(r.design, "d"), "*d*")
+        sentences.append(f"With {n} and *α* = {a} per test{where}, the smallest effect detectable with "
+                         f"{format_number(100 * r.power, 0)}% power was {symbol} = {format_number(r.effect_size)}.")
+    return " ".join(sentences)

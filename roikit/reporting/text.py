@@ -35,6 +35,7 @@ from ._common import (
     text,
 )
 from .format import Style, escape_markup, format_df, format_number, in_text, is_missing, render
+from .power import sensitivity_sentence
 from .tables import CORRECTION_TEXT, DF_METHOD_TEXT
 
 __all__ = [
@@ -312,7 +313,8 @@ def _design_sentence(key: dict, rows: pd.DataFrame) -> str:
         seeds = ordered_unique(text(v) for v in col(rows, "seed"))
         s += (f" Family-wise *p* values came from {perms[0]:,} permutations (maximum statistic across regions; "
               f"seed {escape_markup(', '.join(seeds) or 'not recorded')}).")
-    return s
+    sensitivity = sensitivity_sentence(rows)  # the smallest effect detectable with 80% power (t designs)
+    return f"{s} {sensitivity}" if sensitivity else s
 
 
 def methods_text(

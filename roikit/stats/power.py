@@ -46,6 +46,7 @@ __all__ = [
     "detectable_effect",
     "plan_t",
     "plan_from_results",
+    "sensitivity",
     "simulate_precision_weighted",
     "crossed_variance",
     "crossed_power",
@@ -590,6 +591,65 @@ def plan_from_results(
     for name in ("n", "n_second", "n_total", "safeguard_n", "safeguard_n_second"):
         table[name] = table[name].astype("Int64")  # whole numbers, n/a where no n exists
     return table if design == "two-group" else table.drop(columns=["n_second", "safeguard_n_second"])
+
+
+def sensitivity(results: pd.DataFrame, *, power: float = 0.8, alpha: float = 0.05) -> pd.DataFrame:
+    """The smallest effect each analysis of a results table could detect, at its corrected alpha.
+
+    Parameters
+    ----------
+    results : DataFrame
+        A ``roikit stats`` results table (one or several analyses); rows of the one-sample, paired and two-group
+        designs are used, others are left out.
+    power : float
+        Power the effect is detected with (0.8: "80% power").
+    alpha : float
+        Family-wise alpha of the analysis.
+
+    Returns
+    -------
+    DataFrame
+        One row per design x term (x contrast when present): design, term, contrast, effect_size (the smallest
+        detectable), effect_size_type, n (the smallest n over the regions; two-group: first group), n_second
+        (two-group), power, alpha, alpha_per_test, family_size, correction (the primary one: the first of the
+        results' ``correction``), solved_for (``effect_size``).
+
+    Notes
+    -----
+    The alpha per test is ``alpha / family_size`` for any correction (Holm, Bonferroni, Benjamini-Hochberg,
+    permutation family-wise): the threshold each applies to the smallest p-value of the family, so the effect is the
+    one the best-placed region could detect; ``alpha`` when the family was not corrected. The smallest n over the
+    regions makes the statement hold for every region.
+    """
+    if results.empty or "design" not in results:
+        return pd.DataFrame()
+    rows = results[results["design"].astype(str).isin(T_DESIGNS)]
+    keys = [c for c in ("design", "term", "contrast") if c in rows.columns]
+    out = []
+    for key, part in rows.groupby(keys, sort=False, dropna=False):
+        key = dict(zip(keys, key if isinstance(key, tuple) else (key,)))
+        design = str(key["design"])
+        family = pd.to_numeric(part.get("family_size", pd.Series([len(part)])), errors="coerce").max()
+        family = int(family) if np.isfinite(family) and family >= 1 else len(part)
+        methods = [m.strip() for m in str(part["correction"].iat[0]).split(",")] if "correction" in part else []
+        primary = methods[0] if methods and methods[0] not in ("", "nan") else "none"
+        a_test = alpha / family if (primary != "none" and family > 1) else alpha
+        if design == "two-group" and {"n_first", "n_second"} <= set(part.columns):
+            n1 = int(pd.to_numeric(part["n_first"], errors="coerce").min())
+            n2 = int(pd.to_numeric(part["n_second"], errors="coerce").min())
+        else:
+            n1 = int(pd.to_numeric(part["n"], errors="coerce").min())
+            n2 = n1 if design == "two-group" else None
+            if design == "two-group":  # only the total is known: equal halves
+                n1 = n2 = n1 // 2
+        if n1 < 2 or (n2 is not None and n2 < 2):
+            continue
+        d = detectable_effect(n1, power, design=design, alpha=a_test, n_second=n2)
+        out.append({**key, "effect_size": d, "effect_size_type": EFFECT_SIZE_TYPES[design], "n": n1,
+                    "n_second": n2, "power": float(power), "alpha": float(alpha), "alpha_per_test": a_test,
+                    "family_size": family, "correction": primary if family > 1 else "none",
+                    "solved_for": "effect_size"})
+    return pd.DataFrame(out)
 
 
 # ------------------------------------------------------------------------------------------------ simulation helpers

@@ -56,3 +56,26 @@ def test_crossed_power_figure_marks_the_limit():
     ax = crossed_power_figure(grid)
     flat = {round(float(line.get_ydata()[0]), 6) for line in ax.lines if len(line.get_xdata()) == 2}
     assert {round(v, 6) for v in grid.groupby("n_stimuli")["power_limit"].first()} <= flat
+
+
+def test_sensitivity_sentence_in_methods_text():
+    import pandas as pd
+
+    from roikit.reporting.power import sensitivity_sentence
+    from roikit.reporting.text import methods_text
+
+    rows = pd.DataFrame({"region": ["a", "b", "c", "d"], "design": "paired", "term": "novel - familiar",
+                         "contrast": "novel", "versus": "familiar", "n": [32, 32, 30, 32], "estimate": 0.1,
+                         "se": 0.05, "df": 31.0, "statistic": 2.0, "statistic_type": "t", "p": 0.05,
+                         "ci_low": 0.0, "ci_high": 0.2, "confidence": 0.95, "effect_size": 0.3,
+                         "effect_size_type": "d_z", "effect_size_ci_low": 0.0, "effect_size_ci_high": 0.6,
+                         "p_holm": 0.2, "p_fdr": 0.05, "family_size": 4, "correction": "holm,fdr"})
+    sentence = sensitivity_sentence(rows)
+    # statsmodels TTestPower.solve_power(effect_size=None, nobs=30, alpha=.05 / 4, power=.8) = 0.6206...
+    d = TTestPower().solve_power(None, nobs=30, alpha=0.0125, power=0.8)
+    assert f"*d*_{{z}} = {d:.2f}" in sentence and "*n* = 30" in sentence and ".0125 per test" in sentence
+    assert "Holm across 4 regions" in sentence
+    text = methods_text(None, rows, style="plain")
+    assert "the smallest effect detectable with 80% power was d_z = " in text
+    # designs without a closed form get no sentence
+    assert sensitivity_sentence(rows.assign(design="mixed")) == ""

@@ -326,3 +326,16 @@ def test_crossed_exact_matches_simulation_through_the_mixed_fitter():
     sim = pw.simulate_crossed(0.8, simulations=100, seed=7, progress=False, **kw)  # about 0.2 s per study
     assert sim["failed"] == 0 and sim["simulations"] == 100
     assert abs(sim["power"] - exact) < 3 * sim["mc_se"]
+
+
+# ------------------------------------------------------------------------------------------------ sensitivity
+def test_sensitivity_of_a_results_table(pilot_one_sample):
+    res = pilot_one_sample.copy()
+    res.loc[1, "n"] = 20  # a region with fewer participants: the statement must hold for every region
+    table = pw.sensitivity(res)
+    assert len(table) == 1 and table["n"].iat[0] == 20 and table["family_size"].iat[0] == 3
+    assert table["correction"].iat[0] == "holm"
+    # statsmodels TTestPower.solve_power(effect_size=None, nobs=20, alpha=.05 / 3, power=.8)
+    assert table["effect_size"].iat[0] == pytest.approx(
+        TTestPower().solve_power(None, nobs=20, alpha=0.05 / 3, power=0.8), rel=1e-6)
+    assert pw.sensitivity(res.assign(design="glm")).empty
