@@ -287,10 +287,13 @@ def _t_summary(table: pd.DataFrame) -> list[str]:
 def _pilot_summary(table: pd.DataFrame) -> list[str]:
     lines = []
     for r in table.itertuples():
+        head = f"{r.region}: {r.effect_size_type} = {r.effect_size:.3f}"
+        if pd.isna(r.n):
+            lines.append(f"{head}: {r.note}")
+            continue
         safe = (f"safeguard {r.safeguard_effect_size:.3f} needs n = {int(r.safeguard_n)}"
-                if pd.notna(r.safeguard_n) else "no safeguard n (interval includes 0)")
-        need = f"n = {int(r.n)}" if pd.notna(r.n) else "no n"
-        lines.append(f"{r.region}: {r.effect_size_type} = {r.effect_size:.3f} needs {need}; {safe}")
+                if pd.notna(r.safeguard_n) else str(r.note))
+        lines.append(f"{head} needs n = {int(r.n)}; {safe}")
     return lines
 
 

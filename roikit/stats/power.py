@@ -567,8 +567,11 @@ def plan_from_results(
                "solved_for": "n", "target_power": target, "n_second": None, "n_total": None,
                "safeguard_confidence": float(safeguard), "safeguard_effect_size": safe, "safeguard_n": None,
                "safeguard_n_second": None, "safeguard_power": np.nan, "alternative": alternative}
+        wrong_way = (alternative == "greater" and d < 0) or (alternative == "less" and d > 0)
         if not math.isfinite(d) or d == 0:
             note.append("no effect size in the pilot")
+        elif wrong_way:
+            note.append(f"the pilot's effect points away from the alternative ({alternative}): no n")
         else:
             n_need = solve_n(d, target, design=design, alpha=a_test, alternative=alternative, ratio=ratio)
             df, ncp, n2 = _df_ncp(d, n_need, design, None, ratio)

@@ -217,6 +217,13 @@ def test_plan_from_results_one_sample(pilot_one_sample):
     near_zero = int(np.argmin(np.abs(res["effect_size"].to_numpy())))
     assert pd.isna(plan["safeguard_n"].iat[near_zero]) and "includes zero" in plan["note"].iat[near_zero]
     assert plan["safeguard_n"].notna().sum() == 2
+    # one-sided: a region whose effect points the other way gets no n, and a note saying why
+    greater = pw.plan_from_results(res, power=0.8, alternative="greater")
+    negative = int(np.argmin(res["effect_size"].to_numpy()))
+    assert pd.isna(greater["n"].iat[negative]) and "points away" in greater["note"].iat[negative]
+    # statsmodels TTestPower.solve_power(alternative="larger") for the positive region
+    assert greater["n"].iat[0] == math.ceil(TTestPower().solve_power(
+        res["effect_size"].iat[0], nobs=None, alpha=0.05 / 3, power=0.8, alternative="larger"))
 
 
 def test_plan_from_results_two_group_and_errors():
