@@ -163,15 +163,21 @@ def _df_ncp(effect_size, n, design, n_second=None, ratio=1.0):
     return n - 1, d * np.sqrt(n), None
 
 
+def _cdf(x, df, ncp):
+    """Noncentral t cdf on arrays of any shape (0-d included), with the far-tail stand-in of effect_sizes."""
+    x, df, ncp = np.broadcast_arrays(*(np.asarray(a, dtype=float) for a in (x, df, ncp)))
+    return _nct_cdf(x.ravel(), df.ravel(), ncp.ravel()).reshape(x.shape)
+
+
 def _power_from(df, ncp, alpha, alternative):
     df, ncp = np.broadcast_arrays(np.asarray(df, dtype=float), np.asarray(ncp, dtype=float))
     if alternative == "two-sided":
         crit = stats.t.ppf(1 - alpha / 2, df)
-        return 1 - _nct_cdf(crit, df, ncp) + _nct_cdf(-crit, df, ncp), crit
+        return 1 - _cdf(crit, df, ncp) + _cdf(-crit, df, ncp), crit
     crit = stats.t.ppf(1 - alpha, df)
     if alternative == "greater":
-        return 1 - _nct_cdf(crit, df, ncp), crit
-    return _nct_cdf(-crit, df, ncp), crit
+        return 1 - _cdf(crit, df, ncp), crit
+    return _cdf(-crit, df, ncp), crit
 
 
 def t_power(
