@@ -143,13 +143,15 @@ def add_parser(subparsers) -> None:
     c.add_argument("--layout", choices=_LAYOUTS, metavar="LAYOUT",
                    help="which factor the conditions vary within: " + ", ".join(_LAYOUTS))
     c.add_argument("--stimuli", metavar="Q[,Q...]", help="numbers of stimuli (the grid's second axis)")
-    for name in ("participant", "stimulus", "participant-slope", "stimulus-slope", "residual"):
-        c.add_argument(f"--sd-{name}", type=float, metavar="SD",
-                       help=f"SD of the {name.replace('-', ' ')} random effect (overrides the pilot's)")
+    for name, what in (("participant", "participant intercepts"), ("stimulus", "stimulus intercepts"),
+                       ("participant-slope", "participant-by-condition slopes"),
+                       ("stimulus-slope", "stimulus-by-condition slopes"),
+                       ("residual", "residuals (one observation per participant and stimulus)")):
+        c.add_argument(f"--sd-{name}", type=float, metavar="SD", help=f"SD of the {what} (overrides the pilot's)")
     s = p.add_argument_group("simulation")
     s.add_argument("--simulations", type=int, default=None, metavar="N",
                    help="simulated studies per grid point (precision-weighted: default 2000; crossed: runs a "
-                   "check of every grid point through the mixed-model fitter, about 0.1 s per study)")
+                   "check of every grid point through the mixed-model fitter, 0.1-0.2 s per study)")
     s.add_argument("--seed", type=int, default=None, metavar="S", help="seed of the simulation (recorded)")
     p.add_argument("--out", required=True, metavar="PLAN.tsv", help="output table")
     p.add_argument("--figure", metavar="FILE", help="power-curve figure (PDF, SVG and 300-dpi PNG beside FILE)")
