@@ -135,16 +135,24 @@ def test_plan_crossed_grid_and_figure(tmp_path, capsys):
                  "--figure", str(tmp_path / "crossed")]) == 0
     table = read_table(out)
     assert len(table) == 9 and set(table["n_stimuli"]) == {4, 8, 16}
-    assert (table["power_limit"] < 1).all() and (table["method"] == "exact-balanced").all()
+    assert (table["power_limit"] < 1).all() and (table["method"] == "simulation").all()
+    assert (table["simulations"] == 2000).all() and (table["mc_se"] > 0).all()
+    assert {"power_exact_balanced", "seed"} <= set(table.columns)
     assert (tmp_path / "crossed.png").is_file()
-    # --simulations checks grid points through the mixed-model fitter, seeded
+    # seeded: the same seed, the same simulated power
     out2 = tmp_path / "sim.tsv"
-    assert main(["plan", "--design", "crossed", "--layout", "participants-within-condition", "--effect-size", "1",
-                 "--n", "8", "--stimuli", "4", "--sd-participant", "0.5", "--sd-residual", "1",
-                 "--simulations", "10", "--seed", "3", "--out", str(out2)]) == 0
+    for path in (out2, tmp_path / "sim2.tsv"):
+        assert main(["plan", "--design", "crossed", "--layout", "participants-within-condition", "--effect-size",
+                     "1", "--n", "8", "--stimuli", "4", "--sd-participant", "0.5", "--sd-residual", "1",
+                     "--simulations", "500", "--seed", "3", "--out", str(path)]) == 0
     sim = read_table(out2)
-    assert sim["simulations"].iat[0] == 10 and sim["seed"].iat[0] == 3
-    assert 0 <= sim["power_simulated"].iat[0] <= 1 and sim["mc_se"].iat[0] >= 0
+    assert sim["simulations"].iat[0] == 500 and sim["seed"].iat[0] == 3
+    assert sim["power"].tolist() == read_table(tmp_path / "sim2.tsv")["power"].tolist()
+    # no stimulus-by-condition variance: the test is the two-sample t on participant means (4 per group,
+    # d = 1 / sqrt(0.25 + 1/4)); statsmodels TTestIndPower.power, within 3 MC SE of the simulation
+    exact = TTestIndPower().power(1 / math.sqrt(0.25 + 0.25), 4, 0.05)
+    assert sim["power_exact_balanced"].iat[0] == pytest.approx(exact, rel=1e-7)
+    assert abs(sim["power"].iat[0] - exact) < 3 * sim["mc_se"].iat[0]
 
 
 def test_plan_usage_and_data_errors(tmp_path, capsys):

@@ -406,3 +406,32 @@ def test_crossed_quasi_f_power_by_simulation():
     df = comb**2 / (ms_sc**2 / (q - 1) + ms_pc**2 / (p - 2) + ms_e**2 / ((q - 1) * (p - 2)))
     power = np.mean(2 * stats.t.sf(np.abs(b / np.sqrt(4 / (p * q) * comb)), df) < 0.05)
     assert abs(power - exact["power"].iat[0]) < 3 * math.sqrt(0.25 / R) + 0.015
+
+
+@pytest.mark.parametrize("layout", ["fully-crossed", "stimuli-within-condition", "participants-within-condition",
+                                    "both-within-condition"])
+def test_crossed_simulated_quasi_f_agrees_with_exact_tests(layout):
+    # where one random source is absent the quasi-F becomes an exact t: the simulated power (the kit's vectorised
+    # quasi-F) must match the exact noncentral t power within 3 MC SE -- fully crossed: paired t on participants'
+    # mean differences (statsmodels TTestPower); stimuli within: two-sample t on stimulus means; participants
+    # within: two-sample t on participant means (statsmodels TTestIndPower); both within: two-sample t on
+    # participant means too (no stimulus variance)
+    comps = {"fully-crossed": dict(var_participant_slope=0.3),
+             "stimuli-within-condition": dict(var_stimulus=0.3),
+             "participants-within-condition": dict(var_participant=0.3),
+             "both-within-condition": dict(var_participant=0.3)}[layout]
+    p, q = 12, 8
+    grid = pw.crossed_power(0.7, layout=layout, participants=p, stimuli=q, var_residual=1.0, simulations=4000,
+                            seed=2, progress=False, **comps)
+    row = grid.iloc[0]
+    if layout == "fully-crossed":
+        exact = TTestPower().power(0.7 / math.sqrt(0.3 + 2 / q), p, 0.05)
+    elif layout == "stimuli-within-condition":
+        exact = TTestIndPower().power(0.7 / math.sqrt(0.3 + 1 / p), q // 2, 0.05)
+    elif layout == "participants-within-condition":
+        exact = TTestIndPower().power(0.7 / math.sqrt(0.3 + 1 / q), p // 2, 0.05)
+    else:  # each participant sees q/2 stimuli
+        exact = TTestIndPower().power(0.7 / math.sqrt(0.3 + 2 / q), p // 2, 0.05)
+    assert row["power_exact_balanced"] == pytest.approx(exact, rel=1e-7)
+    assert abs(row["power"] - exact) < 3 * row["mc_se"]
+    assert row["method"] == "simulation" and row["seed"] == 2
