@@ -73,7 +73,8 @@ DESCRIPTIONS = {
     "layout": "crossed: which factor the conditions vary within (Westfall, Kenny & Judd 2014)",
     "effect": "crossed: condition difference assumed (units of the values)",
     "se": "crossed: standard error of the condition difference",
-    "power_limit": "crossed: power with unlimited participants at this number of stimuli (the stimulus ceiling)",
+    "power_limit": "crossed: power with unlimited participants at this number of stimuli: the limit a finite "
+                   "stimulus sample sets (power can approach it from above while the participants still add df)",
     "power_exact_balanced": "crossed: power by the noncentral t with the balanced-design noncentrality and "
                             "Satterthwaite df at the expected mean squares (an approximation, optimistic when "
                             "participants or stimuli are few); the power column is the simulated quasi-F test's",

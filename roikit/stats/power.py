@@ -973,10 +973,11 @@ def crossed_power(
     DataFrame
         One row per participants x stimuli: design (``crossed``), effect_size (``d`` = effect over the SD of
         one observation within a condition), effect_size_type, n (participants), power, alpha, alpha_per_test,
-        family_size, correction, then solved_for, method (``exact-balanced``), n_participants, n_stimuli,
+        family_size, correction, then solved_for, method (``exact-balanced``, or ``simulation``), n_participants, n_stimuli,
         layout, effect, se, df, ncp, power_limit (the power with unlimited participants at this number of
-        stimuli: the ceiling a finite stimulus sample imposes; at finite n the Satterthwaite df are larger, so a
-        grid point near the limit can lie slightly above it), mc_se (n/a without simulations); with
+        stimuli: the limit a finite stimulus sample sets however many participants take part; at finite n the
+        participants' mean square still adds degrees of freedom, so power can approach the limit from above),
+        mc_se (n/a without simulations); with
         ``simulations``: power_exact_balanced, simulations, seed.
 
     Notes
@@ -1131,7 +1132,7 @@ def _quasi_f_rejections(rng, layout, p, q, effect, comps, alpha, sims, bar, *, c
 
 def _power_limit(effect, layout, q, a_test, *, var_participant, var_stimulus, var_participant_slope,
                  var_stimulus_slope, var_residual) -> float:
-    """Power with unlimited participants at q stimuli (the stimulus ceiling)."""
+    """Power with unlimited participants at q stimuli (the limit the stimulus sample sets)."""
     if layout in ("fully-crossed", "participants-within-condition"):
         var, df = float(var_stimulus_slope) / q, q - 1
     else:
