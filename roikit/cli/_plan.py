@@ -399,8 +399,10 @@ def _crossed(args, pilot, effects, ns, family, notes, pw):
                    "participant_slope": None, "stimulus_slope": None, "residual": rec.get("sd_residual")}
             plans.append((str(r.region), float(r.estimate), sds))
         if override["stimulus_slope"] is None and args.layout in ("fully-crossed", "participants-within-condition"):
-            notes.append("the pilot model has no stimulus-by-condition random slope: it is taken as 0, so the "
-                         "stimuli limit power only through the residual; give --sd-stimulus-slope SD to plan with one")
+            notes.append("the pilot model has no stimulus-by-condition random slope (roikit's mixed design gives a "
+                         "crossed factor a random intercept only): it is taken as 0, so the stimuli limit power only "
+                         "through the residual; if stimuli may differ in their condition effect, give "
+                         "--sd-stimulus-slope SD (a model that leaves such a variance out overstates the evidence)")
         if override["participant_slope"] is None and args.layout in ("fully-crossed", "stimuli-within-condition"):
             notes.append("no participant-by-condition slope SD from the pilot: taken as 0 unless "
                          "--sd-participant-slope SD is given")
