@@ -98,8 +98,8 @@ def _list(text, name: str, kind=float) -> list:
                 raise ValueError
         except ValueError:
             what = "whole numbers" if kind is int else "numbers"
-            raise UsageError(f"{name}: expected comma-separated {what} (e.g. {'20,30,40' if kind is int else '0.3,0.5'}), "
-                             f"got {text!r}") from None
+            example = "20,30,40" if kind is int else "0.3,0.5"
+            raise UsageError(f"{name}: expected comma-separated {what} (e.g. {example}), got {text!r}") from None
         out.append(value)
     return out
 

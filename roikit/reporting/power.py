@@ -1,13 +1,13 @@
 """Power-curve figures for planning the next study (``roikit plan --figure``).
 
 Power against the number of participants, one line per effect size, the target power marked by a dashed line and
-the n each effect needs by a point on it. Colours are the colour-blind-safe palette of Okabe & Ito (2008), and the
-lines differ in dash pattern too; sizes are a journal column (85 mm) with 7-pt text.
+the plan table's rows (the n solved for, or given) by points on the curves; the crossed design's grid with the limit
+each number of stimuli sets; simulated power with its Monte Carlo error. Colours are the colour-blind-safe palette
+of Okabe & Ito (2008), and the lines differ in dash pattern too; sizes are a journal column (85 mm), every text at
+least 7 pt, true minus signs. Also the methods text's sensitivity sentence (:func:`sensitivity_sentence`).
 """
 
 from __future__ import annotations
-
-from typing import Sequence
 
 import numpy as np
 import pandas as pd

@@ -16,7 +16,7 @@ from roikit.errors import CautionWarning
 from roikit.stats import run_design
 from roikit.stats.power import PLAN_COLUMNS
 
-from stats_data import participants_table, values_table
+from stats_data import values_table
 
 
 def test_plan_sample_size_with_family_and_figure(tmp_path, capsys):

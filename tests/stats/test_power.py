@@ -24,7 +24,7 @@ def _nct_cdf_by_integration(x, df, ncp):
     integrated numerically (scipy.integrate.quad); used where statsmodels returns NaN far in a tail."""
     from scipy import integrate
 
-    f = lambda v: stats.norm.cdf(x * np.sqrt(v / df) - ncp) * stats.chi2.pdf(v, df)  # noqa: E731
+    f = lambda v: stats.norm.cdf(x * np.sqrt(v / df) - ncp) * stats.chi2.pdf(v, df)
     return integrate.quad(f, 0, np.inf, limit=500, epsabs=1e-14)[0]
 
 
