@@ -20,7 +20,7 @@ from ..errors import RoikitError, RoikitWarning, UsageError
 __all__ = ["main", "build_parser"]
 
 #: Sub-commands in the order ``roikit --help`` lists them.
-COMMANDS = ("demo", "regions", "extract", "stats", "report", "run")
+COMMANDS = ("demo", "regions", "extract", "stats", "report", "run", "plan")
 
 
 class _Parser(argparse.ArgumentParser):

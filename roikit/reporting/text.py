@@ -52,6 +52,7 @@ from .format import (
     is_missing,
     render,
 )
+from .power import sensitivity_sentence
 from .references import Citations, reference_list
 
 __all__ = [
@@ -580,7 +581,8 @@ def _design_sentence(number_: int, key: dict, rows: pd.DataFrame, labels: Labels
         s += f"; fixed effects were tested with {df}"
     elif df and design not in ("one-sample", "paired", "two-group", "glm"):
         s += f"; the reference distribution was {df}"
-    return s + "."
+    sensitivity = sensitivity_sentence(rows)  # the smallest effect detectable with 80% power (t designs)
+    return f"{s}. {sensitivity}" if sensitivity else s + "."
 
 
 def _correction_phrase(method: str, rows: pd.DataFrame, cite: Citations) -> str:
