@@ -498,31 +498,19 @@ def _collinear_message(x: np.ndarray, names: Sequence[str], where: str) -> str:
 
 
 def _parse_formula(formula: str):
-    import formulaic
+    from .formula import parse_formula
 
-    if not isinstance(formula, str) or "~" not in formula:
-        raise UsageError(f"formula must look like 'value ~ age + group', got {formula!r}")
-    lhs, rhs = formula.split("~", 1)
-    if lhs.strip() not in ("", "value"):
-        raise UsageError(
-            f"formula {formula!r}: the left-hand side must be 'value' (the region value), got {lhs.strip()!r}"
-        )
-    try:
-        rhs_formula = formulaic.Formula(rhs)
-    except Exception as exc:  # formulaic raises several parser errors
-        raise UsageError(f"formula {formula!r} could not be parsed: {exc}") from None
-    return rhs, rhs_formula
+    return parse_formula(formula, parameter="formula", tilde=True)
 
 
 def _prepare_glm(values, participants, contrast, formula, *, center=True, warn=True):
     _require("contrast", contrast, "glm", "--contrast")
     _require("formula", formula, "glm", "--formula")
-    import formulaic
 
-    rhs, rhs_formula = _parse_formula(formula)
+    parsed = _parse_formula(formula)
     y = pivot_contrast(values, contrast)
     regions = list(y.columns)
-    variables = sorted(v for v in rhs_formula.required_variables if v not in ("np", "C", "value"))
+    variables = sorted(parsed.variables)
     p_columns = [] if participants is None else [c for c in participants.columns if c != "participant_id"]
     unknown = [v for v in variables if v not in p_columns]
     varying = [v for v in unknown if v in _REGION_VARYING or v in values.columns]
@@ -553,20 +541,8 @@ def _prepare_glm(values, participants, contrast, formula, *, center=True, warn=T
         )
     data = data[~incomplete]
     y = y[~incomplete]
-    centered: list[str] = []
-    if center:
-        for v in variables:
-            col = data[v]
-            if pd.api.types.is_numeric_dtype(col) and not pd.api.types.is_bool_dtype(col):
-                data[v] = col.astype(float) - col.astype(float).mean()
-                centered.append(v)
-    try:
-        mm = formulaic.model_matrix(rhs_formula, data.reset_index(drop=True), na_action="raise")
-    except Exception as exc:
-        raise DesignError(f"glm formula {formula!r} could not be evaluated on participants.tsv: {exc}") from None
-    x = np.asarray(mm, dtype=float)
-    names = list(mm.model_spec.column_names)
-    term_columns = {str(t): list(idx) for t, idx in mm.model_spec.term_indices.items()}
+    x, names, term_columns, centered = parsed.design(data.reset_index(drop=True), center=center,
+                                                     context=f"glm formula {formula!r}")
     if np.linalg.matrix_rank(x) < x.shape[1]:
         raise DesignError(_collinear_message(x, names, ""))
     excluded = missing_by_region(y)

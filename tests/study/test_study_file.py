@@ -189,7 +189,7 @@ def test_region_operations_and_circular_flag(study_dir):
     "value ~ standardize(age):group + scale(age) / group",
     "~ age",
     "value ~ 0 + `group`",
-    "value ~ 1e-3 + age",
+    "value ~ 1 + age - 1 + 1",
 ])
 def test_allowed_formulas(formula):
     assert check_formula(formula, COLUMNS) == []
@@ -198,6 +198,9 @@ def test_allowed_formulas(formula):
 @pytest.mark.parametrize("formula, token", [
     ("value ~ np.log(age)", "token '.'"),
     ("value ~ I(age**2)", "'I' is not an allowed transform"),
+    ("value ~ (age + group)**1000000000", "power 1000000000 is out of range"),
+    ("value ~ 0", "the model has no terms"),
+    ("value ~ age + 3", "the number 3 is not a term"),
     ("value ~ __import__('os').system('x')", "token \"'\" is not allowed"),
     ("value ~ __import__(age)", "'__import__' is not an allowed transform"),
     ("value ~ age; import os", "token ';'"),
@@ -221,6 +224,6 @@ def test_a_refused_formula_never_reaches_the_formula_library(study_dir, tmp_path
     text += ('\n[[analysis]]\ndesign = "glm"\ncontrast = "novel"\n'
              f"formula = \"value ~ __import__('pathlib').Path('{marker}').touch() + age\"\n")
     (study_dir / "study.toml").write_text(text)
-    with pytest.raises(StudyError, match="formula .*__import__.*: token \"'\" is not allowed in a study file"):
+    with pytest.raises(StudyError, match="formula .*__import__.*: token \"'\" is not allowed in a formula"):
         load_study(study_dir / "study.toml")
     assert not marker.exists()
