@@ -421,7 +421,7 @@ class Formula:
         for i, f in enumerate(self.factors):
             key = f"_rk{i}"
             ident[f] = key
-            back[key] = f.label
+            back[key] = f.column if f.kind == "C" else f.label  # the library writes C(...) around it
             col = frame[f.column].reset_index(drop=True)
             if f.kind == "C" or (not f.kind and _categorical(f, frame)):
                 data[key] = col
