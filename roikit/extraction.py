@@ -43,7 +43,7 @@ from .errors import (
     RoikitError,
     UsageError,
 )
-from .images import DEFAULT_ATOL, MapHeader, check_same_grid, read_flat, read_header
+from .images import DEFAULT_ATOL, MapHeader, check_same_grid, read_flat, read_header, verify_data
 from .regions import Regions, RegionSet
 
 __all__ = [
@@ -478,7 +478,8 @@ def _headers(maps: pd.DataFrame, *, atol: float):
         if h.n_volumes > 1 and vol is None:
             raise ImageFormatError(f"{h.path}: a 4D file with {h.n_volumes} volumes; choose one with a `volume` "
                                    "column in the map list (or maps_from_4d)")
-        if first is None:
+        if first is None:  # regions are realised on this grid: its data must be complete before anything is built
+            verify_data(h)
             first, first_path = h.grid, h.path
         check_same_grid(first, h.grid, a_name=first_path, b_name=h.path, atol=atol)
         vh = None

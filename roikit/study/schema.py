@@ -15,7 +15,7 @@ import pandas as pd
 from .._typing import PathLike
 from ..errors import InputFileError, RoikitError, UsageError
 from ..extraction import STATISTICS, VALUE_COLUMNS, find_maps, read_map_list, read_participants
-from ..images import read_header
+from ..images import read_grid, read_header
 from ..regions import Atlas, Mask, ProbabilityMap, Regions, RegionSet, Sphere, read_label_table
 from ..stats import available_designs, run_design
 from ..stats._registry import DESIGNS, PERMUTATIONS
@@ -409,7 +409,7 @@ def load_study(path: PathLike) -> Study:
     realised = None
     if not c.problems and maps is not None and regions is not None:
         try:
-            grid = read_header(maps["path"].iloc[0]).grid
+            grid = read_grid(maps["path"].iloc[0])
             realised = regions.realise(grid)
         except RoikitError as exc:
             c.add("regions", str(exc))
