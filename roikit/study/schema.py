@@ -364,6 +364,12 @@ def load_study(path: PathLike) -> Study:
         raise StudyError(path, [f"not valid TOML: {exc}"]) from None
     except UnicodeDecodeError as exc:
         raise StudyError(path, [f"not UTF-8 text: {exc}"]) from None
+    except RecursionError:
+        raise StudyError(path, ["not a usable study file: arrays or tables are nested too deeply for the TOML "
+                                "reader; a study file needs at most a few levels of nesting"]) from None
+    except OSError as exc:
+        raise InputFileError(f"{path}: cannot read the study file ({exc.strerror or exc}); check its "
+                             "permissions") from None
     c = _Checker(path.resolve() if not path.is_absolute() else path)
     c.keys(raw, "", "")
 
