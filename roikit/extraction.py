@@ -221,7 +221,19 @@ def _validate_maps(maps: pd.DataFrame, *, source: str) -> pd.DataFrame:
             f"{', '.join(str(first[k]) for k in keys)} from {same}; each participant, session and contrast needs one map"
         )
     if "volume" in maps.columns:
-        maps["volume"] = pd.to_numeric(maps["volume"], errors="raise").astype("Int64")
+        number = pd.to_numeric(maps["volume"], errors="coerce")
+        given = maps["volume"].notna().to_numpy()
+        with np.errstate(invalid="ignore"):
+            bad = given & ~(np.isfinite(number.to_numpy(float)) & (number.to_numpy(float) >= 0)
+                            & (number.to_numpy(float) == np.round(number.to_numpy(float))))
+        if bad.any():
+            rows = (np.flatnonzero(bad) + 1).tolist()
+            raise MapDiscoveryError(
+                f"{source}: column volume must hold whole numbers from 0 (the 0-based volume of a 4D file), found "
+                f"{maps['volume'][bad].astype(str).tolist()[:5]} in row(s) {rows[:10]}; fix those rows or leave the "
+                "cell n/a for 3D files"
+            )
+        maps["volume"] = number.astype("Int64")
     maps = maps.sort_values(keys, kind="stable").reset_index(drop=True)
     return maps
 

@@ -287,6 +287,12 @@ class Mask(_Source):
         return [_Region(self.name, vox, None, {"kind": "mask", "image": os.fspath(self.image)})]
 
 
+#: Largest sphere radius accepted (mm): far beyond any brain, small enough that the sums stay finite.
+MAX_RADIUS_MM = 1000.0
+#: Largest absolute sphere centre coordinate accepted (mm).
+MAX_COORDINATE_MM = 1e5
+
+
 @dataclass(frozen=True)
 class Sphere(_Source):
     """A sphere at a world coordinate: voxels whose centres lie within ``radius`` mm of ``center``.
@@ -306,13 +312,22 @@ class Sphere(_Source):
     kind = "sphere"
 
     def __post_init__(self):
-        c = tuple(float(v) for v in self.center)
-        if len(c) != 3 or not all(np.isfinite(c)):
-            raise UsageError(f"sphere {self.name!r}: center must be three finite numbers (x, y, z in mm), got {self.center}")
-        if not (np.isfinite(self.radius) and self.radius > 0):
-            raise UsageError(f"sphere {self.name!r}: radius must be a positive number of mm, got {self.radius}")
+        try:
+            c = tuple(float(v) for v in self.center)
+        except (TypeError, ValueError, OverflowError):
+            c = ()
+        if len(c) != 3 or not all(np.isfinite(c)) or max(abs(v) for v in c) > MAX_COORDINATE_MM:
+            raise UsageError(f"sphere {self.name!r}: center must be three finite numbers (x, y, z in mm, each within "
+                             f"+-{MAX_COORDINATE_MM:g}), got {self.center}")
+        try:
+            radius = float(self.radius)
+        except (TypeError, ValueError, OverflowError):
+            radius = float("nan")
+        if not (np.isfinite(radius) and 0 < radius <= MAX_RADIUS_MM):
+            raise UsageError(f"sphere {self.name!r}: radius must be a positive number of mm up to {MAX_RADIUS_MM:g} "
+                             f"(a brain is about 200 mm across), got {self.radius}")
         object.__setattr__(self, "center", c)
-        object.__setattr__(self, "radius", float(self.radius))
+        object.__setattr__(self, "radius", radius)
 
     def realise(self, grid, *, atol, log):
         centre_vox = grid.world_to_voxel(self.center)

@@ -376,12 +376,23 @@ def _prepare_two_group(values, participants, contrast, group, levels, *, warn: b
             MissingValueWarning,
             stacklevel=4,
         )
+    others = labels[labels.notna() & ~labels.isin(levels)]
+    if len(others) and warn:
+        by_level = "; ".join(f"{lev}: {', '.join(map(str, others.index[others == lev]))}"
+                             for lev in pd.unique(others))
+        warnings.warn(
+            f"two-group on {contrast!r}: {len(others)} participant(s) in other level(s) of column {group!r} than "
+            f"{levels[0]!r} and {levels[1]!r} are not part of this comparison: {by_level}",
+            MissingValueWarning,
+            stacklevel=4,
+        )
     keep = labels.isin(levels).to_numpy()
     y = y[keep]
     in_first = (labels[keep] == levels[0]).to_numpy()
-    excluded = missing_by_region(y)
+    missing = missing_by_region(y)
+    excluded = [list(no_group) + list(e) for e in missing]  # excluded_ids: also those without a group value
     if warn:
-        warn_exclusions(regions, excluded, context=f"two-group on {contrast!r}", stacklevel=5)
+        warn_exclusions(regions, missing, context=f"two-group on {contrast!r}", stacklevel=5)
     return y, regions, excluded, in_first, levels
 
 
