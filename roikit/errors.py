@@ -31,6 +31,7 @@ __all__ = [
     "MissingValueWarning",
     "DiagnosticWarning",
     "CautionWarning",
+    "InputWarning",
     "RoikitDeprecationWarning",
 ]
 
@@ -135,6 +136,10 @@ class DiagnosticWarning(RoikitWarning):
 
 class CautionWarning(RoikitWarning):
     """A result needs a caution when reported (fixed effects, circularity, uncorrected family)."""
+
+
+class InputWarning(RoikitWarning):
+    """Inputs look suspicious or were not used (files not matching a pattern, identical maps)."""
 
 
 class RoikitDeprecationWarning(DeprecationWarning):

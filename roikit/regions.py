@@ -158,7 +158,15 @@ def read_label_table(path) -> pd.DataFrame:
     bad = table.loc[idx.isna() | (idx != idx.round()), "index"].tolist()
     if bad:
         raise RegionError(f"{path}: label-table index values must be integers, found {bad[:5]}")
-    table = table.assign(index=idx.astype(np.int64), name=table["name"].astype(str))
+    names = table["name"]
+    blank = names.isna().to_numpy() | names.astype(str).str.strip().isin(["", "n/a", "nan", "NaN"]).to_numpy()
+    if blank.any():
+        where = [f"line {i + 2} (index {table['index'].iloc[i]})" for i in np.flatnonzero(blank)[:10]]
+        raise RegionError(
+            f"{path}: {int(blank.sum())} region(s) without a name ({', '.join(where)}); every label needs a name in "
+            "the `name` column (a region with no name would be lost); fill in the names or remove those rows"
+        )
+    table = table.assign(index=idx.astype(np.int64), name=names.astype(str))
     dup = table.loc[table["index"].duplicated(), "index"].tolist()
     if dup:
         raise RegionError(f"{path}: label-table index values repeat: {dup[:5]}; each index names one region")
