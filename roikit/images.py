@@ -279,7 +279,8 @@ def _check_file(path) -> Path:
 
 def _nib_load(path: Path):
     try:
-        img = nib.load(str(path))
+        with nib.imageglobals.LoggingOutputSuppressor():  # nibabel's own log lines would break the one-line errors
+            img = nib.load(str(path))
     except nib.filebasedimages.ImageFileError as exc:
         raise ImageFormatError(f"{path}: not a NIfTI image ({exc})") from exc
     except PermissionError as exc:
@@ -402,6 +403,8 @@ def read_header(path) -> MapHeader:
 
 
 def _reason(exc: BaseException) -> str:
+    if isinstance(exc, KeyError):  # nibabel's code tables: an unknown datatype (or intent/xform) code
+        return f"unknown code {exc.args[0] if exc.args else '?'} (e.g. in the datatype field)"
     text = str(exc).strip().splitlines()[0] if str(exc).strip() else ""
     return f"{type(exc).__name__}: {text}" if text else type(exc).__name__
 
