@@ -39,7 +39,11 @@ LABEL_COLUMNS = ("participant_id", "session_id", "contrast", "region", "design",
 def check_output(path: os.PathLike | str, *, overwrite: bool) -> Path:
     """Return ``path`` as a Path; raise if it exists and ``overwrite`` is false."""
     path = Path(path)
-    if path.exists() and not overwrite:
+    try:
+        exists = path.exists()
+    except OSError as exc:  # e.g. a name too long for the file system
+        raise OutputWriteError(describe_os_error(path, exc)) from None
+    if exists and not overwrite:
         raise OutputExistsError(
             f"{path}: file exists; pass --overwrite (overwrite=True) to replace it, or choose another path"
         )

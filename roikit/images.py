@@ -488,17 +488,14 @@ def load_map(path, *, volume: int | None = None) -> tuple[np.ndarray, Grid]:
     grid : Grid
     """
     path = _check_file(path)
+    read_header(path)  # the same header checks and budget as the fast reader, before nibabel allocates anything
     img = _nib_load(path)
     try:
         grid, n_vol = _spatial(img, path)
-        proxy = img.dataobj
-        image_file = str(img.file_map["image"].filename or path)
-        dtype, offset = np.dtype(proxy.dtype), int(proxy.offset)
     except RoikitError:
         raise
     except Exception as exc:  # noqa: BLE001 - nibabel raises many kinds on corrupt fields
         raise ImageFormatError(f"{path}: the NIfTI header is corrupt ({_reason(exc)}); re-export the image") from None
-    _check_budget(image_file, grid.shape, n_vol, dtype, offset, image_file.endswith(".gz"))
     v = _check_volume(n_vol, volume, path)
     try:
         if len(img.shape) == 3:
