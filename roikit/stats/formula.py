@@ -27,13 +27,14 @@ Means and SDs are taken over the rows that enter the model (after exclusions). A
 is refused with :class:`~roikit.errors.UsageError`.
 
 Why the design matrix is built the way it is: the expanded terms are regenerated as a *canonical* formula string
-that contains only ``1``/``0``, ``+``, ``:``, ``C(...)`` and column references, and the data frame given to the
-formula library holds only columns that roikit computed itself (raw column, log, centred, scaled), each
-referenced by a synthetic identifier of the form ``_rk<number>`` (roikit chooses it, it never contains user text).
-The library then only looks up those identifiers in the data frame and applies its treatment coding; the
+that contains only ``1``/``0``, ``+``, ``:``, ``C(...)`` and synthetic identifiers of the form
+``_roikitfactor<number>_`` (chosen by roikit; they never contain user text). The data frame given to the formula
+library holds only the columns roikit computed itself under those identifiers (raw column, log, centred,
+scaled). The library then only looks the identifiers up in that frame and applies its treatment coding; the
 column names it reports are mapped back to the user's names afterwards. That keeps the library's well-tested
 coding of categorical variables and interactions (reduced or full rank, column order, ``[T.level]`` names that
-the reference tests and reports depend on) while no character typed by a user is ever evaluated.
+the reference tests and reports depend on) while no character typed by a user is ever evaluated, and a column
+name can be anything (spaces, dots, Python keywords) without being read as code.
 
 The size of the model is bounded before anything is built: the power of a sum (at most :data:`MAX_POWER`), the
 number of terms after expansion (:data:`MAX_TERMS`, checked at every step of the expansion) and the number of
@@ -419,18 +420,19 @@ class Formula:
         back: dict[str, str] = {}
         centred: list[str] = []
         for i, f in enumerate(self.factors):
-            key = f"_rk{i}"
+            key = f"_roikitfactor{i}_"
             ident[f] = key
             back[key] = f.column if f.kind == "C" else f.label  # the library writes C(...) around it
             col = frame[f.column].reset_index(drop=True)
             if f.kind == "C" or (not f.kind and _categorical(f, frame)):
                 data[key] = col
                 continue
-            if _categorical(Factor(f.column), frame):
-                raise error(f"{where}: {f.label} needs a numeric column, but {f.column!r} holds text "
-                            f"(e.g. {str(col.dropna().iloc[0])!r})" if col.notna().any() else
-                            f"{where}: {f.label}: column {f.column!r} has no values")
-            x = pd.to_numeric(col, errors="coerce").astype(float).to_numpy()
+            number = pd.to_numeric(col, errors="coerce")
+            text = col.notna() & number.isna()
+            if text.any():
+                raise error(f"{where}: {f.label} needs a numeric column, but {f.column!r} holds text (e.g. "
+                            f"{str(col[text].iloc[0])!r}); use C({f.column}) for a categorical variable")
+            x = number.astype(float).to_numpy()
             if f.kind == "log":
                 bad = np.isfinite(x) & ~(x > 0)
                 if bad.any():
@@ -485,7 +487,7 @@ def _categorical(f: Factor, frame: pd.DataFrame) -> bool:
     return not (pd.api.types.is_numeric_dtype(col) and not pd.api.types.is_bool_dtype(col))
 
 
-_IDENT = re.compile(r"_rk\d+")
+_IDENT = re.compile(r"_roikitfactor\d+_")
 
 
 def _rename(text: str, back: dict[str, str]) -> str:

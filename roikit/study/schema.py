@@ -3,7 +3,6 @@
 from __future__ import annotations
 
 import difflib
-import re
 import tomllib
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -15,7 +14,7 @@ import pandas as pd
 from .._typing import PathLike
 from ..errors import InputFileError, RoikitError, UsageError
 from ..extraction import STATISTICS, VALUE_COLUMNS, find_maps, read_map_list, read_participants
-from ..images import read_grid, read_header
+from ..images import read_grid
 from ..regions import Atlas, Mask, ProbabilityMap, Regions, RegionSet, Sphere, read_label_table
 from ..stats import available_designs, run_design
 from ..stats._registry import DESIGNS, PERMUTATIONS

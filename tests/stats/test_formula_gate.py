@@ -212,3 +212,16 @@ def test_term_names_match_the_formula_library_conventions(data):
     values, parts = data
     res = run_design(values, "glm", contrast="novel", formula="value ~ age * group", participants=parts)
     assert list(pd.unique(res["term"]))[:4] == ["Intercept", "age", "group[T.younger]", "age:group[T.younger]"]
+
+
+def test_any_column_name_is_data_not_code(data):
+    values, parts = data
+    parts = parts.rename(columns={"age": "age (years)", "load": "lambda"})
+    parts["site"] = parts["site"].map({"a": "{__import__('os')}", "b": "x:y", "c": "C(z)"})
+    res = run_design(values, "glm", contrast="novel", formula="value ~ `age (years)` + lambda + site",
+                     participants=parts)
+    terms = set(res["term"])
+    assert {"age (years)", "lambda"} <= terms
+    assert any(t.startswith("site[T.") for t in terms), terms
+    assert {t for t in terms if t.startswith("site[T.")} <= {"site[T.x:y]", "site[T.{__import__('os')}]",
+                                                              "site[T.C(z)]"}
