@@ -57,11 +57,17 @@ def test_memory_bomb_as_first_map_with_an_atlas_fails_small(tiny_study, tmp_path
     bomb_dir.mkdir()
     bomb = _claiming(bomb_dir / "sub-00_contrast-novel_effect.nii.gz", (800, 800, 400))
     assert bomb.stat().st_size < 200
+    # peak memory of the child process: VmHWM (reset by exec, unlike getrusage's ru_maxrss, which would include
+    # the memory of the pytest process that forked it); ru_maxrss only where /proc is absent
     script = (
-        "import resource, sys\n"
+        "import re, resource, sys\n"
         "from roikit.cli import main\n"
         "status = main(sys.argv[1:])\n"
-        "print('PEAK_KB', resource.getrusage(resource.RUSAGE_SELF).ru_maxrss)\n"
+        "try:\n"
+        "    peak = int(re.search(r'VmHWM:\\s*(\\d+)', open('/proc/self/status').read()).group(1))\n"
+        "except OSError:\n"
+        "    peak = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss\n"
+        "print('PEAK_KB', peak)\n"
         "sys.exit(status)\n"
     )
     args = ["extract", "--maps", str(bomb_dir / "sub-{subject}_contrast-{contrast}_effect.nii.gz"),

@@ -644,7 +644,8 @@ def glm(
     contrast : str
         Contrast modelled.
     formula : str
-        Wilkinson formula, e.g. ``"value ~ age + group"`` (formulaic syntax: ``C(site)``, ``age:group`` ...).
+        Wilkinson formula, e.g. ``"value ~ age + group"`` (roikit's grammar, :mod:`roikit.stats.formula`:
+        ``C(site)``, ``age:group``, ``log(age)``, ``(a + b)**2`` ...; never run as code).
     center : bool
         Mean-centre the numeric covariates (over the participants in the model) before building the design, so
         the intercept is the mean response at the average covariate value. Categorical columns are not centred.

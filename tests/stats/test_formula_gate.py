@@ -202,9 +202,7 @@ def test_payloads_never_run_through_the_command_line(data, tmp_path):
             capture_output=True, text=True, cwd=tmp_path, env={"PYTHONPATH": str(ROOT), "PATH": "/usr/bin:/bin"},
         )
         assert not marker.exists(), args
-        assert proc.returncode in (1, 2), (args, proc.stderr)
-        if "--crossed" not in args:
-            assert proc.returncode == 2, (args, proc.stderr)
+        assert proc.returncode == 2, (args, proc.stderr)
         assert proc.stderr.count("\n") == 1 and "Traceback" not in proc.stderr, proc.stderr
 
 
