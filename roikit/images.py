@@ -69,6 +69,9 @@ DEFAULT_MAX_VOXELS = 2**26
 #: 258-byte match coded in at least 2 bits; zlib's technical note gives 1032:1); 1100 leaves room for headers.
 GZIP_MAX_RATIO = 1100
 
+#: Target voxels per slab when resampling (bounds the index arrays: about 30 bytes per voxel).
+_SLAB_VOXELS = 1 << 22
+
 #: Voxel data types roikit reads (numbers; RGB and other compound types are refused).
 _NUMERIC_KINDS = "biuf"
 
@@ -663,20 +666,28 @@ def resample_nearest(data: np.ndarray, source: Grid, target: Grid, *, fill=0) ->
     if data.shape[:3] != source.shape:
         raise UsageError(f"data shape {data.shape} does not match the source grid {source.shape}")
     # target voxel -> source voxel: inv(A_src) @ A_tgt, computed per axis without a full (n, 3) float array
+    limit = max_voxels()
+    if target.n_voxels > limit:
+        raise UsageError(f"cannot resample onto a grid of {_shape_text(target.shape)} = {target.n_voxels:,} voxels, more "
+                         f"than roikit's limit of {limit:,}; raise it with ROIKIT_MAX_VOXELS if the grid is genuine")
     m = np.linalg.inv(source.affine) @ target.affine
     out = np.full(target.shape, fill, dtype=data.dtype)
     i = np.arange(target.shape[0], dtype=np.float64)
     j = np.arange(target.shape[1], dtype=np.float64)
-    k = np.arange(target.shape[2], dtype=np.float64)
-    idx = []
-    for axis in range(3):
-        # continuous source index along `axis` = m[axis,0] i + m[axis,1] j + m[axis,2] k + m[axis,3]
-        c = (m[axis, 0] * i[:, None, None] + m[axis, 1] * j[None, :, None] + m[axis, 2] * k[None, None, :]
-             + m[axis, 3])
-        # round half away from zero would bias; floor(x + 0.5) rounds .5 up consistently (common practice)
-        idx.append(np.floor(c + 0.5).astype(np.int64))
-    inside = np.ones(target.shape, dtype=bool)
-    for axis in range(3):
-        inside &= (idx[axis] >= 0) & (idx[axis] < source.shape[axis])
-    out[inside] = data[idx[0][inside], idx[1][inside], idx[2][inside]]
+    # slabs along k keep the index arrays at about 4 million voxels whatever the size of the target grid
+    step = max(1, _SLAB_VOXELS // max(1, target.shape[0] * target.shape[1]))
+    for k0 in range(0, target.shape[2], step):
+        k = np.arange(k0, min(k0 + step, target.shape[2]), dtype=np.float64)
+        idx = []
+        for axis in range(3):
+            # continuous source index along `axis` = m[axis,0] i + m[axis,1] j + m[axis,2] k + m[axis,3]
+            c = (m[axis, 0] * i[:, None, None] + m[axis, 1] * j[None, :, None] + m[axis, 2] * k[None, None, :]
+                 + m[axis, 3])
+            # round half away from zero would bias; floor(x + 0.5) rounds .5 up consistently (common practice)
+            idx.append(np.floor(c + 0.5).astype(np.int64))
+        inside = np.ones(idx[0].shape, dtype=bool)
+        for axis in range(3):
+            inside &= (idx[axis] >= 0) & (idx[axis] < source.shape[axis])
+        slab = out[:, :, k0:k0 + len(k)]
+        slab[inside] = data[idx[0][inside], idx[1][inside], idx[2][inside]]
     return out

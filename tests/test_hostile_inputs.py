@@ -285,3 +285,29 @@ def test_two_group_lists_participants_of_a_third_level():
                          participants=participants)
     assert res["n"].iloc[0] == 7
     assert "sub-01" in res["excluded_ids"].iloc[0]  # no group value: excluded and listed
+
+
+def test_resampling_works_in_slabs_and_respects_the_voxel_limit(monkeypatch):
+    from roikit import images
+    from roikit.images import Grid, resample_nearest
+
+    rng = np.random.default_rng(5)
+    source = Grid((30, 40, 35), np.array([[-2.0, 0, 0, 30], [0, 2, 0, -40], [0, 0, 2, -30], [0, 0, 0, 1]]))
+    data = rng.integers(0, 9, source.shape).astype(np.int16)
+    # oblique, with offsets that put no target voxel exactly half-way between source voxels (no rounding ties)
+    target = Grid((50, 45, 40), np.array([[0.93, 0.31, 0, -30.0137], [0, 1.11, 0.23, -40.0213],
+                                          [0.11, 0, 1.29, -30.0071], [0, 0, 0, 1]]))
+    whole = resample_nearest(data, source, target)
+    monkeypatch.setattr(images, "_SLAB_VOXELS", 50 * 45 * 3)  # 14 slabs
+    assert np.array_equal(resample_nearest(data, source, target), whole)
+    # the same by brute force over every target voxel (common practice, no source: the definition itself)
+    ijk = np.stack(np.meshgrid(*[np.arange(n) for n in target.shape], indexing="ij"), -1).reshape(-1, 3)
+    m = np.linalg.inv(source.affine) @ target.affine  # target voxel -> source voxel
+    src = np.floor(ijk @ m[:3, :3].T + m[:3, 3] + 0.5).astype(int)
+    inside = np.all((src >= 0) & (src < np.array(source.shape)), axis=1)
+    expected = np.zeros(target.n_voxels, np.int16)
+    expected[inside] = data[src[inside, 0], src[inside, 1], src[inside, 2]]
+    assert np.array_equal(whole.reshape(-1), expected)
+    monkeypatch.setenv("ROIKIT_MAX_VOXELS", "1000")
+    with pytest.raises(UsageError, match="cannot resample onto a grid of 50x45x40 = 90,000 voxels"):
+        resample_nearest(data, source, target)
