@@ -575,7 +575,8 @@ def _parse(formula, *, parameter, columns, tilde):
     except FormulaError as exc:
         return [str(exc)], None
     if not terms and not intercept:
+        example = "'1' or '1 + contrast'" if "random" in what else "'value ~ 1' or 'value ~ age'"
         return [f"{what} {formula!r}: the model has no terms (no intercept and no predictors); write e.g. "
-                "'value ~ 1' or 'value ~ age'"], None
+                f"{example}"], None
     ordered = tuple(sorted(terms, key=len))  # by degree, stable: the formula library's order
     return parser.problems, Formula(text=formula, terms=ordered, intercept=intercept, parameter=parameter)
