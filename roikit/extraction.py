@@ -445,8 +445,12 @@ class _Task:
 
 def _read_gathered(header: MapHeader, volume, uniq) -> tuple[np.ndarray, str]:
     """Read one map, return its in-region voxels and the SHA-256 of the file's bytes."""
-    with open(header.path, "rb") as fh:
-        raw = fh.read()
+    try:
+        with open(header.path, "rb") as fh:
+            raw = fh.read()
+    except OSError as exc:
+        raise InputFileError(f"{header.path}: cannot read the map ({exc.strerror or exc}); check that the file "
+                             "exists and is readable (permissions)") from None
     digest = hashlib.sha256(raw).hexdigest()
     if header.n_volumes > 1 or not header.compressed:
         raw = None  # 4D: stream one volume; .nii: memory-map

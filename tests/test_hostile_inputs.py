@@ -311,3 +311,21 @@ def test_resampling_works_in_slabs_and_respects_the_voxel_limit(monkeypatch):
     monkeypatch.setenv("ROIKIT_MAX_VOXELS", "1000")
     with pytest.raises(UsageError, match="cannot resample onto a grid of 50x45x40 = 90,000 voxels"):
         resample_nearest(data, source, target)
+
+
+def test_a_map_that_cannot_be_read_is_named(tiny_study, monkeypatch):
+    import builtins
+
+    maps = find_maps(tiny_study["pattern"])
+    victim = str(maps["path"].iloc[1])
+    real_open = builtins.open
+
+    def guarded(file, *args, **kwargs):
+        if str(file) == victim and "b" in (args[0] if args else kwargs.get("mode", "r")):
+            raise PermissionError(errno.EACCES, "Permission denied", victim)
+        return real_open(file, *args, **kwargs)
+
+    monkeypatch.setattr(builtins, "open", guarded)
+    with pytest.raises(InputFileError, match="cannot read the .*Permission denied.*permissions") as info:
+        extract(maps, RegionSet([Sphere("s", (0, 0, 0), 4)]))
+    assert victim in str(info.value)
