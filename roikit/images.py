@@ -377,7 +377,8 @@ def read_header(path) -> MapHeader:
         except RoikitError:
             raise
         except Exception as exc:  # noqa: BLE001 - nibabel raises many kinds on corrupt fields
-            raise ImageFormatError(f"{path}: the NIfTI header is corrupt ({_reason(exc)}); re-export the image") from None
+            raise ImageFormatError(f"{path}: the NIfTI header is corrupt ({_reason(exc)}); re-export the "
+                                   "image") from None
     else:
         img = _nib_load(path)
         try:
@@ -397,7 +398,8 @@ def read_header(path) -> MapHeader:
         except RoikitError:
             raise
         except Exception as exc:  # noqa: BLE001 - nibabel raises many kinds on corrupt fields
-            raise ImageFormatError(f"{path}: the NIfTI header is corrupt ({_reason(exc)}); re-export the image") from None
+            raise ImageFormatError(f"{path}: the NIfTI header is corrupt ({_reason(exc)}); re-export the "
+                                   "image") from None
     if not (np.isfinite(out.slope) and np.isfinite(out.inter)):
         raise ImageFormatError(f"{path}: the header's scaling (scl_slope {out.slope:g}, scl_inter {out.inter:g}) is "
                                "not finite; the header is corrupt")
@@ -668,8 +670,9 @@ def resample_nearest(data: np.ndarray, source: Grid, target: Grid, *, fill=0) ->
     # target voxel -> source voxel: inv(A_src) @ A_tgt, computed per axis without a full (n, 3) float array
     limit = max_voxels()
     if target.n_voxels > limit:
-        raise UsageError(f"cannot resample onto a grid of {_shape_text(target.shape)} = {target.n_voxels:,} voxels, more "
-                         f"than roikit's limit of {limit:,}; raise it with ROIKIT_MAX_VOXELS if the grid is genuine")
+        raise UsageError(f"cannot resample onto a grid of {_shape_text(target.shape)} = {target.n_voxels:,} voxels, "
+                         f"more than roikit's limit of {limit:,}; raise it with ROIKIT_MAX_VOXELS if the grid is "
+                         "genuine")
     m = np.linalg.inv(source.affine) @ target.affine
     out = np.full(target.shape, fill, dtype=data.dtype)
     i = np.arange(target.shape[0], dtype=np.float64)
