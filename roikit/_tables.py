@@ -20,7 +20,7 @@ import numpy as np
 import pandas as pd
 
 from ._outputs import consent_hint, write_files
-from .errors import InputFileError, OutputExistsError, UsageError
+from .errors import InputFileError, OutputExistsError, OutputWriteError, UsageError, describe_os_error
 
 __all__ = [
     "read_table",
@@ -40,7 +40,11 @@ LABEL_COLUMNS = ("participant_id", "session_id", "contrast", "region", "design",
 def check_output(path: os.PathLike | str, *, overwrite: bool) -> Path:
     """Return ``path`` as a Path; raise if it exists and ``overwrite`` is false."""
     path = Path(path)
-    if path.exists() and not overwrite:
+    try:
+        exists = path.exists()
+    except OSError as exc:  # e.g. a name too long for the file system
+        raise OutputWriteError(describe_os_error(path, exc)) from None
+    if exists and not overwrite:
         raise OutputExistsError(
             f"{path}: file exists; {consent_hint()} to replace it, or choose another path"
         )
@@ -50,16 +54,21 @@ def check_output(path: os.PathLike | str, *, overwrite: bool) -> Path:
 def atomic_write_bytes(path: os.PathLike | str, data: bytes, *, overwrite: bool = False) -> Path:
     """Write ``data`` to ``path`` through a temporary file and a rename."""
     path = check_output(path, overwrite=overwrite)
-    path.parent.mkdir(parents=True, exist_ok=True)
-    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
+    try:
+        path.parent.mkdir(parents=True, exist_ok=True)
+        fd, tmp = tempfile.mkstemp(prefix=f".{path.name[:200]}.", suffix=".tmp", dir=path.parent)
+    except OSError as exc:
+        raise OutputWriteError(describe_os_error(path, exc)) from None
     try:
         with os.fdopen(fd, "wb") as fh:
             fh.write(data)
         os.chmod(tmp, 0o666 & ~_umask())  # mkstemp makes 0600; give the file the user's usual permissions
         os.replace(tmp, path)
-    except BaseException:
+    except BaseException as exc:
         if os.path.exists(tmp):
             os.unlink(tmp)
+        if isinstance(exc, OSError):
+            raise OutputWriteError(describe_os_error(path, exc)) from None
         raise
     return path
 
@@ -181,28 +190,65 @@ def _json_bytes(obj: Any) -> bytes:
     return (json.dumps(to_jsonable(obj), indent=2, ensure_ascii=False) + "\n").encode("utf-8")
 
 
-def read_table(path: os.PathLike | str, *, label_columns: Iterable[str] = LABEL_COLUMNS) -> pd.DataFrame:
+def read_table(
+    path: os.PathLike | str,
+    *,
+    label_columns: Iterable[str] = LABEL_COLUMNS,
+    allow_empty: bool = False,
+) -> pd.DataFrame:
     """Read a TSV (or CSV, by extension) with ``n/a`` as missing; label columns stay strings.
 
-    ``007`` stays ``007``: label columns are never parsed as numbers.
+    ``007`` stays ``007``: label columns are never parsed as numbers. The file must be UTF-8 text (a byte-order
+    mark is accepted); an empty file, a table with a header and no rows (unless ``allow_empty``), a file in
+    another encoding, or one that cannot be read raise :class:`~roikit.errors.InputFileError` naming the path.
     """
     path = Path(path)
+    kind = "CSV" if path.suffix.lower() == ".csv" else "TSV"
     if not path.is_file():
+        if path.exists():
+            raise InputFileError(f"{path}: is a folder, not a table; give the path of the {kind} file")
         raise InputFileError(f"{path}: table not found (looked in {path.parent.resolve()})")
-    sep = "," if path.suffix.lower() == ".csv" else "\t"
-    with open(path, encoding="utf-8") as fh:
-        header = fh.readline().rstrip("\n\r").split(sep)
-    dtype = {c: str for c in label_columns if c in header}
+    sep = "," if kind == "CSV" else "\t"
     try:
+        with open(path, encoding="utf-8-sig") as fh:
+            first = fh.readline()
+        if not first.strip():
+            raise InputFileError(f"{path}: the table is empty (no header row); a {kind} needs a header row naming "
+                                 "its columns and one row per entry")
+        header = first.rstrip("\n\r").split(sep)
+        dtype = {c: str for c in label_columns if c in header}
         table = pd.read_csv(
             path,
             sep=sep,
             na_values=["n/a", "NaN", "nan", ""],
             keep_default_na=False,
             dtype=dtype,
+            encoding="utf-8-sig",
         )
-    except (pd.errors.ParserError, UnicodeDecodeError) as exc:
-        raise InputFileError(f"{path}: not a readable {'CSV' if sep == ',' else 'TSV'} table ({exc})") from exc
+    except InputFileError:
+        raise
+    except UnicodeDecodeError as exc:
+        guess = ""
+        try:
+            exc.object.decode("cp1252")
+            guess = " (it looks like Latin-1/Windows-1252)"
+        except (UnicodeDecodeError, AttributeError):
+            pass
+        bad = exc.object[exc.start:exc.start + 1].hex() if isinstance(exc.object, bytes) else "?"
+        raise InputFileError(
+            f"{path}: not UTF-8 text: byte 0x{bad} cannot be decoded{guess}; save the table as UTF-8 (e.g. "
+            f"iconv -f latin1 -t utf-8 FILE, or choose UTF-8 when exporting the {kind})"
+        ) from None
+    except OSError as exc:
+        raise InputFileError(f"{path}: cannot read the table ({exc.strerror or exc}); check that the file is "
+                             "readable (permissions)") from None
+    except (pd.errors.ParserError, pd.errors.EmptyDataError, ValueError) as exc:
+        reason = str(exc).strip().splitlines()[0] if str(exc).strip() else type(exc).__name__
+        raise InputFileError(f"{path}: not a readable {kind} table ({reason}); check that the columns are "
+                             f"separated by {'commas' if sep == ',' else 'tabs'}") from None
+    if table.empty and not allow_empty:
+        raise InputFileError(f"{path}: the table has a header ({', '.join(map(str, table.columns))}) but no rows; "
+                             "add one row per entry")
     return table
 
 

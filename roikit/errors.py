@@ -32,6 +32,7 @@ __all__ = [
     "MissingValueWarning",
     "DiagnosticWarning",
     "CautionWarning",
+    "InputWarning",
     "RoikitDeprecationWarning",
 ]
 
@@ -77,7 +78,33 @@ class OutputLockedError(RoikitError, BlockingIOError):
 
 
 class OutputWriteError(RoikitError, OSError):
-    """An output could not be written (permissions, disk full); nothing half-written is left in place."""
+    """An output file or folder cannot be written (permissions, read-only or full disk, name too long)."""
+
+
+def describe_os_error(path, exc: OSError, *, action: str = "write") -> str:
+    """One line for an operating-system error on ``path``: what happened and what to do (used by every layer)."""
+    import errno
+
+    code = getattr(exc, "errno", None)
+    reason = getattr(exc, "strerror", None) or str(exc) or type(exc).__name__
+    name = str(path)
+    if code == errno.ENOSPC:
+        fix = "the disk is full; free some space or write to another disk"
+    elif code == errno.ENAMETOOLONG:
+        longest = max((len(part) for part in name.replace("\\", "/").split("/")), default=0)
+        fix = (f"a name in the path is too long ({longest} characters; most file systems allow 255 bytes per name "
+               "and 4096 per path); choose a shorter name")
+    elif code in (errno.EACCES, errno.EPERM):
+        fix = f"permission denied; choose a location you may {action}, or change the permissions"
+    elif code == errno.EROFS:
+        fix = "the file system is read-only; choose another location"
+    elif code == errno.EISDIR:
+        fix = "a folder has this name; give a file name"
+    elif code in (errno.ENOENT, errno.ENOTDIR):
+        fix = "a folder in the path does not exist; create it or fix the path"
+    else:
+        fix = "check the path and the disk"
+    return f"{name}: cannot {action} ({reason}); {fix}"
 
 
 class DesignError(RoikitError, ValueError):
@@ -114,6 +141,10 @@ class DiagnosticWarning(RoikitWarning):
 
 class CautionWarning(RoikitWarning):
     """A result needs a caution when reported (fixed effects, circularity, uncorrected family)."""
+
+
+class InputWarning(RoikitWarning):
+    """Inputs look suspicious or were not used (files not matching a pattern, identical maps)."""
 
 
 class RoikitDeprecationWarning(DeprecationWarning):

@@ -41,11 +41,12 @@ from .errors import (
     ExtractionError,
     ImageFormatError,
     InputFileError,
+    InputWarning,
     MapDiscoveryError,
     RoikitError,
     UsageError,
 )
-from .images import DEFAULT_ATOL, MapHeader, check_same_grid, read_flat, read_header
+from .images import DEFAULT_ATOL, MapHeader, check_same_grid, read_flat, read_header, verify_data
 from .regions import Regions, RegionSet
 
 __all__ = [
@@ -93,10 +94,14 @@ _PLACEHOLDERS = {
 }
 
 
-def _pattern_regex(pattern: str) -> tuple[str, re.Pattern]:
-    """Glob and regex for a path pattern with {subject}, {session}, {contrast} and * wildcards."""
+def _pattern_regex(pattern: str, prefix: str = "") -> tuple[str, re.Pattern]:
+    """Glob and regex for a path pattern with {subject}, {session}, {contrast} and * wildcards.
+
+    ``prefix`` (the folder a relative pattern starts from) is taken literally: a ``*`` or ``[`` in a folder's
+    name never acts as a wildcard.
+    """
     tokens = re.split(r"(\{[a-z]+\}|\*)", pattern)
-    glob_parts, rx_parts, seen = [], [], set()
+    glob_parts, rx_parts, seen = [glob.escape(prefix)], [re.escape(prefix)], set()
     for tok in tokens:
         m = re.fullmatch(r"\{([a-z]+)\}", tok)
         if m:
@@ -155,16 +160,17 @@ def find_maps(
         ``variance``), sorted by participant, session and contrast.
     """
     root = Path(root) if root is not None else Path(".")
-    full = pattern if os.path.isabs(pattern) else os.path.join(root, pattern)
-    full = full.replace(os.sep, "/")
-    glob_pattern, rx = _pattern_regex(full)
+    prefix = "" if os.path.isabs(pattern) else os.path.join(root, "").replace(os.sep, "/")
+    glob_pattern, rx = _pattern_regex(pattern.replace(os.sep, "/"), prefix)
     if "{contrast}" not in pattern and contrast is None:
         raise UsageError(f"pattern {pattern!r} has no {{contrast}} placeholder; add one or give contrast=")
     candidates = sorted(glob.glob(glob_pattern))
     rows = []
+    unmatched = []
     for path in candidates:
         m = rx.match(path.replace(os.sep, "/"))
         if not m:
+            unmatched.append(path)
             continue
         g = m.groupdict()
         row = {"participant_id": f"sub-{g['subject']}"}
@@ -173,10 +179,13 @@ def find_maps(
         row["contrast"] = g.get("contrast", contrast)
         row["path"] = path
         if variance is not None:
-            vfull = variance if os.path.isabs(variance) else os.path.join(root, variance)
-            vpath = _fill(vfull, {k: v for k, v in g.items() if v is not None})
-            if "*" in vpath:
-                hits = sorted(glob.glob(vpath))
+            filled = {k: v for k, v in g.items() if v is not None}
+            vprefix = "" if os.path.isabs(variance) else os.path.join(root, "")
+            vpath = vprefix + _fill(variance, filled)
+            if "*" in variance:  # wildcards of the pattern only; folder names and labels are literal
+                vglob = glob.escape(vprefix) + "*".join(glob.escape(_fill(part, filled))
+                                                        for part in variance.split("*"))
+                hits = sorted(glob.glob(vglob))
                 if len(hits) != 1:
                     raise MapDiscoveryError(f"variance pattern {variance!r} gives {len(hits)} files for {path} "
                                             f"({vpath}); it must give exactly one")
@@ -186,12 +195,22 @@ def find_maps(
             row["variance_path"] = vpath
         rows.append(row)
     if not rows:
-        fixed = glob_pattern.split("*")[0]
+        full = re.sub(r"\{[a-z]+\}", "*", prefix + pattern.replace(os.sep, "/"))
+        fixed = full.split("*")[0]
         where = Path(fixed if fixed.endswith("/") else os.path.dirname(fixed) or ".")
-        rest = os.path.relpath(glob_pattern, where) if where != Path(".") else glob_pattern
+        rest = os.path.relpath(full, where) if where != Path(".") else full
         raise MapDiscoveryError(
             f"pattern {pattern!r} matched no file (searched {where.resolve()} for {rest}); "
             "check the folder and the file naming"
+        )
+    if unmatched:
+        warnings.warn(
+            f"pattern {pattern!r}: {len(unmatched)} file(s) in the searched folders have the pattern's shape but not "
+            f"its labels (e.g. a subject label with '_' or '/') and were not used: {', '.join(unmatched[:10])}"
+            + (f" and {len(unmatched) - 10} more" if len(unmatched) > 10 else "")
+            + "; rename them or adjust the pattern if they belong to the study",
+            InputWarning,
+            stacklevel=2,
         )
     maps = pd.DataFrame(rows)
     return _validate_maps(maps, source=f"pattern {pattern!r}")
@@ -225,8 +244,28 @@ def _validate_maps(maps: pd.DataFrame, *, source: str) -> pd.DataFrame:
             f"{source}: {len(dup)} maps share a ({', '.join(keys)}); e.g. "
             f"{', '.join(str(first[k]) for k in keys)} from {same}; each participant, session and contrast needs one map"
         )
+    vol = maps["volume"].astype(str) if "volume" in maps.columns else ""
+    reused = maps[maps.assign(_v=vol).duplicated(["path", "_v"] if "volume" in maps.columns else ["path"],
+                                                  keep=False)]
+    if len(reused):
+        listed = "; ".join(f"{p}: {', '.join(_map_label(r) for r in grp.itertuples(index=False))}"
+                           for p, grp in list(reused.groupby("path", sort=False))[:5])
+        warnings.warn(f"{source}: the same file is given for several participants/contrasts ({listed}); each map "
+                      "should be a separate file", InputWarning, stacklevel=3)
     if "volume" in maps.columns:
-        maps["volume"] = pd.to_numeric(maps["volume"], errors="raise").astype("Int64")
+        number = pd.to_numeric(maps["volume"], errors="coerce")
+        given = maps["volume"].notna().to_numpy()
+        with np.errstate(invalid="ignore"):
+            bad = given & ~(np.isfinite(number.to_numpy(float)) & (number.to_numpy(float) >= 0)
+                            & (number.to_numpy(float) == np.round(number.to_numpy(float))))
+        if bad.any():
+            rows = (np.flatnonzero(bad) + 1).tolist()
+            raise MapDiscoveryError(
+                f"{source}: column volume must hold whole numbers from 0 (the 0-based volume of a 4D file), found "
+                f"{maps['volume'][bad].astype(str).tolist()[:5]} in row(s) {rows[:10]}; fix those rows or leave the "
+                "cell n/a for 3D files"
+            )
+        maps["volume"] = number.astype("Int64")
     maps = maps.sort_values(keys, kind="stable").reset_index(drop=True)
     return maps
 
@@ -411,8 +450,12 @@ class _Task:
 
 def _read_gathered(header: MapHeader, volume, uniq) -> tuple[np.ndarray, str]:
     """Read one map, return its in-region voxels and the SHA-256 of the file's bytes."""
-    with open(header.path, "rb") as fh:
-        raw = fh.read()
+    try:
+        with open(header.path, "rb") as fh:
+            raw = fh.read()
+    except OSError as exc:
+        raise InputFileError(f"{header.path}: cannot read the map ({exc.strerror or exc}); check that the file "
+                             "exists and is readable (permissions)") from None
     digest = hashlib.sha256(raw).hexdigest()
     if header.n_volumes > 1 or not header.compressed:
         raw = None  # 4D: stream one volume; .nii: memory-map
@@ -519,7 +562,8 @@ def _headers(maps: pd.DataFrame, *, atol: float):
         if h.n_volumes > 1 and vol is None:
             raise ImageFormatError(f"{h.path}: a 4D file with {h.n_volumes} volumes; choose one with a `volume` "
                                    "column in the map list (or maps_from_4d)")
-        if first is None:
+        if first is None:  # regions are realised on this grid: its data must be complete before anything is built
+            verify_data(h)
             first, first_path = h.grid, h.path
         check_same_grid(first, h.grid, a_name=first_path, b_name=h.path, atol=atol)
         vh = None
@@ -691,6 +735,7 @@ def extract(
     if failures:
         _raise_failures(failures, tasks, table, _input_records(maps, tasks, digests, vdigests))
     _warn_empty(table)
+    _warn_identical(maps, tasks, digests)
     table.attrs["roikit"] = {
         "kind": "region values",
         "roikit_version": __version__,
@@ -798,6 +843,33 @@ def assemble_values(maps: pd.DataFrame, names, n_voxels, values, n_valid, varian
         if c in table.columns:
             table[c] = table[c].astype(str)
     return table
+
+
+def _map_label(row) -> str:
+    session = getattr(row, "session_id", None)
+    return " ".join(str(x) for x in (row.participant_id, session, row.contrast) if x is not None and x == x)
+
+
+def _warn_identical(maps: pd.DataFrame, tasks, digests) -> None:
+    """Warn when maps of different participants/contrasts have identical bytes (same SHA-256 and volume)."""
+    groups: dict = {}
+    for row, task, digest in zip(maps.itertuples(index=False), tasks, digests):
+        if digest is not None:
+            groups.setdefault((digest, task.volume), []).append((_map_label(row), task.path))
+    same = [(key, members) for key, members in groups.items() if len(members) > 1]
+    if not same:
+        return
+    parts = [f"sha256 {digest[:16]}...: " + ", ".join(f"{label} ({path})" for label, path in members[:6])
+             + (f" and {len(members) - 6} more" if len(members) > 6 else "")
+             for (digest, _vol), members in same[:5]]
+    warnings.warn(
+        f"{sum(len(m) for _k, m in same)} maps are byte-for-byte identical to another map of a different "
+        f"participant or contrast (a copy or a wrong link?): " + "; ".join(parts)
+        + ("" if len(same) <= 5 else f"; and {len(same) - 5} more group(s)")
+        + "; check the files: identical maps would enter the statistics as separate observations",
+        InputWarning,
+        stacklevel=3,
+    )
 
 
 def _warn_empty(table: pd.DataFrame) -> None:

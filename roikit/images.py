@@ -32,7 +32,7 @@ from pathlib import Path
 import nibabel as nib
 import numpy as np
 
-from .errors import GridMismatchError, ImageFormatError, InputFileError, UsageError
+from .errors import GridMismatchError, ImageFormatError, InputFileError, RoikitError, UsageError
 
 try:  # optional accelerated gzip (the `fast` extra); identical output to zlib
     from isal import igzip as _fast_gzip
@@ -49,12 +49,94 @@ __all__ = [
     "resample_nearest",
     "check_same_grid",
     "check_overlap",
+    "verify_data",
+    "read_grid",
+    "max_voxels",
     "DEFAULT_ATOL",
+    "DEFAULT_MAX_VOXELS",
 ]
 
 #: Tolerance (mm) when comparing affines; common practice, no source: far below
 #: any voxel size in use, far above float32 rounding of header affines.
 DEFAULT_ATOL = 1e-3
+
+#: Largest grid (voxels of one 3D volume) roikit will allocate or resample onto, unless the environment variable
+#: ``ROIKIT_MAX_VOXELS`` raises it: 2**26 = 67,108,864 voxels, e.g. a whole-brain 0.5 mm grid (about 58 million)
+#: fits, and the arrays of one resampling onto it stay near 2.5 GB.
+DEFAULT_MAX_VOXELS = 2**26
+
+#: Largest plausible expansion of gzip data. Deflate cannot expand by more than about 1032:1 (RFC 1951: a
+#: 258-byte match coded in at least 2 bits; zlib's technical note gives 1032:1); 1100 leaves room for headers.
+GZIP_MAX_RATIO = 1100
+
+#: Target voxels per slab when resampling (bounds the index arrays: about 30 bytes per voxel).
+_SLAB_VOXELS = 1 << 22
+
+#: Voxel data types roikit reads (numbers; RGB and other compound types are refused).
+_NUMERIC_KINDS = "biuf"
+
+
+def max_voxels() -> int:
+    """The voxel limit in force: ``ROIKIT_MAX_VOXELS`` from the environment, else :data:`DEFAULT_MAX_VOXELS`."""
+    text = os.environ.get("ROIKIT_MAX_VOXELS")
+    if text is None or not text.strip():
+        return DEFAULT_MAX_VOXELS
+    try:
+        value = int(float(text))
+    except (ValueError, OverflowError):
+        value = 0
+    if value < 1:
+        raise UsageError(f"ROIKIT_MAX_VOXELS must be a positive whole number of voxels, got {text!r}; "
+                         f"unset it for the default ({DEFAULT_MAX_VOXELS})")
+    return value
+
+
+def _shape_text(shape, n_vol: int = 1) -> str:
+    return "x".join(str(int(s)) for s in shape) + (f"x{n_vol}" if n_vol > 1 else "")
+
+
+def _check_budget(path, shape, n_vol: int, dtype: np.dtype, offset: int, compressed: bool) -> None:
+    """Refuse, from the header alone, a file whose claimed data cannot be in it or exceed the voxel limit.
+
+    Nothing is allocated here: the bytes the header promises (offset + voxels x volumes x bytes per voxel) are
+    compared with the file's size (exactly for ``.nii``; at most :data:`GZIP_MAX_RATIO` times the compressed
+    size for ``.nii.gz``), and the voxels of one volume with :func:`max_voxels`.
+    """
+    if dtype.kind not in _NUMERIC_KINDS or dtype.fields is not None or dtype.itemsize == 0:
+        raise ImageFormatError(
+            f"{path}: voxel data type {dtype} is not a number type (RGB or compound images are not maps); "
+            "save the image with numeric voxels (e.g. float32 for maps, int16 for atlases)"
+        )
+    if offset < 0:
+        raise ImageFormatError(f"{path}: header gives a negative data offset ({offset}); the header is corrupt")
+    nvox = 1
+    for s in shape:
+        nvox *= int(s)
+    limit = max_voxels()
+    if nvox > limit:
+        raise ImageFormatError(
+            f"{path}: header claims a grid of {_shape_text(shape)} = {nvox:,} voxels, more than roikit's limit of "
+            f"{limit:,} voxels; if the image is genuine, raise the limit with the environment variable "
+            f"ROIKIT_MAX_VOXELS={nvox} (else the header is corrupt)"
+        )
+    needed = int(offset) + nvox * int(n_vol) * dtype.itemsize
+    try:
+        size = os.path.getsize(path)
+    except OSError as exc:
+        raise InputFileError(f"{path}: cannot read the file's size ({exc.strerror or exc})") from exc
+    if compressed:
+        plausible = size * GZIP_MAX_RATIO + 65536
+        if needed > plausible:
+            raise ImageFormatError(
+                f"{path}: header claims {_shape_text(shape, n_vol)} voxels of {dtype} ({needed:,} bytes), but the "
+                f"compressed file has only {size:,} bytes (gzip cannot hold more than about {plausible:,}); the file "
+                "is truncated or its header is corrupt"
+            )
+    elif size < needed:
+        raise ImageFormatError(
+            f"{path}: file has {size:,} bytes but the header claims {_shape_text(shape, n_vol)} voxels of {dtype} "
+            f"({needed:,} bytes); the file is truncated or its header is corrupt"
+        )
 
 
 @dataclass(frozen=True)
@@ -200,11 +282,17 @@ def _check_file(path) -> Path:
 
 def _nib_load(path: Path):
     try:
-        img = nib.load(str(path))
+        with nib.imageglobals.LoggingOutputSuppressor():  # nibabel's own log lines would break the one-line errors
+            img = nib.load(str(path))
     except nib.filebasedimages.ImageFileError as exc:
         raise ImageFormatError(f"{path}: not a NIfTI image ({exc})") from exc
-    except (OSError, EOFError, zlib.error, gzip.BadGzipFile, ValueError) as exc:
-        raise ImageFormatError(f"{path}: cannot read the image header; the file is corrupt or truncated ({exc})") from exc
+    except PermissionError as exc:
+        raise InputFileError(f"{path}: cannot read the file ({exc.strerror}); check its permissions") from None
+    except MemoryError:
+        raise ImageFormatError(f"{path}: not enough memory to read the image header; the header is corrupt") from None
+    except Exception as exc:  # noqa: BLE001 - OSError, EOFError, zlib.error, ValueError, nibabel's header errors
+        raise ImageFormatError(f"{path}: cannot read the image header; the file is corrupt or truncated "
+                               f"({_reason(exc)})") from None
     if not isinstance(img, (nib.Nifti1Image, nib.Nifti2Image, nib.Nifti1Pair, nib.Nifti2Pair)):
         raise ImageFormatError(f"{path}: a {type(img).__name__}, not a NIfTI image; convert it to NIfTI (.nii/.nii.gz)")
     return img
@@ -219,7 +307,15 @@ def _spatial_shape(shape, affine, path) -> tuple[Grid, int]:
         n_vol = shape[3]
     else:
         raise ImageFormatError(f"{path}: image has shape {tuple(shape)}; expected a 3D map or a 4D file of 3D volumes")
-    return Grid(shape[:3], affine), int(n_vol)
+    if min(int(s) for s in shape) < 1:
+        raise ImageFormatError(f"{path}: header gives an empty image (shape {tuple(int(s) for s in shape)}); "
+                               "the header is corrupt")
+    try:
+        grid = Grid(shape[:3], affine)
+    except UsageError as exc:
+        raise ImageFormatError(f"{path}: the header's voxel-to-world affine is unusable ({exc}); check the "
+                               "image's voxel sizes (pixdim) and orientation (qform/sform)") from None
+    return grid, int(n_vol)
 
 
 def _spatial(img, path) -> tuple[Grid, int]:
@@ -228,8 +324,12 @@ def _spatial(img, path) -> tuple[Grid, int]:
 
 def _parse_header_bytes(path: Path):
     """Parse a NIfTI-1/2 header from the first bytes of the file (decompressing only those); None if unsure."""
-    with open(path, "rb") as fh:
-        head = fh.read(1 << 16)
+    try:
+        with open(path, "rb") as fh:
+            head = fh.read(1 << 16)
+    except OSError as exc:
+        raise InputFileError(f"{path}: cannot read the file ({exc.strerror or exc}); check that it is readable "
+                             "(permissions, a folder given instead of a file)") from None
     if head[:2] == b"\x1f\x8b":
         try:
             head = zlib.decompressobj(31).decompress(head, 544)
@@ -260,33 +360,101 @@ def read_header(path) -> MapHeader:
     path = _check_file(path)
     header = _parse_header_bytes(path)
     if header is not None:
-        shape = header.get_data_shape()
-        grid, n_vol = _spatial_shape(shape, header.get_best_affine(), path)
-        slope, inter = header.get_slope_inter()
-        return MapHeader(
-            path=str(path),
-            grid=grid,
-            n_volumes=n_vol,
-            dtype=np.dtype(header.get_data_dtype()),
-            offset=int(header.get_data_offset()),
-            slope=1.0 if slope is None else float(slope),
-            inter=0.0 if inter is None else float(inter),
-            compressed=str(path).endswith(".gz"),
-        )
-    img = _nib_load(path)
-    grid, n_vol = _spatial(img, path)
-    proxy = img.dataobj  # the array proxy knows the true data offset, type and scaling of the file
-    image_file = str(img.file_map["image"].filename or path)  # the .img of a .hdr/.img pair
-    return MapHeader(
-        path=image_file,
-        grid=grid,
-        n_volumes=n_vol,
-        dtype=np.dtype(proxy.dtype),
-        offset=int(proxy.offset),
-        slope=float(proxy.slope),
-        inter=float(proxy.inter),
-        compressed=image_file.endswith(".gz"),
-    )
+        try:
+            shape = header.get_data_shape()
+            grid, n_vol = _spatial_shape(shape, header.get_best_affine(), path)
+            slope, inter = header.get_slope_inter()
+            out = MapHeader(
+                path=str(path),
+                grid=grid,
+                n_volumes=n_vol,
+                dtype=np.dtype(header.get_data_dtype()),
+                offset=int(header.get_data_offset()),
+                slope=1.0 if slope is None else float(slope),
+                inter=0.0 if inter is None else float(inter),
+                compressed=str(path).endswith(".gz"),
+            )
+        except RoikitError:
+            raise
+        except Exception as exc:  # noqa: BLE001 - nibabel raises many kinds on corrupt fields
+            raise ImageFormatError(f"{path}: the NIfTI header is corrupt ({_reason(exc)}); re-export the "
+                                   "image") from None
+    else:
+        img = _nib_load(path)
+        try:
+            grid, n_vol = _spatial(img, path)
+            proxy = img.dataobj  # the array proxy knows the true data offset, type and scaling of the file
+            image_file = str(img.file_map["image"].filename or path)  # the .img of a .hdr/.img pair
+            out = MapHeader(
+                path=image_file,
+                grid=grid,
+                n_volumes=n_vol,
+                dtype=np.dtype(proxy.dtype),
+                offset=int(proxy.offset),
+                slope=float(proxy.slope),
+                inter=float(proxy.inter),
+                compressed=image_file.endswith(".gz"),
+            )
+        except RoikitError:
+            raise
+        except Exception as exc:  # noqa: BLE001 - nibabel raises many kinds on corrupt fields
+            raise ImageFormatError(f"{path}: the NIfTI header is corrupt ({_reason(exc)}); re-export the "
+                                   "image") from None
+    if not (np.isfinite(out.slope) and np.isfinite(out.inter)):
+        raise ImageFormatError(f"{path}: the header's scaling (scl_slope {out.slope:g}, scl_inter {out.inter:g}) is "
+                               "not finite; the header is corrupt")
+    _check_budget(out.path, out.grid.shape, out.n_volumes, out.dtype, out.offset, out.compressed)
+    return out
+
+
+def _reason(exc: BaseException) -> str:
+    if isinstance(exc, KeyError):  # nibabel's code tables: an unknown datatype (or intent/xform) code
+        return f"unknown code {exc.args[0] if exc.args else '?'} (e.g. in the datatype field)"
+    text = str(exc).strip().splitlines()[0] if str(exc).strip() else ""
+    return f"{type(exc).__name__}: {text}" if text else type(exc).__name__
+
+
+def verify_data(header: MapHeader) -> None:
+    """Check that a file holds all the voxel data its header promises, without keeping them in memory.
+
+    ``.nii``: the file's size. ``.nii.gz``: the data are decompressed in a stream of 4 MB pieces and counted
+    (memory stays at one piece); a truncated or corrupt file raises :class:`ImageFormatError` naming it.
+    Use it before allocating or resampling anything on the grid of a file (:func:`read_grid`).
+    """
+    needed = header.offset + header.n_volumes * header.grid.n_voxels * header.dtype.itemsize
+    path = header.path
+    if not header.compressed:
+        size = os.path.getsize(path)
+        if size < needed:
+            raise ImageFormatError(f"{path}: file has {size:,} bytes but the header promises {needed:,}; the file "
+                                   "is truncated")
+        return
+    opener = _fast_gzip.open if _fast_gzip is not None else gzip.open
+    total = 0
+    try:
+        with opener(path, "rb") as fh:
+            while total < needed:
+                piece = fh.read(min(1 << 22, needed - total))
+                if not piece:
+                    break
+                total += len(piece)
+    except Exception as exc:  # noqa: BLE001 - zlib.error, EOFError, OSError, BadGzipFile or isal's IsalError
+        kind = "truncated" if "truncated" in str(exc) or isinstance(exc, EOFError) else "corrupt"
+        raise ImageFormatError(f"{path}: {kind} gzip data, cannot decompress ({_reason(exc)})") from None
+    if total < needed:
+        raise ImageFormatError(f"{path}: voxel data shorter than the header promises ({total:,} of {needed:,} "
+                               "bytes); the file is truncated")
+
+
+def read_grid(path) -> Grid:
+    """The grid of a map whose header passed the budget and whose data were verified complete.
+
+    Regions are realised (and region images resampled) on this grid, so a header that claims a huge grid
+    without the data to back it is refused before anything is allocated.
+    """
+    header = read_header(path)
+    verify_data(header)
+    return header.grid
 
 
 def _check_volume(n_vol: int, volume: int | None, path) -> int:
@@ -297,7 +465,12 @@ def _check_volume(n_vol: int, volume: int | None, path) -> int:
                 "or a `volume` column in the map list)"
             )
         return 0
-    volume = int(volume)
+    try:
+        if isinstance(volume, (bool, np.bool_)) or float(volume) != int(float(volume)):
+            raise ValueError
+        volume = int(float(volume))
+    except (TypeError, ValueError, OverflowError):
+        raise UsageError(f"{path}: volume must be a whole number (0..{n_vol - 1}), got {volume!r}") from None
     if not 0 <= volume < n_vol:
         raise ImageFormatError(f"{path}: volume {volume} requested, but the file has {n_vol} (0..{n_vol - 1})")
     return volume
@@ -320,8 +493,14 @@ def load_map(path, *, volume: int | None = None) -> tuple[np.ndarray, Grid]:
     grid : Grid
     """
     path = _check_file(path)
+    read_header(path)  # the same header checks and budget as the fast reader, before nibabel allocates anything
     img = _nib_load(path)
-    grid, n_vol = _spatial(img, path)
+    try:
+        grid, n_vol = _spatial(img, path)
+    except RoikitError:
+        raise
+    except Exception as exc:  # noqa: BLE001 - nibabel raises many kinds on corrupt fields
+        raise ImageFormatError(f"{path}: the NIfTI header is corrupt ({_reason(exc)}); re-export the image") from None
     v = _check_volume(n_vol, volume, path)
     try:
         if len(img.shape) == 3:
@@ -329,8 +508,11 @@ def load_map(path, *, volume: int | None = None) -> tuple[np.ndarray, Grid]:
         else:
             data = np.asarray(img.dataobj[..., v], dtype=np.float64)
             data = data.reshape(grid.shape, order="F")
-    except (OSError, EOFError, zlib.error, ValueError) as exc:
-        raise ImageFormatError(f"{path}: cannot read voxel data; the file is corrupt or truncated ({exc})") from exc
+    except MemoryError:
+        raise ImageFormatError(f"{path}: not enough memory to load its {_shape_text(grid.shape)} voxels") from None
+    except Exception as exc:  # noqa: BLE001 - OSError, EOFError, zlib.error, ValueError, nibabel's own errors
+        raise ImageFormatError(f"{path}: cannot read voxel data; the file is corrupt or truncated "
+                               f"({_reason(exc)})") from None
     return data, grid
 
 
@@ -349,6 +531,7 @@ def _gunzip(raw: bytes, path, needed: int) -> bytes:
     ISA-L (optional ``isal`` package) and zlib give identical bytes.
     """
     hint = struct.unpack("<I", raw[-4:])[0] if len(raw) >= 18 else 0
+    hint = min(hint, len(raw) * GZIP_MAX_RATIO + 65536)  # ISIZE is not trusted beyond what gzip can hold
     lib = _fast_zlib if _fast_zlib is not None else zlib
     try:
         out = lib.decompress(raw, 31, max(hint, needed, 1))
@@ -389,6 +572,28 @@ def read_flat(header: MapHeader, *, volume: int | None = None, raw: bytes | None
     dtype = header.dtype
     start = header.offset + v * nvox * dtype.itemsize
     stop = start + nvox * dtype.itemsize
+    try:
+        arr = _read_voxels(header, v, nvox, dtype, start, stop, raw)
+    except RoikitError:
+        raise
+    except PermissionError as exc:
+        raise InputFileError(f"{path}: cannot read the file ({exc.strerror}); check its permissions") from None
+    except MemoryError:
+        raise ImageFormatError(f"{path}: not enough memory to read its {_shape_text(header.grid.shape)} voxels") \
+            from None
+    except Exception as exc:  # noqa: BLE001 - numpy/OS errors on a corrupt header or file
+        raise ImageFormatError(f"{path}: cannot read voxel data ({_reason(exc)}); the file is corrupt") from None
+    if header.slope != 1.0 or header.inter != 0.0:
+        arr = arr * header.slope + header.inter
+    elif arr.dtype.kind != "f":
+        arr = arr.astype(np.float64)
+    elif not arr.dtype.isnative:
+        arr = arr.astype(arr.dtype.newbyteorder("="))
+    return arr
+
+
+def _read_voxels(header, v, nvox, dtype, start, stop, raw):
+    path = header.path
     if header.compressed:
         if header.n_volumes > 1:
             # stream only up to the volume needed: memory stays at one volume, not the whole file
@@ -411,26 +616,29 @@ def read_flat(header: MapHeader, *, volume: int | None = None, raw: bytes | None
                 f"{path}: file has {size} bytes but the header promises {stop}; the file is truncated"
             )
         arr = np.memmap(path, dtype=dtype, mode="r", offset=start, shape=(nvox,))
-    if header.slope != 1.0 or header.inter != 0.0:
-        arr = arr * header.slope + header.inter
-    elif arr.dtype.kind != "f":
-        arr = arr.astype(np.float64)
-    elif not arr.dtype.isnative:
-        arr = arr.astype(arr.dtype.newbyteorder("="))
     return arr
 
 
 def _read_gzip_range(path, start: int, stop: int) -> bytes:
-    """Decompress only bytes [start, stop) of a gzip file, streaming (flat memory for 4D files)."""
+    """Decompress only bytes [start, stop) of a gzip file, streaming (flat memory for 4D files).
+
+    Read in pieces of at most 16 MB, so a truncated file never makes roikit allocate what its header claims.
+    """
     opener = _fast_gzip.open if _fast_gzip is not None else gzip.open
+    pieces = []
+    got = 0
     try:
         with opener(path, "rb") as fh:
             fh.seek(start)
-            buf = bytearray(stop - start)
-            n = fh.readinto(buf)
-    except (zlib.error, OSError, EOFError) as exc:
-        raise ImageFormatError(f"{path}: corrupt gzip data ({exc})") from exc
-    return bytes(buf[:n]) if n < len(buf) else bytes(buf)
+            while got < stop - start:
+                piece = fh.read(min(1 << 24, stop - start - got))
+                if not piece:
+                    break
+                pieces.append(piece)
+                got += len(piece)
+    except Exception as exc:  # noqa: BLE001 - zlib.error, OSError, EOFError or isal's IsalError
+        raise ImageFormatError(f"{path}: corrupt or truncated gzip data ({_reason(exc)})") from None
+    return pieces[0] if len(pieces) == 1 else b"".join(pieces)
 
 
 # --------------------------------------------------------------------------------------------------
@@ -460,20 +668,29 @@ def resample_nearest(data: np.ndarray, source: Grid, target: Grid, *, fill=0) ->
     if data.shape[:3] != source.shape:
         raise UsageError(f"data shape {data.shape} does not match the source grid {source.shape}")
     # target voxel -> source voxel: inv(A_src) @ A_tgt, computed per axis without a full (n, 3) float array
+    limit = max_voxels()
+    if target.n_voxels > limit:
+        raise UsageError(f"cannot resample onto a grid of {_shape_text(target.shape)} = {target.n_voxels:,} voxels, "
+                         f"more than roikit's limit of {limit:,}; raise it with ROIKIT_MAX_VOXELS if the grid is "
+                         "genuine")
     m = np.linalg.inv(source.affine) @ target.affine
     out = np.full(target.shape, fill, dtype=data.dtype)
     i = np.arange(target.shape[0], dtype=np.float64)
     j = np.arange(target.shape[1], dtype=np.float64)
-    k = np.arange(target.shape[2], dtype=np.float64)
-    idx = []
-    for axis in range(3):
-        # continuous source index along `axis` = m[axis,0] i + m[axis,1] j + m[axis,2] k + m[axis,3]
-        c = (m[axis, 0] * i[:, None, None] + m[axis, 1] * j[None, :, None] + m[axis, 2] * k[None, None, :]
-             + m[axis, 3])
-        # round half away from zero would bias; floor(x + 0.5) rounds .5 up consistently (common practice)
-        idx.append(np.floor(c + 0.5).astype(np.int64))
-    inside = np.ones(target.shape, dtype=bool)
-    for axis in range(3):
-        inside &= (idx[axis] >= 0) & (idx[axis] < source.shape[axis])
-    out[inside] = data[idx[0][inside], idx[1][inside], idx[2][inside]]
+    # slabs along k keep the index arrays at about 4 million voxels whatever the size of the target grid
+    step = max(1, _SLAB_VOXELS // max(1, target.shape[0] * target.shape[1]))
+    for k0 in range(0, target.shape[2], step):
+        k = np.arange(k0, min(k0 + step, target.shape[2]), dtype=np.float64)
+        idx = []
+        for axis in range(3):
+            # continuous source index along `axis` = m[axis,0] i + m[axis,1] j + m[axis,2] k + m[axis,3]
+            c = (m[axis, 0] * i[:, None, None] + m[axis, 1] * j[None, :, None] + m[axis, 2] * k[None, None, :]
+                 + m[axis, 3])
+            # round half away from zero would bias; floor(x + 0.5) rounds .5 up consistently (common practice)
+            idx.append(np.floor(c + 0.5).astype(np.int64))
+        inside = np.ones(idx[0].shape, dtype=bool)
+        for axis in range(3):
+            inside &= (idx[axis] >= 0) & (idx[axis] < source.shape[axis])
+        slab = out[:, :, k0:k0 + len(k)]
+        slab[inside] = data[idx[0][inside], idx[1][inside], idx[2][inside]]
     return out

@@ -158,7 +158,15 @@ def read_label_table(path) -> pd.DataFrame:
     bad = table.loc[idx.isna() | (idx != idx.round()), "index"].tolist()
     if bad:
         raise RegionError(f"{path}: label-table index values must be integers, found {bad[:5]}")
-    table = table.assign(index=idx.astype(np.int64), name=table["name"].astype(str))
+    names = table["name"]
+    blank = names.isna().to_numpy() | names.astype(str).str.strip().isin(["", "n/a", "nan", "NaN"]).to_numpy()
+    if blank.any():
+        where = [f"line {i + 2} (index {table['index'].iloc[i]})" for i in np.flatnonzero(blank)[:10]]
+        raise RegionError(
+            f"{path}: {int(blank.sum())} region(s) without a name ({', '.join(where)}); every label needs a name in "
+            "the `name` column (a region with no name would be lost); fill in the names or remove those rows"
+        )
+    table = table.assign(index=idx.astype(np.int64), name=names.astype(str))
     dup = table.loc[table["index"].duplicated(), "index"].tolist()
     if dup:
         raise RegionError(f"{path}: label-table index values repeat: {dup[:5]}; each index names one region")
@@ -299,6 +307,12 @@ class Mask(_Source):
         return [_Region(self.name, vox, None, self._described({"kind": "mask", "image": os.fspath(self.image)}))]
 
 
+#: Largest sphere radius accepted (mm): far beyond any brain, small enough that the sums stay finite.
+MAX_RADIUS_MM = 1000.0
+#: Largest absolute sphere centre coordinate accepted (mm).
+MAX_COORDINATE_MM = 1e5
+
+
 @dataclass(frozen=True)
 class Sphere(_Source):
     """A sphere at a world coordinate: voxels whose centres lie within ``radius`` mm of ``center``.
@@ -320,13 +334,22 @@ class Sphere(_Source):
     kind = "sphere"
 
     def __post_init__(self):
-        c = tuple(float(v) for v in self.center)
-        if len(c) != 3 or not all(np.isfinite(c)):
-            raise UsageError(f"sphere {self.name!r}: center must be three finite numbers (x, y, z in mm), got {self.center}")
-        if not (np.isfinite(self.radius) and self.radius > 0):
-            raise UsageError(f"sphere {self.name!r}: radius must be a positive number of mm, got {self.radius}")
+        try:
+            c = tuple(float(v) for v in self.center)
+        except (TypeError, ValueError, OverflowError):
+            c = ()
+        if len(c) != 3 or not all(np.isfinite(c)) or max(abs(v) for v in c) > MAX_COORDINATE_MM:
+            raise UsageError(f"sphere {self.name!r}: center must be three finite numbers (x, y, z in mm, each within "
+                             f"+-{MAX_COORDINATE_MM:g}), got {self.center}")
+        try:
+            radius = float(self.radius)
+        except (TypeError, ValueError, OverflowError):
+            radius = float("nan")
+        if not (np.isfinite(radius) and 0 < radius <= MAX_RADIUS_MM):
+            raise UsageError(f"sphere {self.name!r}: radius must be a positive number of mm up to {MAX_RADIUS_MM:g} "
+                             f"(a brain is about 200 mm across), got {self.radius}")
         object.__setattr__(self, "center", c)
-        object.__setattr__(self, "radius", float(self.radius))
+        object.__setattr__(self, "radius", radius)
 
     def realise(self, grid, *, atol, log):
         centre_vox = grid.world_to_voxel(self.center)

@@ -15,7 +15,7 @@ import sys
 import warnings
 
 from .. import __version__
-from ..errors import RoikitError, RoikitWarning, UsageError
+from ..errors import RoikitError, RoikitWarning, UsageError, describe_os_error
 
 __all__ = ["main", "build_parser"]
 
@@ -69,8 +69,19 @@ def main(argv: list[str] | None = None) -> int:
     except UsageError as exc:
         print(f"roikit {args.command}: error: {exc}", file=sys.stderr)
         return 2
-    except RoikitError as exc:
+    except RoikitError as exc:  # before OSError: InputFileError and OutputWriteError also subclass it
         print(f"roikit {args.command}: error: {exc}", file=sys.stderr)
+        return 1
+    except OSError as exc:  # last safety net: an OS error that no layer turned into a roikit error
+        print(f"roikit {args.command}: error: {describe_os_error(exc.filename or '(unnamed file)', exc, action='use')}",
+              file=sys.stderr)
+        return 1
+    except MemoryError:
+        print(f"roikit {args.command}: error: not enough memory; an input is larger than this machine can hold "
+              "(or its header is corrupt)", file=sys.stderr)
+        return 1
+    except RecursionError:
+        print(f"roikit {args.command}: error: an input is nested too deeply to read", file=sys.stderr)
         return 1
     except KeyboardInterrupt as exc:
         detail = f" ({exc.args[0]})" if exc.args and isinstance(exc.args[0], str) else ""

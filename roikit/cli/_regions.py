@@ -7,7 +7,7 @@ import sys
 
 from .._tables import write_table
 from ..errors import UsageError
-from ..images import Grid, read_header
+from ..images import Grid, read_grid
 from ..regions import Atlas, Mask, ProbabilityMap
 from ._sources import add_region_options, region_set_from_args
 
@@ -26,10 +26,10 @@ def add_parser(subparsers) -> None:
 
 def _grid(args: argparse.Namespace, regions) -> Grid:
     if args.like:
-        return read_header(args.like).grid
+        return read_grid(args.like)
     for source in regions.sources:
         if isinstance(source, (Atlas, Mask, ProbabilityMap)):
-            return read_header(source.image).grid
+            return read_grid(source.image)
     raise UsageError("spheres alone have no grid; give --like MAP to place them on a map's grid")
 
 

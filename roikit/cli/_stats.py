@@ -35,7 +35,9 @@ def add_parser(subparsers) -> None:
     g.add_argument("--group", metavar="COLUMN", help="two-group: participants.tsv column holding the groups")
     g.add_argument("--levels", metavar="L1,L2", help="two-group: the two levels compared (term 'L1 - L2')")
     g.add_argument("--welch", action="store_true", help="two-group: Welch's unequal-variance t-test")
-    g.add_argument("--formula", metavar="FORMULA", help="model formula, e.g. \"value ~ age + group\"")
+    g.add_argument("--formula", metavar="FORMULA", help="model formula, e.g. \"value ~ age + group\": column names "
+                   "(`in backquotes` with spaces), 0/1, + - * : / ( ), (a + b)**2, C(x), log(x), center(x), "
+                   "scale(x); never run as code")
     g.add_argument("--tau2", metavar="METHOD", help="precision-weighted: between-participant variance estimator "
                    "(reml, ml, dl, pm)")
     g.add_argument("--random", metavar="TERMS", help="mixed: random terms per participant, e.g. \"1 + contrast\"")

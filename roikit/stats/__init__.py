@@ -78,6 +78,19 @@ def _check_options(func, design: str, options: dict) -> None:
         )
 
 
+def _gate_formulas(options: dict) -> None:
+    """Every formula option passes the formula gate (:mod:`roikit.stats.formula`) before a design sees it."""
+    from .formula import parse_formula
+
+    for name in ("formula", "random"):
+        if name in options:
+            parse_formula(options[name], parameter=name)
+    for name in ("crossed", "group"):
+        value = options.get(name)
+        if value is not None and not isinstance(value, str):
+            raise UsageError(f"{name}: expected a column name (a string), got {value!r}")
+
+
 def _resolve_seed(seed: Seed) -> tuple[object, np.random.Generator]:
     """(recorded seed, generator). ``None`` draws fresh entropy and records it so the run can be repeated."""
     if isinstance(seed, np.random.Generator):
@@ -160,6 +173,7 @@ def run_design(
     options = {k: v for k, v in options.items() if v is not None}
     evidence = {k: options.pop(k) for k in ("equivalence", "bayes_factor", "prior_scale") if k in options}
     _check_options(func, design, options)
+    _gate_formulas(options)
 
     results = func(values, participants=participants, confidence=confidence, **options)
     results = results.reset_index(drop=True)

@@ -376,12 +376,23 @@ def _prepare_two_group(values, participants, contrast, group, levels, *, warn: b
             MissingValueWarning,
             stacklevel=4,
         )
+    others = labels[labels.notna() & ~labels.isin(levels)]
+    if len(others) and warn:
+        by_level = "; ".join(f"{lev}: {', '.join(map(str, others.index[others == lev]))}"
+                             for lev in pd.unique(others))
+        warnings.warn(
+            f"two-group on {contrast!r}: {len(others)} participant(s) in other level(s) of column {group!r} than "
+            f"{levels[0]!r} and {levels[1]!r} are not part of this comparison: {by_level}",
+            MissingValueWarning,
+            stacklevel=4,
+        )
     keep = labels.isin(levels).to_numpy()
     y = y[keep]
     in_first = (labels[keep] == levels[0]).to_numpy()
-    excluded = missing_by_region(y)
+    missing = missing_by_region(y)
+    excluded = [list(no_group) + list(e) for e in missing]  # excluded_ids: also those without a group value
     if warn:
-        warn_exclusions(regions, excluded, context=f"two-group on {contrast!r}", stacklevel=5)
+        warn_exclusions(regions, missing, context=f"two-group on {contrast!r}", stacklevel=5)
     return y, regions, excluded, in_first, levels
 
 
@@ -498,31 +509,19 @@ def _collinear_message(x: np.ndarray, names: Sequence[str], where: str) -> str:
 
 
 def _parse_formula(formula: str):
-    import formulaic
+    from .formula import parse_formula
 
-    if not isinstance(formula, str) or "~" not in formula:
-        raise UsageError(f"formula must look like 'value ~ age + group', got {formula!r}")
-    lhs, rhs = formula.split("~", 1)
-    if lhs.strip() not in ("", "value"):
-        raise UsageError(
-            f"formula {formula!r}: the left-hand side must be 'value' (the region value), got {lhs.strip()!r}"
-        )
-    try:
-        rhs_formula = formulaic.Formula(rhs)
-    except Exception as exc:  # formulaic raises several parser errors
-        raise UsageError(f"formula {formula!r} could not be parsed: {exc}") from None
-    return rhs, rhs_formula
+    return parse_formula(formula, parameter="formula", tilde=True)
 
 
 def _prepare_glm(values, participants, contrast, formula, *, center=True, warn=True):
     _require("contrast", contrast, "glm", "--contrast")
     _require("formula", formula, "glm", "--formula")
-    import formulaic
 
-    rhs, rhs_formula = _parse_formula(formula)
+    parsed = _parse_formula(formula)
     y = pivot_contrast(values, contrast)
     regions = list(y.columns)
-    variables = sorted(v for v in rhs_formula.required_variables if v not in ("np", "C", "value"))
+    variables = sorted(parsed.variables)
     p_columns = [] if participants is None else [c for c in participants.columns if c != "participant_id"]
     unknown = [v for v in variables if v not in p_columns]
     varying = [v for v in unknown if v in _REGION_VARYING or v in values.columns]
@@ -553,20 +552,8 @@ def _prepare_glm(values, participants, contrast, formula, *, center=True, warn=T
         )
     data = data[~incomplete]
     y = y[~incomplete]
-    centered: list[str] = []
-    if center:
-        for v in variables:
-            col = data[v]
-            if pd.api.types.is_numeric_dtype(col) and not pd.api.types.is_bool_dtype(col):
-                data[v] = col.astype(float) - col.astype(float).mean()
-                centered.append(v)
-    try:
-        mm = formulaic.model_matrix(rhs_formula, data.reset_index(drop=True), na_action="raise")
-    except Exception as exc:
-        raise DesignError(f"glm formula {formula!r} could not be evaluated on participants.tsv: {exc}") from None
-    x = np.asarray(mm, dtype=float)
-    names = list(mm.model_spec.column_names)
-    term_columns = {str(t): list(idx) for t, idx in mm.model_spec.term_indices.items()}
+    x, names, term_columns, centered = parsed.design(data.reset_index(drop=True), center=center,
+                                                     context=f"glm formula {formula!r}")
     if np.linalg.matrix_rank(x) < x.shape[1]:
         raise DesignError(_collinear_message(x, names, ""))
     excluded = missing_by_region(y)
@@ -657,7 +644,8 @@ def glm(
     contrast : str
         Contrast modelled.
     formula : str
-        Wilkinson formula, e.g. ``"value ~ age + group"`` (formulaic syntax: ``C(site)``, ``age:group`` ...).
+        Wilkinson formula, e.g. ``"value ~ age + group"`` (roikit's grammar, :mod:`roikit.stats.formula`:
+        ``C(site)``, ``age:group``, ``log(age)``, ``(a + b)**2`` ...; never run as code).
     center : bool
         Mean-centre the numeric covariates (over the participants in the model) before building the design, so
         the intercept is the mean response at the average covariate value. Categorical columns are not centred.

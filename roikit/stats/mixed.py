@@ -23,7 +23,7 @@ from scipy import stats as _st
 from ..errors import ConvergenceError, DesignError, DiagnosticWarning, UsageError
 from ._common import COLUMN_DESCRIPTIONS
 from ._registry import register
-from .precision import _centre_numeric, _design_matrix, _formula_rhs, _required_variables
+from .precision import _design_matrix, _formula_rhs, _required_variables
 
 __all__ = ["RandomFactor", "MixedFit", "fit_mixed", "satterthwaite", "mixed"]
 
@@ -734,10 +734,10 @@ def mixed(
     regions = region_order(values)
     frame = frame[complete].reset_index(drop=True)
     centred: list[str] = []
-    if center:
-        frame, centred = _centre_numeric(frame, [v for v in numeric_cols if v in fixed_vars])
-    X_all, names, terms = _design_matrix(rhs, frame)
-    Zr_all, rnames, _ = _design_matrix(random_rhs, frame, parameter="random")
+    if center:  # centred inside the design, after transforms such as log() (same columns in both parts)
+        centred = [v for v in numeric_cols if v in fixed_vars]
+    X_all, names, terms = _design_matrix(rhs, frame, center=centred)
+    Zr_all, rnames, _ = _design_matrix(random_rhs, frame, parameter="random", center=centred)
     # excluded observations, per region, named by participant
     dropped = data.loc[~complete, ["participant_id", "region"]]
     excluded = [list(pd.unique(dropped.loc[dropped["region"] == r, "participant_id"])) for r in regions]

@@ -324,30 +324,18 @@ def fit_precision_weighted(
 
 # --------------------------------------------------------------------------- formulas (shared with mixed)
 def _formula_rhs(formula: str, *, parameter: str = "formula") -> str:
-    """Right-hand side of ``'value ~ rhs'`` (or of a bare ``'rhs'``); the left-hand side must be ``value``."""
-    if not isinstance(formula, str) or not formula.strip():
-        raise UsageError(f"{parameter}: expected a formula such as 'value ~ age + group', got {formula!r}")
-    if "~" in formula:
-        lhs, rhs = formula.split("~", 1)
-        if lhs.strip() not in ("", "value"):
-            raise UsageError(
-                f"{parameter}: the left-hand side must be 'value' (the region values column), found "
-                f"{lhs.strip()!r}; write e.g. 'value ~ {rhs.strip()}'"
-            )
-    else:
-        rhs = formula
-    if not rhs.strip():
-        raise UsageError(f"{parameter}: empty right-hand side in {formula!r}; write e.g. 'value ~ 1'")
-    return rhs.strip()
+    """Right-hand side of ``'value ~ rhs'`` (or of a bare ``'rhs'``) after the formula gate accepted the formula."""
+    from .formula import parse_formula
+
+    parse_formula(formula, parameter=parameter)
+    return formula.split("~", 1)[-1].strip()
 
 
 def _required_variables(rhs: str, *, parameter: str = "formula") -> list[str]:
-    import formulaic
+    """Columns named by a right-hand side (through the formula gate)."""
+    from .formula import parse_formula
 
-    try:
-        return sorted(str(v) for v in formulaic.Formula(rhs).required_variables)
-    except Exception as exc:  # formulaic raises several parser errors
-        raise UsageError(f"{parameter}: cannot parse {rhs!r} ({exc}); write e.g. 'value ~ age + group'") from None
+    return sorted(parse_formula(rhs, parameter=parameter).variables)
 
 
 def _centre_numeric(frame: pd.DataFrame, variables: Sequence[str]) -> tuple[pd.DataFrame, list[str]]:
@@ -362,18 +350,16 @@ def _centre_numeric(frame: pd.DataFrame, variables: Sequence[str]) -> tuple[pd.D
     return frame, centred
 
 
-def _design_matrix(rhs: str, frame: pd.DataFrame, *, parameter: str = "formula"):
-    """Model matrix (ndarray), column names and term -> column indices for ``rhs`` on ``frame``."""
-    import formulaic
+def _design_matrix(rhs: str, frame: pd.DataFrame, *, parameter: str = "formula", center=False):
+    """Model matrix (ndarray), column names and term -> column indices for ``rhs`` on ``frame``.
 
-    try:
-        mm = formulaic.model_matrix(rhs, frame, na_action="raise")
-    except Exception as exc:
-        raise DesignError(f"{parameter}: cannot build the model matrix of {rhs!r} ({exc}); check the column "
-                          "names and that categorical columns have at least two levels") from None
-    names = [str(c) for c in mm.columns]
-    terms = {str(t): list(idx) for t, idx in mm.model_spec.term_indices.items()}
-    return mm.to_numpy(dtype=float), names, terms
+    Built by the formula gate (:meth:`roikit.stats.formula.Formula.design`) from raw columns; ``center`` (True or
+    the columns to centre) mean-centres numeric predictors there, after transforms such as ``log`` were applied.
+    """
+    from .formula import parse_formula
+
+    X, names, terms, _centred = parse_formula(rhs, parameter=parameter).design(frame, center=center)
+    return X, names, terms
 
 
 def _participant_frame(ids, participants, variables, *, context):
@@ -505,6 +491,8 @@ def precision_weighted(
         X = np.ones((len(ids), 1))
         names, formula_text = ["mean"], None
     else:
+        from .formula import parse_formula
+
         rhs = _formula_rhs(formula)
         variables = [c for c in _required_variables(rhs) if c != "value"]
         if variables:
@@ -516,9 +504,7 @@ def precision_weighted(
                             reason=f"covariate of the formula missing ({', '.join(variables)})")
         keep = ~frame.index.isin(miss_cov)
         frame_keep = frame[keep].reset_index(drop=True)
-        if center:
-            frame_keep, centred = _centre_numeric(frame_keep, variables)
-        Xk, names, _terms = _design_matrix(rhs, frame_keep)
+        Xk, names, _terms, centred = parse_formula(rhs, parameter="formula").design(frame_keep, center=center)
         X = np.zeros((len(ids), Xk.shape[1]))
         X[keep] = Xk
         mask &= keep[:, None]

@@ -3,7 +3,6 @@
 from __future__ import annotations
 
 import difflib
-import re
 import tomllib
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -15,11 +14,12 @@ import pandas as pd
 from .._typing import PathLike
 from ..errors import InputFileError, RoikitError, UsageError
 from ..extraction import STATISTICS, VALUE_COLUMNS, find_maps, read_map_list, read_participants
-from ..images import read_header
+from ..images import read_grid
 from ..regions import Atlas, Mask, ProbabilityMap, Regions, RegionSet, Sphere, read_label_table
 from ..stats import available_designs, run_design
 from ..stats._registry import DESIGNS, PERMUTATIONS
 from ..stats.corrections import parse_corrections
+from ..stats.formula import TRANSFORMS, formula_problems
 
 
 class StudyError(UsageError):
@@ -69,8 +69,8 @@ _NEEDS = {
 _NEEDS_VARIANCE = ("precision-weighted", "fixed-effects")
 _TAU2 = ("reml", "ml", "dl", "pm")
 
-#: Transforms a study-file formula may call (formulaic's, by these names only).
-FORMULA_TRANSFORMS = ("C", "center", "log", "scale", "standardize")
+#: Transforms a formula may apply to one column (the formula gate's, :data:`roikit.stats.formula.TRANSFORMS`).
+FORMULA_TRANSFORMS = TRANSFORMS
 
 #: What ``run_study`` writes into the output folder (besides the cache).
 OUTPUTS = ("region_values.tsv", "region_values.json", "group_results.tsv", "group_results.json", "tables",
@@ -119,14 +119,6 @@ def _listing(items: Iterable[Any], limit: int = 12) -> str:
 # Formula check
 # --------------------------------------------------------------------------------------------------
 
-_TOKEN = re.compile(
-    r"\s*(?:(?P<number>(?:\d+\.?\d*|\.\d+)(?:[eE][+-]?\d+)?)"
-    r"|(?P<name>[A-Za-z_][A-Za-z0-9_]*)"
-    r"|(?P<quoted>`[^`]*`)"
-    r"|(?P<op>\*\*|[~+\-*:/()]))"
-)
-
-
 def check_formula(
     formula: str,
     columns: Iterable[str],
@@ -134,14 +126,14 @@ def check_formula(
     what: str = "formula",
     allow_tilde: bool = True,
 ) -> list[str]:
-    """Check a formula from a study file token by token; return the problems found (empty if none).
+    """Check a formula from a study file through roikit's formula gate; return the problems found (empty if none).
 
-    Allowed tokens: column names (of the region values table and participants.tsv; a name with other
-    characters may be written in backticks), numbers, the operators ``~ + - * : / ** ( )`` and the
-    transforms :data:`FORMULA_TRANSFORMS` (``C``, ``center``, ``log``, ``scale``, ``standardize``),
-    each immediately followed by ``(``. Anything else -- attribute access (``np.log``), ``I()``, strings,
-    commas, braces, Python expressions -- is refused, so a study file cannot run code through the formula
-    library (formulaic evaluates unknown calls as Python).
+    The same gate guards every entry point (command line, study file, Python): see :mod:`roikit.stats.formula`
+    for the grammar. Allowed: column names (of the region values table and participants.tsv; a name with other
+    characters may be written in backticks), ``0``/``1``, the operators ``~ + - * : / ** ( )`` (``**`` with a
+    whole number up to 8) and the transforms :data:`FORMULA_TRANSFORMS` (``C``, ``center``, ``log``, ``scale``,
+    ``standardize``) applied to one column. Anything else -- attribute access (``np.log``), ``I()``, strings,
+    commas, braces, Python expressions -- is refused, and no part of a formula is ever evaluated.
 
     Parameters
     ----------
@@ -164,55 +156,9 @@ def check_formula(
     >>> check_formula("value ~ age + C(group)", ["value", "age", "group"])
     []
     >>> check_formula("value ~ np.log(age)", ["value", "age"])[0][:40]
-    "formula 'value ~ np.log(age)': 'np' is n"
+    "formula 'value ~ np.log(age)': token '.'"
     """
-    if not isinstance(formula, str) or not formula.strip():
-        return [f"{what} must be a non-empty string, e.g. 'value ~ age + group'; got {formula!r}"]
-    columns = [str(c) for c in columns]
-    allowed = "column names, numbers, ~ + - * : / ** ( ) and the transforms " + ", ".join(FORMULA_TRANSFORMS)
-    problems: list[str] = []
-    tokens: list[tuple[str, str]] = []
-    pos = 0
-    text = formula.rstrip()
-    while pos < len(text):
-        m = _TOKEN.match(text, pos)
-        if not m or m.end() == pos:
-            bad = text[pos:].lstrip()[:1]
-            return [f"{what} {formula!r}: token {bad!r} is not allowed in a study file (allowed: {allowed})"]
-        kind = m.lastgroup
-        tokens.append((kind, m.group(kind)))
-        pos = m.end()
-    n_tilde = sum(1 for k, t in tokens if t == "~")
-    if n_tilde and not allow_tilde:
-        problems.append(f"{what} {formula!r}: '~' is not allowed here (write the terms only, e.g. '1 + contrast')")
-    elif n_tilde > 1:
-        problems.append(f"{what} {formula!r}: '~' appears {n_tilde} times; write one 'value ~ terms'")
-    elif n_tilde == 1:
-        lhs = [t for _, t in tokens[: [t for _, t in tokens].index("~")]]
-        if lhs not in ([], ["value"]):
-            problems.append(f"{what} {formula!r}: the left-hand side must be 'value', found {' '.join(lhs)!r}")
-    depth = 0
-    for i, (kind, tok) in enumerate(tokens):
-        following = tokens[i + 1][1] if i + 1 < len(tokens) else None
-        if kind == "name" and following == "(":
-            if tok not in FORMULA_TRANSFORMS:
-                problems.append(f"{what} {formula!r}: {tok!r} is not an allowed transform (allowed: "
-                                f"{', '.join(FORMULA_TRANSFORMS)}){_suggest(tok, FORMULA_TRANSFORMS)}")
-        elif kind in ("name", "quoted"):
-            name = tok.strip("`") if kind == "quoted" else tok
-            if name not in columns:
-                problems.append(f"{what} {formula!r}: {tok!r} is not a column of the region values table or "
-                                f"participants.tsv{_suggest(name, columns)} (columns: {_listing(columns, 20)})")
-        elif tok == "(":
-            depth += 1
-        elif tok == ")":
-            depth -= 1
-            if depth < 0:
-                problems.append(f"{what} {formula!r}: unbalanced ')'")
-                depth = 0
-    if depth > 0:
-        problems.append(f"{what} {formula!r}: unbalanced '('")
-    return problems
+    return formula_problems(formula, columns, what=what, allow_tilde=allow_tilde)
 
 
 # --------------------------------------------------------------------------------------------------
@@ -429,6 +375,12 @@ def load_study(path: PathLike) -> Study:
         raise StudyError(path, [f"not valid TOML: {exc}"]) from None
     except UnicodeDecodeError as exc:
         raise StudyError(path, [f"not UTF-8 text: {exc}"]) from None
+    except RecursionError:
+        raise StudyError(path, ["not a usable study file: arrays or tables are nested too deeply for the TOML "
+                                "reader; a study file needs at most a few levels of nesting"]) from None
+    except OSError as exc:
+        raise InputFileError(f"{path}: cannot read the study file ({exc.strerror or exc}); check its "
+                             "permissions") from None
     c = _Checker(path.resolve() if not path.is_absolute() else path)
     c.keys(raw, "", "")
 
@@ -474,7 +426,7 @@ def load_study(path: PathLike) -> Study:
     realised = None
     if not c.problems and maps is not None and regions is not None:
         try:
-            grid = read_header(maps["path"].iloc[0]).grid
+            grid = read_grid(maps["path"].iloc[0])
             realised = regions.realise(grid)
         except RoikitError as exc:
             c.add("regions", str(exc))

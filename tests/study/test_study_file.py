@@ -2,8 +2,12 @@
 
 from __future__ import annotations
 
+import json
+import shutil
+
 import pytest
 
+from roikit.cli import main
 from roikit.errors import InputFileError, UsageError
 from roikit.study import StudyError, check_formula, load_study
 
@@ -189,7 +193,7 @@ def test_region_operations_and_circular_flag(study_dir):
     "value ~ standardize(age):group + scale(age) / group",
     "~ age",
     "value ~ 0 + `group`",
-    "value ~ 1e-3 + age",
+    "value ~ 1 + age - 1 + 1",
 ])
 def test_allowed_formulas(formula):
     assert check_formula(formula, COLUMNS) == []
@@ -198,6 +202,9 @@ def test_allowed_formulas(formula):
 @pytest.mark.parametrize("formula, token", [
     ("value ~ np.log(age)", "token '.'"),
     ("value ~ I(age**2)", "'I' is not an allowed transform"),
+    ("value ~ (age + group)**1000000000", "power 1000000000 is out of range"),
+    ("value ~ 0", "the model has no terms"),
+    ("value ~ age + 3", "the number 3 is not a term"),
     ("value ~ __import__('os').system('x')", "token \"'\" is not allowed"),
     ("value ~ __import__(age)", "'__import__' is not an allowed transform"),
     ("value ~ age; import os", "token ';'"),
@@ -221,6 +228,45 @@ def test_a_refused_formula_never_reaches_the_formula_library(study_dir, tmp_path
     text += ('\n[[analysis]]\ndesign = "glm"\ncontrast = "novel"\n'
              f"formula = \"value ~ __import__('pathlib').Path('{marker}').touch() + age\"\n")
     (study_dir / "study.toml").write_text(text)
-    with pytest.raises(StudyError, match="formula .*__import__.*: token \"'\" is not allowed in a study file"):
+    with pytest.raises(StudyError, match="formula .*__import__.*: token \"'\" is not allowed in a formula"):
         load_study(study_dir / "study.toml")
     assert not marker.exists()
+
+
+@pytest.mark.parametrize("key, payload", [
+    ("formula", "value ~ {__import__('pathlib').Path('MARKER').touch()}"),
+    ("formula", "value ~ contrast + `{open('MARKER', 'w')}`"),
+    ("random", "1 + {__import__('os').system('touch MARKER')}"),
+    ("random", "1 + __import__('os').system('touch MARKER')"),
+    ("crossed", "__import__('os').system('touch MARKER')"),
+])
+def test_payloads_in_formula_random_and_crossed_never_run(study_dir, tmp_path, key, payload):
+    marker = tmp_path / "ran"
+    payload = payload.replace("MARKER", str(marker))
+    text = (study_dir / "study.toml").read_text()
+    block = {"formula": "value ~ contrast", "random": "1", "crossed": None}
+    block[key] = payload
+    text += '\n[[analysis]]\ndesign = "mixed"\n' + "".join(
+        f"{k} = {json.dumps(v)}\n" for k, v in block.items() if v is not None)
+    (study_dir / "study.toml").write_text(text)
+    with pytest.raises(StudyError) as info:
+        load_study(study_dir / "study.toml")
+    assert isinstance(info.value, UsageError)
+    assert f"analysis[3].{key}" in str(info.value)
+    assert not marker.exists()
+    status = main(["run", str(study_dir / "study.toml"), "--out", str(tmp_path / "out")])
+    assert status == 2
+    assert not marker.exists()
+
+
+def test_glob_characters_in_the_study_folder_are_literal(study_dir, tmp_path):
+    # a sibling folder whose name the '*' and '[...]' of the study folder's name would match as a glob
+    weird = tmp_path / "wayfinding [pilot]*"
+    decoy = tmp_path / "wayfinding [pilot]-other"
+    shutil.copytree(study_dir, weird)
+    shutil.copytree(study_dir, decoy)
+    (decoy / "maps" / "sub-99_contrast-novel_effect.nii.gz").write_bytes(
+        (study_dir / "maps" / "sub-01_contrast-novel_effect.nii.gz").read_bytes())
+    study = load_study(weird / "study.toml")
+    assert "sub-99" not in set(study.maps["participant_id"])
+    assert all(str(p).startswith(str(weird)) for p in study.maps["path"])
