@@ -53,7 +53,14 @@ import warnings
 from pathlib import Path
 from typing import Any, Iterable, Iterator
 
-from .errors import OutputExistsError, OutputLockedError, OutputWriteError, RoikitError, RoikitWarning
+from .errors import (
+    OutputExistsError,
+    OutputLockedError,
+    OutputWriteError,
+    RoikitError,
+    RoikitWarning,
+    describe_os_error,
+)
 
 MANIFEST = ".roikit-manifest.json"
 LOCK = ".roikit-lock"
@@ -118,9 +125,9 @@ def _changed(path: Path, entry: dict) -> bool:
     return _sha256(path) != entry.get("sha256")
 
 
-def _os_error(exc: OSError, what: str) -> RoikitError:
-    return OutputWriteError(f"{what}: {exc.strerror or exc} ({exc.filename or ''}); check the folder's permissions "
-                          "and free space")
+def _os_error(exc: OSError, path, doing: str = "write", note: str = "") -> RoikitError:
+    """One line: the path, what failed, the operating system's reason and what to do (``describe_os_error``)."""
+    return OutputWriteError(describe_os_error(path, exc, action=doing) + note)
 
 
 # --------------------------------------------------------------------------------------------------
@@ -262,7 +269,7 @@ def folder_lock(folder: os.PathLike | str, command: str, *, wait: float = 0.0) -
                 f"{holder.get('since', '?')}) is writing into this folder; wait for it to finish or choose "
                 f"another output folder (remove {path} only if no such command runs)")
         except OSError as exc:
-            raise _os_error(exc, f"{folder}: cannot create the lock file") from exc
+            raise _os_error(exc, folder, "create the lock file in") from exc
         with os.fdopen(fd, "w", encoding="utf-8") as fh:
             json.dump(record, fh)
         break
@@ -307,8 +314,8 @@ def recover(folder: os.PathLike | str) -> bool:
         try:
             _roll_forward(folder, plan)
         except OSError as exc:
-            raise _os_error(exc, f"{folder}: cannot finish replacing the outputs of an interrupted earlier run "
-                                 f"(plan {PLAN})") from exc
+            raise _os_error(exc, folder, f"finish replacing the outputs of an interrupted earlier run (plan {PLAN}) in"
+                            ) from exc
         finished = True
         warnings.warn(RoikitWarning(
             f"{folder}: finished replacing outputs that an interrupted earlier run had started "
@@ -501,7 +508,7 @@ class FolderOutputs:
         try:
             self.folder.mkdir(parents=True, exist_ok=True)
         except OSError as exc:
-            raise _os_error(exc, f"{self.folder}: cannot create the output folder") from exc
+            raise _os_error(exc, self.folder, "create the output folder") from exc
         self._lock = folder_lock(self.folder, self.writer)
         self._lock.__enter__()
         try:
@@ -544,9 +551,8 @@ class FolderOutputs:
                             replaced=old, manifest=manifest)
         except OSError as exc:
             self._committed = (self.folder / PLAN).exists()
-            raise _os_error(exc, f"{self.folder}: replacing the outputs failed"
-                            + ("; the next roikit run into this folder finishes it" if self._committed else "")
-                            ) from exc
+            raise _os_error(exc, self.folder, "replace the outputs in",
+                            "; the next roikit run into this folder finishes it" if self._committed else "") from exc
         self._committed = True
         return paths
 
@@ -612,7 +618,7 @@ def write_files(folder: os.PathLike | str, files: dict[str, bytes], *, writer: s
         folder.mkdir(parents=True, exist_ok=True)
         staging = _staging(folder)
     except OSError as exc:
-        raise _os_error(exc, f"{folder}: cannot write there") from exc
+        raise _os_error(exc, folder) from exc
     try:
         try:
             for name, data in files.items():
@@ -620,7 +626,7 @@ def write_files(folder: os.PathLike | str, files: dict[str, bytes], *, writer: s
                     fh.write(data)
                 os.chmod(staging / name, 0o666 & ~_umask())
         except OSError as exc:
-            raise _os_error(exc, f"{folder / next(iter(files))}: cannot write") from exc
+            raise _os_error(exc, folder / next(iter(files))) from exc
         with folder_lock(folder, writer, wait=wait):
             recover(folder)
             check_files([folder / name for name in files], writer=writer, overwrite=overwrite)
@@ -630,9 +636,8 @@ def write_files(folder: os.PathLike | str, files: dict[str, bytes], *, writer: s
                                replaced=[], manifest=manifest)
             except OSError as exc:
                 pending = (folder / PLAN).exists()
-                raise _os_error(exc, f"{folder}: replacing {', '.join(files)} failed"
-                                + ("; the next roikit command writing there finishes it" if pending else "")
-                                ) from exc
+                raise _os_error(exc, folder / ", ".join(files), note=(
+                    "; the next roikit command writing there finishes replacing them" if pending else "")) from exc
     finally:
         if not (folder / PLAN).exists():
             shutil.rmtree(staging, ignore_errors=True)

@@ -170,18 +170,23 @@ def write_table(
         check_output(path.parent / name, overwrite=overwrite)
     path.parent.mkdir(parents=True, exist_ok=True)
     temps: dict[str, str] = {}
+    current = path
     try:
         for name, content in files.items():
+            current = path.parent / name
             fd, temps[name] = tempfile.mkstemp(prefix=f".{name}.", suffix=".tmp", dir=path.parent)
             with os.fdopen(fd, "wb") as fh:
                 fh.write(content)
             os.chmod(temps[name], 0o666 & ~_umask())
         for name, tmp in temps.items():
-            os.replace(tmp, path.parent / name)
-    except BaseException:
+            current = path.parent / name
+            os.replace(tmp, current)
+    except BaseException as exc:
         for tmp in temps.values():
             if os.path.exists(tmp):
                 os.unlink(tmp)
+        if isinstance(exc, OSError):  # disk full, permissions, name too long: one line naming the file
+            raise OutputWriteError(describe_os_error(current, exc)) from None
         raise
     return path
 
