@@ -23,7 +23,7 @@ from scipy import stats as _st
 from ..errors import ConvergenceError, DesignError, DiagnosticWarning, UsageError
 from ._common import COLUMN_DESCRIPTIONS
 from ._registry import register
-from .precision import _centre_numeric, _design_matrix, _formula_rhs, _required_variables
+from .precision import _design_matrix, _formula_rhs, _required_variables
 
 __all__ = ["RandomFactor", "MixedFit", "fit_mixed", "satterthwaite", "mixed"]
 
@@ -533,6 +533,260 @@ def _fit_region(payload: dict) -> dict:
     return out
 
 
+# --------------------------------------------------------------------------- all regions at once (random intercept)
+#: relative variance ratios (participant variance / residual variance) of the starting grid of the batched fit
+_RATIO_GRID = np.concatenate([[0.0], np.logspace(-8, 6, 57)])
+
+
+class _InterceptBatch:
+    """Profiled (restricted) likelihood of many regions at once for ``y = X b + u_participant + e``.
+
+    Every region keeps its own rows (missing values differ between regions); arrays are padded to the longest
+    region, and padded rows carry zeros, so they add nothing. With ``s = sigma_u^2 / sigma^2`` and per
+    participant ``k_i`` observations, sums ``S_X,i`` and ``S_y,i``, the relative precision is
+    ``V_s^-1 = I - Z diag(c) Z'`` with ``c_i = s / (1 + s k_i)``, so every quantity the criterion needs is a
+    participant-level sum: ``X'V^-1X = X'X - sum_i c_i S_X,i S_X,i'`` (= R_X'R_X), ``log|L|^2 = sum_i log(1 + s k_i)``,
+    ``r2 = y'V^-1y - b'(X'V^-1X)^-1 b``. The derivative in ``s`` is analytic:
+    ``d r2/ds = -sum_i (S_y,i - S_X,i'beta)^2 / (1 + s k_i)^2``,
+    ``d log|R_X|^2/ds = -sum_i S_X,i'(X'V^-1X)^-1 S_X,i / (1 + s k_i)^2``, ``d log|L|^2/ds = sum_i k_i / (1 + s k_i)``.
+    This is the criterion of :func:`fit_mixed` (Bates et al. 2015) for one scalar ``theta = sqrt(s)``; for a
+    balanced design its minimum is the ANOVA closed form (between-participant variance
+    ``max(0, (MS_participant - MS_error) / k)``), which the tests check.
+    """
+
+    def __init__(self, payloads: Sequence[dict], reml: bool):
+        R = len(payloads)
+        p = payloads[0]["X"].shape[1]
+        n_max = max(len(pl["y"]) for pl in payloads)
+        N = max(pl["factors"][0].n_levels for pl in payloads)
+        X = np.zeros((R, n_max, p))
+        y = np.zeros((R, n_max))
+        onehot = np.zeros((R, n_max, N))
+        n = np.empty(R)
+        for r, pl in enumerate(payloads):
+            m = len(pl["y"])
+            X[r, :m] = pl["X"]
+            y[r, :m] = pl["y"]
+            onehot[r, np.arange(m), pl["factors"][0].codes] = 1.0
+            n[r] = m
+        self.R, self.p, self.N, self.reml = R, p, N, reml
+        self.X, self.y, self.onehot, self.n = X, y, onehot, n
+        self.dof = n - p if reml else n
+        self.k = onehot.sum(1)
+        self.SX = np.einsum("rnk,rnp->rkp", onehot, X)
+        self.XtX = np.einsum("rnp,rnq->rpq", X, X)
+        # the criterion from y centred where X holds a constant column (r2 unchanged, no precision lost)
+        rows = np.arange(n_max)[None, :] < n[:, None]
+        const = np.array([bool(np.any(np.all(pl["X"] == pl["X"][:1], axis=0) & (pl["X"][0] != 0)))
+                          for pl in payloads])
+        shift = np.where(const, y.sum(1) / n, 0.0)
+        yc = np.where(rows, y - shift[:, None], 0.0)
+        self._set_y(yc)
+        self._raw = y
+
+    def _set_y(self, y):
+        self.Sy = np.einsum("rnk,rn->rk", self.onehot, y)
+        self.Xty = np.einsum("rnp,rn->rp", self.X, y)
+        self.yty = np.einsum("rn,rn->r", y, y)
+
+    def evaluate(self, s: np.ndarray, *, grad: bool = True):
+        """(criterion, d criterion / ds, beta, A = X'V_s^-1 X) for every region at its own ratio ``s``."""
+        s = np.asarray(s, dtype=float)
+        sk = s[:, None] * self.k
+        d = 1.0 / (1.0 + sk)
+        c = s[:, None] * d
+        A = self.XtX - np.einsum("rk,rkp,rkq->rpq", c, self.SX, self.SX)
+        b = self.Xty - np.einsum("rk,rkp,rk->rp", c, self.SX, self.Sy)
+        yvy = self.yty - (c * self.Sy**2).sum(1)
+        sign, ldx = np.linalg.slogdet(A)
+        ok = sign > 0
+        A_safe = np.where(ok[:, None, None], A, np.eye(self.p)[None])
+        beta = np.linalg.solve(A_safe, b[..., None])[..., 0]
+        r2 = yvy - (b * beta).sum(1)
+        ok &= r2 > 0
+        with np.errstate(invalid="ignore", divide="ignore"):
+            ldl = np.log1p(sk).sum(1)
+            crit = ldl + self.dof * (1 + np.log(2 * np.pi * np.where(ok, r2, 1.0) / self.dof))
+            if self.reml:
+                crit = crit + ldx
+        crit = np.where(ok, crit, np.inf)
+        if not grad:
+            return crit, None, beta, A_safe
+        dc = d**2
+        q = np.einsum("rkp,rkp->rk", self.SX, np.linalg.solve(A_safe, np.swapaxes(self.SX, 1, 2)).swapaxes(1, 2))
+        resid = self.Sy - np.einsum("rkp,rp->rk", self.SX, beta)
+        with np.errstate(invalid="ignore", divide="ignore"):
+            deriv = (self.k * d).sum(1) - self.dof * (dc * resid**2).sum(1) / r2
+            if self.reml:
+                deriv = deriv - (dc * q).sum(1)
+        return crit, np.where(ok, deriv, np.nan), beta, A_safe
+
+    def minimise(self) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        """(s, criterion, max |gradient in theta|) per region: grid, then bisection on the analytic derivative."""
+        grid = _RATIO_GRID
+        values = np.stack([self.evaluate(np.full(self.R, g), grad=False)[0] for g in grid], axis=1)  # (R, G)
+        j = np.argmin(values, axis=1)
+        lo = grid[np.maximum(j - 1, 0)]
+        hi = grid[np.minimum(j + 1, grid.size - 1)]
+        _, d_lo, _, _ = self.evaluate(lo)
+        _, d_hi, _, _ = self.evaluate(hi)
+        bisect = (d_lo < 0) & (d_hi > 0)
+        a, b = lo.copy(), hi.copy()
+        for _ in range(80):
+            mid = 0.5 * (a + b)
+            _, dm, _, _ = self.evaluate(np.where(bisect, mid, lo))
+            a = np.where(bisect & (dm < 0), mid, a)
+            b = np.where(bisect & ~(dm < 0), mid, b)
+            if np.all(~bisect | (b - a <= 1e-15 * np.maximum(b, 1e-300))):
+                break
+        candidates = np.stack([grid[j], np.where(bisect, 0.5 * (a + b), grid[j]), np.zeros(self.R)], axis=1)
+        crits = np.stack([self.evaluate(candidates[:, t], grad=False)[0] for t in range(3)], axis=1)
+        best = np.argmin(crits, axis=1)
+        s = candidates[np.arange(self.R), best]
+        crit, deriv, _, _ = self.evaluate(s)
+        # gradient in theta = sqrt(s), as fit_mixed checks it (zero at the boundary, where only s > 0 is allowed)
+        grad_theta = np.where(s > 0, 2 * np.sqrt(s) * np.abs(deriv), 0.0)
+        at_edge = (j == grid.size - 1) | ~np.isfinite(crit)
+        return s, crit, np.where(at_edge, np.inf, grad_theta)
+
+    def finish(self, s: np.ndarray) -> dict[str, np.ndarray]:
+        """Estimates at ``s``: beta (raw y), sigma2, the participant variance, cov(beta), deviance."""
+        self._set_y(self._raw)
+        crit, _, beta, A = self.evaluate(s, grad=False)
+        sk = s[:, None] * self.k
+        c = s[:, None] * (1.0 / (1.0 + sk))
+        b = self.Xty - np.einsum("rk,rkp,rk->rp", c, self.SX, self.Sy)
+        yvy = self.yty - (c * self.Sy**2).sum(1)
+        r2 = yvy - (b * beta).sum(1)
+        sigma2 = r2 / self.dof
+        Ainv = np.linalg.inv(A)
+        return {"beta": beta, "sigma2": sigma2, "var_u": s * sigma2, "cov_beta": sigma2[:, None, None] * Ainv,
+                "deviance": crit, "s": s}
+
+    def satterthwaite_parts(self, est: dict) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        """(C, dC/dphi (R, 2, p, p), cov(phi) (R, 2, 2)) with phi = (participant variance, residual variance).
+
+        The same quantities as :func:`_satterthwaite_parts`, from participant-level sums:
+        ``V^-1 = (I - Z diag(c) Z') / sigma2``, ``G = V^-1 X``, ``Z'G = diag(d) S_X / sigma2`` (``d_i = 1/(1+s k_i)``),
+        ``P = V^-1 - G C G'`` (ML: ``V^-1``); information ``I_11 = ||Z'PZ||^2 / 2``, ``I_12 = ||PZ||^2 / 2``,
+        ``I_22 = ||P||^2 / 2`` (Frobenius norms).
+        """
+        s, sigma2, C = est["s"], est["sigma2"], est["cov_beta"]
+        k, SX, onehot = self.k, self.SX, self.onehot
+        d = 1.0 / (1.0 + s[:, None] * k)
+        c = s[:, None] * d
+        inv_s2 = 1.0 / sigma2
+        G = (self.X - np.einsum("rnk,rk,rkp->rnp", onehot, c, SX)) * inv_s2[:, None, None]
+        ZG = d[..., None] * SX * inv_s2[:, None, None]
+        dC1 = C @ np.swapaxes(ZG, 1, 2) @ ZG @ C
+        GtG = np.swapaxes(G, 1, 2) @ G
+        dC2 = C @ GtG @ C
+        # V^-1 Z: row i holds d[code_i] / sigma2 in its participant's column
+        VZ = onehot * (d * inv_s2[:, None])[:, None, :]
+        ZVZ = k * d * inv_s2[:, None]  # diagonal of Z'V^-1Z
+        # ||V^-1||_F^2 = sum over participants of (k - 2 c k + c^2 k^2) / sigma2^2
+        vv = (k - 2 * c * k + c**2 * k**2).sum(1) * inv_s2**2
+        if self.reml:
+            GC = G @ C
+            PZ = VZ - GC @ np.swapaxes(ZG, 1, 2)
+            ZPZ = -(ZG @ C @ np.swapaxes(ZG, 1, 2))
+            ZPZ[:, np.arange(self.N), np.arange(self.N)] += ZVZ
+            # G'V^-1G = (G'G - (Z'G)' diag(c) (Z'G)) / sigma2
+            GVG = (GtG - np.swapaxes(ZG, 1, 2) @ (c[..., None] * ZG)) * inv_s2[:, None, None]
+            CG = C @ GtG
+            tr_pp = vv - 2 * np.einsum("rij,rji->r", C, GVG) + np.einsum("rij,rji->r", CG, CG)
+        else:
+            PZ = VZ
+            ZPZ = np.zeros((self.R, self.N, self.N))
+            ZPZ[:, np.arange(self.N), np.arange(self.N)] = ZVZ
+            tr_pp = vv
+        info = np.empty((self.R, 2, 2))
+        info[:, 0, 0] = 0.5 * np.einsum("rij,rij->r", ZPZ, ZPZ)
+        info[:, 0, 1] = info[:, 1, 0] = 0.5 * np.einsum("rij,rij->r", PZ, PZ)
+        info[:, 1, 1] = 0.5 * tr_pp
+        cov_phi = np.linalg.pinv(info)
+        return C, np.stack([dC1, dC2], axis=1), cov_phi
+
+
+def _fit_intercept_batch(payloads: Sequence[dict]) -> tuple[list[dict | None], dict]:
+    """Fit every region's random-intercept model at once; ``None`` where the batched fit fails its checks
+    (those regions go to :func:`fit_mixed`). Returns the per-region results (as :func:`_fit_region`) and timing-free
+    diagnostics."""
+    first = payloads[0]
+    reml, df_method, level = first["reml"], first["df_method"], first["confidence"]
+    batch = _InterceptBatch(payloads, reml)
+    s, _, grad = batch.minimise()
+    est = batch.finish(s)
+    ok = np.isfinite(est["deviance"]) & (grad < GRADIENT_TOL) & np.isfinite(est["sigma2"]) & (est["sigma2"] > 0)
+    C, dC, cov_phi = batch.satterthwaite_parts(est)
+    R, p = batch.R, batch.p
+    beta = est["beta"]
+    out: list[dict | None] = []
+    term_rows: list[list[dict]] = [[] for _ in range(R)]
+    for term, idx in first["terms"].items():
+        if len(idx) == 1:
+            j = idx[0]
+            b = beta[:, j]
+            se = np.sqrt(C[:, j, j])
+            stat = b / se
+            if df_method == "satterthwaite":
+                g = dC[:, :, j, j]
+                with np.errstate(divide="ignore", invalid="ignore"):
+                    df = 2 * C[:, j, j] ** 2 / np.einsum("rk,rkl,rl->r", g, cov_phi, g)
+                crit = _st.t.ppf(0.5 + level / 2, df)
+                pval = 2 * _st.t.sf(np.abs(stat), df)
+            else:
+                df = np.full(R, np.nan)
+                crit = np.full(R, _st.norm.ppf(0.5 + level / 2))
+                pval = 2 * _st.norm.sf(np.abs(stat))
+            for r in range(R):
+                term_rows[r].append(dict(term=first["names"][j], estimate=float(b[r]), se=float(se[r]),
+                                         df=float(df[r]), statistic=float(stat[r]),
+                                         statistic_type="t" if df_method == "satterthwaite" else "z",
+                                         p=float(pval[r]), ci_low=float(b[r] - crit[r] * se[r]),
+                                         ci_high=float(b[r] + crit[r] * se[r]), df1=np.nan))
+        else:
+            q = len(idx)
+            ix = np.ix_(idx, idx)
+            Cs = C[:, ix[0], ix[1]]
+            bs = beta[:, idx]
+            F = np.einsum("rq,rq->r", bs, np.linalg.solve(Cs, bs[..., None])[..., 0]) / q
+            if df_method == "satterthwaite":
+                lam, U = np.linalg.eigh(Cs)
+                g = np.einsum("rqm,rkqt,rtm->rmk", U, dC[:, :, ix[0], ix[1]], U)  # (R, q, 2)
+                with np.errstate(divide="ignore", invalid="ignore"):
+                    nu = 2 * lam**2 / np.einsum("rmk,rkl,rml->rm", g, cov_phi, g)
+                    E = np.where(nu > 2, nu / (nu - 2), 0.0).sum(1)
+                df = np.where(E > q, 2 * E / (E - q), nu.min(1))
+                pval = _st.f.sf(F, q, df)
+            else:
+                df = np.full(R, np.inf)
+                pval = _st.chi2.sf(F * q, q)
+            for r in range(R):
+                term_rows[r].append(dict(term=term, estimate=np.nan, se=np.nan, df=float(df[r]),
+                                         statistic=float(F[r]), statistic_type="F", p=float(pval[r]), ci_low=np.nan,
+                                         ci_high=np.nan, df1=float(q)))
+    for r in range(R):
+        if not ok[r]:
+            out.append(None)
+            continue
+        pl = payloads[r]
+        X = pl["X"]
+        var_u = float(est["var_u"][r])
+        sigma2 = float(est["sigma2"][r])
+        fit = MixedFit(beta=beta[r], cov_beta=C[r], sigma2=sigma2, covariances=[np.array([[var_u]])],
+                       theta=np.array([np.sqrt(s[r])]), deviance=float(est["deviance"][r]), reml=reml,
+                       converged=True, boundary=bool(np.sqrt(s[r]) < BOUNDARY_TOL), optimizer="batched-profiled",
+                       n=int(batch.n[r]), p=p, attempts={"batched": {"max_abs_gradient": float(grad[r])}})
+        var_fixed = float(np.var(X @ beta[r], ddof=1))
+        total = var_fixed + var_u + sigma2
+        out.append({"fit": fit, "terms": term_rows[r], "var_fixed": var_fixed, "var_random": [var_u],
+                    "r2_marginal": var_fixed / total, "r2_conditional": (var_fixed + var_u) / total,
+                    "icc": var_u / (var_u + sigma2)})
+    return out, {"n_fallback": int((~ok).sum())}
+
+
+
 # --------------------------------------------------------------------------- the design
 def _split_list(option, *, parameter: str) -> list[str] | None:
     if option is None:
@@ -583,9 +837,15 @@ def _check_support(region, factors: Sequence[RandomFactor], X: np.ndarray, names
 _MIXED_DESCRIPTIONS = {
     "random": "random terms per participant (random intercept '1', slopes ...)",
     "crossed": "column whose levels (e.g. stimuli) get a crossed random intercept; n/a if none",
+    "nested": "column whose levels get a random intercept within each participant (labels made unique per "
+              "participant, as (1 | participant/column)); n/a if none",
     "estimation": "reml (restricted maximum likelihood) or ml",
     "converged": "true where an optimiser reached a point passing the gradient check (else ConvergenceError)",
-    "boundary": "true where a random-effect SD is < 1e-4 x the residual SD (variance component at its boundary)",
+    "boundary": "true where a random-effect SD is < 1e-4 x the residual SD (variance component at its boundary) or "
+                "the participant covariance is singular; boundary_terms names which",
+    "boundary_terms": "the variance components at the boundary, comma-separated, named as their columns "
+                      "(sd_participant_load: SD < 1e-4 x residual SD; corr_participant_load: correlation at +-1; "
+                      "'participant covariance': singular otherwise); empty if none",
     "sd_participant": "SD of the random participant intercept",
     "sd_residual": "residual SD",
     "icc": "participant variance / (all random-effect variances + residual variance)",
@@ -593,12 +853,36 @@ _MIXED_DESCRIPTIONS = {
     "r2_conditional": "(fixed + random-effect variance) / total variance (Nakagawa & Schielzeth 2013)",
     "n_participants": "participants with observations in this region",
     "n_stimuli": "levels of the crossed column with observations in this region (n/a without crossed)",
+    "n_nested": "levels of the nested column within participants (participant x level pairs) in this region "
+                "(n/a without nested)",
     "n_observations": "observations (rows) in this region's fit",
+    "n_excluded_observations": "observations of this region left out (value or a model variable missing)",
+    "n_excluded_participants": "participants left out of this region entirely (no complete observation); "
+                               "excluded_ids also lists those with only some observations left out",
     "deviance": "minimised REML criterion (estimation reml) or -2 log-likelihood (ml)",
-    "optimizer": "scipy optimiser whose solution was kept",
+    "optimizer": "scipy optimiser whose solution was kept ('batched-profiled': all regions' random-intercept "
+                 "models minimised together on the analytic derivative of the profiled criterion)",
+    "variance_total": "sum of the variance components (random intercepts, random slopes as they add to one "
+                      "observation, residual): the denominator of effect_size d_wkj",
 }
 for _name, _text in _MIXED_DESCRIPTIONS.items():  # describe our columns in the results sidecar
     COLUMN_DESCRIPTIONS.setdefault(_name, _text)
+
+
+def _describe_dynamic(columns: Sequence[str]) -> dict[str, str]:
+    """Descriptions of the columns named after model terms (sd_participant_<slope>, corr_..., sd_<crossed>)."""
+    out = {}
+    for c in columns:
+        if c.startswith("sd_participant_"):
+            out[c] = f"SD of the random participant slope of {c[len('sd_participant_'):]}"
+        elif c.startswith("corr_participant_") and "_with_" in c:
+            a, b = c[len("corr_participant_"):].split("_with_", 1)
+            out[c] = f"correlation of the random participant slopes of {a} and {b}"
+        elif c.startswith("corr_participant_"):
+            out[c] = f"correlation of the random participant intercept and slope of {c[len('corr_participant_'):]}"
+        elif c.startswith("sd_") and c not in ("sd_participant", "sd_residual"):
+            out[c] = f"SD of the random intercept of {c[3:]} (crossed, or nested within participant)"
+    return out
 
 
 @register("mixed")
@@ -610,14 +894,18 @@ def mixed(
     formula: str | None = None,
     random: str = "1",
     crossed: str | None = None,
+    nested: str | None = None,
     contrast: str | Sequence[str] | None = None,
+    contrasts: pd.DataFrame | str | None = None,
+    region_table: pd.DataFrame | str | None = None,
+    estimation: Literal["reml", "ml"] | None = None,
     reml: bool = True,
     df_method: Literal["satterthwaite", "z"] = "satterthwaite",
     center: bool = True,
     n_jobs: int = 1,
     executor=None,
 ) -> pd.DataFrame:
-    """Linear mixed model per region with random participant effects and an optional crossed random intercept.
+    """Linear mixed model per region with random participant effects and optional crossed or nested intercepts.
 
     Parameters
     ----------
@@ -628,57 +916,75 @@ def mixed(
     confidence : float
         Level of the confidence intervals.
     formula : str
-        Fixed effects, e.g. ``"value ~ contrast * group"``; terms may name any column of the values table or of
-        participants.tsv. Numeric variables are mean-centred (``center=False`` keeps them raw).
+        Fixed effects, e.g. ``"value ~ contrast * group"`` or ``"value ~ load"``; terms may name any column of the
+        values table, contrasts.tsv, regions.tsv or participants.tsv. Numeric variables are mean-centred within
+        each region (``center=False`` keeps them raw).
     random : str
-        Random terms per participant: ``"1"`` (random intercept, default) or e.g. ``"1 + contrast"`` (random
+        Random terms per participant: ``"1"`` (random intercept, default) or e.g. ``"1 + load"`` (random
         slopes with an unstructured covariance).
     crossed : str, optional
-        Column (of the values table or participants.tsv) whose levels get a crossed random intercept, e.g.
-        ``"contrast"`` when the contrasts are the six towns (stimuli).
+        Column whose levels get a crossed random intercept, e.g. ``"contrast"`` when the contrasts are the six
+        towns (stimuli), or a contrasts.tsv column such as ``"town"``.
+    nested : str, optional
+        Column whose levels get a random intercept within each participant (runs or sessions): its labels are
+        made unique per participant, as ``(1 | participant/column)`` expands.
     contrast : str or sequence of str, optional
-        Contrasts to include (comma-separated); default all. Required when the table holds several contrasts and
-        neither ``formula`` nor ``crossed`` names ``contrast``.
+        Contrasts to include (comma-separated); default all. The model's variables must tell the contrasts'
+        rows apart (``contrast`` itself, or per-contrast columns such as ``load``); otherwise select one.
+    contrasts : DataFrame or path, optional
+        contrasts.tsv: column ``contrast`` plus per-contrast columns the model may name.
+    region_table : DataFrame or path, optional
+        regions.tsv: column ``region`` plus per-region columns.
+    estimation : {"reml", "ml"}, optional
+        REML (default) or ML (for likelihood-ratio comparisons of fixed effects); overrides ``reml``.
     reml : bool
-        REML (default) or ML (for likelihood-ratio comparisons of fixed effects).
+        The same choice as a flag (kept for compatibility).
     df_method : {"satterthwaite", "z"}
         Satterthwaite t/F (default) or Wald z / chi-square (never the default).
     center : bool
-        Mean-centre numeric predictors of ``formula``.
+        Mean-centre numeric predictors of ``formula`` within each region (the mean is recorded in ``centered``).
     n_jobs : int
-        Worker processes across regions (1: in this process).
+        Worker processes across regions for the models fitted region by region (1: in this process).
     executor : concurrent.futures.Executor, optional
-        Fit the regions on this executor instead (e.g. ``client.get_executor()`` of a Dask cluster);
-        ``n_jobs`` is then ignored. Results are identical to a serial run.
+        Fit those regions on this executor instead; ``n_jobs`` is then ignored. Results are identical.
 
     Returns
     -------
     DataFrame
         One row per region x fixed effect (a single-column term gives a t row named by its coefficient; a
-        multi-column term, such as a factor with three or more levels, one F row named by the term with
-        ``df1`` the numerator and ``df`` the denominator df; estimate/se/ci n/a). Contract columns (``n`` is the
-        number of participants; effect_size n/a: no standardised effect is defined here), common columns
-        (formula, df_method, df1, excluded_ids = participants with at least one observation left out ...), and
-        random, crossed, estimation, converged, boundary, sd_participant, sd_participant_<slope>,
-        sd_<crossed>, sd_residual, icc, r2_marginal, r2_conditional, n_participants, n_stimuli, n_observations,
-        deviance, optimizer, centered.
+        multi-column term one F row with ``df1`` the numerator and ``df`` the denominator df). Contract columns
+        (``n`` is the number of participants; t rows carry ``effect_size`` of type ``d_wkj``), common columns,
+        and random, crossed, nested, estimation, converged, boundary, boundary_terms, sd_participant,
+        sd_participant_<slope>, corr_participant_<slope>, sd_<crossed>, sd_<nested>, sd_residual,
+        variance_total, icc, r2_marginal, r2_conditional, n_participants, n_stimuli, n_nested, n_observations,
+        n_excluded_observations, n_excluded_participants, deviance, optimizer, centered.
 
     Notes
     -----
-    Fitted by profiled REML (:func:`fit_mixed`; several optimisers, best restricted likelihood kept; a
-    ConvergenceError names the region when none passes the gradient check). Satterthwaite df from
-    :func:`satterthwaite`; multi-df F after Fai & Cornelius (1996). R2 after Nakagawa & Schielzeth (2013),
-    random-slope variance after Johnson (2014). Checked against statsmodels ``MixedLM`` (random intercept), the
-    repeated-measures and split-plot ANOVA df of balanced designs, and the ANOVA expected mean squares of a
-    balanced crossed design.
+    Models with a random participant intercept only are fitted for all regions at once (:class:`_InterceptBatch`:
+    the profiled criterion from participant-level sums, minimised on its analytic derivative; a region failing
+    the gradient check goes to :func:`fit_mixed`). Other structures by :func:`fit_mixed` (several optimisers,
+    best restricted likelihood kept; a ConvergenceError names the region when none passes the gradient check).
+    Satterthwaite df from :func:`satterthwaite`; multi-df F after Fai & Cornelius (1996). R2 after Nakagawa &
+    Schielzeth (2013), random-slope variance after Johnson (2014).
+
+    Effect size ``d_wkj = b / sqrt(variance_total)`` with ``variance_total`` the sum of the variance components:
+    every random intercept variance, every random slope's average contribution to one observation's variance
+    (Johnson 2014), and the residual variance (after Westfall, Kenny & Judd 2014, who standardise a mean
+    difference by the square root of the summed variance components). For a 0/1 (treatment) coded contrast it is
+    the difference in SD units of one observation; its interval is n/a.
+
+    Checked against statsmodels ``MixedLM``, lme4's sleepstudy, Penicillin and Pastes fits (Bates et al. 2015),
+    the repeated-measures and split-plot ANOVA df and the ANOVA closed forms of balanced designs.
 
     Examples
     --------
     >>> from roikit.stats import run_design
-    >>> run_design(values, "mixed", formula="value ~ contrast * group", random="1 + contrast",
-    ...            contrast="novel,familiar", participants="participants.tsv")   # doctest: +SKIP
+    >>> run_design(values, "mixed", formula="value ~ load", random="1 + load",
+    ...            contrasts="contrasts.tsv")   # doctest: +SKIP
     """
-    from ._common import join_ids, join_participants, region_order, result_rows, warn_exclusions
+    from ._common import (attach_columns, join_ids, region_order, result_rows, side_table, spelled,
+                          warn_dropped_observations)
 
     context = "mixed"
     if formula is None:
@@ -687,82 +993,127 @@ def mixed(
         raise UsageError(f"df_method: found {df_method!r}, expected 'satterthwaite' (default) or 'z'")
     if isinstance(n_jobs, bool) or not isinstance(n_jobs, (int, np.integer)) or n_jobs < 1:
         raise UsageError(f"n_jobs: expected a positive integer, got {n_jobs!r}")
+    if estimation is not None:
+        est_name = str(estimation).strip().lower()
+        if est_name not in ("reml", "ml"):
+            raise spelled("estimation", "--estimation", UsageError,
+                          f"{{option}}: found {estimation!r}, expected 'reml' (default) or 'ml'")
+        if reml is not True and (est_name == "reml") != bool(reml):
+            raise UsageError(f"estimation={estimation!r} contradicts reml={reml!r}; give one of them")
+        reml = est_name == "reml"
+    reml = bool(reml)
     rhs = _formula_rhs(formula)
     random = "1" if random is None else str(random)
     random_rhs = _formula_rhs(random, parameter="random")
     fixed_vars = [v for v in _required_variables(rhs) if v != "value"]
     random_vars = _required_variables(random_rhs, parameter="random")
-    if crossed is not None:
-        crossed = str(crossed)
-        if crossed == "participant_id":
-            raise DesignError("mixed: crossed='participant_id' repeats the participant random effect; name another "
-                              "column (e.g. crossed='contrast' for stimuli)")
-    contrasts = _split_list(contrast, parameter="contrast")
+    for option, column in (("crossed", crossed), ("nested", nested)):
+        if column is not None and str(column) == "participant_id":
+            raise DesignError(f"mixed: {option}='participant_id' repeats the participant random effect; name another "
+                              "column (e.g. crossed='contrast' for stimuli, nested='run' for runs)")
+    crossed = None if crossed is None else str(crossed)
+    nested = None if nested is None else str(nested)
+    if crossed is not None and crossed == nested:
+        raise UsageError(f"mixed: {crossed!r} is given as both crossed and nested; choose one")
+    contrasts_table = side_table(contrasts, kind="contrasts")
+    regions_table = side_table(region_table, kind="regions")
+    selected = _split_list(contrast, parameter="contrast")
     data = values
-    if contrasts is not None:
-        unknown = [c for c in contrasts if c not in set(values["contrast"])]
+    if selected is not None:
+        unknown = [c for c in selected if c not in set(values["contrast"])]
         if unknown:
             raise DesignError(f"mixed: contrast(s) {', '.join(unknown)} not found; available: "
                               f"{', '.join(map(str, pd.unique(values['contrast'])))}")
-        data = values[values["contrast"].isin(contrasts)]
-    used = set(fixed_vars) | set(random_vars) | ({crossed} if crossed else set())
+        data = values[values["contrast"].isin(selected)]
+    extra = [c for c in (crossed, nested) if c is not None]
+    used = list(dict.fromkeys(fixed_vars + random_vars + extra))
+    data = data.reset_index(drop=True)
+    data, _sources = attach_columns(data, used, participants=participants, contrasts=contrasts_table,
+                                    region_table=regions_table, context=context)
     present = list(pd.unique(data["contrast"]))
     if len(present) > 1 and "contrast" not in used:
-        raise DesignError(
-            f"mixed: the values table holds {len(present)} contrasts ({', '.join(map(str, present))}) but neither "
-            "formula, random nor crossed names 'contrast'; select the contrasts to model with contrast='...' "
-            "(e.g. contrast='novel') or add contrast to the formula"
-        )
-    data = data.reset_index(drop=True)
-    from_participants = [v for v in sorted(used) if v not in data.columns]
-    if from_participants:
-        joined = join_participants(list(data["participant_id"].unique()), participants, from_participants)
-        data = data.join(joined, on="participant_id")
+        _check_distinguishable(data, used, present)
     frame = data.copy()
     numeric_cols = []
-    for name in sorted(used):
+    for name in used:
         col = frame[name]
         num = pd.to_numeric(col, errors="coerce") if name not in ("participant_id", "contrast", "region",
-                                                                  "session_id") else None
+                                                                  "session_id", crossed, nested) else None
         if num is not None and col.notna().sum() and num.notna().sum() == col.notna().sum() \
-                and name != crossed:
+                and not pd.api.types.is_bool_dtype(col):
             frame[name] = num.astype(float)
             numeric_cols.append(name)
         else:
             frame[name] = col.astype(object).where(col.notna(), None).map(lambda x: x if x is None else str(x))
-    complete = frame[sorted(used)].notna().all(axis=1).to_numpy() & np.isfinite(frame["value"].to_numpy(float))
+    complete = frame[used].notna().all(axis=1).to_numpy() & np.isfinite(frame["value"].to_numpy(float))
     regions = region_order(values)
+    # exclusions per region: observations, participants with some / all of their observations left out
+    region_codes = pd.Index(regions).get_indexer(data["region"])
+    n_dropped = np.bincount(region_codes[~complete], minlength=len(regions))
+    dropped = data.loc[~complete, ["participant_id", "region"]]
+    kept = data.loc[complete, ["participant_id", "region"]]
+    kept_pairs = set(zip(kept["region"], kept["participant_id"]))
+    partly = [list(pd.unique(dropped.loc[dropped["region"] == r, "participant_id"])) for r in regions]
+    wholly = [[pid for pid in ids if (r, pid) not in kept_pairs] for r, ids in zip(regions, partly)]
+    warn_dropped_observations(regions, n_dropped, partly, wholly, context=context,
+                              reason="value or a model variable missing")
     frame = frame[complete].reset_index(drop=True)
-    centred: list[str] = []
+    # centring within each region: each region's fit depends on that region's data only
+    means: dict[str, pd.Series] = {}
     if center:
-        frame, centred = _centre_numeric(frame, [v for v in numeric_cols if v in fixed_vars])
+        for name in [v for v in numeric_cols if v in fixed_vars]:
+            mean = frame.groupby("region", sort=False)[name].transform("mean")
+            means[name] = frame.groupby("region", sort=False)[name].mean()
+            frame[name] = frame[name] - mean
     X_all, names, terms = _design_matrix(rhs, frame)
     Zr_all, rnames, _ = _design_matrix(random_rhs, frame, parameter="random")
-    # excluded observations, per region, named by participant
-    dropped = data.loc[~complete, ["participant_id", "region"]]
-    excluded = [list(pd.unique(dropped.loc[dropped["region"] == r, "participant_id"])) for r in regions]
-    warn_exclusions(regions, excluded, context=context, reason="value or a formula variable missing")
 
     payloads = []
     region_meta = []
+    region_of_row = frame["region"].to_numpy()
+    pid_all = frame["participant_id"].to_numpy()
     for r in regions:
-        rows = np.flatnonzero(frame["region"].to_numpy() == r)
+        rows = np.flatnonzero(region_of_row == r)
         if rows.size == 0:
             raise DesignError(f"mixed: no complete observations in region {r!r}; check the missing values")
-        pid_codes, pid_levels = pd.factorize(frame["participant_id"].to_numpy()[rows])
+        pid_codes, pid_levels = pd.factorize(pid_all[rows])
         factors = [RandomFactor("participant", pid_codes.astype(int), Zr_all[rows], rnames)]
-        n_stim = np.nan
+        n_stim = n_nest = np.nan
         if crossed is not None:
             c_codes, c_levels = pd.factorize(frame[crossed].to_numpy()[rows])
             factors.append(RandomFactor(crossed, c_codes.astype(int), np.ones((rows.size, 1)), ["Intercept"]))
             n_stim = len(c_levels)
+        if nested is not None:
+            pairs = pd.Series(pid_all[rows]).astype(str) + "\x1f" + frame[nested].iloc[rows].astype(str).to_numpy()
+            n_codes, n_levels = pd.factorize(pairs.to_numpy())
+            factors.append(RandomFactor(nested, n_codes.astype(int), np.ones((rows.size, 1)), ["Intercept"]))
+            n_nest = len(n_levels)
         X = X_all[rows]
         _check_support(r, factors, X, names)
-        payloads.append({"y": frame["value"].to_numpy(float)[rows], "X": X, "factors": factors, "reml": bool(reml),
+        payloads.append({"y": frame["value"].to_numpy(float)[rows], "X": X, "factors": factors, "reml": reml,
                          "df_method": df_method, "confidence": confidence, "terms": terms, "names": names})
-        region_meta.append({"n_participants": len(pid_levels), "n_stimuli": n_stim, "n_observations": rows.size})
+        region_meta.append({"n_participants": len(pid_levels), "n_stimuli": n_stim, "n_nested": n_nest,
+                            "n_observations": rows.size})
+    if crossed is not None:
+        _warn_crossed_looks_nested(frame, crossed, regions)
 
-    results = _run_regions(payloads, regions, n_jobs, executor)
+    if crossed is None and nested is None and rnames == ["Intercept"]:
+        results, _info = _fit_intercept_batch(payloads)
+        redo = [i for i, res in enumerate(results) if res is None]
+        if redo:
+            again = _run_regions([payloads[i] for i in redo], [regions[i] for i in redo], n_jobs, executor)
+            for i, res in zip(redo, again):
+                results[i] = res
+    else:
+        results = _run_regions(payloads, regions, n_jobs, executor)
+
+    var_cols = _variance_columns(results, payloads, crossed, nested)
+    variance_total = [float(sum(res["var_random"]) + res["fit"].sigma2) for res in results]
+    boundary_terms = [_boundary_terms(res["fit"], payloads[0]["factors"], crossed, nested) for res in results]
+    centred_text = []
+    for r in regions:
+        parts = [f"{name} (mean {means[name].get(r, np.nan):.10g})" for name in means]
+        centred_text.append(", ".join(parts) if parts else None)
 
     frames = []
     n_terms = len(results[0]["terms"])
@@ -772,46 +1123,173 @@ def mixed(
             for key, val in res["terms"][t].items():
                 cols.setdefault(key, []).append(val)
         term = cols.pop("term")[0]
-        extra = _variance_columns(results, payloads, crossed)
+        is_t = cols["statistic_type"][0] in ("t", "z")
+        es = (np.asarray(cols["estimate"], dtype=float) / np.sqrt(variance_total)) if is_t else np.nan
         frames.append(result_rows(
             regions, design="mixed", term=term, confidence=confidence,
-            n=[m["n_participants"] for m in region_meta], effect_size=np.nan, effect_size_type=None,
-            contrast=",".join(map(str, contrasts if contrasts is not None else present)),
+            n=[m["n_participants"] for m in region_meta], effect_size=es, effect_size_type="d_wkj" if is_t else None,
+            contrast=",".join(map(str, selected if selected is not None else present)),
             formula=f"value ~ {rhs}", df_method=df_method, population_inference=True,
-            excluded_ids=[join_ids(e) for e in excluded], **cols,
-            random=random_rhs, crossed=crossed, estimation="reml" if reml else "ml",
-            converged=[res["fit"].converged for res in results], boundary=[res["fit"].boundary for res in results],
-            **extra,
+            excluded_ids=[join_ids(e) for e in partly], **cols,
+            random=random_rhs, crossed=crossed, nested=nested, estimation="reml" if reml else "ml",
+            converged=[res["fit"].converged for res in results],
+            boundary=[res["fit"].boundary or bool(bt) for res, bt in zip(results, boundary_terms)],
+            boundary_terms=[",".join(bt) for bt in boundary_terms],
+            **var_cols, variance_total=variance_total,
             icc=[res["icc"] for res in results], r2_marginal=[res["r2_marginal"] for res in results],
             r2_conditional=[res["r2_conditional"] for res in results],
             n_participants=[m["n_participants"] for m in region_meta],
             n_stimuli=[m["n_stimuli"] for m in region_meta],
+            n_nested=[m["n_nested"] for m in region_meta],
             n_observations=[m["n_observations"] for m in region_meta],
+            n_excluded_observations=[int(x) for x in n_dropped],
+            n_excluded_participants=[len(w) for w in wholly],
             deviance=[res["fit"].deviance for res in results], optimizer=[res["fit"].optimizer for res in results],
-            centered=",".join(centred) if centred else None,
+            centered=centred_text,
         ))
     out = pd.concat(frames, ignore_index=True)
-    flagged = [r for r, res in zip(regions, results) if res["fit"].boundary]
+    out.attrs["column_descriptions"] = _describe_dynamic(out.columns)
+    for name, text in out.attrs["column_descriptions"].items():
+        COLUMN_DESCRIPTIONS.setdefault(name, text)
+    flagged = [(r, bt) for r, res, bt in zip(regions, results, boundary_terms) if res["fit"].boundary or bt]
     if flagged:
         warnings.warn(
-            f"{context}: a random-effect variance is at its boundary (SD < {BOUNDARY_TOL:g} x residual SD) in "
-            f"{len(flagged)} region(s): {', '.join(flagged)}; the model is singular there (column 'boundary'); "
-            "consider a simpler random structure", DiagnosticWarning, stacklevel=3)
+            f"{context}: a random-effect variance is at its boundary (SD < {BOUNDARY_TOL:g} x residual SD, or a "
+            f"correlation at +-1) in {len(flagged)} region(s): "
+            + "; ".join(f"{r} ({', '.join(bt) or 'participant covariance'})" for r, bt in flagged)
+            + "; the model is singular there (columns 'boundary', 'boundary_terms'); consider a simpler random "
+            "structure", DiagnosticWarning, stacklevel=3)
     return out
 
 
-def _variance_columns(results, payloads, crossed) -> dict[str, list]:
+def _check_distinguishable(data: pd.DataFrame, used: Sequence[str], present: Sequence[str]) -> None:
+    """DesignError when two contrasts' rows have the same values of every model variable (they would be pooled
+    as replicates of one condition), for one participant in one region."""
+    from ._common import spelled
+
+    keys = ["participant_id", "region"] + [v for v in used if v not in ("participant_id", "region")]
+    frame = data[keys + ["contrast"]].astype(object).where(data[keys + ["contrast"]].notna(), "\x00n/a")
+    frame = frame.astype(str)
+    counts = frame.groupby(keys, sort=False)["contrast"].nunique()
+    bad = counts[counts > 1]
+    if bad.empty:
+        return
+    first = bad.index[0]
+    first = first if isinstance(first, tuple) else (first,)
+    mask = np.ones(len(frame), dtype=bool)
+    for k, v in zip(keys, first):
+        mask &= (frame[k] == v).to_numpy()
+    pooled = list(pd.unique(frame.loc[mask, "contrast"]))
+    what = ", ".join(used) if used else "none besides the intercept"
+    raise spelled(
+        "contrast='" + str(pooled[0]) + "'", "--contrast " + str(pooled[0]), DesignError,
+        f"mixed: the values table holds {len(present)} contrasts ({', '.join(map(str, present))}) and the model's "
+        f"variables ({what}) do not tell contrasts {', '.join(map(str, pooled[:4]))} apart (participant "
+        f"{first[0]}, region {first[1]!r}): their rows would be pooled as replicates; select the contrasts to "
+        f"model with {{option}}, add contrast to the formula, or name a per-contrast column that distinguishes them"
+    )
+
+
+def _warn_crossed_looks_nested(frame: pd.DataFrame, crossed: str, regions: Sequence[str]) -> None:
+    """Warn when a crossed factor behaves as if nested within participant.
+
+    Crossing means a level is the same entity for every participant, so its effect repeats across participants.
+    Where cells (participant x level) hold replicate observations, a two-way ANOVA on the cells tells: if the
+    participant x level interaction is large against the replicate error (F test p < .01) while the level main
+    effect is not larger than the interaction, the labels carry no shared effect: they look like labels that
+    restart within each participant (a, b, c in every participant), which is nesting.
+    """
+    flagged = []
+    for r in regions:
+        sub = frame.loc[frame["region"] == r, ["participant_id", crossed, "value"]]
+        cells = sub.groupby(["participant_id", crossed], sort=False)["value"]
+        n_cell = cells.size()
+        if n_cell.min() < 2 or sub["participant_id"].nunique() < 2 or sub[crossed].nunique() < 2:
+            continue
+        m = cells.mean().unstack()
+        if m.isna().any().any():
+            continue
+        a, b = m.shape
+        gm = m.to_numpy().mean()
+        inter = m.to_numpy() - m.to_numpy().mean(1, keepdims=True) - m.to_numpy().mean(0, keepdims=True) + gm
+        ms_int = (inter**2).sum() / ((a - 1) * (b - 1))
+        ms_lev = a * ((m.to_numpy().mean(0) - gm) ** 2).sum() / (b - 1)
+        within = sub["value"] - cells.transform("mean")
+        df_e = len(sub) - a * b
+        if df_e < 1:
+            continue
+        ms_e = float((within**2).sum()) / df_e
+        hm = float(len(n_cell) / (1.0 / n_cell).sum())  # harmonic mean cell size
+        f_int = hm * ms_int / ms_e if ms_e > 0 else np.inf
+        if _st.f.sf(f_int, (a - 1) * (b - 1), df_e) < 0.01 and ms_lev <= ms_int:
+            flagged.append(r)
+    if flagged:
+        warnings.warn(
+            f"mixed: the crossed column {crossed!r} looks nested within participant in {len(flagged)} region(s) "
+            f"({', '.join(flagged[:6])}{' ...' if len(flagged) > 6 else ''}): its levels' effects do not repeat "
+            "across participants (large participant x level variation, no larger level effect); if its labels "
+            f"restart within each participant, model it as nested={crossed!r} (--nested {crossed})",
+            DiagnosticWarning, stacklevel=4)
+
+
+def _boundary_terms(fit: MixedFit, factors: Sequence[RandomFactor], crossed, nested) -> list[str]:
+    """Names (as the result columns) of the variance components at the boundary of the parameter space."""
+    out = []
+    sigma = np.sqrt(fit.sigma2)
+    for f, S in zip(factors, fit.covariances):
+        if f.name == "participant":
+            names = ["sd_participant" if t == "Intercept" else f"sd_participant_{_snake(t)}" for t in f.terms]
+        else:
+            names = [f"sd_{_snake(f.name)}"]
+        sd = np.sqrt(np.clip(np.diag(S), 0, None))
+        small = sd < BOUNDARY_TOL * sigma
+        out.extend(n for n, s in zip(names, small) if s)
+        if f.r > 1:
+            corr_hit = False
+            for i in range(f.r):
+                for j in range(i + 1, f.r):
+                    if small[i] or small[j]:
+                        continue
+                    rho = S[i, j] / (sd[i] * sd[j])
+                    if abs(rho) > 1 - 1e-6:
+                        out.append(_corr_name(f.terms[i], f.terms[j]))
+                        corr_hit = True
+            if not corr_hit and not small.any():
+                T = _la.cholesky(S + 0.0 * np.eye(f.r), lower=True, check_finite=False) if np.all(
+                    np.linalg.eigvalsh(S) > 0) else None
+                if T is None or np.any(np.abs(np.diag(T)) < BOUNDARY_TOL * sigma):
+                    out.append("participant covariance")
+    return out
+
+
+def _corr_name(a: str, b: str) -> str:
+    if a == "Intercept":
+        return f"corr_participant_{_snake(b)}"
+    return f"corr_participant_{_snake(a)}_with_{_snake(b)}"
+
+
+def _variance_columns(results, payloads, crossed, nested=None) -> dict[str, list]:
     cols: dict[str, list] = {}
-    pf = payloads[0]["factors"][0]
+    factors = payloads[0]["factors"]
+    pf = factors[0]
     for a, term in enumerate(pf.terms):
         name = "sd_participant" if term == "Intercept" else f"sd_participant_{_snake(term)}"
         cols[name] = [float(np.sqrt(res["fit"].covariances[0][a, a])) for res in results]
     if "sd_participant" not in cols:
         cols["sd_participant"] = [np.nan] * len(results)
-    if crossed is not None:
-        cols[f"sd_{_snake(crossed)}"] = [float(np.sqrt(res["fit"].covariances[1][0, 0])) for res in results]
+    for a in range(pf.r):
+        for b in range(a + 1, pf.r):
+            vals = []
+            for res in results:
+                S = res["fit"].covariances[0]
+                den = np.sqrt(S[a, a] * S[b, b])
+                vals.append(float(S[a, b] / den) if den > 0 else np.nan)
+            cols[_corr_name(pf.terms[a], pf.terms[b])] = vals
+    for f_index, f in enumerate(factors[1:], start=1):
+        cols[f"sd_{_snake(f.name)}"] = [float(np.sqrt(res["fit"].covariances[f_index][0, 0])) for res in results]
     cols["sd_residual"] = [float(np.sqrt(res["fit"].sigma2)) for res in results]
     return cols
+
 
 
 def _fit_region_one_thread(payload: dict) -> dict:
