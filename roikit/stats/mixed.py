@@ -1005,7 +1005,7 @@ def mixed(
     rhs = _formula_rhs(formula)
     random = "1" if random is None else str(random)
     random_rhs = _formula_rhs(random, parameter="random")
-    fixed_vars = [v for v in _required_variables(rhs) if v != "value"]
+    fixed_vars = sorted((v for v in _required_variables(rhs) if v != "value"), key=lambda v: (rhs.find(v), v))
     random_vars = _required_variables(random_rhs, parameter="random")
     for option, column in (("crossed", crossed), ("nested", nested)):
         if column is not None and str(column) == "participant_id":
