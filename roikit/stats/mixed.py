@@ -490,6 +490,12 @@ def _fit_region(payload: dict) -> dict:
     """Fit one region (top-level so worker processes can run it)."""
     y, X, factors = payload["y"], payload["X"], payload["factors"]
     fit = fit_mixed(y, X, factors, reml=payload["reml"])
+    return _summarise_region(payload, fit)
+
+
+def _summarise_region(payload: dict, fit: MixedFit) -> dict:
+    """Tests of the fixed effects, variance summaries, R2 of one region's fit."""
+    X, factors = payload["X"], payload["factors"]
     out = {"fit": fit, "terms": []}
     df_method = payload["df_method"]
     level = payload["confidence"]
@@ -785,6 +791,217 @@ def _fit_intercept_batch(payloads: Sequence[dict]) -> tuple[list[dict | None], d
                     "icc": var_u / (var_u + sigma2)})
     return out, {"n_fallback": int((~ok).sum())}
 
+
+
+# --------------------------------------------------------------------------- all regions at once (one grouping factor)
+class _BlockBatch:
+    """Profiled (restricted) likelihood of many regions at once for one grouping factor with ``r`` random effects
+    (random intercept and slopes per participant, unstructured covariance).
+
+    With a single grouping factor ``Lambda' Z'Z Lambda + I`` is block diagonal, one ``r x r`` block per
+    participant, so the penalised least-squares system of Bates et al. (2015, eqs. 18-42) reduces to
+    participant-level cross-products ``Z_i'Z_i``, ``Z_i'X_i``, ``Z_i'y_i``: with ``L_i L_i' = T'Z_i'Z_iT + I``,
+    ``R_ZX,i = L_i^-1 T'Z_i'X_i``, ``c_u,i = L_i^-1 T'Z_i'y_i``: ``R_X'R_X = X'X - sum_i R_ZX,i'R_ZX,i``,
+    ``r2 = y'y - sum_i |c_u,i|^2 - b'(R_X'R_X)^-1 b`` with ``b = X'y - sum_i R_ZX,i'c_u,i``,
+    ``log|L|^2 = sum_i log|L_i|^2``. The same criterion as :func:`fit_mixed` evaluates, for every region at once.
+    """
+
+    def __init__(self, payloads: Sequence[dict], reml: bool):
+        R = len(payloads)
+        f0 = payloads[0]["factors"][0]
+        p = payloads[0]["X"].shape[1]
+        q = f0.r
+        N = max(pl["factors"][0].n_levels for pl in payloads)
+        self.R, self.p, self.q, self.N, self.reml = R, p, q, N, reml
+        self.ZtZ = np.zeros((R, N, q, q))
+        self.ZtX = np.zeros((R, N, q, p))
+        self.Zty = np.zeros((R, N, q))
+        self.XtX = np.zeros((R, p, p))
+        self.Xty = np.zeros((R, p))
+        self.yty = np.zeros(R)
+        self.n = np.empty(R)
+        for r, pl in enumerate(payloads):
+            X, y, f = pl["X"], pl["y"], pl["factors"][0]
+            if np.any(np.all(X == X[:1], axis=0) & (X[0] != 0)):
+                y = y - y.mean()  # r2 unchanged where X holds a constant column; no precision lost to the mean
+            onehot = np.zeros((len(y), N))
+            onehot[np.arange(len(y)), f.codes] = 1.0
+            Zw = onehot[:, :, None] * f.Z[:, None, :]  # (n, N, q)
+            self.ZtZ[r] = np.einsum("nka,nb->kab", Zw, f.Z)
+            self.ZtX[r] = np.einsum("nka,np->kap", Zw, X)
+            self.Zty[r] = np.einsum("nka,n->ka", Zw, y)
+            self.XtX[r] = X.T @ X
+            self.Xty[r] = X.T @ y
+            self.yty[r] = y @ y
+            self.n[r] = len(y)
+        self.dof = self.n - p if reml else self.n
+        self.tri = _tril_index(q)
+        self.diag = np.array([i == j for i, j in self.tri])
+
+    def _T(self, theta):
+        T = np.zeros((theta.shape[0], self.q, self.q))
+        for t, (i, j) in enumerate(self.tri):
+            T[:, i, j] = theta[:, t]
+        return T
+
+    def criterion(self, theta: np.ndarray, idx: np.ndarray | None = None) -> np.ndarray:
+        """Profiled criterion of the regions ``idx`` (default all) at their ``theta`` (one row per region)."""
+        ZtZ, ZtX, Zty, XtX, Xty, yty, dof = (self.ZtZ, self.ZtX, self.Zty, self.XtX, self.Xty, self.yty, self.dof)
+        if idx is not None:
+            ZtZ, ZtX, Zty, XtX, Xty, yty, dof = (a[idx] for a in (ZtZ, ZtX, Zty, XtX, Xty, yty, dof))
+        T = self._T(theta)
+        Tt = np.swapaxes(T, 1, 2)[:, None]
+        M = Tt @ ZtZ @ T[:, None]
+        M = M + np.eye(self.q)
+        try:
+            L = np.linalg.cholesky(M)
+        except np.linalg.LinAlgError:
+            return np.full(theta.shape[0], np.inf)
+        ld_l = 2 * np.log(np.diagonal(L, axis1=2, axis2=3)).sum((1, 2))
+        # one solve for [T'Z'X | T'Z'y] per participant block
+        rhs = Tt @ np.concatenate([ZtX, Zty[..., None]], axis=3)
+        sol = np.linalg.solve(L, rhs)
+        R_, N_ = sol.shape[:2]
+        flat = sol.reshape(R_, N_ * self.q, self.p + 1)
+        G = np.swapaxes(flat, 1, 2) @ flat  # (R, p+1, p+1): [R_ZX'R_ZX, R_ZX'c_u; ., |c_u|^2]
+        A = XtX - G[:, :self.p, :self.p]
+        b = Xty - G[:, :self.p, self.p]
+        cu2 = G[:, self.p, self.p]
+        sign, ld_x = np.linalg.slogdet(A)
+        ok = sign > 0
+        A = np.where(ok[:, None, None], A, np.eye(self.p))
+        beta = np.linalg.solve(A, b[..., None])[..., 0]
+        r2 = yty - cu2 - (b * beta).sum(1)
+        ok &= r2 > 0
+        with np.errstate(invalid="ignore", divide="ignore"):
+            crit = ld_l + dof * (1 + np.log(2 * np.pi * np.where(ok, r2, 1.0) / dof))
+            if self.reml:
+                crit = crit + ld_x
+        return np.where(ok, crit, np.inf)
+
+    def _gradient_hessian(self, theta, f0, h, idx):
+        """Finite-difference gradient and Hessian of the regions ``idx`` (all of them per evaluation): central
+        differences, forward ones for a diagonal element at its bound."""
+        R, k = theta.shape
+        at_bound = self.diag[None, :] & (theta < h)
+        g = np.zeros((R, k))
+        H = np.zeros((R, k, k))
+        fp = np.zeros((R, k))
+        for a in range(k):
+            e = np.zeros(k)
+            e[a] = h
+            fp[:, a] = self.criterion(theta + e, idx)
+            fm = self.criterion(np.where(at_bound[:, a:a + 1], theta + 2 * e, theta - e), idx)  # f(+2h) at a bound
+            central = ~at_bound[:, a]
+            g[:, a] = np.where(central, (fp[:, a] - fm) / (2 * h), (-3 * f0 + 4 * fp[:, a] - fm) / (2 * h))
+            H[:, a, a] = np.where(central, (fp[:, a] - 2 * f0 + fm) / h**2, (fm - 2 * fp[:, a] + f0) / h**2)
+        for a in range(k):
+            for b in range(a + 1, k):
+                e = np.zeros(k)
+                e[a] = e[b] = h
+                H[:, a, b] = H[:, b, a] = (self.criterion(theta + e, idx) - fp[:, a] - fp[:, b] + f0) / h**2
+        return g, H
+
+    def minimise(self, theta0: np.ndarray, *, iterations: int = 100) -> tuple[np.ndarray, np.ndarray]:
+        """Damped Newton steps for every region at once, each region until it converges.
+
+        The diagonal of T is bounded below by 0. A step moves at most 90% of the way to that bound (as interior
+        methods do), so a region does not land on the boundary by accident; a diagonal element below 1e-7 whose
+        gradient points outwards is set to 0 and held there.
+        """
+        theta = theta0.copy()
+        k = theta.shape[1]
+        f = self.criterion(theta)
+        done = ~np.isfinite(f)
+        for _ in range(iterations):
+            idx = np.flatnonzero(~done)
+            if not idx.size:
+                break
+            th, fa = theta[idx], f[idx]
+            g, H = self._gradient_hessian(th, fa, 1e-6, idx)
+            tiny = self.diag[None, :] & (th < 1e-7) & (g > 0)
+            th = np.where(tiny, 0.0, th)
+            fixed = self.diag[None, :] & (th <= 0) & (g > 0)
+            free = ~fixed
+            gf = np.where(free, g, 0.0)
+            Hf = np.where(free[:, :, None] & free[:, None, :], H, 0.0)
+            Hf = Hf + np.where(fixed[:, :, None], np.eye(k)[None], 0.0)
+            w, V = np.linalg.eigh(Hf)
+            w = np.maximum(np.abs(w), 1e-8 * np.maximum(np.abs(w).max(1, keepdims=True), 1.0))
+            step = -np.einsum("rij,rj,rkj,rk->ri", V, 1 / w, V, gf)
+            step = np.where(free, step, 0.0)
+            with np.errstate(divide="ignore", invalid="ignore"):
+                room = np.where(self.diag[None, :] & (step < 0) & (th > 0), 0.9 * th / -step, np.inf)
+            t = np.minimum(1.0, room.min(1))
+            fa = self.criterion(th, idx)
+            new = np.maximum(th + t[:, None] * step, np.where(self.diag, 0.0, -np.inf))
+            fn = self.criterion(new, idx)
+            for _h in range(40):  # halve until the criterion does not increase
+                worse = ~(fn <= fa)
+                if not worse.any():
+                    break
+                t = np.where(worse, t / 2, t)
+                new = np.where(worse[:, None], np.maximum(th + t[:, None] * step, np.where(self.diag, 0.0, -np.inf)),
+                               new)
+                fn = np.where(worse, self.criterion(new, idx), fn)
+            # the full step projected onto the bound, taken where it is better still (reaches boundary optima in one
+            # step instead of creeping towards them)
+            proj = np.maximum(th + step, np.where(self.diag, 0.0, -np.inf))
+            fp_ = self.criterion(proj, idx)
+            take = fp_ < fn
+            new = np.where(take[:, None], proj, new)
+            fn = np.where(take, fp_, fn)
+            improve = fn <= fa
+            change = np.abs(np.where(improve[:, None], new, th) - th).max(1)
+            gain = np.where(improve, fa - fn, 0.0)
+            theta[idx] = np.where(improve[:, None], new, th)
+            f[idx] = np.where(improve, fn, fa)
+            done[idx] = (change < 1e-9) | ((gain < 1e-11) & (np.abs(gf).max(1) < 1e-6)) | ~improve
+        return theta, f
+
+
+def _fit_block_batch(payloads: Sequence[dict]) -> list[dict | None]:
+    """Fit every region's model with one grouping factor (random intercept and slopes) at once; ``None`` where the
+    result fails the gradient check of :func:`fit_mixed` (those regions are refitted region by region)."""
+    first = payloads[0]
+    reml = first["reml"]
+    factors0 = first["factors"]
+    batch = _BlockBatch(payloads, reml)
+    R = batch.R
+    start = np.tile(_theta_start(factors0), (R, 1))
+    best_theta, best_f = batch.minimise(start)
+    for scale in (0.1, 3.0):  # further starts; keep each region's lowest criterion
+        theta, f = batch.minimise(start * scale)
+        better = f < best_f - 1e-10
+        best_theta = np.where(better[:, None], theta, best_theta)
+        best_f = np.where(better, f, best_f)
+    out: list[dict | None] = []
+    lower = _theta_lower(factors0)
+    for r, pl in enumerate(payloads):
+        y, X, factors = pl["y"], pl["X"], pl["factors"]
+        theta = _normalise_theta(best_theta[r], factors)
+        if not np.isfinite(best_f[r]):
+            out.append(None)
+            continue
+        Zs = _build_Z(factors, len(y))
+        fun = _CrossProducts(y, X, Zs, factors, reml)
+        grad = _projected_gradient(theta, fun, lower)
+        if not np.all(np.abs(grad) < GRADIENT_TOL):
+            out.append(None)
+            continue
+        n, p = X.shape
+        ld_l, ld_x, r2, beta, L, q = _pls(theta, y, X, Zs, factors)
+        dev = _criterion(ld_l, ld_x, r2, X.shape, reml)
+        sigma2 = r2 / (n - p) if reml else r2 / n
+        cov_beta = sigma2 * _la.cho_solve((L[q:, q:], True), np.eye(p))
+        Ts = _factor_T(theta, factors)
+        fit = MixedFit(beta=beta, cov_beta=cov_beta, sigma2=sigma2, covariances=[sigma2 * T @ T.T for T in Ts],
+                       theta=theta, deviance=float(dev), reml=reml, converged=True,
+                       boundary=bool(any(np.any(np.abs(np.diag(T)) < BOUNDARY_TOL) for T in Ts)),
+                       optimizer="batched-profiled", n=n, p=p,
+                       attempts={"batched": {"deviance": float(dev), "max_abs_gradient": float(np.max(np.abs(grad)))}})
+        out.append(_summarise_region(pl, fit))
+    return out
 
 
 # --------------------------------------------------------------------------- the design
@@ -1097,8 +1314,14 @@ def mixed(
     if crossed is not None:
         _warn_crossed_looks_nested(frame, crossed, regions)
 
-    if crossed is None and nested is None and rnames == ["Intercept"]:
-        results, _info = _fit_intercept_batch(payloads)
+    if crossed is None and nested is None:
+        from threadpoolctl import threadpool_limits
+
+        with threadpool_limits(limits=1, user_api="blas"):  # small matrices: threads only cost (see below)
+            if rnames == ["Intercept"]:
+                results, _info = _fit_intercept_batch(payloads)
+            else:
+                results = _fit_block_batch(payloads)
         redo = [i for i, res in enumerate(results) if res is None]
         if redo:
             again = _run_regions([payloads[i] for i in redo], [regions[i] for i in redo], n_jobs, executor)

@@ -822,6 +822,9 @@ def _check_analyses(c: _Checker, raw: dict, *, contrasts, participants, columns,
         if permutations and design not in PERMUTATIONS:
             c.add(f"{key}.permutations", f"design {design!r} has no permutation test; designs with one: "
                                          f"{', '.join(PERMUTATIONS)}")
+        if permutations and design == "precision-weighted" and "formula" in block:
+            c.add(f"{key}.permutations", "sign-flip permutations test the precision-weighted mean only; drop the "
+                                         "formula or the permutations")
         if permutations and seed is None:
             c.add(f"{key}.seed", "missing; permutations in a study file need a seed so that the run can be "
                                  "repeated exactly (e.g. seed = 1)")
