@@ -1178,10 +1178,13 @@ def mixed(
 
     Notes
     -----
-    Models with a random participant intercept only are fitted for all regions at once (:class:`_InterceptBatch`:
-    the profiled criterion from participant-level sums, minimised on its analytic derivative; a region failing
-    the gradient check goes to :func:`fit_mixed`). Other structures by :func:`fit_mixed` (several optimisers,
-    best restricted likelihood kept; a ConvergenceError names the region when none passes the gradient check).
+    Models whose only grouping factor is the participant are fitted for all regions at once: a random intercept
+    by :class:`_InterceptBatch` (the profiled criterion from participant-level sums, minimised on its analytic
+    derivative after a grid), random slopes by :class:`_BlockBatch` (the block-diagonal profiled criterion,
+    damped Newton steps from three starts, the lowest criterion kept). Every batched result must pass the
+    gradient check of :func:`fit_mixed`; a region that does not is refitted by :func:`fit_mixed` (several
+    optimisers, best restricted likelihood kept; a ConvergenceError names the region when none passes). Crossed
+    and nested structures are fitted region by region (``n_jobs``, ``executor``).
     Satterthwaite df from :func:`satterthwaite`; multi-df F after Fai & Cornelius (1996). R2 after Nakagawa &
     Schielzeth (2013), random-slope variance after Johnson (2014).
 

@@ -173,3 +173,27 @@ def test_boundary_terms_correlations_and_effect_size():
     ri = run_design(values2, "mixed", formula="value ~ load", contrasts=contrasts).set_index("term").loc["load"]
     assert ri["variance_total"] == pytest.approx(ri["sd_participant"] ** 2 + ri["sd_residual"] ** 2, rel=1e-12)
     assert ri["boundary_terms"] != ri["boundary_terms"] or ri["boundary_terms"] == ""
+
+
+def test_batched_random_slopes_equal_the_region_by_region_fit():
+    values, _, contrasts = _load_study(n=18, regions=("a", "b", "c", "d"), seed=9, slope_sd=0.25)
+    values.loc[values.sample(12, random_state=1).index, "value"] = np.nan  # regions differ in their rows
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        res = run_design(values, "mixed", formula="value ~ load", random="1 + load", contrasts=contrasts,
+                         center=False)
+    assert "batched-profiled" in set(res["optimizer"])
+    data = values.dropna(subset=["value"]).merge(contrasts, on="contrast")
+    for region, sub in data.groupby("region", sort=False):
+        y = sub["value"].to_numpy()
+        X = np.column_stack([np.ones(len(y)), sub["load"].to_numpy()])
+        codes = pd.factorize(sub["participant_id"])[0]
+        f = [RandomFactor("participant", codes, X.copy(), ["Intercept", "load"])]
+        ref = fit_mixed(y, X, f)
+        row = res[res["region"] == region].set_index("term")
+        assert row["deviance"].iloc[0] <= ref.deviance + 1e-7
+        assert row["deviance"].iloc[0] == pytest.approx(ref.deviance, abs=1e-5)
+        assert row.loc["load", "estimate"] == pytest.approx(ref.beta[1], rel=1e-4, abs=1e-6)
+        assert row.loc["load", "sd_participant_load"] == pytest.approx(np.sqrt(ref.covariances[0][1, 1]),
+                                                                      rel=1e-3, abs=1e-4)
+        assert row.loc["load", "df"] == pytest.approx(satterthwaite(ref, X, f, np.eye(2)[1:])[0][0], rel=1e-3)
