@@ -40,8 +40,8 @@ def add_parser(subparsers) -> None:
     g.add_argument("--nested", metavar="COLUMN", help="mixed: random intercept for COLUMN within participant "
                    "(labels made unique per participant)")
     g.add_argument("--no-center", dest="center", action="store_false", default=None,
-                   help="mixed: keep numeric covariates raw (default: centre each within each region and record "
-                   "the mean in 'centered')")
+                   help="mixed, precision-weighted: keep numeric covariates raw (default: mean-centre them; mixed "
+                   "centres each within each region and records the mean in 'centered')")
     g.add_argument("--estimation", metavar="reml|ml", choices=("reml", "ml"),
                    help="mixed: restricted maximum likelihood (reml, default) or maximum likelihood (ml)")
     g.add_argument("--test", metavar="knha|knha-truncated|z", choices=("knha", "knha-truncated", "z"),
@@ -58,7 +58,8 @@ def add_parser(subparsers) -> None:
     p.add_argument("--correct", default="holm,fdr", metavar="LIST",
                    help="corrections across regions: comma-separated holm, fdr, bonferroni (default holm,fdr)")
     p.add_argument("--permutations", type=int, default=0, metavar="N",
-                   help="permutations for the max-statistic family-wise p (p_fwe); default 0 (none)")
+                   help="permutations for the max-statistic family-wise p (p_fwe; precision-weighted mean: also a "
+                   "per-region sign-flip p, p_permutation); default 0 (none)")
     p.add_argument("--seed", type=int, default=None, metavar="S", help="seed of the permutations (recorded)")
     p.add_argument("--confidence", type=float, default=0.95, metavar="LEVEL", help="confidence level (0.95)")
     p.add_argument("--overwrite", action="store_true", help="replace existing output files")
