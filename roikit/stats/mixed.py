@@ -601,8 +601,9 @@ class _InterceptBatch:
         sk = s[:, None] * self.k
         d = 1.0 / (1.0 + sk)
         c = s[:, None] * d
-        A = self.XtX - np.einsum("rk,rkp,rkq->rpq", c, self.SX, self.SX)
-        b = self.Xty - np.einsum("rk,rkp,rk->rp", c, self.SX, self.Sy)
+        cSX = c[..., None] * self.SX
+        A = self.XtX - np.swapaxes(cSX, 1, 2) @ self.SX
+        b = self.Xty - (np.swapaxes(cSX, 1, 2) @ self.Sy[..., None])[..., 0]
         yvy = self.yty - (c * self.Sy**2).sum(1)
         sign, ldx = np.linalg.slogdet(A)
         ok = sign > 0
@@ -1270,11 +1271,17 @@ def mixed(
     # exclusions per region: observations, participants with some / all of their observations left out
     region_codes = pd.Index(regions).get_indexer(data["region"])
     n_dropped = np.bincount(region_codes[~complete], minlength=len(regions))
-    dropped = data.loc[~complete, ["participant_id", "region"]]
-    kept = data.loc[complete, ["participant_id", "region"]]
-    kept_pairs = set(zip(kept["region"], kept["participant_id"]))
-    partly = [list(pd.unique(dropped.loc[dropped["region"] == r, "participant_id"])) for r in regions]
-    wholly = [[pid for pid in ids if (r, pid) not in kept_pairs] for r, ids in zip(regions, partly)]
+    partly: list[list[str]] = [[] for _ in regions]
+    wholly: list[list[str]] = [[] for _ in regions]
+    if n_dropped.any():
+        pid_codes_all, pid_names = pd.factorize(data["participant_id"])
+        pair = region_codes.astype(np.int64) * len(pid_names) + pid_codes_all
+        kept_pairs = set(np.unique(pair[complete]).tolist())
+        for code in pd.unique(pair[~complete]):  # in order of first appearance
+            r, i = divmod(int(code), len(pid_names))
+            partly[r].append(str(pid_names[i]))
+            if code not in kept_pairs:
+                wholly[r].append(str(pid_names[i]))
     warn_dropped_observations(regions, n_dropped, partly, wholly, context=context,
                               reason="value or a model variable missing")
     frame = frame[complete].reset_index(drop=True)
@@ -1290,13 +1297,20 @@ def mixed(
 
     payloads = []
     region_meta = []
-    region_of_row = frame["region"].to_numpy()
+    region_of_row = pd.Index(regions).get_indexer(frame["region"])
+    order = np.argsort(region_of_row, kind="stable")
+    bounds = np.searchsorted(region_of_row[order], np.arange(len(regions) + 1))
     pid_all = frame["participant_id"].to_numpy()
-    for r in regions:
-        rows = np.flatnonzero(region_of_row == r)
+    pid_global, _ = pd.factorize(pid_all)
+    for index, r in enumerate(regions):
+        rows = order[bounds[index]:bounds[index + 1]]
         if rows.size == 0:
             raise DesignError(f"mixed: no complete observations in region {r!r}; check the missing values")
-        pid_codes, pid_levels = pd.factorize(pid_all[rows])
+        uniq, first = np.unique(pid_global[rows], return_index=True)
+        levels_in_order = uniq[np.argsort(first)]  # participants in order of first appearance, as pd.factorize
+        remap = np.empty(pid_global.max() + 1, dtype=np.int64)
+        remap[levels_in_order] = np.arange(levels_in_order.size)
+        pid_codes, pid_levels = remap[pid_global[rows]], levels_in_order
         factors = [RandomFactor("participant", pid_codes.astype(int), Zr_all[rows], rnames)]
         n_stim = n_nest = np.nan
         if crossed is not None:
