@@ -486,6 +486,22 @@ def _snake(text: str) -> str:
     return out or "term"
 
 
+_CLI_SPELLING = (("drop it from random=, e.g. random='1'", "drop it from --random, e.g. --random 1"),
+                 ("random='1'", "--random 1"), ("crossed='contrast'", "--crossed contrast"),
+                 ("nested='run'", "--nested run"), ("crossed='participant_id'", "--crossed participant_id"),
+                 ("nested='participant_id'", "--nested participant_id"))
+
+
+def _both(exc_type: type, text: str) -> Exception:
+    """An exception in Python spelling whose ``cli_message`` names the same options as the command line does."""
+    exc = exc_type(text)
+    cli = text
+    for python, command_line in _CLI_SPELLING:
+        cli = cli.replace(python, command_line)
+    exc.cli_message = cli
+    return exc
+
+
 def _fit_region(payload: dict) -> dict:
     """Fit one region (top-level so worker processes can run it)."""
     y, X, factors = payload["y"], payload["X"], payload["factors"]
@@ -1038,13 +1054,15 @@ def _check_support(region, factors: Sequence[RandomFactor], X: np.ndarray, names
                 continue  # intercept-like column
             means = np.bincount(f.codes, weights=col, minlength=L) / np.bincount(f.codes, minlength=L)
             if np.allclose(col, means[f.codes]):
-                raise DesignError(
+                raise _both(
+                    DesignError,
                     f"mixed: the random slope {term!r} does not vary within any level of {f.name!r} in region "
                     f"{region!r} (it is a between-{f.name} variable), so its variance cannot be separated from "
                     f"the random intercept; drop it from random=, e.g. random='1'"
                 )
         if L * f.r >= n:
-            raise DesignError(
+            raise _both(
+                DesignError,
                 f"mixed: region {region!r}: {L} levels of {f.name!r} x {f.r} random effect(s) "
                 f"({', '.join(f.terms)}) = {L * f.r} random effects for {n} observations; the data cannot support "
                 "this random structure (the random effects must be fewer than the observations); use fewer random "
@@ -1230,8 +1248,8 @@ def mixed(
     random_vars = _required_variables(random_rhs, parameter="random")
     for option, column in (("crossed", crossed), ("nested", nested)):
         if column is not None and str(column) == "participant_id":
-            raise DesignError(f"mixed: {option}='participant_id' repeats the participant random effect; name another "
-                              "column (e.g. crossed='contrast' for stimuli, nested='run' for runs)")
+            raise _both(DesignError, f"mixed: {option}='participant_id' repeats the participant random effect; name "
+                        "another column (e.g. crossed='contrast' for stimuli, nested='run' for runs)")
     crossed = None if crossed is None else str(crossed)
     nested = None if nested is None else str(nested)
     if crossed is not None and crossed == nested:
@@ -1545,7 +1563,7 @@ def _run_regions(payloads: list[dict], regions: Sequence[str], n_jobs: int, exec
     from tqdm.auto import tqdm
 
     def _named(region, exc):
-        return type(exc)(f"mixed: region {region!r}: {exc}")
+        return _both(type(exc), f"mixed: region {region!r}: {exc}")
 
     bar = tqdm(total=len(payloads), desc="mixed models", unit="region", leave=False, disable=len(payloads) < 20)
     try:

