@@ -1096,8 +1096,10 @@ _MIXED_DESCRIPTIONS = {
     "n_excluded_participants": "participants left out of this region entirely (no complete observation); "
                                "excluded_ids also lists those with only some observations left out",
     "deviance": "minimised REML criterion (estimation reml) or -2 log-likelihood (ml)",
-    "optimizer": "scipy optimiser whose solution was kept ('batched-profiled': all regions' random-intercept "
-                 "models minimised together on the analytic derivative of the profiled criterion)",
+    "optimizer": "optimiser whose solution was kept: 'batched-profiled' (all regions' models with the participant "
+                 "as the only grouping factor minimised together: a random intercept on the analytic derivative of "
+                 "the profiled criterion, random slopes by damped Newton steps) or the scipy optimiser of the "
+                 "region-by-region fit",
     "variance_total": "sum of the variance components (random intercepts, random slopes as they add to one "
                       "observation, residual): the denominator of effect_size d_wkj",
 }
