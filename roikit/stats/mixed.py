@@ -977,6 +977,17 @@ class _BlockBatch:
         return theta, f
 
 
+#: largest number of array elements (regions x observations x participants) one batched fit may hold at once
+_BATCH_ELEMENTS = 10_000_000
+
+
+def _chunks(payloads: Sequence[dict]) -> list[Sequence[dict]]:
+    """Regions in groups small enough for the batched fits' padded arrays (about 80 MB each at most)."""
+    per_region = max(len(pl["y"]) * pl["factors"][0].n_levels * pl["factors"][0].r for pl in payloads)
+    size = max(1, _BATCH_ELEMENTS // max(per_region, 1))
+    return [payloads[i:i + size] for i in range(0, len(payloads), size)]
+
+
 def _fit_block_batch(payloads: Sequence[dict]) -> list[dict | None]:
     """Fit every region's model with one grouping factor (random intercept and slopes) at once; ``None`` where the
     result fails the gradient check of :func:`fit_mixed` (those regions are refitted region by region)."""
@@ -1355,10 +1366,10 @@ def mixed(
         from threadpoolctl import threadpool_limits
 
         with threadpool_limits(limits=1, user_api="blas"):  # small matrices: threads only cost (see below)
-            if rnames == ["Intercept"]:
-                results, _info = _fit_intercept_batch(payloads)
-            else:
-                results = _fit_block_batch(payloads)
+            fit_batch = (lambda chunk: _fit_intercept_batch(chunk)[0]) if rnames == ["Intercept"] else _fit_block_batch
+            results = []
+            for chunk in _chunks(payloads):
+                results.extend(fit_batch(chunk))
         redo = [i for i, res in enumerate(results) if res is None]
         if redo:
             again = _run_regions([payloads[i] for i in redo], [regions[i] for i in redo], n_jobs, executor)

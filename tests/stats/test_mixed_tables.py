@@ -197,3 +197,16 @@ def test_batched_random_slopes_equal_the_region_by_region_fit():
         assert row.loc["load", "sd_participant_load"] == pytest.approx(np.sqrt(ref.covariances[0][1, 1]),
                                                                       rel=1e-3, abs=1e-4)
         assert row.loc["load", "df"] == pytest.approx(satterthwaite(ref, X, f, np.eye(2)[1:])[0][0], rel=1e-3)
+
+
+def test_batched_fit_in_chunks_equals_one_batch(monkeypatch):
+    import roikit.stats.mixed as mixed_mod
+
+    values = _unbalanced(11, regions=5)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        one = run_design(values, "mixed", formula="value ~ contrast", random="1")
+        monkeypatch.setattr(mixed_mod, "_BATCH_ELEMENTS", 1)  # one region per batch
+        chunked = run_design(values, "mixed", formula="value ~ contrast", random="1")
+    for column in ("estimate", "se", "df", "deviance", "sd_participant"):
+        np.testing.assert_allclose(chunked[column], one[column], rtol=1e-9, err_msg=column)
