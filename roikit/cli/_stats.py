@@ -9,14 +9,15 @@ from pathlib import Path
 from .. import __version__
 from .._outputs import check_files
 from .._tables import read_table, sha256_file, sidecar_path, write_table
-from ..errors import UsageError
+from ..errors import RoikitError, UsageError
 from ..stats import COLUMN_DESCRIPTIONS, available_designs, run_design
 from ..stats.corrections import correction_choices_text, parse_corrections
 
 #: Command-line design options, passed to the design in snake_case when given.
 _WRITER = "roikit stats"
 
-_DESIGN_OPTIONS = ("contrast", "versus", "group", "levels", "welch", "formula", "tau2", "random", "crossed")
+_DESIGN_OPTIONS = ("contrast", "versus", "group", "levels", "welch", "formula", "tau2", "random", "crossed",
+                   "nested", "estimation", "test")
 
 
 def add_parser(subparsers) -> None:
@@ -42,6 +43,20 @@ def add_parser(subparsers) -> None:
                    "(reml, ml, dl, pm)")
     g.add_argument("--random", metavar="TERMS", help="mixed: random terms per participant, e.g. \"1 + contrast\"")
     g.add_argument("--crossed", metavar="COLUMN", help="mixed: crossed random intercept for this column")
+    g.add_argument("--nested", metavar="COLUMN", help="mixed: random intercept for COLUMN within participant "
+                   "(labels made unique per participant)")
+    g.add_argument("--no-center", dest="center", action="store_false", default=None,
+                   help="mixed, precision-weighted: keep numeric covariates raw (default: mean-centre them; mixed "
+                   "centres each within each region and records the mean in 'centered')")
+    g.add_argument("--estimation", metavar="reml|ml", choices=("reml", "ml"),
+                   help="mixed: restricted maximum likelihood (reml, default) or maximum likelihood (ml)")
+    g.add_argument("--test", metavar="knha|knha-truncated|z", choices=("knha", "knha-truncated", "z"),
+                   help="precision-weighted: Knapp-Hartung, the same with its variance factor truncated below at "
+                   "1 (default), or z")
+    g.add_argument("--contrasts", metavar="FILE", help="contrasts.tsv: column contrast plus per-contrast columns "
+                   "the formula may name (e.g. load)")
+    g.add_argument("--region-table", metavar="FILE", help="regions.tsv: column region plus per-region columns "
+                   "the formula may name")
     g.add_argument("--jobs", type=int, default=None, metavar="N",
                    help="mixed: fit the regions in N worker processes (default 1)")
     p.add_argument("--participants", metavar="participants.tsv", help="participants table (groups, covariates)")
@@ -51,7 +66,8 @@ def add_parser(subparsers) -> None:
                    "notes, figure markers and summaries use: holm, fdr, bonferroni, fwe (max-statistic permutations; "
                    "needs --permutations N), none (uncorrected). Default holm,fdr")
     p.add_argument("--permutations", type=int, default=0, metavar="N",
-                   help="permutations for the max-statistic family-wise p (p_fwe); default 0 (none)")
+                   help="permutations for the max-statistic family-wise p (p_fwe; precision-weighted mean: also a "
+                   "per-region sign-flip p, p_permutation); default 0 (none)")
     p.add_argument("--seed", type=int, default=None, metavar="S", help="seed of the permutations (recorded)")
     p.add_argument("--confidence", type=float, default=0.95, metavar="LEVEL", help="confidence level (0.95)")
     p.add_argument("--overwrite", action="store_true", help="replace files roikit stats did not write (its own "
@@ -80,24 +96,40 @@ def run(args: argparse.Namespace) -> int:
     )
     options = {name: getattr(args, name) for name in _DESIGN_OPTIONS}
     options = {k: v for k, v in options.items() if v is not None and v is not False}
+    if args.center is False:
+        options["center"] = False
+    if args.contrasts:
+        options["contrasts"] = read_table(args.contrasts, label_columns=("contrast",))
+    if args.region_table:
+        options["region_table"] = read_table(args.region_table, label_columns=("region",))
     if args.jobs is not None:
         if args.jobs < 1:
             raise UsageError(f"--jobs must be at least 1, got {args.jobs}")
         options["n_jobs"] = args.jobs
-    results = run_design(
-        values,
-        args.design,
-        participants=participants,
-        correct=args.correct,
-        permutations=args.permutations,
-        seed=args.seed,
-        confidence=args.confidence,
-        **options,
-    )
+    try:
+        results = run_design(
+            values,
+            args.design,
+            participants=participants,
+            correct=args.correct,
+            permutations=args.permutations,
+            seed=args.seed,
+            confidence=args.confidence,
+            **options,
+        )
+    except RoikitError as exc:  # speak command-line language where the design left its spelling for us
+        if getattr(exc, "cli_message", None):
+            raise type(exc)(exc.cli_message) from None
+        raise
+    for name in ("contrasts", "region_table"):  # recorded as the files given, below
+        options.pop(name, None)
     extra = results.attrs.get("column_descriptions", {}) if isinstance(results.attrs, dict) else {}
     columns = {c: extra.get(c, COLUMN_DESCRIPTIONS.get(c, "design-specific column (see roikit.stats)"))
                for c in results.columns}
     inputs = {"values": {"path": str(Path(args.values)), "sha256": sha256_file(args.values)}}
+    for role, path in (("contrasts", args.contrasts), ("regions", args.region_table)):
+        if path:
+            inputs[role] = {"path": str(Path(path)), "sha256": sha256_file(path)}
     if args.participants:
         inputs["participants"] = {"path": str(Path(args.participants)), "sha256": sha256_file(args.participants)}
     seeds = results["seed"].dropna().unique().tolist() if "seed" in results.columns else []

@@ -211,6 +211,11 @@ def run_design(
         for term, index in results.groupby("term", sort=False).groups.items():
             if term in out:
                 results.loc[index, "p_fwe"] = np.asarray(out[term], dtype=float)
+        for name, per_term in out.get("_columns", {}).items():  # per-region permutation p a design may add
+            results[name] = np.nan
+            for term, index in results.groupby("term", sort=False).groups.items():
+                if term in per_term:
+                    results.loc[index, name] = np.asarray(per_term[term], dtype=float)
         results["permutations"] = int(out["_n_permutations"])
         results["permutation_exact"] = bool(out["_exact"])
         results["permutation_scheme"] = out.get("_scheme")

@@ -43,6 +43,10 @@ __all__ = [
     "check_minimum_n",
     "check_variance",
     "result_rows",
+    "side_table",
+    "attach_columns",
+    "warn_dropped_observations",
+    "spelled",
     "order_columns",
 ]
 
@@ -116,7 +120,9 @@ COLUMN_DESCRIPTIONS: dict[str, str] = {
     "confidence": "confidence level of the intervals",
     "effect_size": "standardised effect size (see effect_size_type)",
     "effect_size_type": "d = mean/SD; d_z = mean(diff)/SD(diff); g = J x (M1-M2)/S_pooled (Hedges 1981, exact J); "
-    "partial_eta2 = F df1 / (F df1 + df2)",
+    "partial_eta2 = F df1 / (F df1 + df2); d_total = b / sqrt(tau2 + typical first-level variance) "
+    "(precision-weighted); d_wkj = coefficient / sqrt(sum of the variance components: every random intercept and "
+    "slope variance as it adds to one observation, plus the residual variance; Westfall, Kenny & Judd 2014) (mixed)",
     "effect_size_ci_low": "lower limit of the effect size interval (noncentral t or F inversion)",
     "effect_size_ci_high": "upper limit of the effect size interval (noncentral t or F inversion)",
     "p_holm": "Holm-adjusted p across the regions of the same design and term",
@@ -148,7 +154,8 @@ COLUMN_DESCRIPTIONS: dict[str, str] = {
     "brown_forsythe_p": "Brown-Forsythe test of equal variances between the two groups (two-group)",
     "max_leverage": "largest hat-matrix diagonal among the participants (glm)",
     "max_cooks_d": "largest Cook's distance among the participants (glm)",
-    "centered": "covariates mean-centred before fitting, comma-separated (glm)",
+    "centered": "covariates mean-centred before fitting, comma-separated (glm, precision-weighted); mixed: each with "
+                "the mean subtracted in this region, e.g. 'load (mean 2.5)'",
     "tau2": "between-participant variance (precision-weighted designs)",
     "i2": "heterogeneity I^2 (precision-weighted designs)",
     "q": "Cochran's Q heterogeneity statistic (precision-weighted)",
@@ -496,3 +503,172 @@ def order_columns(frame: pd.DataFrame, *, extra_first: Sequence[str] = ()) -> pd
     order += [c for c in frame.columns if c not in order]
     return frame[order]
 
+
+
+# --------------------------------------------------------------------------- tables describing contrasts, regions
+#: (key column, command-line option, Python parameter, file name in messages) of each side table.
+_SIDE_TABLES = {
+    "contrasts": ("contrast", "--contrasts", "contrasts", "contrasts.tsv"),
+    "regions": ("region", "--region-table", "region_table", "regions.tsv"),
+    "participants": ("participant_id", "--participants", "participants", "participants.tsv"),
+}
+
+
+def spelled(python: str, cli: str, exc_type: type, message: str) -> Exception:
+    """An exception whose message names an option as Python (``python``) and, on the command line, as ``cli``.
+
+    ``message`` holds ``{option}`` where the option's spelling goes; the command line shows ``cli_message``
+    (set on the exception), Python callers see the ``python`` spelling.
+    """
+    exc = exc_type(message.format(option=python))
+    exc.cli_message = message.format(option=cli)
+    return exc
+
+
+def side_table(table, *, kind: str) -> pd.DataFrame | None:
+    """Read and validate contrasts.tsv (``kind='contrasts'``) or regions.tsv (``kind='regions'``).
+
+    ``table`` is a DataFrame, a path or None. The key column (``contrast`` / ``region``) is kept as strings and
+    must list each label once.
+    """
+    if table is None:
+        return None
+    key, option, parameter, name = _SIDE_TABLES[kind]
+    if not isinstance(table, pd.DataFrame):
+        import os
+
+        from .._tables import read_table
+
+        if not isinstance(table, (str, os.PathLike)):
+            raise UsageError(f"{parameter}: expected a DataFrame or the path of {name}, got {type(table).__name__}")
+        path = table
+        table = read_table(path, label_columns=(key,))
+        where = f"{path}"
+    else:
+        where = f"{name} ({parameter}=)"
+    if key not in table.columns:
+        raise UsageError(f"{where}: no column {key!r}; found {', '.join(map(str, table.columns))}; expected "
+                         f"{key!r} plus per-{key} columns (e.g. {'load' if key == 'contrast' else 'hemisphere'})")
+    table = table.copy()
+    table[key] = table[key].astype(str)
+    dup = table[key].duplicated()
+    if dup.any():
+        raise UsageError(f"{where}: {key} {', '.join(pd.unique(table.loc[dup, key]))} listed more than once; "
+                         f"expected one row per {key}")
+    return table
+
+
+def attach_columns(
+    data: pd.DataFrame,
+    variables: Iterable[str],
+    *,
+    participants: pd.DataFrame | None = None,
+    contrasts: pd.DataFrame | None = None,
+    region_table: pd.DataFrame | None = None,
+    context: str = "",
+) -> tuple[pd.DataFrame, dict[str, str]]:
+    """Join the columns a model names onto the (long) values table.
+
+    Each variable not already a column of ``data`` is looked up, in this order, in contrasts.tsv (joined on
+    ``contrast``), regions.tsv (on ``region``) and participants.tsv (on ``participant_id``). Tables are those
+    validated by :func:`side_table` (participants: a DataFrame keyed by ``participant_id``).
+
+    Returns
+    -------
+    (DataFrame, dict)
+        ``data`` with the joined columns, and where each variable came from (``values``, ``contrasts.tsv``,
+        ``regions.tsv``, ``participants.tsv``).
+
+    Raises
+    ------
+    UsageError
+        When a variable is in none of the tables (the message lists the tables searched and the fix).
+    """
+    prefix = f"{context}: " if context else ""
+    sources: dict[str, str] = {}
+    data = data.copy(deep=False)
+    wanted = [v for v in dict.fromkeys(variables)]
+    for v in wanted:
+        if v in data.columns:
+            sources[v] = "values"
+    lookups = [(contrasts, "contrasts"), (region_table, "regions")]
+    for table, kind in lookups:
+        if table is None:
+            continue
+        key, _, _, name = _SIDE_TABLES[kind]
+        cols = [v for v in wanted if v not in sources and v in table.columns and v != key]
+        if not cols:
+            continue
+        mapped = table.set_index(key)[cols]
+        labels = data[key].astype(object)
+        listed = set(mapped.index)
+        absent = [str(x) for x in pd.unique(labels.dropna()) if str(x) not in listed]
+        if absent:
+            raise DesignError(
+                f"{prefix}{name} has no row for {key} {', '.join(absent[:8])}{' ...' if len(absent) > 8 else ''} "
+                f"(its column(s) {', '.join(cols)} are in the model); add those rows, or select the "
+                f"{key}s that it describes"
+            )
+        joined = mapped.reindex(labels.astype(str).to_numpy())
+        for c in cols:
+            data[c] = joined[c].to_numpy()
+            sources[c] = name
+    rest = [v for v in wanted if v not in sources]
+    no_side_tables = contrasts is None and region_table is None
+    if rest and (no_side_tables or participants is not None and all(v in participants.columns for v in rest)):
+        # participants.tsv is the only table left: its own messages name what is missing
+        joined = join_participants(list(data["participant_id"].unique()), participants, rest)
+        data = data.join(joined, on="participant_id")
+        for v in rest:
+            sources[v] = "participants.tsv"
+        rest = []
+    if rest:
+        searched = ["the region values table"] + [name for t, k in lookups if t is not None
+                                                  for name in [_SIDE_TABLES[k][3]]]
+        if participants is not None:
+            searched.append("participants.tsv")
+            rest_p = [v for v in rest if v not in participants.columns]
+        else:
+            rest_p = rest
+        exc = spelled(
+            "contrasts=..., region_table=... or participants=...",
+            "--contrasts FILE, --region-table FILE or --participants FILE", UsageError,
+            f"{prefix}the model names {', '.join(repr(v) for v in rest_p)}, found in none of "
+            f"{', '.join(searched)}; give the table that holds it ({{option}}) or correct the name")
+        raise exc
+    return data, sources
+
+
+def warn_dropped_observations(
+    regions: Sequence[str],
+    n_observations: Sequence[int],
+    partly: Sequence[Sequence[str]],
+    wholly: Sequence[Sequence[str]],
+    *,
+    context: str,
+    reason: str,
+    stacklevel: int = 3,
+) -> None:
+    """One :class:`MissingValueWarning` counting dropped observations and participants per region.
+
+    ``partly`` lists, per region, the participants with at least one observation dropped; ``wholly`` those
+    dropped entirely (no observation left in that region).
+    """
+    parts = []
+    for r, n_obs, some, whole in zip(regions, n_observations, partly, wholly):
+        if not n_obs:
+            continue
+        text = f"{r}: {', '.join(some)} ({n_obs} observation(s) of {len(some)} participant(s)"
+        if len(whole):
+            text += f"; {len(whole)} of them left out entirely: {', '.join(whole)}"
+        parts.append(text + ")")
+    if not parts:
+        return
+    total = int(sum(n_observations))
+    n_regions = sum(1 for n in n_observations if n)
+    warnings.warn(
+        f"{context}: {total} observation(s) excluded in {n_regions} region(s) ({reason}), each for its region "
+        "only: " + "; ".join(parts),
+        MissingValueWarning,
+        stacklevel=stacklevel,
+    )

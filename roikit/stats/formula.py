@@ -383,6 +383,8 @@ class Formula:
         center: bool | Iterable[str] = False,
         error: type = DesignError,
         context: str | None = None,
+        groups=None,
+        means: dict | None = None,
     ) -> tuple[np.ndarray, list[str], dict[str, list[int]], list[str]]:
         """Design matrix of the formula on ``frame``.
 
@@ -395,6 +397,12 @@ class Formula:
         error : exception class
             Raised (with a message naming the formula) when the data cannot give a design (a log of a
             non-positive value, a categorical variable with one level, ...).
+        groups : array-like, optional
+            One label per row (e.g. the region): centring and scaling then use each group's own mean and SD, so
+            the design of one group depends on that group's rows only.
+        means : dict, optional
+            Filled with the subtracted means of the centred factors: label -> Series indexed by group (or a
+            one-element Series indexed by ``"all"`` without ``groups``).
 
         Returns
         -------
@@ -415,6 +423,13 @@ class Formula:
             raise FormulaError(f"{where}: the design would have more than {MAX_COLUMNS} columns (categorical "
                                "variables with many levels, interacted); use fewer levels or interactions")
         centre_set = None if isinstance(center, bool) else set(center)
+        group_key = (pd.Series(np.asarray(groups, dtype=object)) if groups is not None
+                     else pd.Series(np.full(len(frame), "all", dtype=object)))
+
+        def group_mean(x: np.ndarray) -> tuple[np.ndarray, pd.Series]:
+            by = pd.Series(x).groupby(group_key, sort=False)
+            return by.transform("mean").to_numpy(float), by.mean()
+
         data: dict[str, np.ndarray | pd.Series] = {}
         ident: dict[Factor, str] = {}
         back: dict[str, str] = {}
@@ -441,17 +456,20 @@ class Formula:
                 with np.errstate(all="ignore"):
                     x = np.log(x)
             if f.kind in ("center", "scale", "standardize"):
-                x = x - np.nanmean(x)
+                x = x - group_mean(x)[0]
                 if f.kind != "center":
-                    sd = np.nanstd(x, ddof=1) if np.isfinite(x).sum() > 1 else np.nan
-                    if not np.isfinite(sd) or sd == 0:
+                    sd = pd.Series(x).groupby(group_key, sort=False).transform("std").to_numpy(float)
+                    if not np.all(np.isfinite(sd[np.isfinite(x)]) & (sd[np.isfinite(x)] > 0)):
                         raise error(f"{where}: {f.label}: {f.column!r} does not vary (SD 0 or undefined); "
                                     "drop the term or use center()")
                     x = x / sd
             elif center is True or (centre_set is not None and f.column in centre_set):
                 if np.isfinite(x).any():
-                    x = x - np.nanmean(x)
+                    subtract, by_group = group_mean(x)
+                    x = x - subtract
                     centred.append(f.label)
+                    if means is not None:
+                        means[f.label] = by_group
             data[key] = x
         canonical = " + ".join(
             (["1"] if self.intercept else ["0"])

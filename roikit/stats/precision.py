@@ -22,7 +22,7 @@ from ..errors import ConvergenceError, DesignError, DiagnosticWarning, UsageErro
 from ._common import COLUMN_DESCRIPTIONS
 from ._registry import register
 
-__all__ = ["fit_precision_weighted", "precision_weighted", "TAU2_METHODS"]
+__all__ = ["fit_precision_weighted", "precision_weighted", "sign_flip_precision", "TAU2_METHODS"]
 
 Tau2Method = Literal["reml", "ml", "dl", "pm"]
 TAU2_METHODS: tuple[str, ...] = ("reml", "ml", "dl", "pm")
@@ -72,39 +72,43 @@ def _loglik(y, v, X, mask, tau2, method):
 
 
 def _fisher_scoring(y, v, X, mask, method, tau2_start):
-    """Fisher scoring on tau2 for all regions at once, with step-halving and the boundary tau2 = 0."""
+    """Fisher scoring on tau2 for all regions at once, with step-halving and the boundary tau2 = 0.
+
+    Each iteration works on the regions not yet converged only (a region's iterations do not depend on the others).
+    """
     tau2 = np.maximum(tau2_start, 0.0).astype(float)
     ll = _loglik(y, v, X, mask, tau2, method)
     converged = np.zeros(tau2.shape, dtype=bool)
     for _ in range(_MAX_ITER):
-        active = ~converged
-        if not active.any():
+        idx = np.flatnonzero(~converged)
+        if not idx.size:
             break
-        w = mask / (v + tau2)
-        b, A, e = _weighted_ls(y, w, X)
+        ya, va, ma, ta, la = y[:, idx], v[:, idx], mask[:, idx], tau2[idx], ll[idx]
+        w = ma / (va + ta)
+        b, A, e = _weighted_ls(ya, w, X)
         pe2 = ((w * e) ** 2).sum(0)  # y'PPy
         tr_p, tr_pp = _trace_terms(w, X, A)
         if method == "reml":
             score, info = 0.5 * (pe2 - tr_p), 0.5 * tr_pp
         else:
             score, info = 0.5 * (pe2 - w.sum(0)), 0.5 * (w**2).sum(0)
-        step = np.where(active, score / info, 0.0)
-        new = np.maximum(tau2 + step, 0.0)
-        new_ll = _loglik(y, v, X, mask, new, method)
+        step = score / info
+        new = np.maximum(ta + step, 0.0)
+        new_ll = _loglik(ya, va, X, ma, new, method)
         # step-halving: shorten a step until the (restricted) likelihood does not decrease
         for _h in range(30):
-            worse = active & (new_ll < ll - 1e-12 * np.abs(ll))
+            worse = new_ll < la - 1e-12 * np.abs(la)
             if not worse.any():
                 break
             step = np.where(worse, step / 2, step)
-            new = np.where(worse, np.maximum(tau2 + step, 0.0), new)
-            new_ll = np.where(worse, _loglik(y, v, X, mask, new, method), new_ll)
-        change = np.abs(new - tau2)
+            new = np.where(worse, np.maximum(ta + step, 0.0), new)
+            new_ll = np.where(worse, _loglik(ya, va, X, ma, new, method), new_ll)
+        change = np.abs(new - ta)
         # at the boundary with a score pointing below zero, tau2 = 0 is the constrained maximum
-        at_bound = (tau2 == 0) & (new == 0) & (score <= 0)
-        converged |= active & ((change <= _TOL * np.maximum(1.0, tau2)) | at_bound)
-        tau2 = np.where(active, new, tau2)
-        ll = np.where(active, new_ll, ll)
+        at_bound = (ta == 0) & (new == 0) & (score <= 0)
+        converged[idx] = (change <= _TOL * np.maximum(1.0, ta)) | at_bound
+        tau2[idx] = new
+        ll[idx] = new_ll
     return tau2, converged
 
 
@@ -214,7 +218,7 @@ def fit_precision_weighted(
     *,
     mask: np.ndarray | None = None,
     tau2_method: Tau2Method = "reml",
-    test: Literal["knapp-hartung", "z"] = "knapp-hartung",
+    test: Literal["knapp-hartung", "knapp-hartung-truncated", "knha", "knha-truncated", "z"] = "knapp-hartung",
     confidence: float = 0.95,
 ) -> dict[str, np.ndarray]:
     """Fit the random-effects (precision-weighted) model to every region at once.
@@ -229,8 +233,9 @@ def fit_precision_weighted(
         True where a participant enters a region's fit (default: where ``y`` and ``v`` are finite).
     tau2_method : {"reml", "ml", "dl", "pm"}
         Estimator of the between-participant variance tau2.
-    test : {"knapp-hartung", "z"}
-        Inference on b: t with the Knapp-Hartung variance and df = k - p, or z.
+    test : {"knapp-hartung", "knapp-hartung-truncated", "z"}
+        Inference on b: t with the Knapp-Hartung variance and df = k - p, the same with the variance factor
+        truncated below at 1, or z (``knha`` and ``knha-truncated`` are accepted as short names).
     confidence : float
         Level of the confidence intervals.
 
@@ -247,7 +252,9 @@ def fit_precision_weighted(
     ``P = W - WX(X'WX)^-1X'W``) with step-halving; a step that would go below zero is cut at zero and
     ``boundary`` is True where tau2 = 0. DerSimonian-Laird is ``max(0, (Q - (k-p)) / tr P_FE)``;
     Paule-Mandel solves ``Q(tau2) = k - p``. Knapp-Hartung: ``se^2 = s2 diag((X'WX)^-1)`` with
-    ``s2 = sum w e^2 / (k - p)`` (not truncated at 1) and t on k - p df. ``I2 = tau2 / (tau2 + v_typical)``
+    ``s2 = sum w e^2 / (k - p)`` and t on k - p df (Knapp & Hartung 2003); the truncated variant uses
+    ``max(1, s2)``, so its standard error is never below the z test's (Roever, Knapp & Friede 2015, "modified
+    Knapp-Hartung"; Jackson, Law, Rücker & Schwarzer 2017). ``I2 = tau2 / (tau2 + v_typical)``
     with ``v_typical = (k - p) / tr P_FE`` (Higgins & Thompson 2002). Checked against the BCG vaccine
     example of Viechtbauer (2010) and, for equal variances, against ``scipy.stats.ttest_1samp``.
     """
@@ -298,8 +305,11 @@ def fit_precision_weighted(
     b, A, e = _weighted_ls(y, w, X)
     var_b = np.einsum("rii->ri", A)
     df = (k - p).astype(float)
-    if test == "knapp-hartung":
+    test = {"knha": "knapp-hartung", "knha-truncated": "knapp-hartung-truncated"}.get(test, test)
+    if test in ("knapp-hartung", "knapp-hartung-truncated"):
         s2 = (w * e**2).sum(0) / df
+        if test == "knapp-hartung-truncated":
+            s2 = np.maximum(s2, 1.0)
         se = np.sqrt(var_b * s2[:, None])
         stat = b / se
         pval = 2 * _st.t.sf(np.abs(stat), df[:, None])
@@ -311,7 +321,7 @@ def fit_precision_weighted(
         crit = np.full((R, 1), _st.norm.ppf(0.5 + confidence / 2))
         df = np.full(R, np.nan)
     else:
-        raise UsageError(f"test: found {test!r}, expected 'knapp-hartung' or 'z'")
+        raise UsageError(f"test: found {test!r}, expected 'knapp-hartung', 'knapp-hartung-truncated' or 'z'")
     with np.errstate(invalid="ignore", divide="ignore"):
         i2 = 100 * tau2 / (tau2 + v_typical)
     return {
@@ -350,15 +360,18 @@ def _centre_numeric(frame: pd.DataFrame, variables: Sequence[str]) -> tuple[pd.D
     return frame, centred
 
 
-def _design_matrix(rhs: str, frame: pd.DataFrame, *, parameter: str = "formula", center=False):
+def _design_matrix(rhs: str, frame: pd.DataFrame, *, parameter: str = "formula", center=False, groups=None,
+                   means: dict | None = None):
     """Model matrix (ndarray), column names and term -> column indices for ``rhs`` on ``frame``.
 
     Built by the formula gate (:meth:`roikit.stats.formula.Formula.design`) from raw columns; ``center`` (True or
-    the columns to centre) mean-centres numeric predictors there, after transforms such as ``log`` were applied.
+    the columns to centre) mean-centres numeric predictors there, after transforms such as ``log`` were applied;
+    with ``groups`` (e.g. the region of each row) within each group, the means subtracted going into ``means``.
     """
     from .formula import parse_formula
 
-    X, names, terms, _centred = parse_formula(rhs, parameter=parameter).design(frame, center=center)
+    X, names, terms, _centred = parse_formula(rhs, parameter=parameter).design(frame, center=center, groups=groups,
+                                                                                means=means)
     return X, names, terms
 
 
@@ -390,7 +403,107 @@ for _name, _text in _EXTRA_DESCRIPTIONS.items():  # describe our columns in the 
     COLUMN_DESCRIPTIONS.setdefault(_name, _text)
 
 
-@register("precision-weighted")
+_TESTS = ("knha", "knha-truncated", "z")
+_TEST_NAMES = {"knha": "knapp-hartung", "knha-truncated": "knapp-hartung-truncated", "z": "z"}
+COLUMN_DESCRIPTIONS.setdefault(
+    "test", "precision-weighted inference: knha (Knapp-Hartung t on k - p df), knha-truncated (the same with its "
+    "variance factor truncated below at 1; Roever, Knapp & Friede 2015) or z")
+COLUMN_DESCRIPTIONS.setdefault(
+    "p_permutation", "precision-weighted mean: two-sided sign-flip permutation p of the weighted statistic, tau2 "
+    "re-estimated for every sign pattern (Follmann & Proschan 1999); n/a without --permutations")
+
+
+def _resolve_test(test, df_method) -> str:
+    if test is None:
+        return "z" if df_method == "z" else "knha-truncated"
+    name = str(test).strip().lower()
+    if name not in _TESTS:
+        from ._common import spelled
+
+        raise spelled("test", "--test", UsageError, f"{{option}}: found {test!r}, expected one of "
+                      "knha, knha-truncated (default), z")
+    if df_method == "z" and name != "z":
+        raise UsageError(f"test={test!r} contradicts df_method='z'; give one of them")
+    return name
+
+
+def _permute_precision(values: pd.DataFrame, *, participants=None, permutations: int, rng, contrast=None,
+                       formula=None, tau2="reml", df_method="knapp-hartung", test=None, center=True, **_ignored):
+    """Sign-flip permutation p (per region) and max-statistic family-wise p of the precision-weighted mean."""
+    from ._common import pivot_contrast, region_order, spelled
+
+    if formula is not None:
+        raise spelled("permutations=0", "no --permutations", UsageError,
+                      "precision-weighted: sign-flip permutations test the weighted mean only (no formula); with "
+                      "a formula, use {option}")
+    regions = region_order(values)
+    y = pivot_contrast(values, contrast, regions=regions).to_numpy(float)
+    v = pivot_contrast(values, contrast, column="variance", regions=regions).to_numpy(float)
+    p_region, p_fwe, n_perm, exact = sign_flip_precision(y, v, permutations=permutations, rng=rng,
+                                                         tau2_method=str(tau2).lower(),
+                                                         test=_resolve_test(test, df_method))
+    return {"mean": p_fwe, "_n_permutations": n_perm, "_exact": exact, "_scheme": "sign-flip (weighted)",
+            "_columns": {"p_permutation": {"mean": p_region}}}
+
+
+def sign_flip_precision(
+    y: np.ndarray,
+    v: np.ndarray,
+    *,
+    permutations: int,
+    rng: np.random.Generator,
+    tau2_method: Tau2Method = "reml",
+    test: str = "knha-truncated",
+    chunk_columns: int = 20000,
+) -> tuple[np.ndarray, np.ndarray, int, bool]:
+    """Sign-flip permutation test of the precision-weighted mean in every region (column).
+
+    Under the null hypothesis of a zero mean and effects symmetric about it, each participant's value may change
+    sign; for every sign pattern (the same for all regions) tau2 is re-estimated and the weighted statistic
+    recomputed (Follmann & Proschan 1999). When ``2^n <= permutations`` all patterns are enumerated.
+
+    Returns
+    -------
+    (p, p_fwe, n_permutations, exact)
+        Per region the two-sided permutation p, the max-|statistic| family-wise p across regions, the number of
+        sign patterns used and whether they were enumerated. Random patterns count the observed one:
+        ``p = (1 + #{|t*| >= |t|}) / (B + 1)``; enumeration gives ``#{|t*| >= |t|} / 2^n``.
+    """
+    y = _as_2d(y)
+    v = _as_2d(v)
+    n, R = y.shape
+    mask = np.isfinite(y) & np.isfinite(v)
+    name = _TEST_NAMES.get(test, test)
+    observed = np.abs(fit_precision_weighted(y, v, mask=mask, tau2_method=tau2_method, test=name)["statistic"][:, 0])
+    exact = n <= 30 and 2**n <= permutations
+    if exact:
+        import itertools
+
+        signs = np.array(list(itertools.product((1.0, -1.0), repeat=n)))
+    else:
+        signs = rng.choice(np.array([-1.0, 1.0]), size=(permutations, n))
+    B = signs.shape[0]
+    y0 = np.where(mask, y, 0.0)
+    v0 = np.where(mask, v, 1.0)
+    per = max(1, chunk_columns // max(R, 1))
+    stats_perm = np.empty((B, R))
+    for start in range(0, B, per):
+        sg = signs[start:start + per]  # (b, n)
+        b = sg.shape[0]
+        yy = (sg[:, :, None] * y0[None]).transpose(1, 0, 2).reshape(n, b * R)
+        vv = np.broadcast_to(v0[:, None, :], (n, b, R)).reshape(n, b * R)
+        mm = np.broadcast_to(mask[:, None, :], (n, b, R)).reshape(n, b * R)
+        fit = fit_precision_weighted(yy, vv, mask=mm, tau2_method=tau2_method, test=name)
+        stats_perm[start:start + b] = np.abs(fit["statistic"][:, 0]).reshape(b, R)
+    tol = 1e-9 * np.maximum(observed, 1e-300)
+    hits = (stats_perm >= observed[None, :] - tol).sum(0)
+    max_hits = (stats_perm.max(1)[:, None] >= observed[None, :] - tol).sum(0)
+    if exact:
+        return hits / B, max_hits / B, B, True
+    return (1 + hits) / (B + 1), (1 + max_hits) / (B + 1), B, False
+
+
+@register("precision-weighted", permutation=_permute_precision)
 def precision_weighted(
     values: pd.DataFrame,
     *,
@@ -400,6 +513,7 @@ def precision_weighted(
     formula: str | None = None,
     tau2: Tau2Method = "reml",
     df_method: Literal["knapp-hartung", "z"] = "knapp-hartung",
+    test: Literal["knha", "knha-truncated", "z"] | None = None,
     center: bool = True,
 ) -> pd.DataFrame:
     """Precision-weighted two-level design: first-level variances known, between-participant variance estimated.
@@ -423,6 +537,11 @@ def precision_weighted(
         likelihood, DerSimonian-Laird (truncated at 0), Paule-Mandel.
     df_method : {"knapp-hartung", "z"}
         Knapp-Hartung t on n - p df (default, for small samples) or Wald z.
+    test : {"knha", "knha-truncated", "z"}, optional
+        The inference on the coefficients: Knapp-Hartung (Knapp & Hartung 2003), the same with its variance factor
+        ``q = sum w e^2 / (k - p)`` truncated below at 1 (default; Roever, Knapp & Friede 2015; Jackson et al.
+        2017), or z. ``df_method='z'`` is the same as ``test='z'``. With ``permutations`` (``run_design``) the
+        weighted mean also gets a sign-flip permutation p (``p_permutation``; Follmann & Proschan 1999).
     center : bool
         Mean-centre numeric covariates of ``formula``.
 
@@ -453,7 +572,7 @@ def precision_weighted(
     >>> from roikit.stats import run_design
     >>> run_design(values, "precision-weighted", contrast="novel", tau2="reml")   # doctest: +SKIP
     """
-    from ._common import (check_minimum_n, join_ids, low_coverage, missing_by_region, pivot_contrast,
+    from ._common import (check_minimum_n, join_ids, low_coverage, pivot_contrast,
                           region_order, result_rows, warn_exclusions, warn_low_coverage)
     from .diagnostics import residual_diagnostics, warn_diagnostics
 
@@ -471,6 +590,8 @@ def precision_weighted(
         raise UsageError(f"tau2: found {tau2!r}, expected one of reml, ml, dl, pm; fix: --tau2 reml")
     if df_method not in ("knapp-hartung", "z"):
         raise UsageError(f"df_method: found {df_method!r}, expected 'knapp-hartung' (default) or 'z'")
+    test = _resolve_test(test, df_method)
+    df_method = "z" if test == "z" else "knapp-hartung"
     regions = region_order(values)
     Y = pivot_contrast(values, contrast, regions=regions)
     Vdf = pivot_contrast(values, contrast, column="variance", regions=regions)
@@ -523,7 +644,7 @@ def precision_weighted(
         raise DesignError(f"precision-weighted: the formula {formula_text!r} is not estimable (collinear or constant "
                           f"predictors) in region(s) {', '.join(bad_r[:10])}; simplify the formula")
 
-    fit = fit_precision_weighted(y, v, X, mask=mask, tau2_method=tau2, test=df_method, confidence=confidence)
+    fit = fit_precision_weighted(y, v, X, mask=mask, tau2_method=tau2, test=_TEST_NAMES[test], confidence=confidence)
     if not fit["converged"].all():
         bad_r = [regions[j] for j in np.flatnonzero(~fit["converged"])]
         raise ConvergenceError(f"precision-weighted: Fisher scoring for tau2 ({tau2}) did not converge in region(s) "
@@ -549,7 +670,7 @@ def precision_weighted(
             contrast=str(contrast), formula=formula_text, df_method=df_method, population_inference=True,
             excluded_ids=[join_ids(e) for e in excluded], n_low_coverage=[len(cv) for cv in coverage],
             low_coverage_ids=[join_ids(cv) for cv in coverage], **diag,
-            tau2=fit["tau2"], i2=fit["i2"], q=fit["q"], q_p=fit["q_p"], tau2_method=tau2,
+            tau2=fit["tau2"], i2=fit["i2"], q=fit["q"], q_p=fit["q_p"], tau2_method=tau2, test=test,
             boundary=fit["boundary"], converged=fit["converged"], centered=",".join(centred) if centred else None,
         ))
     out = pd.concat(frames, ignore_index=True)

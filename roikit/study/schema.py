@@ -41,7 +41,7 @@ class StudyError(UsageError):
 #: Every key a study file may hold, by section (``analysis`` keys mirror the command-line options).
 STUDY_KEYS: dict[str, tuple[str, ...]] = {
     "": ("study", "maps", "regions", "extraction", "analysis"),
-    "study": ("title", "participants"),
+    "study": ("title", "participants", "contrasts", "regions"),
     "maps": ("effect", "variance", "list"),
     "regions": ("atlas", "labels", "sphere", "mask", "probability", "split_hemispheres", "within", "select",
                 "rename", "circular", "space", "citation"),
@@ -50,11 +50,12 @@ STUDY_KEYS: dict[str, tuple[str, ...]] = {
     "regions.probability": ("image", "threshold", "name", "labels", "space", "citation"),
     "extraction": ("statistic", "keep_zeros", "jobs"),
     "analysis": ("design", "contrast", "versus", "group", "levels", "welch", "formula", "random", "crossed",
-                 "tau2", "correct", "permutations", "seed", "confidence"),
+                 "tau2", "correct", "permutations", "seed", "confidence", "nested", "center", "estimation", "test"),
 }
 
 #: Analysis keys that are design options (passed to the design when given).
-_DESIGN_OPTIONS = ("contrast", "versus", "group", "levels", "welch", "formula", "random", "crossed", "tau2")
+_DESIGN_OPTIONS = ("contrast", "versus", "group", "levels", "welch", "formula", "random", "crossed", "tau2",
+                   "nested", "center", "estimation", "test")
 
 #: Options each design cannot do without (beyond what its signature requires).
 _NEEDS = {
@@ -396,6 +397,18 @@ def load_study(path: PathLike) -> Study:
         except RoikitError as exc:
             c.add("study.participants", str(exc))
 
+    # [study] contrasts, regions: tables describing contrasts and regions (columns a formula may name)
+    side_tables: dict[str, tuple[Path, pd.DataFrame]] = {}
+    for name, kind, option in (("contrasts", "contrasts", "contrasts"), ("regions", "regions", "region_table")):
+        table_path = c.file(section, name, "study", what=f"{name} table")
+        if table_path is not None:
+            from ..stats._common import side_table
+
+            try:
+                side_tables[option] = (table_path, side_table(table_path, kind=kind))
+            except RoikitError as exc:
+                c.add(f"study.{name}", str(exc))
+
     # [maps]
     maps = _check_maps(c, raw)
     contrasts = sorted(set(maps["contrast"])) if maps is not None else None
@@ -419,8 +432,10 @@ def load_study(path: PathLike) -> Study:
     columns = list(VALUE_COLUMNS)
     if participants is not None:
         columns += [str(col) for col in participants.columns if col not in columns]
+    for _path, table in side_tables.values():
+        columns += [str(col) for col in table.columns if col not in columns]
     analyses = _check_analyses(c, raw, contrasts=contrasts, participants=participants, columns=columns,
-                               has_variance=has_variance, maps_known=maps is not None)
+                               has_variance=has_variance, maps_known=maps is not None, side_tables=side_tables)
 
     # realise the regions on the maps' grid (only when everything else is sound: it reads images)
     realised = None
@@ -620,7 +635,8 @@ def _participant_values(participants: pd.DataFrame, column: str) -> list[str]:
     return sorted({fmt(v) for v in participants[column].dropna()})
 
 
-def _check_analyses(c: _Checker, raw: dict, *, contrasts, participants, columns, has_variance, maps_known):
+def _check_analyses(c: _Checker, raw: dict, *, contrasts, participants, columns, has_variance, maps_known,
+                    side_tables=None):
     blocks = raw.get("analysis", [])
     if isinstance(blocks, dict):
         blocks = [blocks]
@@ -734,6 +750,24 @@ def _check_analyses(c: _Checker, raw: dict, *, contrasts, participants, columns,
                 c.add(f"{key}.crossed", f"must be a column of the region values table or participants.tsv"
                                         f"{_suggest(str(value), columns)}; found {value!r}")
             options["crossed"] = value
+        if "nested" in block and "nested" in accepted:
+            value = block["nested"]
+            if not isinstance(value, str) or value not in columns:
+                c.add(f"{key}.nested", f"must be a column of the region values table, contrasts.tsv or "
+                                       f"participants.tsv{_suggest(str(value), columns)}; found {value!r}")
+            options["nested"] = value
+        if "center" in block and "center" in accepted:
+            options["center"] = c.boolean(block, "center", key, True)
+        for name, allowed in (("estimation", ("reml", "ml")), ("test", ("knha", "knha-truncated", "z"))):
+            if name in block and name in accepted:
+                value = block[name]
+                if value not in allowed:
+                    c.add(f"{key}.{name}", f"must be one of {', '.join(allowed)}, found {value!r}"
+                                           f"{_suggest(str(value), allowed)}")
+                options[name] = value
+        for option, (table_path, _table) in (side_tables or {}).items():
+            if option in params:  # designs that join per-contrast / per-region columns get the table
+                options[option] = str(table_path)
         if "tau2" in block and "tau2" in accepted:
             value = block["tau2"]
             if value not in _TAU2:
@@ -758,6 +792,9 @@ def _check_analyses(c: _Checker, raw: dict, *, contrasts, participants, columns,
         if permutations and design not in PERMUTATIONS:
             c.add(f"{key}.permutations", f"design {design!r} has no permutation test; designs with one: "
                                          f"{', '.join(PERMUTATIONS)}")
+        if permutations and design == "precision-weighted" and "formula" in block:
+            c.add(f"{key}.permutations", "sign-flip permutations test the precision-weighted mean only; drop the "
+                                         "formula or the permutations")
         if permutations and seed is None:
             c.add(f"{key}.seed", "missing; permutations in a study file need a seed so that the run can be "
                                  "repeated exactly (e.g. seed = 1)")

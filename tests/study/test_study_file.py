@@ -96,7 +96,6 @@ design = "anova"
         "analysis[2].levels: 'old' is not a value of column group; did you mean 'older'?; found older, younger",
         "analysis[3].contrast: 'novl' is not a contrast of the maps; did you mean 'novel'?; found familiar, novel",
         "analysis[3].formula: formula 'value ~ np.log(age) + sex': token '.' is not allowed",
-        "analysis[4].permutations: design 'precision-weighted' has no permutation test",
         "analysis[4].seed: missing",
         "analysis[4].design: 'precision-weighted' needs first-level variances",
         "analysis[5].design: 'anova' is not a design",
