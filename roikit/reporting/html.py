@@ -99,6 +99,7 @@ footer { margin-top: 3rem; font-size: .8rem; color: var(--muted); }
   table.apa { font-size: 7.5pt; }
   table.apa th, table.apa td { padding: .1rem .22rem; }
   table.apa td.l { white-space: normal; }
+  table.apa.whole-stub td:first-child { white-space: nowrap; }  /* region names stay whole */
   /* a figure never taller than the page: at most its print width, at most 215 mm high, proportions kept */
   figure.plot .zoom img { width: auto !important; max-width: var(--print-width, 100%); max-height: 215mm; }
   a { color: inherit; text-decoration: none; }

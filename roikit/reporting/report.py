@@ -491,11 +491,11 @@ def write_report(
     sections.append(Section("methods", "Methods", ["\n".join(f"<p>{render(p, 'html')}</p>"
                                                               for p in method_paragraphs)]))
     body = ["\n".join(f"<p>{render(p, 'html')}</p>" for p in result_paragraphs)]
-    body += [f'<div class="table-wrap">{t.to_html()}</div>' for t in tables]
+    body += [t.to_html() for t in tables]
     sections.append(Section("results", "Results", body))
     if figure_items:
         sections.append(Section("figures", "Figures", [figure_html(f) for f in figure_items]))
-    sections.append(Section("descriptives", "Descriptive statistics", [f'<div class="table-wrap">{desc.to_html()}</div>']))
+    sections.append(Section("descriptives", "Descriptive statistics", [desc.to_html()]))
     sections.append(Section("assumptions", "Assumptions and scope", [
         "<ul>" + "".join(f"<li>{render(a, 'html')}</li>" for a in assumption_lines) + "</ul>",
         f"<p>{_html.escape(SCOPE_STATEMENT)}</p>"]))

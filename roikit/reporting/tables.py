@@ -281,12 +281,17 @@ class ReportTable:
         out.append('<p class="scroll-hint" aria-hidden="true"></p>')
         out.append(f'<div class="table-scroll" tabindex="0" role="region" aria-label="{esc(label)}, scrolls '
                    'sideways">')
-        out.append('<table class="apa">')
+        # printed, the stub (first) column stays on one line while its labels are short; other text columns wrap
+        cells = self.cells("html")
+        stub = self.columns[0] if self.columns else None
+        whole = stub is not None and stub.align == "l" and max(
+            (len(render(row.get(stub.key, MISSING), "plain")) for row in self.rows), default=0) <= _HTML_STUB_CHARS
+        out.append('<table class="apa whole-stub">' if whole else '<table class="apa">')
         out.append("<thead><tr>" + "".join(
             f'<th data-column="{esc(c.key, quote=True)}" class="{c.align}">{h}</th>'
             for c, h in zip(self.columns, self.headers("html"))) + "</tr></thead>")
         out.append("<tbody>")
-        for rid, cells in zip(self.row_ids or [{}] * len(self.rows), self.cells("html")):
+        for rid, cells in zip(self.row_ids or [{}] * len(self.rows), cells):
             attrs = "".join(f' data-{esc(k)}="{esc(str(v), quote=True)}"' for k, v in rid.items())
             out.append(f"<tr{attrs}>" + "".join(
                 f'<td data-column="{esc(c.key, quote=True)}" class="{c.align}">{v}</td>'
@@ -427,6 +432,10 @@ def _apa_borders(table) -> None:
 
 # ---------------------------------------------------------------------------------------------- word layout
 _HTML_LONG_ROWS = 40  # rows of a printed table that may not fit one A4/Letter page (7.5 pt rows, with its note)
+# longest stub label (characters) kept on one printed line: at 7.5 pt DejaVu Serif (~5.6 CSS px a character) 36
+# characters take ~200 of the 680 px of an A4 text block, leaving room for a 12-column results table (common
+# practice, no source); a longer label wraps at its spaces like the other text columns
+_HTML_STUB_CHARS = 36
 _WORD_MARGIN_CM = 2.5
 _WORD_BODY_PT = 10.0
 _WORD_TABLE_PT = (9.0, 8.0)

@@ -107,6 +107,17 @@ def test_markdown_latex_html_tsv(results_by_design):
     assert len(tsv) == 1 + 3
 
 
+def test_html_print_keeps_short_region_names_whole(results_by_design):
+    # printed, a table whose region names are short keeps them on one line (class read by the report's print CSS);
+    # one with a name past 36 characters lets the names wrap, so the table still fits the page width
+    table = results_table(results_by_design["two-group"])
+    assert '<table class="apa whole-stub">' in table.to_html()
+    name = "Juxtapositional Lobule Cortex (formerly Supplementary Motor Cortex)"
+    table.rows[0]["region"] = name
+    html = table.to_html()
+    assert '<table class="apa">' in html and name in html
+
+
 def test_word_table_reads_back(results_by_design, tmp_path):
     table = results_table(results_by_design["paired"])
     path = tmp_path / "paired.docx"
