@@ -63,7 +63,7 @@ def _as_volume(image, grid: Grid) -> np.ndarray:
         if image.shape[:3] != tuple(grid.shape):
             raise UsageError(f"background array has shape {image.shape}, expected the regions' grid {grid.shape}")
         return np.asarray(image[..., 0] if image.ndim == 4 else image, dtype=float)
-    data, source = load_map(image, volume=0 if len(read_header(image).shape) == 4 else None)
+    data, source = load_map(image, volume=0 if read_header(image).n_volumes > 1 else None)
     if not source.matches(grid):
         data = resample_nearest(data, source, grid, fill=np.nan)
     return np.asarray(data, dtype=float)
@@ -240,9 +240,9 @@ def region_figure(
         bg = np.zeros(grid.n_voxels)
         for vox in regions.voxels:
             bg[vox] = 1.0
-        bg = bg.reshape(grid.shape, order="F")
+        bg = np.where(bg.reshape(grid.shape, order="F") > 0, 1.0, np.nan)  # regions light grey on white
         bg_text = "background: all regions (grey)"
-        limits = (0.0, 4.0)
+        limits = (0.0, 1.2)
     else:
         bg = _as_volume(background, grid)
         bg_text = title or ""
@@ -252,7 +252,7 @@ def region_figure(
     sizes = np.abs(np.diag(affine)[:3])
     origin = affine[:3, 3]
     shape = bg.shape
-    inside = np.argwhere(np.isfinite(bg) & (bg != 0))
+    inside = np.argwhere(np.isfinite(bg) & (bg != 0)) if background is not None else np.empty((0, 3))
     box = (inside.min(axis=0), inside.max(axis=0)) if len(inside) else (np.zeros(3, int), np.array(shape) - 1)
 
     def world(axis: int, index) -> np.ndarray:
@@ -306,8 +306,10 @@ def region_figure(
                     setter(ends[0] - 1.5 * sizes[ax_i], ends[1] + 1.5 * sizes[ax_i])
                 ax.set_xticks([])
                 ax.set_yticks([])
-                for spine in ax.spines.values():
-                    spine.set_visible(False)
+                for spine in ax.spines.values():  # a frame shows the grid's extent when there is no background
+                    spine.set_visible(background is None)
+                    spine.set_color("0.75")
+                    spine.set_linewidth(0.5)
                 ax.set_xlabel(_minus(f"{label} = {xyz[axis]:.0f} mm"), fontsize=MIN_FONT_PT, labelpad=1.5)
                 if axis in (1, 2):  # left-right axes: say which side is which
                     ax.text(0.0, 1.0, "L", transform=ax.transAxes, va="top", ha="left", color="0.2",

@@ -35,8 +35,8 @@ from ._common import (
 )
 from .figures import (
     covariate_plot,
-    forest_plot,
-    participant_figure,
+    forest_pages,
+    participant_pages,
     precision_plot,
     save_figure,
     stimulus_plot,
@@ -46,7 +46,7 @@ from .html import ReportFigure, Section, figure_html, report_html
 from .tables import ReportTable, descriptives_table, results_tables
 from .text import SCOPE_STATEMENT, assumptions, cautions, methods_text, results_text, software_versions
 
-__all__ = ["write_report", "check_report_outputs", "REPORT_OUTPUTS"]
+__all__ = ["write_report", "check_report_outputs", "labels_from_sidecar", "REPORT_OUTPUTS"]
 
 #: What ``write_report`` writes inside ``out``.
 REPORT_OUTPUTS = ("tables", "figures", "methods.md", "report.html", "provenance.json")
@@ -82,8 +82,36 @@ def _numeric_column(values: pd.DataFrame, participants: pd.DataFrame | None, nam
     return None
 
 
-def _figure_plan(values: pd.DataFrame, results: pd.DataFrame, participants: pd.DataFrame | None) -> list[dict]:
-    """What to draw for each analysis: dicts with name, make (callable -> Figure), caption, alt, width."""
+def labels_from_sidecar(participants_tsv: str | os.PathLike | None) -> dict[str, str]:
+    """Reader-facing names of participants.tsv columns from its JSON sidecar (BIDS layout).
+
+    ``LongName`` when given, else the column name with spaces for underscores; ``Units`` appended in
+    parentheses (``route_accuracy`` with ``"Units": "%"`` -> ``"route accuracy (%)"``).
+    """
+    if participants_tsv is None:
+        return {}
+    side = Path(participants_tsv).with_suffix(".json")
+    try:
+        import json
+
+        data = json.loads(side.read_text(encoding="utf-8")) if side.is_file() else {}
+    except (OSError, ValueError):
+        return {}
+    out = {}
+    for name, entry in (data.items() if isinstance(data, dict) else []):
+        if not isinstance(entry, dict):
+            continue
+        label = str(entry.get("LongName") or name.replace("_", " "))
+        units = entry.get("Units")
+        out[name] = f"{label} ({units})" if units and f"({units})" not in label else label
+    return out
+
+
+def _figure_plan(values: pd.DataFrame, results: pd.DataFrame, participants: pd.DataFrame | None,
+                 value_label: str | None = None, labels: dict[str, str] | None = None) -> list[dict]:
+    """What to draw for each analysis: dicts with name, make (callable -> Figure or list of page Figures),
+    caption, alt, width."""
+    labels = labels or {}
     plan: list[dict] = []
     contrasts_all = ordered_unique(values["contrast"].map(text))
     for key, rows in split_analyses(results):
@@ -93,35 +121,35 @@ def _figure_plan(values: pd.DataFrame, results: pd.DataFrame, participants: pd.D
         contrast = key.get("contrast") or None
         if contrast is not None and contrast not in contrasts_all:
             contrast = None
-        opts: dict[str, Any] = dict(results=results)
+        opts: dict[str, Any] = dict(results=results, value_label=value_label)
         flags = _FLAGS
         if design in ("one-sample", "fixed-effects") and contrast:
             note = (" The fixed-effects estimate describes only these participants and does not generalise to the "
                     "population." if design == "fixed-effects" else "")
             plan.append(dict(name=f"participants_{base}", caption=f"{escape_markup(title)}. {_POINTS}{flags}{note}",
-                             make=lambda c=contrast, d=design: participant_figure(values, contrast=c, design=d,
+                             make=lambda c=contrast, d=design: participant_pages(values, contrast=c, design=d,
                                                                                   **opts)))
         elif design == "paired" and contrast and key.get("versus") in contrasts_all:
             plan.append(dict(name=f"participants_{base}", caption=(
                 f"{escape_markup(title)}. Grey lines connect each participant's values; open points to the right are "
                 f"the within-participant differences with their mean and CI (diamond). {_POINTS}{flags}"),
-                make=lambda c=contrast, v=key["versus"]: participant_figure(values, contrast=c, versus=v, **opts)))
+                make=lambda c=contrast, v=key["versus"]: participant_pages(values, contrast=c, versus=v, **opts)))
         elif design == "two-group" and contrast and key.get("group_column"):
             levels = [s for s in key.get("levels", "").split(",") if s] or None
             plan.append(dict(name=f"participants_{base}", caption=(
                 f"{escape_markup(title)}. Groups differ in colour and marker (Okabe–Ito palette); the diamond is the "
                 f"difference between the group means with its CI. {_POINTS}{flags}"),
-                make=lambda c=contrast, g=key["group_column"], lv=levels: participant_figure(
+                make=lambda c=contrast, g=key["group_column"], lv=levels: participant_pages(
                     values, contrast=c, group=g, levels=lv, participants=participants, **opts)))
         elif design == "precision-weighted" and contrast:
             if "variance" in values.columns:
                 plan.append(dict(name=f"precision_{base}", caption=(
                     f"{escape_markup(title)}. Point area is proportional to each participant's weight 1/(*v*_{{i}} + "
                     f"τ^{{2}}); the black marker is the precision-weighted estimate with its CI. {flags.strip()}"),
-                    make=lambda c=contrast: participant_figure(values, contrast=c, plot=precision_plot, **opts)))
+                    make=lambda c=contrast: participant_pages(values, contrast=c, plot=precision_plot, **opts)))
             else:
                 plan.append(dict(name=f"participants_{base}", caption=f"{escape_markup(title)}. {_POINTS}",
-                                 make=lambda c=contrast: participant_figure(values, contrast=c, **opts)))
+                                 make=lambda c=contrast: participant_pages(values, contrast=c, **opts)))
         elif design == "glm" and contrast:
             drawn = False
             for term in _formula_columns(key.get("formula", "")):
@@ -132,13 +160,13 @@ def _figure_plan(values: pd.DataFrame, results: pd.DataFrame, participants: pd.D
                         f"{escape_markup(title)}: region values against {escape_markup(term)}. The line is the simple "
                         "least-squares fit with its 95% confidence band; each panel's title quotes the model's "
                         "coefficient b, which is adjusted for the other terms."),
-                        make=lambda t=term, c=contrast, g=group: participant_figure(
+                        make=lambda t=term, c=contrast, g=group: participant_pages(
                             values, contrast=c, covariate=t, group=g, participants=participants, plot=covariate_plot,
-                            **opts)))
+                            covariate_label=labels.get(t), **opts)))
                     drawn = True
             if not drawn:
                 plan.append(dict(name=f"participants_{base}", caption=f"{escape_markup(title)}. {_POINTS}",
-                                 make=lambda c=contrast: participant_figure(values, contrast=c, **opts)))
+                                 make=lambda c=contrast: participant_pages(values, contrast=c, **opts)))
         elif design == "mixed":
             crossed = [c[3:] for c in rows.columns if c.startswith("sd_") and c not in ("sd_participant", "sd_residual")
                        and has_values(rows, c) and c[3:] in values.columns]
@@ -154,7 +182,7 @@ def _figure_plan(values: pd.DataFrame, results: pd.DataFrame, participants: pd.D
                     f"{escape_markup(title)}: per-{escape_markup(stim)} estimates (mean and 95% CI across participants, "
                     "black) with every participant's value behind them; the dotted line is the mean of the "
                     "per-stimulus means, the dashed line zero."),
-                    make=lambda s=stim, g=group, v=model_values: participant_figure(v, stimulus=s, group=g,
+                    make=lambda s=stim, g=group, v=model_values: participant_pages(v, stimulus=s, group=g,
                                                                     participants=participants, plot=stimulus_plot,
                                                                     **opts)))
         # forest plots: one per term with an interval (intercepts of models left out)
@@ -168,12 +196,57 @@ def _figure_plan(values: pd.DataFrame, results: pd.DataFrame, participants: pd.D
                 continue
             if len(part) < 2:
                 continue
-            plan.append(dict(name=f"forest_{slug(term)}_{base}", width="single", caption=(
+            in_value_units = design not in ("glm", "mixed") or term.lower() in ("intercept", "(intercept)")
+            plan.append(dict(name=f"forest_{slug(term)}_{base}", caption=(
                 f"{escape_markup(title)}, term {escape_markup(term)}: estimates with their 95% CIs across regions. "
                 "Filled squares survive the correction for the number of regions (family-wise or false discovery "
                 "rate, as named in the legend); open squares do not. The dashed line marks zero."),
-                make=lambda pt=part: forest_plot(pt).figure))
+                make=lambda pt=part, u=in_value_units: forest_pages(pt, value_label=value_label if u else None)))
     return plan
+
+
+def _region_figures(values: pd.DataFrame, values_prov: dict, regions, background) -> tuple[list, Any, str]:
+    """Region figure pages, the realised regions and what the background is (raises UsageError if impossible)."""
+    from .region_figure import mean_background, region_pages, regions_from_provenance
+
+    if regions is None:
+        try:
+            regions = regions_from_provenance(values_prov)
+        except (OSError, ValueError, KeyError, TypeError) as exc:
+            raise UsageError(f"the regions could not be rebuilt from the values' provenance ({exc}); pass "
+                             "regions= (the realised regions) to draw them") from exc
+    names = [n for n in ordered_unique(values["region"].map(text)) if n in regions.names]
+    if not names:
+        raise UsageError("none of the values' regions is in the region set")
+    image, what = None, "the regions' union (grey)"
+    if isinstance(background, str) and background == "maps":
+        paths = [i["path"] for i in values_prov.get("inputs", []) if isinstance(i, dict) and i.get("path")
+                 and Path(i["path"]).is_file()]
+        if paths:
+            image = mean_background(paths, regions.grid)
+            used = min(len(paths), 100)
+            what = f"mean of the {used} maps" if used == len(paths) else f"mean of {used} of the {len(paths)} maps"
+    elif background is not None:
+        image = background
+        what = os.fspath(background) if isinstance(background, (str, os.PathLike)) else "the given image"
+    pages = region_pages(regions, names=names, background=image, title=f"background: {what}")
+    return pages, regions.__class__(regions.grid, names, [regions.voxels[regions.names.index(n)] for n in names],
+                                    [regions.weights[regions.names.index(n)] for n in names],
+                                    [regions.sources[regions.names.index(n)] for n in names]), what
+
+
+def _region_rows(regions) -> list[list[str]]:
+    from .format import format_number
+
+    rows = []
+    for r in regions.summary().to_dict("records"):
+        rows.append([str(r["region"]), str(r["source"]), format_number(r["n_voxels"], 0),
+                     format_number(r["volume_mm3"], 0), format_number(r["x_mm"], 1), format_number(r["y_mm"], 1),
+                     format_number(r["z_mm"], 1)])
+    return rows
+
+
+_REGION_HEAD = ["Region", "Definition", "Voxels", "Volume (mm³)", "x (mm)", "y (mm)", "z (mm)"]
 
 
 def check_report_outputs(out: Path, overwrite: bool) -> None:
@@ -199,6 +272,10 @@ def write_report(
     circular: Iterable[str] | None = None,
     figures: bool = True,
     figure_formats: tuple[str, ...] = ("pdf", "svg", "png"),
+    value_label: str | None = None,
+    regions: Any = None,
+    region_background: Any = "maps",
+    column_labels: dict[str, str] | None = None,
 ) -> dict[str, Any]:
     """Write tables, figures, ``methods.md``, ``report.html`` and ``provenance.json`` into ``out``.
 
@@ -225,6 +302,18 @@ def write_report(
         Draw the figures (False for a quick text-and-tables report).
     figure_formats : tuple of str
         Files written per figure (PNG is always written: the HTML embeds it).
+    value_label : str, optional
+        Axis label of the region values with their unit, e.g. ``"Parameter estimate (a.u.)"`` or
+        ``"% signal change"`` (default "region value").
+    regions : Regions, optional
+        The realised regions, for the "Regions" section (each region on slices through its centre, with a
+        table of centre and size); default: rebuilt from the values' provenance when it describes them.
+    region_background : "maps", array, path or None
+        Background of the region figure: ``"maps"`` (the mean of the maps listed in the values' provenance),
+        an image on the regions' grid or a file, or None (the regions' union in grey).
+    column_labels : dict, optional
+        Reader-facing names of participants.tsv columns for axis labels (default: from the participants
+        sidecar's ``LongName`` and ``Units`` when ``participants`` is a path; see :func:`labels_from_sidecar`).
 
     Returns
     -------
@@ -238,6 +327,8 @@ def write_report(
         One summary when any caution applies (the cautions are written in the report).
     """
     out = Path(out)
+    if column_labels is None:
+        column_labels = labels_from_sidecar(participants) if isinstance(participants, (str, os.PathLike)) else {}
     values = _as_table(values, "values", REQUIRED_VALUES)
     results = _as_table(results, "results", REQUIRED_RESULTS)
     participants = _as_table(participants, "participants", ("participant_id",))
@@ -277,28 +368,61 @@ def write_report(
     figure_items: list[ReportFigure] = []
     figure_paths: list[Path] = []
     figure_errors: list[str] = []
+    region_items: list[ReportFigure] = []
+    drawn_regions = None
     if figures:
-        for i, item in enumerate(_figure_plan(values, results, participants), start=1):
+        # where the regions are (the manuscript's first region figure), then the analyses' figures
+        try:
+            pages, drawn_regions, background_text = _region_figures(values, values_prov, regions, region_background)
+        except UsageError as exc:
+            figure_errors.append(f"regions: {exc}")
+            pages = []
+        for k, fig in enumerate(pages, start=1):
+            name = "regions" + (f"_page{k}" if len(pages) > 1 else "")
+            caption = (f"The regions of interest, each on a sagittal, a coronal and an axial slice through its centre "
+                       f"(world coordinates in mm; L, left; R, right) over the {escape_markup(background_text)}; "
+                       "one colour per region (Okabe–Ito palette, repeating after seven)."
+                       + (f" (Page {k} of {len(pages)}.)" if len(pages) > 1 else ""))
+            formats = tuple(dict.fromkeys(tuple(figure_formats) + ("png",)))
+            paths = save_figure(fig, out / "figures" / name, formats=formats, overwrite=overwrite)
+            figure_paths += paths
+            png = next(p for p in paths if p.suffix == ".png").read_bytes()
+            item = ReportFigure(png=png, alt=f"Regions of interest on orthogonal slices, page {k} of {len(pages)}",
+                                caption=caption, number=len(figure_items) + 1, name=name,
+                                width_mm=float(fig.get_size_inches()[0] * 25.4))
+            figure_items.append(item)
+            region_items.append(item)
+        for i, item in enumerate(_figure_plan(values, results, participants, value_label, column_labels), start=1):
             try:
-                fig = item["make"]()
+                made = item["make"]()
             except UsageError as exc:  # a figure that cannot be drawn is reported, never silently skipped
                 figure_errors.append(f"{item['name']}: {exc}")
                 continue
-            formats = tuple(dict.fromkeys(tuple(figure_formats) + ("png",)))
-            paths = save_figure(fig, out / "figures" / item["name"], width=item.get("width"), formats=formats,
-                                overwrite=overwrite)
-            figure_paths += paths
-            png = next(p for p in paths if p.suffix == ".png").read_bytes()
-            alt = re.sub(r"[*_{}^\\]", "", item["caption"]).split(". ")[0]
-            figure_items.append(ReportFigure(png=png, alt=alt, caption=item["caption"], number=len(figure_items) + 1,
-                                             name=item["name"], width_mm=float(fig.get_size_inches()[0] * 25.4)))
+            pages = made if isinstance(made, list) else [made]  # regions beyond one page go onto further figures
+            for k, fig in enumerate(pages, start=1):
+                name = item["name"] + (f"_page{k}" if len(pages) > 1 else "")
+                caption = item["caption"] + (f" (Page {k} of {len(pages)}.)" if len(pages) > 1 else "")
+                formats = tuple(dict.fromkeys(tuple(figure_formats) + ("png",)))
+                paths = save_figure(fig, out / "figures" / name, width=item.get("width"), formats=formats,
+                                    overwrite=overwrite)
+                figure_paths += paths
+                png = next(p for p in paths if p.suffix == ".png").read_bytes()
+                alt = re.sub(r"[*_{}^\\]", "", caption).split(". ")[0]
+                figure_items.append(ReportFigure(png=png, alt=alt, caption=caption, number=len(figure_items) + 1,
+                                                 name=name, width_mm=float(fig.get_size_inches()[0] * 25.4)))
 
     # ---------------------------------------------------------------- text
     found = cautions(results, provenance=values_prov, circular=circular)
     methods_md = methods_text(values, results, participants=participants, provenance=values_prov, style="markdown")
     results_md = results_text(results, style="markdown")
     assumption_lines = assumptions(results)
-    md = [f"# {title}", "", f"> {SCOPE_STATEMENT}", "", "## Methods", "", methods_md, "## Results", "", results_md]
+    md = [f"# {title}", "", f"> {SCOPE_STATEMENT}", "", "## Methods", "", methods_md]
+    if drawn_regions is not None:
+        md += ["## Regions", "", "| " + " | ".join(_REGION_HEAD) + " |", "|" + "---|" * len(_REGION_HEAD)]
+        md += ["| " + " | ".join(escape_markup(c) for c in row) + " |" for row in _region_rows(drawn_regions)]
+        md += ["", "Centre: centre of mass in world coordinates (mm). " + " ".join(
+            f"Figure {f.number}." for f in region_items), ""]
+    md += ["## Results", "", results_md]
     if found:
         md += ["## Cautions", ""] + [f"- {render(c['text'], 'markdown')}" for c in found] + [""]
     md += ["## Assumptions", ""] + [f"- {render(a, 'markdown')}" for a in assumption_lines] + [""]
@@ -314,11 +438,19 @@ def write_report(
             css_class="cautions"))
     sections.append(Section("methods", "Methods", [methods_text(values, results, participants=participants,
                                                                 provenance=values_prov, style="html")]))
+    if drawn_regions is not None:
+        head = "".join(f"<th>{_html.escape(h)}</th>" for h in _REGION_HEAD)
+        rows_html = "".join("<tr>" + "".join(f"<td>{_html.escape(c)}</td>" for c in row) + "</tr>"
+                            for row in _region_rows(drawn_regions))
+        sections.append(Section("regions", "Regions", [figure_html(f) for f in region_items] + [
+            f'<div class="table-wrap"><table class="regions"><caption>Centre (centre of mass, world mm) and size of '
+            f'each region</caption><thead><tr>{head}</tr></thead><tbody>{rows_html}</tbody></table></div>']))
     body = [results_text(results, style="html")]
     body += [f'<div class="table-wrap">{t.to_html()}</div>' for t in tables]
     sections.append(Section("results", "Results", body))
-    if figure_items:
-        sections.append(Section("figures", "Figures", [figure_html(f) for f in figure_items]))
+    analysis_items = [f for f in figure_items if all(f is not r for r in region_items)]
+    if analysis_items:
+        sections.append(Section("figures", "Figures", [figure_html(f) for f in analysis_items]))
     sections.append(Section("descriptives", "Descriptive statistics", [f'<div class="table-wrap">{desc.to_html()}</div>']))
     sections.append(Section("assumptions", "Assumptions and scope", [
         "<ul>" + "".join(f"<li>{render(a, 'html')}</li>" for a in assumption_lines) + "</ul>",
@@ -348,7 +480,7 @@ def write_report(
         "created": created,
         "versions": versions,
         "inputs": extra.get("inputs", []),
-        "options": {"title": title, "circular": list(circular or []), "figures": figures,
+        "options": {"title": title, "circular": list(circular or []), "figures": figures, "value_label": value_label,
                     **extra.get("options", {})},
         "seeds": seeds,
         "analyses": [dict(k) for k, _ in split_analyses(results)],

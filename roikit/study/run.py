@@ -166,6 +166,7 @@ def run_study(
             f"{' ...' if len(existing) > 4 else ''}); pass --overwrite (overwrite=True) to replace them (the "
             "extraction cache is kept, so only new maps are read), or choose another --out folder")
     from ..reporting import write_report
+    from ..reporting.report import labels_from_sidecar
 
     seconds: dict[str, float] = {}
 
@@ -206,7 +207,8 @@ def run_study(
             write_report(values, results, participants=study.participants, out=tmp, overwrite=True,
                          provenance={"inputs": inputs, "options": {"command": "roikit run", "out": os.fspath(out)}},
                          title=study.title, circular=study.circular, figures=figures,
-                         figure_formats=tuple(figure_formats))
+                         figure_formats=tuple(figure_formats), value_label=study.value_label, regions=study.realised,
+                         column_labels=labels_from_sidecar(study.participants_path))
             seconds["report"] = time.perf_counter() - t0
             for w in caught:  # messages naming the temporary folder name the output folder instead
                 if str(tmp) in str(w.message):
