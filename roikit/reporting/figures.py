@@ -500,7 +500,8 @@ def participant_plot(
                 _estimate(ax, ex, m, lo, hi, label=f"mean and {confidence:.0%} CI")
                 if between:
                     tick_pos.append(base)
-                    tick_lab.append(f"{g}\n(n = {n_ok}{f', {n_missing} missing' if n_missing else ''})")
+                    missing_txt = f",\n{n_missing} missing" if n_missing else ""  # own line: labels stay apart
+                    tick_lab.append(f"{g}\n(n = {n_ok}{missing_txt})")
                 elif gi == 0:
                     tick_pos.append(ci)
                     total = int(np.isfinite(wide[c].to_numpy(dtype=float)).sum())
@@ -557,14 +558,12 @@ def participant_plot(
 
 
 def _panel_layout(n_regions: int, *, width: Width, ncols: int | None, panel_height_mm: float,
-                  plot=None, kwargs: dict | None = None) -> tuple[int, int, float]:
+                  plot=None) -> tuple[int, int, float]:
     """Columns, rows per page and panel height for ``n_regions`` panels at ``width``."""
     wmm = _width_mm(width)
     if ncols is None:
-        ncols = 3 if wmm >= 150 else 2
-        if plot is stimulus_plot and wmm >= 150:
-            # one tick label per stimulus: two wide panels keep them apart at 7 pt
-            ncols = 2
+        # panels wide enough for their tick labels at 7 pt: about 55 mm (80 mm with one label per stimulus)
+        ncols = max(1, int(wmm // (80.0 if plot is stimulus_plot else 55.0)))
     ncols = max(1, min(ncols, n_regions))
     rows_max = int((MAX_HEIGHT_MM - _LEGEND_HEIGHT_MM) // panel_height_mm)
     if rows_max < 1:
@@ -603,7 +602,8 @@ def participant_figure(
     regions : sequence of str, optional
         Regions to draw, in this order (default: all, in their order of appearance).
     ncols : int, optional
-        Panels per row (default: 3 at double width, 2 below; 2 for :func:`stimulus_plot` panels).
+        Panels per row (default: as many panels of at least 55 mm as the width holds, i.e. 3 at double width,
+        2 at one-and-a-half and 1 at single width; panels of :func:`stimulus_plot` at least 80 mm).
     width : "single", "one-and-a-half", "double" or float
         Figure width in mm.
     panel_height_mm : float
@@ -1099,8 +1099,10 @@ def covariate_plot(
             # the slope belongs to this panel: under its title, not in a legend that all panels may share
             level = number(r.get("confidence"))
             level = confidence if not np.isfinite(level) else level
-            slope = _minus(f"\n$b$ = {format_number(r['estimate'], 3)}, {level:.0%} CI "
-                           f"{format_ci(r.get('ci_low'), r.get('ci_high'), 3)}")
+            b_txt = f"$b$ = {format_number(r['estimate'], 3)}"
+            ci_txt = f"{level:.0%} CI {format_ci(r.get('ci_low'), r.get('ci_high'), 3)}"
+            # one line when it fits a narrow panel's width at 7.5 pt, else the interval on its own line
+            slope = _minus(f"\n{b_txt}, {ci_txt}" if len(b_txt) + len(ci_txt) <= 32 else f"\n{b_txt}\n{ci_txt}")
         ax.axhline(0, **_ZERO_STYLE)
         ax.set_xlabel(_math_text(covariate_label) if covariate_label else covariate)
         ax.set_ylabel(_math_text(value_label) if value_label else _DEFAULT_LABEL)

@@ -370,7 +370,11 @@ def write_report(
     figure_errors: list[str] = []
     region_items: list[ReportFigure] = []
     drawn_regions = None
-    if figures:
+    region_note = ""
+    if figures and regions is None and not values_prov.get("region_sources"):
+        region_note = ("The values carry no description of the regions (no extraction provenance), so the regions "
+                       "are not drawn; pass the realised regions (regions=...) to draw them.")
+    elif figures:
         # where the regions are (the manuscript's first region figure), then the analyses' figures
         try:
             pages, drawn_regions, background_text = _region_figures(values, values_prov, regions, region_background)
@@ -392,6 +396,7 @@ def write_report(
                                 width_mm=float(fig.get_size_inches()[0] * 25.4))
             figure_items.append(item)
             region_items.append(item)
+    if figures:
         for i, item in enumerate(_figure_plan(values, results, participants, value_label, column_labels), start=1):
             try:
                 made = item["make"]()
@@ -438,6 +443,8 @@ def write_report(
             css_class="cautions"))
     sections.append(Section("methods", "Methods", [methods_text(values, results, participants=participants,
                                                                 provenance=values_prov, style="html")]))
+    if region_note:
+        sections.append(Section("regions", "Regions", [f"<p>{_html.escape(region_note)}</p>"]))
     if drawn_regions is not None:
         head = "".join(f"<th>{_html.escape(h)}</th>" for h in _REGION_HEAD)
         rows_html = "".join("<tr>" + "".join(f"<td>{_html.escape(c)}</td>" for c in row) + "</tr>"
