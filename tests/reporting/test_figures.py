@@ -403,3 +403,170 @@ def test_value_and_covariate_labels(values, participants, results_by_design):
     ax = forest_plot(results_by_design["one-sample"], measure="estimate", value_label="% signal change")
     assert ax.get_xlabel() == "estimate, % signal change and 95% CI"
     assert participant_plot(values, region="left hippocampus", contrast="novel").get_ylabel() == "region value"
+
+
+# --------------------------------------------------------------------------------------------- region figure
+@pytest.fixture()
+def small_regions(tmp_path):
+    """Two atlas boxes and a sphere on the small test grid (2 mm voxels, x flipped), known by construction."""
+    from helpers import SMALL_SHAPE, save_nifti
+    from roikit.regions import Atlas, RegionSet, Sphere
+
+    atlas = np.zeros(SMALL_SHAPE, dtype=np.int16)
+    atlas[2:6, 3:8, 4:8] = 1
+    atlas[12:18, 10:14, 6:10] = 2
+    save_nifti(tmp_path / "atlas.nii.gz", atlas, dtype=np.int16)
+    pd.DataFrame({"index": [1, 2], "name": ["right caudate", "left caudate"]}).to_csv(
+        tmp_path / "atlas.tsv", sep="\t", index=False)
+    brain = np.zeros(SMALL_SHAPE, dtype=np.float32)
+    brain[1:19, 1:23, 1:17] = 1.0 + np.arange(18)[:, None, None] / 18
+    save_nifti(tmp_path / "background.nii.gz", brain)
+    region_set = RegionSet([Atlas(tmp_path / "atlas.nii.gz", tmp_path / "atlas.tsv"),
+                            Sphere("prior peak", (-10.0, 0.0, 0.0), 4.0)])
+    from roikit.images import read_header
+
+    grid = read_header(tmp_path / "atlas.nii.gz").grid
+    return region_set, region_set.realise(grid), tmp_path
+
+
+def test_region_figure_draws_each_region_through_its_centre(small_regions, tmp_path):
+    from matplotlib.colors import to_hex
+
+    from roikit.reporting.region_figure import REGION_COLORS, region_figure
+
+    _, regions, folder = small_regions
+    fig = region_figure(regions, background=folder / "background.nii.gz", title="background: test image")
+    titles = [sub.get_suptitle() for sub in fig.subfigs if sub.get_visible()]
+    assert titles == ["right caudate (80 voxels)", "left caudate (96 voxels)", "prior peak (33 voxels)"]
+    sphere = fig.subfigs[2]
+    # the sphere's centre (-10, 0, 0) mm: the slices go through it (true minus sign)
+    assert [ax.get_xlabel() for ax in sphere.axes] == ["x = \u221210 mm", "y = 0 mm", "z = 0 mm"]
+    # one colour per region, and the overlay holds the region's voxels of that slice: a sphere of radius 4 mm on
+    # 2 mm voxels has 9 + 12 + 9 voxels... its central slice holds 13 voxels (|i|,|j| offsets with i^2+j^2 <= 4)
+    overlay = sphere.axes[2].images[1]
+    assert to_hex(overlay.get_cmap()(1.0)) == REGION_COLORS[2].lower()
+    assert int(np.ma.count(overlay.get_array())) == 13
+    width, height, smallest, overlaps, outside = audit_saved_figure(fig, tmp_path / "regions")
+    assert width == pytest.approx(180) and height <= 225 and smallest >= 7 and not overlaps and not outside
+
+
+def test_region_figure_pages_and_grey_background(small_regions, tmp_path):
+    from roikit.regions import RegionSet, Sphere
+    from roikit.reporting.region_figure import region_figure, region_pages
+
+    _, regions, _ = small_regions
+    spheres = RegionSet([Sphere(f"peak {k:02d}", (-10.0 + (k % 5) * 4, -10.0 + (k // 5) * 6, 0.0), 3.0)
+                         for k in range(13)]).realise(regions.grid)
+    with pytest.raises(UsageError, match="13 regions need 2 figures"):
+        region_figure(spheres)
+    pages = region_pages(spheres)
+    assert len(pages) == 2
+    drawn = [sub.get_suptitle().split(" (")[0] for fig in pages for sub in fig.subfigs if sub.get_visible()]
+    assert drawn == [f"peak {k:02d}" for k in range(13)]
+    for fig in pages:
+        _, height, smallest, _, outside = audit_saved_figure(fig, tmp_path / "p")
+        assert height <= 225 and smallest >= 7 and not outside
+    single = region_figure(regions, width="single")
+    assert single.get_size_inches()[0] * 25.4 == pytest.approx(85)
+
+
+def test_regions_rebuilt_from_the_values_provenance(small_regions):
+    from roikit.reporting.region_figure import regions_from_provenance
+
+    region_set, regions, _ = small_regions
+    prov = {"region_sources": region_set.describe(), **regions.provenance()}
+    rebuilt = regions_from_provenance(prov)
+    assert rebuilt.names == regions.names
+    assert all(np.array_equal(a, b) for a, b in zip(rebuilt.voxels, regions.voxels))
+    prov["regions"][0]["n_voxels"] = 81
+    with pytest.raises(UsageError, match="differ from those recorded"):
+        regions_from_provenance(prov)
+    with pytest.raises(UsageError, match="does not describe the regions"):
+        regions_from_provenance({})
+
+
+def test_mean_background_ignores_missing_voxels(tmp_path):
+    from helpers import SMALL_SHAPE, save_nifti
+    from roikit.reporting.region_figure import mean_background
+
+    a = np.zeros(SMALL_SHAPE, dtype=np.float32)
+    b = np.zeros(SMALL_SHAPE, dtype=np.float32)
+    a[1, 1, 1], b[1, 1, 1] = 2.0, 4.0
+    a[2, 2, 2], b[2, 2, 2] = 3.0, np.nan  # the NaN is missing, not zero
+    paths = [save_nifti(tmp_path / "a.nii.gz", a), save_nifti(tmp_path / "b.nii.gz", b)]
+    mean = mean_background(paths)
+    assert mean[1, 1, 1] == pytest.approx(3.0) and mean[2, 2, 2] == pytest.approx(3.0)
+    assert np.isnan(mean[0, 0, 0])
+
+
+def test_regions_command_draws_the_figure(small_regions, tmp_path, capsys):
+    from roikit.cli import main
+
+    _, _, folder = small_regions
+    base = ["regions", "--atlas", str(folder / "atlas.nii.gz"), "--labels", str(folder / "atlas.tsv"),
+            "--sphere", "prior peak=-10,0,0,4"]
+    assert main(base + ["--figure", str(tmp_path / "where.png"), "--background",
+                        str(folder / "background.nii.gz")]) == 0
+    assert (tmp_path / "where.png").read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
+    assert "figure: " in capsys.readouterr().out
+    assert main(base + ["--figure", str(tmp_path / "all" / "where")]) == 2  # no such folder
+    (tmp_path / "all").mkdir()
+    assert main(base + ["--figure", str(tmp_path / "all" / "where")]) == 0
+    assert sorted(p.name for p in (tmp_path / "all").glob("where.*")) == ["where.pdf", "where.png", "where.svg"]
+    capsys.readouterr()
+    assert main(base + ["--figure", str(tmp_path / "where.png")]) == 1  # exists, no --overwrite
+    assert "--overwrite" in capsys.readouterr().err
+    assert main(base + ["--figure", str(tmp_path / "where.png"), "--overwrite"]) == 0
+    assert main(base + ["--figure", str(tmp_path / "where.jpg")]) == 2
+    assert main(base + ["--background", str(folder / "background.nii.gz")]) == 2  # a background needs --figure
+    assert "--figure" in capsys.readouterr().err
+
+
+def test_report_has_a_regions_section(small_regions, values, results_by_design, tmp_path):
+    import warnings
+
+    from roikit.reporting import write_report
+
+    _, regions, folder = small_regions
+    names = {"left hippocampus": "right caudate", "right hippocampus": "left caudate",
+             "retrosplenial cortex": "prior peak"}
+    vals = values.assign(region=values.region.map(names))
+    vals.attrs = {}
+    rows = results_by_design["one-sample"].assign(region=lambda d: d.region.map(names))
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        written = write_report(vals, rows, out=tmp_path / "r", figure_formats=("png",), regions=regions,
+                               region_background=folder / "background.nii.gz", value_label="% signal change")
+    html = written["html"].read_text()
+    assert '<section id="regions"' in html and "Centre (centre of mass, world mm)" in html
+    assert (tmp_path / "r" / "figures" / "regions.png").is_file()
+    methods = written["methods"].read_text()
+    assert "## Regions" in methods and "| prior peak | sphere | 33 |" in methods
+    assert "−10.0" in methods or "-10.0" in methods
+
+
+def test_report_without_region_description_says_so(values, results_by_design, tmp_path):
+    import warnings
+
+    from roikit.reporting import write_report
+
+    vals = values.copy()
+    vals.attrs = {}
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        written = write_report(vals, results_by_design["one-sample"], out=tmp_path / "r", figure_formats=("png",))
+    assert "no description of the regions" in written["html"].read_text()
+
+
+def test_labels_from_the_participants_sidecar(tmp_path):
+    import json
+
+    from roikit.reporting.report import labels_from_sidecar
+
+    (tmp_path / "participants.tsv").write_text("participant_id\troute_accuracy\tage\n")
+    (tmp_path / "participants.json").write_text(json.dumps({
+        "route_accuracy": {"Description": "share of routes", "Units": "%"},
+        "age": {"LongName": "Age", "Units": "years"}}))
+    assert labels_from_sidecar(tmp_path / "participants.tsv") == {"route_accuracy": "route accuracy (%)",
+                                                                  "age": "Age (years)"}
+    assert labels_from_sidecar(tmp_path / "missing.tsv") == {}
