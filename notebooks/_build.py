@@ -37,6 +37,7 @@ OVERWRITE = None  # True replaces tables and figures of an earlier run (None: on
 
 SETUP = '''\
 %matplotlib inline
+%config InlineBackend.figure_formats = ["retina"]  # sharp figures on high-resolution screens
 import os
 import warnings
 from pathlib import Path
