@@ -162,7 +162,7 @@ def _figure_plan(values: pd.DataFrame, results: pd.DataFrame, participants: pd.D
                         "coefficient b, which is adjusted for the other terms."),
                         make=lambda t=term, c=contrast, g=group: participant_pages(
                             values, contrast=c, covariate=t, group=g, participants=participants, plot=covariate_plot,
-                            covariate_label=labels.get(t), **opts)))
+                            covariate_label=labels.get(t) or t.replace("_", " "), **opts)))
                     drawn = True
             if not drawn:
                 plan.append(dict(name=f"participants_{base}", caption=f"{escape_markup(title)}. {_POINTS}",

@@ -570,3 +570,34 @@ def test_labels_from_the_participants_sidecar(tmp_path):
     assert labels_from_sidecar(tmp_path / "participants.tsv") == {"route_accuracy": "route accuracy (%)",
                                                                   "age": "Age (years)"}
     assert labels_from_sidecar(tmp_path / "missing.tsv") == {}
+
+
+def test_report_command_takes_a_value_label(values, results_by_design, participants, tmp_path, monkeypatch):
+    import json
+
+    import roikit.reporting.report as report_module
+    from roikit._tables import write_table
+    from roikit.cli import main
+
+    seen = []
+    real = report_module.participant_pages
+
+    def spy(data, **kwargs):
+        seen.append({k: kwargs.get(k) for k in ("value_label", "covariate_label")})
+        return real(data, **kwargs)
+
+    monkeypatch.setattr(report_module, "participant_pages", spy)
+
+    write_table(tmp_path / "values.tsv", values)
+    write_table(tmp_path / "results.tsv", results_by_design["glm"])
+    write_table(tmp_path / "participants.tsv", participants)
+    (tmp_path / "participants.json").write_text(json.dumps({"age": {"LongName": "Age at scan", "Units": "years"}}))
+    status = main(["report", "--values", str(tmp_path / "values.tsv"), "--results", str(tmp_path / "results.tsv"),
+                   "--participants", str(tmp_path / "participants.tsv"), "--out", str(tmp_path / "r"),
+                   "--value-label", "% signal change"])
+    assert status == 0
+    prov = json.loads((tmp_path / "r" / "provenance.json").read_text())
+    assert prov["options"]["value_label"] == "% signal change"
+    assert any(p.name.startswith("covariate_age") for p in (tmp_path / "r" / "figures").glob("*.png"))
+    # the axis labels the figures were drawn with: the user's unit, and the sidecar's long name with its unit
+    assert {"value_label": "% signal change", "covariate_label": "Age at scan (years)"} in seen
