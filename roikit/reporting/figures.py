@@ -132,6 +132,11 @@ def _math_text(s: str) -> str:
     return s.replace("$", r"\$")
 
 
+def _value_axis_label(value_label: str | None) -> str:
+    """The values' axis label (default "region value"), wrapped to fit beside a 50-mm panel at 7 pt."""
+    return textwrap.fill(_math_text(value_label), 30) if value_label else _DEFAULT_LABEL
+
+
 @contextlib.contextmanager
 def style():
     """Matplotlib settings for print: 7-pt text at journal widths, fonts embedded (TrueType in PDF, outlines in SVG).
@@ -547,7 +552,7 @@ def participant_plot(
         lo_x = min(tick_pos) - 0.45
         hi_x = max(tick_pos) + 0.45
         ax.set_xlim(lo_x, hi_x)
-        ax.set_ylabel(_math_text(value_label) if value_label else (_DEFAULT_LABEL if value == "value" else value))
+        ax.set_ylabel(_value_axis_label(value_label or (None if value == "value" else value)))
         title = region
         if owned and (between or mode == "one-sample"):
             title += f" · {conditions[0]}"
@@ -726,6 +731,8 @@ def forest_plot(
     width : "single", "one-and-a-half", "double" or float
         Figure width (mm) when a new figure is made; the height follows the number of rows (at most
         ``FOREST_ROWS_PER_PAGE`` rows fit one figure of 225 mm; :func:`forest_pages` splits longer tables).
+        With the demo's region names the data area is about 58 mm wide at the default one-and-a-half column
+        width; at single width (85 mm) use ``annotate=False`` for about 38 mm (24 mm with the annotations).
     value_label : str, optional
         Unit of the estimates (e.g. ``"% signal change"``), added to the axis label when estimates are drawn.
 
@@ -924,7 +931,7 @@ def precision_plot(
         ax.axhline(0, **_ZERO_STYLE)
         ax.set_xticks([0], [f"{contrast}\n(n = {int(ok.sum())}, $\\tau^2$ = {format_number(tau2, 3)})"])
         ax.set_xlim(-0.5, 0.6)
-        ax.set_ylabel(_math_text(value_label) if value_label else _DEFAULT_LABEL)
+        ax.set_ylabel(_value_axis_label(value_label))
         ax.set_title(textwrap.fill(f"{region} · {contrast}" if owned else region, 30))
         if legend:
             _dedupe_legend(ax, owned)
@@ -1017,7 +1024,7 @@ def stimulus_plot(
         else:
             ax.set_xticks(range(len(levels_)), [f"{s}\n(n = {c})" for s, c in zip(levels_, counts)])
         ax.set_xlim(-0.6, len(levels_) - 0.4)
-        ax.set_ylabel(_math_text(value_label) if value_label else _DEFAULT_LABEL)
+        ax.set_ylabel(_value_axis_label(value_label))
         ax.set_title(textwrap.fill(region if not owned else (
             f"{region} · per {stimulus}" if stimulus != "contrast" else f"{region} · per stimulus"), 30))
         if legend:
@@ -1105,7 +1112,7 @@ def covariate_plot(
             slope = _minus(f"\n{b_txt}, {ci_txt}" if len(b_txt) + len(ci_txt) <= 32 else f"\n{b_txt}\n{ci_txt}")
         ax.axhline(0, **_ZERO_STYLE)
         ax.set_xlabel(_math_text(covariate_label) if covariate_label else covariate)
-        ax.set_ylabel(_math_text(value_label) if value_label else _DEFAULT_LABEL)
+        ax.set_ylabel(_value_axis_label(value_label))
         ax.set_title(textwrap.fill(f"{region} · {contrast}" if owned else region, 30) + slope)
         if legend:
             _dedupe_legend(ax, owned)
