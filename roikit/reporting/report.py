@@ -223,13 +223,22 @@ def _region_figures(values: pd.DataFrame, values_prov: dict, regions, background
         paths = [i["path"] for i in values_prov.get("inputs", []) if isinstance(i, dict) and i.get("path")
                  and Path(i["path"]).is_file()]
         if paths:
-            image = mean_background(paths, regions.grid)
-            used = min(len(paths), 100)
-            what = f"mean of the {used} maps" if used == len(paths) else f"mean of {used} of the {len(paths)} maps"
+            try:
+                image = mean_background(paths, regions.grid)
+            except (OSError, ValueError) as exc:  # a map that cannot be read: the regions are still drawn
+                what = f"regions in grey (the maps could not be averaged: {exc})"
+            else:
+                used = min(len(paths), 100)
+                what = (f"mean of the {used} maps" if used == len(paths)
+                        else f"mean of {used} of the {len(paths)} maps")
     elif background is not None:
         image = background
         what = os.fspath(background) if isinstance(background, (str, os.PathLike)) else "the given image"
-    pages = region_pages(regions, names=names, background=image, title=f"background: {what}")
+    drawn = names[:_MAX_REGIONS_DRAWN]
+    pages = region_pages(regions, names=drawn, background=image, title=f"background: {what}")
+    if len(names) > len(drawn):  # an atlas of hundreds of regions: the first pages, and say so
+        what += (f"; the first {len(drawn)} of the {len(names)} regions are drawn (roikit regions ... --figure FILE "
+                 "draws them all; the table lists them all)")
     return pages, regions.__class__(regions.grid, names, [regions.voxels[regions.names.index(n)] for n in names],
                                     [regions.weights[regions.names.index(n)] for n in names],
                                     [regions.sources[regions.names.index(n)] for n in names]), what
@@ -245,6 +254,9 @@ def _region_rows(regions) -> list[list[str]]:
                      format_number(r["z_mm"], 1)])
     return rows
 
+
+#: Regions drawn in the report's region figure (five pages at double width); the table lists them all.
+_MAX_REGIONS_DRAWN = 50
 
 _REGION_HEAD = ["Region", "Definition", "Voxels", "Volume (mm³)", "x (mm)", "y (mm)", "z (mm)"]
 
@@ -378,7 +390,7 @@ def write_report(
         # where the regions are (the manuscript's first region figure), then the analyses' figures
         try:
             pages, drawn_regions, background_text = _region_figures(values, values_prov, regions, region_background)
-        except UsageError as exc:
+        except (UsageError, OSError, ValueError) as exc:  # roikit's errors subclass these too
             figure_errors.append(f"regions: {exc}")
             pages = []
         for k, fig in enumerate(pages, start=1):

@@ -545,6 +545,25 @@ def test_report_has_a_regions_section(small_regions, values, results_by_design, 
     assert "−10.0" in methods or "-10.0" in methods
 
 
+def test_report_names_a_region_figure_it_could_not_draw(small_regions, values, results_by_design, tmp_path):
+    import warnings
+
+    from roikit.reporting import write_report
+
+    _, regions, folder = small_regions
+    names = {"left hippocampus": "right caudate", "right hippocampus": "left caudate",
+             "retrosplenial cortex": "prior peak"}
+    vals = values.assign(region=values.region.map(names))
+    rows = results_by_design["one-sample"].assign(region=lambda d: d.region.map(names))
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        written = write_report(vals, rows, out=tmp_path / "r", figure_formats=("png",), regions=regions,
+                               region_background=folder / "no_such_image.nii.gz")
+    html = written["html"].read_text()
+    assert "Figures not drawn" in html and "regions: " in html and "no_such_image.nii.gz" in html
+    assert any(p.name.startswith("participants_") for p in written["figures"])  # the other figures still drawn
+
+
 def test_report_without_region_description_says_so(values, results_by_design, tmp_path):
     import warnings
 
