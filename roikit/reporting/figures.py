@@ -692,7 +692,6 @@ def participant_pages(
             for k in range(1, len(pages) + 1)]
 
 
-
 # --------------------------------------------------------------------------------------------- forest plot
 def forest_plot(
     results: pd.DataFrame,

@@ -178,7 +178,8 @@ def _pages(names: list[str], per_page: int) -> list[list[str]]:
     return [names[i:i + per_page] for i in range(0, len(names), per_page)]
 
 
-def _layout(width: Width, n: int) -> tuple[int, int]:
+def _layout(width: Width) -> tuple[int, int]:
+    """Regions per row and rows per page at ``width``."""
     wmm = _width_mm(width)
     per_row = 2 if wmm >= 150 else 1
     rows = int((MAX_HEIGHT_MM - _TOP_MM) // _BLOCK_HEIGHT_MM)
@@ -223,7 +224,7 @@ def region_figure(
         raise UsageError(f"region(s) {', '.join(unknown)} not in the region set ({', '.join(regions.names)})")
     if not names:
         raise UsageError("no region to draw")
-    per_row, rows = _layout(width, len(names))
+    per_row, rows = _layout(width)
     pages = _pages(names, per_row * rows)
     if page is None:
         if len(pages) > 1:
@@ -329,6 +330,6 @@ def region_pages(regions: Regions, *, names: Sequence[str] | None = None, width:
                  **kwargs) -> list[Figure]:
     """All regions as :func:`region_figure` pages of at most 225 mm (same options)."""
     names = list(names) if names is not None else list(regions.names)
-    per_row, rows = _layout(width, len(names))
+    per_row, rows = _layout(width)
     n_pages = max(1, int(np.ceil(len(names) / (per_row * rows))))
     return [region_figure(regions, names=names, width=width, page=k, **kwargs) for k in range(1, n_pages + 1)]
