@@ -584,7 +584,10 @@ def _region_pages(data: pd.DataFrame, regions, *, width, ncols, panel_height_mm,
     ncols, rows_max, _ = _panel_layout(len(regions), width=width, ncols=ncols, panel_height_mm=panel_height_mm,
                                        plot=plot)
     per_page = ncols * rows_max
-    return [regions[i:i + per_page] for i in range(0, len(regions), per_page)], ncols
+    # balanced pages (10 regions in pages of up to 8: 6 and 4, not 8 and 2), whole rows on every page but the last
+    n_pages = int(np.ceil(len(regions) / per_page))
+    size = min(per_page, int(np.ceil(np.ceil(len(regions) / n_pages) / ncols)) * ncols)
+    return [regions[i:i + size] for i in range(0, len(regions), size)], ncols
 
 
 def participant_figure(
