@@ -5,9 +5,14 @@ The notebooks are generated, never edited by hand, so that a review reads this f
     python notebooks/_build.py          # rewrites the five notebooks, outputs stripped
 
 Each notebook starts with a parameters cell (tagged ``parameters``) that points at a study file; with
-``STUDY = None`` it writes the invented demo study (roikit.demo) and runs against it. Each ends by saving
-its tables and figures into the study's results folder (``tables/`` and ``figures/``), where the report
-keeps them.
+``STUDY = None`` it uses the invented demo study (roikit.demo), written once into a shared folder
+(``~/.cache/roikit/demo``) and reused by every notebook. Each ends by saving its tables and figures into the
+study's results folder (``tables/`` and ``figures/``), where the report keeps them.
+
+The notebooks use only roikit's public API. roikit builds figures without pyplot, so they are shown by
+returning them: a cell that draws ends with the figure (or calls ``display(fig)``). Every such cell is tagged
+``figure`` and records how many figures it shows (``metadata.roikit.figures``); the tests execute the notebooks
+and count the images in those cells.
 """
 
 from __future__ import annotations
@@ -23,68 +28,51 @@ HERE = Path(__file__).resolve().parent
 PARAMETERS = '''\
 # Parameters: point STUDY at your study file (TOML, see `roikit run`); None runs the invented demo study.
 STUDY = None
-DEMO_FOLDER = None  # where the demo study is written when STUDY is None (None: a new temporary folder)
+DEMO_FOLDER = None  # the demo study when STUDY is None (None: ~/.cache/roikit/demo, written once, shared)
 OUT = None  # results folder (None: `results` beside the study file, as `roikit run` uses)
+VALUE_LABEL = None  # axis label of the region values with their unit, e.g. "% signal change" (None: the study's)
 FIGURE_FORMATS = ("pdf", "svg", "png")  # vector for the journal, 300-dpi PNG for slides and the report
-OVERWRITE = False  # True replaces tables and figures saved by an earlier run of this notebook
+OVERWRITE = None  # True replaces tables and figures of an earlier run (None: only in the demo folder)
 '''
 
 SETUP = '''\
-import tempfile
+%matplotlib inline
+%config InlineBackend.figure_formats = ["retina"]  # sharp figures on high-resolution screens
+import os
 import warnings
 from pathlib import Path
 
-import matplotlib.pyplot as plt
 import numpy as np
 import pandas as pd
 from IPython.display import Markdown, display
+from matplotlib.figure import Figure
 
-from roikit._tables import write_table
-from roikit.reporting import results_tables, save_figure
-from roikit.reporting.figures import GROUP_COLORS, GROUP_MARKERS, style  # colour-blind-safe palette, journal style
+from roikit.reporting import GROUP_COLORS, GROUP_MARKERS, results_tables, save_figure, style, write_table
 from roikit.study import extract_study, load_study
 
-if STUDY is None:  # the invented wayfinding study (all data invented); writing it takes about 15 s
+demo = STUDY is None
+if demo:  # the invented wayfinding study (all data invented): written once (about 15 s), then shared
     from roikit.demo import make_study
 
-    folder = Path(DEMO_FOLDER) if DEMO_FOLDER else Path(tempfile.mkdtemp(prefix="roikit-demo-")) / "study"
+    cache = Path(os.environ.get("XDG_CACHE_HOME") or Path.home() / ".cache")
+    folder = Path(DEMO_FOLDER).expanduser() if DEMO_FOLDER else cache / "roikit" / "demo"
     if not (folder / "study.toml").is_file():
         make_study(folder)
     STUDY = folder / "study.toml"
+OVERWRITE = demo if OVERWRITE is None else OVERWRITE  # re-running the demo replaces its own outputs
 
 study = load_study(STUDY)  # checks the whole study file first and lists every problem at once
 OUT = Path(OUT) if OUT else study.default_out
 TABLES, FIGURES = OUT / "tables", OUT / "figures"
+VALUE_LABEL = VALUE_LABEL or study.value_label
+MM = 1 / 25.4  # figure sizes in millimetres: 85 (single column), 120 (one and a half), 180 (double)
 participants = study.participants
+# the options of each design's first [[analysis]] in the study file (a design the file lacks is absent)
+analyses = {}
+for analysis in study.analyses:
+    analyses.setdefault(analysis.design, dict(analysis.options))
 # region values of every map; maps extracted by an earlier run (or notebook) come from OUT/.cache
 values = extract_study(study, out=OUT)
-
-
-def analysis_options(design):
-    """Options of the study file's first [[analysis]] with this design (None if there is none)."""
-    for analysis in study.analyses:
-        if analysis.design == design:
-            return dict(analysis.options)
-    return None
-
-
-def save(fig, name):
-    """Save a figure where the report keeps its figures; returns the paths written."""
-    paths = save_figure(fig, FIGURES / name, formats=FIGURE_FORMATS, overwrite=OVERWRITE)
-    plt.close(fig)
-    return paths
-
-
-def save_results(results, start=1):
-    """Save the APA tables of one analysis (Markdown, LaTeX, HTML, Word, TSV); returns the paths written."""
-    return [p for t in results_tables(results, start=start) for p in t.write(TABLES, overwrite=OVERWRITE)]
-
-
-def save_table(frame, name, description):
-    """Save a tidy table as TSV (n/a for missing) with a JSON sidecar describing it."""
-    return write_table(TABLES / f"{name}.tsv", frame, sidecar={"description": description}, overwrite=OVERWRITE)
-
-
 print(f"{study.title}: {values['participant_id'].nunique()} participants, {len(study.maps)} maps, "
       f"{values['region'].nunique()} regions; results folder {OUT}")
 '''
@@ -98,6 +86,13 @@ def code(text: str, *, tags: tuple[str, ...] = ()):
     cell = new_code_cell(text.strip("\n"))
     if tags:
         cell.metadata["tags"] = list(tags)
+    return cell
+
+
+def drawing(text: str, figures: int = 1):
+    """A code cell that shows ``figures`` figures (tagged ``figure``; the tests count its images)."""
+    cell = code(text, tags=("figure",))
+    cell.metadata["roikit"] = {"figures": figures}
     return cell
 
 
@@ -135,6 +130,18 @@ print("grid of the maps:", study.realised.grid.describe())
 print("region images resampled:", len(study.realised.resampling) or "none")
 '''),
     md("""
+Where the regions are: each region on a sagittal, a coronal and an axial slice through its centre, over the mean of
+the maps (the same figure as `roikit regions ... --figure FILE` and the report's "Regions" section).
+"""),
+    drawing('''
+from roikit.reporting import mean_background, region_pages
+
+background = mean_background(study.maps["path"], study.realised.grid)  # at most 100 maps, evenly spaced
+region_figs = region_pages(study.realised, background=background, title="background: mean of the maps")
+for fig in region_figs:
+    display(fig)
+'''),
+    md("""
 ## Grid and coverage checks
 
 Every map must share one grid (shape and affine, compared with a tolerance); extraction stops with the offending
@@ -142,23 +149,23 @@ file otherwise. Coverage is the share of a region's voxels with usable data (`n_
 dropout or a tight first-level mask shrinks it. Values resting on less than half of a region are flagged in every
 analysis and marked in the figures.
 """),
-    code('''
+    drawing('''
 values["coverage"] = values["n_valid"] / values["n_voxels"]
 coverage = values.pivot_table(index="participant_id", columns="region", values="coverage", aggfunc="min", sort=False)
 low = values[values["coverage"] < 0.5][["participant_id", "contrast", "region", "n_valid", "n_voxels", "coverage"]]
 print(f"{len(low)} participant x contrast x region values rest on less than half of the region")
 display(low.head(20))
 
-with style():
-    fig, ax = plt.subplots(figsize=(7.0, 0.12 * len(coverage) + 2.0))
-    image = ax.imshow(coverage.to_numpy(), vmin=0, vmax=1, cmap="viridis", aspect="auto")  # viridis: colour-blind safe
-    ax.set_xticks(range(coverage.shape[1]), coverage.columns, rotation=45, ha="right")
-    ax.set_yticks(range(coverage.shape[0]), coverage.index, fontsize=5)
+with style():  # roikit's print style: 7-pt text, fonts embedded
+    shown = coverage.iloc[:60]  # at most 60 participants per figure keep it under 225 mm at 7 pt
+    coverage_fig = Figure(figsize=(180 * MM, min(225, 3.1 * len(shown) + 50) * MM), layout="constrained")
+    ax = coverage_fig.add_subplot()
+    image = ax.imshow(shown.to_numpy(), vmin=0, vmax=1, cmap="viridis", aspect="auto")  # viridis: colour-blind safe
+    ax.set_xticks(range(shown.shape[1]), shown.columns, rotation=45, ha="right")
+    ax.set_yticks(range(shown.shape[0]), shown.index)
     ax.set_title("Lowest coverage over the contrasts (n_valid / n_voxels)")
-    fig.colorbar(image, ax=ax, label="coverage")
-    fig.tight_layout()
-coverage_fig = fig
-plt.show()
+    coverage_fig.colorbar(image, ax=ax, label="coverage", shrink=0.5)
+coverage_fig  # the last expression of a cell is displayed
 '''),
     md("""
 ## Extraction
@@ -180,27 +187,34 @@ print("maps read now:", provenance["cache"]["extracted"], "| taken from the cach
 Means per contrast and region, then every participant of one contrast, region by region. Look for participants far
 from the others and for regions where the spread dwarfs the mean before running any test.
 """),
-    code('''
+    drawing('''
 display(values.pivot_table(index="region", columns="contrast", values="value", aggfunc="mean", sort=False).round(3))
 
-from roikit.reporting import participant_figure
+from roikit.reporting import participant_pages
 
 first = study.analyses[0].options.get("contrast") if study.analyses else None
 contrast = first if isinstance(first, str) else values["contrast"].iloc[0]
-fig = participant_figure(values, contrast=contrast)
-fig.suptitle(f"Region values, contrast {contrast}", fontsize=9)
-plt.show()
+# one figure per page of at most 225 mm: many regions give several pages
+first_look = participant_pages(values, contrast=contrast, value_label=VALUE_LABEL)
+for fig in first_look:
+    display(fig)
 '''),
     md("## Save where the report expects them"),
     code('''
 from roikit.extraction import write_values
 
 print(write_values(OUT / "region_values.tsv", values, overwrite=OVERWRITE))
-print(save_table(coverage.reset_index(), "coverage_by_participant",
-                 "lowest coverage (n_valid / n_voxels) over the contrasts, per participant and region"))
-print(save_table(regions, "regions", "regions realised on the maps' grid: voxels, volume, centre of mass (mm)"))
-print(save(fig, f"first_look_{contrast}"))
-print(save(coverage_fig, "coverage_by_participant"))
+print(write_table(TABLES / "coverage_by_participant.tsv", coverage.reset_index(), overwrite=OVERWRITE, sidecar={
+    "description": "lowest coverage (n_valid / n_voxels) over the contrasts, per participant and region"}))
+print(write_table(TABLES / "regions.tsv", regions, overwrite=OVERWRITE, sidecar={
+    "description": "regions realised on the maps' grid: voxels, volume, centre of mass (mm)"}))
+for k, fig in enumerate(first_look, start=1):
+    page = f"_page{k}" if len(first_look) > 1 else ""
+    print(save_figure(fig, FIGURES / f"first_look_{contrast}{page}", formats=FIGURE_FORMATS, overwrite=OVERWRITE))
+print(save_figure(coverage_fig, FIGURES / "coverage_by_participant", formats=FIGURE_FORMATS, overwrite=OVERWRITE))
+for k, fig in enumerate(region_figs, start=1):
+    page = f"_page{k}" if len(region_figs) > 1 else ""
+    print(save_figure(fig, FIGURES / f"regions{page}", formats=FIGURE_FORMATS, overwrite=OVERWRITE))
 '''),
 ]
 
@@ -214,8 +228,8 @@ The first question in most region-of-interest studies: is the mean response in a
 at once, and the p-values are corrected across the regions of the family.
 """) + [
     code('''
-one = analysis_options("one-sample") or {"contrast": values["contrast"].iloc[0]}
-paired = analysis_options("paired")
+one = analyses.get("one-sample") or {"contrast": values["contrast"].iloc[0]}
+paired = analyses.get("paired")
 print("one-sample:", one, "| paired:", paired)
 '''),
     md("""
@@ -247,26 +261,26 @@ family-wise, valid whatever that correlation) and Benjamini-Hochberg (`p_fdr`, c
 discoveries among the regions declared, so it is the most lenient). Say in the pre-registration which
 one you use and which regions form the family.
 """),
-    code('''
+    drawing('''
 survive = pd.DataFrame({name: one_sample[column] < 0.05 for name, column in
                         [("uncorrected", "p"), ("Holm", "p_holm"), ("FDR", "p_fdr"), ("permutation FWE", "p_fwe")]})
 survive.index = one_sample["region"]
 display(survive)
 
 order = np.argsort(one_sample["p"].to_numpy())
-with style():
-    fig, ax = plt.subplots(figsize=(3.35, 2.6))
-    for k, column in enumerate(("p", "p_holm", "p_fdr", "p_fwe")):
+names = {"p": "uncorrected", "p_holm": "Holm", "p_fdr": "FDR", "p_fwe": "permutation FWE"}
+with style():  # roikit's print style: 7-pt text, fonts embedded
+    corrections_fig = Figure(figsize=(85 * MM, 70 * MM), layout="constrained")
+    ax = corrections_fig.add_subplot()
+    for k, column in enumerate(names):
         ax.plot(np.arange(1, len(order) + 1), one_sample[column].to_numpy()[order], marker=GROUP_MARKERS[k],
-                color=GROUP_COLORS[k], lw=0.8, ms=3, label=column)
+                color=GROUP_COLORS[k], lw=0.8, ms=3, label=names[column])
     ax.axhline(0.05, color="0.3", ls="--", lw=0.8)
     ax.set_yscale("log")
-    ax.set_xlabel("regions, by uncorrected p")
-    ax.set_ylabel("p")
-    ax.legend(frameon=False)
-    fig.tight_layout()
-corrections_fig = fig
-plt.show()
+    ax.set_xlabel("regions, by uncorrected $p$")
+    ax.set_ylabel("$p$")
+    ax.legend()
+corrections_fig
 '''),
     md("""
 ## Dot plots: every participant visible
@@ -274,21 +288,22 @@ plt.show()
 A bar chart hides the participants; these plots show each one, with the estimate and its confidence interval and a
 line at zero. Rings mark outliers, diamonds low-coverage participants; both stay in the analysis.
 """),
-    code('''
-from roikit.reporting import forest_plot, participant_figure
+    drawing('''
+from roikit.reporting import forest_pages, participant_pages
 
-dots = participant_figure(values, contrast=one["contrast"], results=one_sample, design="one-sample")
-plt.show()
-forest = forest_plot(one_sample).figure
-plt.show()
-'''),
+dots = participant_pages(values, contrast=one["contrast"], results=one_sample, design="one-sample",
+                         value_label=VALUE_LABEL)
+forest = forest_pages(one_sample)  # the effect sizes with their CIs; filled squares survive the correction
+for fig in dots + forest:
+    display(fig)
+''', figures=2),
     md("""
 ## Paired: within-participant differences
 
 With two conditions from the same participants, the paired test works on each participant's difference; its
 effect size is `d_z` = mean difference / SD of the differences (not comparable to a between-group `d`).
 """),
-    code('''
+    drawing('''
 paired_results = None
 if paired is not None:
     with warnings.catch_warnings():
@@ -296,9 +311,10 @@ if paired is not None:
         paired_results = run_design(values, "paired", participants=participants, **paired)
     display(paired_results[["region", "term", "n", "estimate", "ci_low", "ci_high", "p", "p_holm",
                             "effect_size_type", "effect_size", "effect_size_ci_low", "effect_size_ci_high"]].round(4))
-    paired_dots = participant_figure(values, contrast=paired["contrast"], versus=paired["versus"],
-                                     results=paired_results, design="paired")
-    plt.show()
+    paired_dots = participant_pages(values, contrast=paired["contrast"], versus=paired["versus"],
+                                    results=paired_results, design="paired", value_label=VALUE_LABEL)
+    for fig in paired_dots:
+        display(fig)
 else:
     print("The study file has no paired analysis.")
 '''),
@@ -318,13 +334,16 @@ for row in one_sample.to_dict("records"):
     code('''
 table = results_table(one_sample)
 display(Markdown(table.to_markdown()))
-print(save_results(one_sample, start=1))
-print(save(dots, f"one_sample_{one['contrast']}_participants"))
-print(save(forest, f"one_sample_{one['contrast']}_forest"))
-print(save(corrections_fig, f"one_sample_{one['contrast']}_corrections"))
+print([p for t in results_tables(one_sample, start=1) for p in t.write(TABLES, overwrite=OVERWRITE)])
+figures = {f"one_sample_{one['contrast']}_participants": dots, f"one_sample_{one['contrast']}_forest": forest,
+           f"one_sample_{one['contrast']}_corrections": [corrections_fig]}
 if paired_results is not None:
-    print(save_results(paired_results, start=2))
-    print(save(paired_dots, f"paired_{paired['contrast']}_vs_{paired['versus']}_participants"))
+    print([p for t in results_tables(paired_results, start=2) for p in t.write(TABLES, overwrite=OVERWRITE)])
+    figures[f"paired_{paired['contrast']}_vs_{paired['versus']}_participants"] = paired_dots
+for name, pages in figures.items():  # several pages when the regions do not fit one figure
+    for k, fig in enumerate(pages, start=1):
+        page = f"_page{k}" if len(pages) > 1 else ""
+        print(save_figure(fig, FIGURES / f"{name}{page}", formats=FIGURE_FORMATS, overwrite=OVERWRITE))
 '''),
 ]
 
@@ -340,8 +359,8 @@ participants.tsv.
     code('''
 from roikit.stats import run_design
 
-two = analysis_options("two-group")
-glm = analysis_options("glm")
+two = analyses.get("two-group")
+glm = analyses.get("glm")
 print("two-group:", two, "| glm:", glm)
 '''),
     md("""
@@ -364,8 +383,8 @@ Student's *t* assumes equal variances in the groups; Welch's *t* does not (fract
 of equal variances is reported as a diagnostic column, but choose the test in advance rather than by that test.
 The effect size is Hedges' `g` with the exact small-sample correction.
 """),
-    code('''
-from roikit.reporting import participant_figure
+    drawing('''
+from roikit.reporting import participant_pages
 
 two_results = None
 if two is not None:
@@ -378,9 +397,11 @@ if two is not None:
                               "brown_forsythe_p"]].merge(
         welch[["region", "df", "p", "p_holm"]], on="region", suffixes=("", "_welch"))
     display(comparison.round(4))
-    groups_fig = participant_figure(values, contrast=two["contrast"], group=two["group"], levels=two["levels"],
-                                    participants=participants, results=two_results, design="two-group")
-    plt.show()
+    groups_figs = participant_pages(values, contrast=two["contrast"], group=two["group"], levels=two["levels"],
+                                    participants=participants, results=two_results, design="two-group",
+                                    value_label=VALUE_LABEL)
+    for fig in groups_figs:
+        display(fig)
 else:
     print("The study file has no two-group analysis.")
 '''),
@@ -391,8 +412,8 @@ One model per region, every region at once: `value ~ covariate + group`. Numeric
 the intercept is the mean response at the average covariate. Each coefficient gets its own row, its own correction
 family and a partial eta squared.
 """),
-    code('''
-from roikit.reporting import covariate_plot, results_table
+    drawing('''
+from roikit.reporting import covariate_plot, labels_from_sidecar, results_table
 
 glm_results = None
 if glm is not None:
@@ -407,10 +428,13 @@ if glm is not None:
     if covariate:
         rows = glm_results[glm_results["term"] == covariate]
         top = rows.sort_values("p")["region"].iloc[0]
+        # the axis says what the covariate is (participants.json: LongName and Units), not its column name
+        label = labels_from_sidecar(study.participants_path).get(covariate)
         ax = covariate_plot(values, covariate=covariate, region=top, contrast=glm["contrast"],
-                            participants=participants, group=group, results=glm_results)
+                            participants=participants, group=group, results=glm_results, covariate_label=label,
+                            value_label=VALUE_LABEL)
         covariate_fig = ax.figure
-        plt.show()
+        display(covariate_fig)
 else:
     print("The study file has no glm analysis.")
 '''),
@@ -418,12 +442,16 @@ else:
     code('''
 print(descriptives.write(TABLES, overwrite=OVERWRITE))
 if two_results is not None:
-    print(save_results(two_results, start=2))
-    print(save(groups_fig, f"two_group_{two['contrast']}_participants"))
+    print([p for t in results_tables(two_results, start=2) for p in t.write(TABLES, overwrite=OVERWRITE)])
+    for k, fig in enumerate(groups_figs, start=1):
+        page = f"_page{k}" if len(groups_figs) > 1 else ""
+        print(save_figure(fig, FIGURES / f"two_group_{two['contrast']}_participants{page}", formats=FIGURE_FORMATS,
+                          overwrite=OVERWRITE))
 if glm_results is not None:
-    print(save_results(glm_results, start=3))
+    print([p for t in results_tables(glm_results, start=3) for p in t.write(TABLES, overwrite=OVERWRITE)])
     if covariate:
-        print(save(covariate_fig, f"glm_{glm['contrast']}_{covariate}"))
+        print(save_figure(covariate_fig, FIGURES / f"glm_{glm['contrast']}_{covariate}", formats=FIGURE_FORMATS,
+                          overwrite=OVERWRITE))
 '''),
 ]
 
@@ -440,8 +468,8 @@ effects, so the conclusion generalises to new people and to new towns.
     code('''
 from roikit.stats import run_design
 
-precision = analysis_options("precision-weighted")
-mixed = analysis_options("mixed")
+precision = analyses.get("precision-weighted")
+mixed = analyses.get("mixed")
 print("precision-weighted:", precision, "| mixed:", mixed)
 '''),
     md("""
@@ -451,8 +479,8 @@ Per region: `y_i = b + u_i + e_i` with the between-participant variance `tau2` e
 first-level variance `v_i` known from the variance maps. `I2` is the share of the spread that is between
 participants rather than measurement noise. Compare with the unweighted one-sample test on the same values.
 """),
-    code('''
-from roikit.reporting import participant_figure, precision_plot
+    drawing('''
+from roikit.reporting import participant_pages, precision_plot
 
 precision_results = None
 if precision is not None and "variance" in values.columns:
@@ -463,9 +491,10 @@ if precision is not None and "variance" in values.columns:
     both = precision_results[["region", "estimate", "se", "p", "tau2", "i2", "boundary"]].merge(
         unweighted[["region", "estimate", "se", "p"]], on="region", suffixes=("", "_unweighted"))
     display(both.round(4))
-    precision_fig = participant_figure(values, contrast=precision["contrast"], results=precision_results,
-                                       plot=precision_plot)
-    plt.show()
+    precision_figs = participant_pages(values, contrast=precision["contrast"], results=precision_results,
+                                       plot=precision_plot, value_label=VALUE_LABEL)
+    for fig in precision_figs:
+        display(fig)
 else:
     print("The study file has no precision-weighted analysis (or no variance maps).")
 '''),
@@ -478,7 +507,7 @@ of the mean response then includes the variance between towns, divided by the nu
 as fixed (or ignoring them) answers a narrower question, about these six towns only. The second table splits each
 region's variance into shares: between participants, between towns, and residual.
 """),
-    code('''
+    drawing('''
 from roikit.reporting import stimulus_plot
 
 mixed_results = None
@@ -498,22 +527,23 @@ if mixed is not None:
     top = mixed_results[mixed_results["term"] == mixed_results["term"].iloc[0]].sort_values("p")["region"].iloc[0]
     ax = stimulus_plot(values[values["contrast"].isin(stimuli)] if stimuli else values, region=top,
                        stimulus=mixed.get("crossed") or "contrast", participants=participants,
-                       results=mixed_results)
+                       results=mixed_results, value_label=VALUE_LABEL)
     stimulus_fig = ax.figure
-    plt.show()
+    display(stimulus_fig)
 else:
     print("The study file has no mixed analysis.")
 '''),
     md("## Save where the report expects them"),
     code('''
-from roikit.reporting import results_table
-
 if precision_results is not None:
-    print(save_results(precision_results, start=4))
-    print(save(precision_fig, f"precision_weighted_{precision['contrast']}"))
+    print([p for t in results_tables(precision_results, start=4) for p in t.write(TABLES, overwrite=OVERWRITE)])
+    for k, fig in enumerate(precision_figs, start=1):
+        page = f"_page{k}" if len(precision_figs) > 1 else ""
+        print(save_figure(fig, FIGURES / f"precision_weighted_{precision['contrast']}{page}",
+                          formats=FIGURE_FORMATS, overwrite=OVERWRITE))
 if mixed_results is not None:
-    print(save_results(mixed_results, start=5))
-    print(save(stimulus_fig, "mixed_stimuli"))
+    print([p for t in results_tables(mixed_results, start=5) for p in t.write(TABLES, overwrite=OVERWRITE)])
+    print(save_figure(stimulus_fig, FIGURES / "mixed_stimuli", formats=FIGURE_FORMATS, overwrite=OVERWRITE))
 '''),
 ]
 
@@ -537,7 +567,7 @@ ALPHA = 0.05
 
 from roikit.stats import run_design
 
-contrast = (analysis_options("precision-weighted") or analysis_options("one-sample") or
+contrast = (analyses.get("precision-weighted") or analyses.get("one-sample") or
             {"contrast": values["contrast"].iloc[0]})["contrast"]
 if "variance" in values.columns:
     first_level = values[values["contrast"] == contrast].groupby("participant_id")["variance"].median()
@@ -573,7 +603,7 @@ No one in the population responds on average (true mean 0). People still differ 
 little, some a little negatively. The horizontal axis is that spread between people. Each line shows how often an
 analysis declares an effect that is not there; an honest test stays near the dashed 5% line.
 """),
-    code('''
+    drawing('''
 variances = first_level.to_numpy()[:N] if len(first_level) >= N else np.full(N, v_typical)
 spreads = [0.0, 0.1, 0.2, 0.35, 0.5]
 rows = []
@@ -585,8 +615,10 @@ for sd in spreads:
                  "precision-weighted": rejection_rate(table, "precision-weighted")})
 false_positives = pd.DataFrame(rows)
 
-with style():
-    fig, ax = plt.subplots(figsize=(3.35, 2.6))
+display(false_positives.round(3))
+with style():  # roikit's print style: 7-pt text, fonts embedded
+    false_positive_fig = Figure(figsize=(85 * MM, 70 * MM), layout="constrained")
+    ax = false_positive_fig.add_subplot()
     for k, column in enumerate(false_positives.columns[1:]):
         ax.plot(false_positives["between_sd"], false_positives[column], marker=GROUP_MARKERS[k],
                 color=GROUP_COLORS[k], ms=4, label=column)
@@ -594,11 +626,8 @@ with style():
     ax.set_xlabel("between-person SD of the true response")
     ax.set_ylabel("false-positive rate")
     ax.set_ylim(0, None)
-    ax.legend(frameon=False)
-    fig.tight_layout()
-false_positive_fig = fig
-plt.show()
-display(false_positives.round(3))
+    ax.legend()
+false_positive_fig
 '''),
     md("""
 **What happened.** The fixed-effects analysis pools every measurement as if all participants shared one true
@@ -615,7 +644,7 @@ how unequal the first-level variances are (the SD of their logarithm). Weighting
 participants count less, which buys power when precisions differ, while the between-participant variance keeps the
 test honest.
 """),
-    code('''
+    drawing('''
 inequality = [0.0, 0.5, 1.0, 1.5, 2.0]
 z = np.random.default_rng(SEED + 1).standard_normal(N)
 rows = []
@@ -627,19 +656,18 @@ for s in inequality:
                  "precision-weighted": rejection_rate(table, "precision-weighted")})
 power = pd.DataFrame(rows)
 
+display(power.round(3))
 with style():
-    fig, ax = plt.subplots(figsize=(3.35, 2.6))
+    power_fig = Figure(figsize=(85 * MM, 70 * MM), layout="constrained")
+    ax = power_fig.add_subplot()
     for k, column in enumerate(power.columns[1:], start=1):
         ax.plot(power["inequality"], power[column], marker=GROUP_MARKERS[k], color=GROUP_COLORS[k], ms=4,
                 label=column)
     ax.set_xlabel("inequality of first-level variances\\n(SD of log variance)")
     ax.set_ylabel("power (true mean 0.2)")
     ax.set_ylim(0, 1)
-    ax.legend(frameon=False)
-    fig.tight_layout()
-power_fig = fig
-plt.show()
-display(power.round(3))
+    ax.legend()
+power_fig
 '''),
     md("""
 **What happened.** With equal precisions the two tests are the same test. As precisions become unequal, the
@@ -658,13 +686,14 @@ by `1 / (tau2 + v_i)`. `tau2` is estimated by REML, the default.
 """),
     md("## Save where the report expects them"),
     code('''
-print(save_table(false_positives, "simulation_false_positives",
-                 f"share of {STUDIES} simulated studies (N = {N}, true mean 0) with p < {ALPHA}, by between-person SD"))
-print(save_table(power, "simulation_power",
-                 f"share of {STUDIES} simulated studies (N = {N}, true mean 0.2, between-person SD 0.1) with "
-                 f"p < {ALPHA}, by inequality of first-level variances"))
-print(save(false_positive_fig, "simulation_false_positives"))
-print(save(power_fig, "simulation_power"))
+print(write_table(TABLES / "simulation_false_positives.tsv", false_positives, overwrite=OVERWRITE, sidecar={
+    "description": f"share of {STUDIES} simulated studies (N = {N}, true mean 0) with p < {ALPHA}, "
+                   "by between-person SD"}))
+print(write_table(TABLES / "simulation_power.tsv", power, overwrite=OVERWRITE, sidecar={
+    "description": f"share of {STUDIES} simulated studies (N = {N}, true mean 0.2, between-person SD 0.1) with "
+                   f"p < {ALPHA}, by inequality of first-level variances"}))
+for name, fig in (("simulation_false_positives", false_positive_fig), ("simulation_power", power_fig)):
+    print(save_figure(fig, FIGURES / name, formats=FIGURE_FORMATS, overwrite=OVERWRITE))
 '''),
 ]
 

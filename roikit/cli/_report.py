@@ -36,6 +36,12 @@ def add_parser(subparsers) -> None:
                    "be one the results table carries")
     p.add_argument("--circular", action="append", default=[], metavar="REGION",
                    help="region defined from the same data that are tested (adds a circularity caution; repeatable)")
+    p.add_argument("--value-label", metavar="TEXT",
+                   help='axis label of the region values with their unit, e.g. "Parameter estimate (a.u.)" or '
+                        '"%% signal change" (default: region value)')
+    p.add_argument("--background", metavar="IMAGE",
+                   help="background of the region figure (default: the mean of the maps named in the values' "
+                        "provenance)")
     p.set_defaults(func=run)
 
 
@@ -51,7 +57,7 @@ def _sidecar(path: Path) -> dict:
 
 
 def run(args: argparse.Namespace) -> int:
-    from ..reporting.report import check_report_outputs, write_report
+    from ..reporting.report import check_report_outputs, labels_from_sidecar, write_report
 
     out = Path(args.out)
     check_report_outputs(out, args.overwrite)  # fail fast, before any work
@@ -84,7 +90,9 @@ def run(args: argparse.Namespace) -> int:
         options["results_options"] = {k: results_side[k] for k in ("options", "design", "seed") if k in results_side}
     written = write_report(values, results, participants=participants, out=out, overwrite=args.overwrite,
                            provenance={"inputs": inputs, "options": options}, title=args.title,
-                           circular=args.circular, correct=args.correct, labels=labels)
+                           circular=args.circular, correct=args.correct, labels=labels, value_label=args.value_label,
+                           region_background=args.background or "maps",
+                           column_labels=labels_from_sidecar(args.participants) if args.participants else None)
     n_fig = sum(1 for p in written["figures"] if p.suffix == ".png")
     print(f"roikit report: wrote {len(written['tables'])} table files, {n_fig} figures, methods and results "
           f"(.md, .docx), {written['references'].name}, {written['html'].name}, {written['provenance'].name} and "

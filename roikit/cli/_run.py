@@ -27,11 +27,16 @@ def add_parser(subparsers) -> None:
                    "same study again; files roikit did not write are kept unless an output has their name)")
     p.add_argument("--no-figures", action="store_true", help="skip the report's figures (faster; tables and text only)")
     p.add_argument("--quiet", action="store_true", help="no progress bar; print only the output folder")
+    p.add_argument("--value-label", metavar="TEXT",
+                   help='axis label of the region values with their unit, e.g. "%% signal change" (overrides the '
+                        "study file's [study] value_label)")
     p.set_defaults(func=run)
 
 
 def run(args: argparse.Namespace) -> int:
     study = load_study(args.study)
+    if args.value_label:
+        study.value_label = args.value_label
     result = run_study(study, out=args.out, overwrite=args.overwrite, progress=False if args.quiet else None,
                         figures=not args.no_figures)
     print(result.out if args.quiet else result.summary())

@@ -15,22 +15,28 @@ roikit is for research group analysis, not for clinical decisions about an indiv
 
 from __future__ import annotations
 
+from .._tables import read_table, write_table
 from .figures import (
     GROUP_COLORS,
     GROUP_MARKERS,
     JOURNAL_WIDTHS_MM,
+    MAX_HEIGHT_MM,
     OKABE_ITO,
     covariate_plot,
+    forest_pages,
     forest_plot,
     participant_figure,
+    participant_pages,
     participant_plot,
     precision_plot,
     save_figure,
     stimulus_plot,
+    style,
 )
 from .format import format_ci, format_df, format_number, format_p, in_text
 from .html import report_html
-from .report import write_report
+from .region_figure import mean_background, region_figure, region_pages
+from .report import labels_from_sidecar, write_report
 from .tables import ReportTable, descriptives, descriptives_table, results_table, results_tables
 from .text import (
     SCOPE_STATEMENT,
@@ -56,7 +62,16 @@ __all__ = [
     "descriptives_table",
     "participant_plot",
     "participant_figure",
+    "participant_pages",
     "forest_plot",
+    "forest_pages",
+    "region_figure",
+    "region_pages",
+    "mean_background",
+    "style",
+    "read_table",
+    "write_table",
+    "labels_from_sidecar",
     "precision_plot",
     "stimulus_plot",
     "covariate_plot",
@@ -65,6 +80,7 @@ __all__ = [
     "GROUP_COLORS",
     "GROUP_MARKERS",
     "JOURNAL_WIDTHS_MM",
+    "MAX_HEIGHT_MM",
     "methods_text",
     "results_text",
     "cautions",

@@ -10,6 +10,11 @@ Each function takes the data first and keyword options, draws on ``ax`` (or a ne
 journal column) and returns the Axes (or the Figure for multi-panel figures); none calls ``show()``. Save with
 :func:`save_figure` (PDF and SVG with embedded fonts / outlined text, and a 300-dpi PNG).
 
+Print sizes: widths are journal columns (single 85 mm, one-and-a-half 120 mm, double 180 mm), no figure is taller
+than 225 mm (regions that do not fit go onto further pages: :func:`participant_pages`, :func:`forest_pages`), and
+no text is smaller than 7 pt at that size. Numbers use the true minus sign (U+2212). In Jupyter a returned Figure
+(or ``ax.figure``) displays as the cell's last expression or with ``display(fig)``.
+
 Examples
 --------
 >>> ax = participant_plot(values, region="left hippocampus", contrast="novel", versus="familiar",
@@ -57,10 +62,15 @@ __all__ = [
     "GROUP_COLORS",
     "GROUP_MARKERS",
     "JOURNAL_WIDTHS_MM",
+    "MAX_HEIGHT_MM",
+    "FOREST_ROWS_PER_PAGE",
+    "MIN_FONT_PT",
     "style",
     "participant_plot",
     "participant_figure",
+    "participant_pages",
     "forest_plot",
+    "forest_pages",
     "precision_plot",
     "stimulus_plot",
     "covariate_plot",
@@ -83,28 +93,65 @@ OKABE_ITO = {
 #: Group colours (Okabe-Ito, high contrast on white first) and markers: a group differs in both.
 GROUP_COLORS = ("#0072B2", "#D55E00", "#009E73", "#CC79A7", "#E69F00", "#56B4E9")
 GROUP_MARKERS = ("o", "s", "^", "D", "v", "P")
-#: Journal figure widths in millimetres (single and double column; common practice, e.g. 85 and 180 mm).
-JOURNAL_WIDTHS_MM = {"single": 85.0, "double": 180.0}
+#: Journal figure widths in millimetres: single (85-90), one-and-a-half (114-140) and double column (180)
+#: (common practice across journals' artwork guidelines, no single source).
+JOURNAL_WIDTHS_MM = {"single": 85.0, "one-and-a-half": 120.0, "double": 180.0}
+#: Tallest figure (mm): a page's text block; more regions go onto further pages, never a taller figure.
+MAX_HEIGHT_MM = 225.0
+#: Smallest text at print size (points).
+MIN_FONT_PT = 7.0
 
 _MM = 1 / 25.4
 _ESTIMATE_COLOR = "#000000"
 _ZERO_STYLE = dict(color="0.45", lw=0.7, ls=(0, (4, 3)), zorder=0.5)
 _EFFECT_MATH = {"d": "$d$", "d_z": "$d_z$", "g": "$g$", "partial_eta2": r"$\eta^2_p$"}
+#: Markers with one meaning each: group estimates (filled circle), differences (filled diamond), outliers (ring),
+#: low coverage (open hexagon). Group markers (GROUP_MARKERS) are used only for participants.
+_DIFF_MARKER = "D"
+_LOW_MARKER = "h"
+_LOW_COLOR = "#CC79A7"
+_DEFAULT_LABEL = "region value"
+_LEGEND_HEIGHT_MM = 22.0  # below the panels: legend rows and the figure title
+_FOREST_TOP_MM = 20.0  # forest plot: legend above, axis label below
+_FOREST_ROW_MM = 8.0  # forest plot: one region (two lines of 7-pt annotation)
+#: Rows of a forest plot that fit one figure of at most MAX_HEIGHT_MM.
+FOREST_ROWS_PER_PAGE = int((MAX_HEIGHT_MM - _FOREST_TOP_MM) // _FOREST_ROW_MM)
 
-Width = Literal["single", "double"] | float
+Width = Literal["single", "one-and-a-half", "double"] | float
+
+
+def _minus(s: str) -> str:
+    """True minus signs (U+2212) for hyphen-minus before digits, as matplotlib's own tick labels use."""
+    import re
+
+    return re.sub(r"(?<![\w-])-(?=[\d.∞])", "\u2212", s)
+
+
+def _math_text(s: str) -> str:
+    """Escape the characters mathtext would interpret ($) so user text prints as given."""
+    return s.replace("$", r"\$")
+
+
+def _value_axis_label(value_label: str | None) -> str:
+    """The values' axis label (default "region value"), wrapped to fit beside a 50-mm panel at 7 pt."""
+    return textwrap.fill(_math_text(value_label), 30) if value_label else _DEFAULT_LABEL
 
 
 @contextlib.contextmanager
 def style():
-    """Matplotlib settings for print: 7-pt text at journal widths, fonts embedded (TrueType in PDF, outlines in SVG)."""
+    """Matplotlib settings for print: 7-pt text at journal widths, fonts embedded (TrueType in PDF, outlines in SVG).
+
+    Use it around your own plots so they match roikit's (``with style(): ...``)."""
     rc = {
         "font.family": "DejaVu Sans",
         "font.size": 7.0,
         "axes.titlesize": 7.5,
         "axes.labelsize": 7.0,
-        "xtick.labelsize": 6.5,
-        "ytick.labelsize": 6.5,
-        "legend.fontsize": 6.5,
+        "xtick.labelsize": 7.0,
+        "ytick.labelsize": 7.0,
+        "legend.fontsize": 7.0,
+        "figure.titlesize": 8.0,
+        "axes.unicode_minus": True,
         "axes.linewidth": 0.6,
         "xtick.major.width": 0.6,
         "ytick.major.width": 0.6,
@@ -125,7 +172,7 @@ def style():
 def _width_mm(width: Width) -> float:
     if isinstance(width, str):
         if width not in JOURNAL_WIDTHS_MM:
-            raise UsageError(f"width must be 'single', 'double' or millimetres, got {width!r}")
+            raise UsageError(f"width must be 'single', 'one-and-a-half', 'double' or millimetres, got {width!r}")
         return JOURNAL_WIDTHS_MM[width]
     value = float(width)
     if not 20 <= value <= 400:
@@ -241,7 +288,7 @@ def _estimate(ax, x: float, m: float, lo: float, hi: float, *, color=_ESTIMATE_C
         return
     if np.isfinite(lo) and np.isfinite(hi):
         ax.plot([x, x], [lo, hi], color=color, lw=1.3, solid_capstyle="butt", zorder=4)
-    ax.plot([x], [m], marker=marker, color=color, markerfacecolor="white" if marker == "D" else color,
+    ax.plot([x], [m], marker=marker, color=color, markerfacecolor=color,
             markeredgecolor=color, markersize=size, mew=1.1, ls="none", zorder=5, label=label)
 
 
@@ -254,10 +301,10 @@ def _mark(ax, xs, ys, who, outliers: set, low: set, *, size: float):
             ax.scatter([x], [y], s=size * 4.5, facecolors="none", edgecolors="black", linewidths=0.8, zorder=6,
                        label="outlier (modified z > 3.5)")
         if w in low:
-            ax.scatter([x], [y], s=size * 4.5, marker="D", facecolors="none", edgecolors="#CC79A7",
+            ax.scatter([x], [y], s=size * 5.5, marker=_LOW_MARKER, facecolors="none", edgecolors=_LOW_COLOR,
                        linewidths=0.9, zorder=6, label="low coverage (< 50% voxels)")
         if w in outliers or w in low:
-            ax.annotate(w, (x, y), xytext=(4, 0), textcoords="offset points", fontsize=5.0, va="center",
+            ax.annotate(w, (x, y), xytext=(4, 0), textcoords="offset points", fontsize=MIN_FONT_PT, va="center",
                         color="0.25", zorder=7)
 
 
@@ -311,6 +358,7 @@ def participant_plot(
     seed: int | None = 0,
     width: Width = "single",
     legend: bool = True,
+    value_label: str | None = None,
     ax=None,
 ):
     """Every participant's region value as a point, with the estimate and its CI beside the points.
@@ -351,6 +399,9 @@ def participant_plot(
         Figure width (mm) when a new figure is made.
     legend : bool
         Draw a legend.
+    value_label : str, optional
+        Axis label of the values with their unit (e.g. ``"Parameter estimate (a.u.)"``, ``"% signal change"``);
+        default "region value".
     ax : matplotlib Axes, optional
         Axes to draw on.
 
@@ -454,7 +505,8 @@ def participant_plot(
                 _estimate(ax, ex, m, lo, hi, label=f"mean and {confidence:.0%} CI")
                 if between:
                     tick_pos.append(base)
-                    tick_lab.append(f"{g}\n(n = {n_ok}{f', {n_missing} missing' if n_missing else ''})")
+                    missing_txt = f",\n{n_missing} missing" if n_missing else ""  # own line: labels stay apart
+                    tick_lab.append(f"{g}\n(n = {n_ok}{missing_txt})")
                 elif gi == 0:
                     tick_pos.append(ci)
                     total = int(np.isfinite(wide[c].to_numpy(dtype=float)).sum())
@@ -477,7 +529,7 @@ def participant_plot(
                     m, lo, hi = number(r["estimate"]), number(r.get("ci_low")), number(r.get("ci_high"))
                 else:
                     m, lo, hi = mean_ci(d, confidence=confidence)
-                _estimate(ax, xd + 0.22, m, lo, hi, marker="D", label="difference and CI")
+                _estimate(ax, xd + 0.22, m, lo, hi, marker=_DIFF_MARKER, label="difference and CI")
                 tick_pos.append(xd)
                 tick_lab.append(f"{conditions[0]} −\n{conditions[1]}\n(n = {int(np.isfinite(d).sum())})")
         if mode == "two-group" and difference:
@@ -492,7 +544,7 @@ def participant_plot(
                 res = stats.ttest_ind(a, b, equal_var=False)
                 ci = res.confidence_interval(confidence)
                 m, lo, hi = a.mean() - b.mean(), ci.low, ci.high
-            _estimate(ax, xd, m, lo, hi, marker="D", label="difference and CI")
+            _estimate(ax, xd, m, lo, hi, marker=_DIFF_MARKER, label="difference and CI")
             tick_pos.append(xd)
             tick_lab.append(f"{groups[0]} −\n{groups[1]}")
         ax.axhline(0, **_ZERO_STYLE)
@@ -500,7 +552,7 @@ def participant_plot(
         lo_x = min(tick_pos) - 0.45
         hi_x = max(tick_pos) + 0.45
         ax.set_xlim(lo_x, hi_x)
-        ax.set_ylabel("region value" if value == "value" else value)
+        ax.set_ylabel(_value_axis_label(value_label or (None if value == "value" else value)))
         title = region
         if owned and (between or mode == "one-sample"):
             title += f" · {conditions[0]}"
@@ -510,13 +562,42 @@ def participant_plot(
     return ax
 
 
+def _panel_layout(n_regions: int, *, width: Width, ncols: int | None, panel_height_mm: float,
+                  plot=None) -> tuple[int, int, float]:
+    """Columns, rows per page and panel height for ``n_regions`` panels at ``width``."""
+    wmm = _width_mm(width)
+    if ncols is None:
+        # panels wide enough for their tick labels at 7 pt: about 55 mm (80 mm with one label per stimulus)
+        ncols = max(1, int(wmm // (80.0 if plot is stimulus_plot else 55.0)))
+    ncols = max(1, min(ncols, n_regions))
+    rows_max = int((MAX_HEIGHT_MM - _LEGEND_HEIGHT_MM) // panel_height_mm)
+    if rows_max < 1:
+        raise UsageError(f"panel_height_mm={panel_height_mm:g} leaves no room for one row of panels in a figure "
+                         f"of at most {MAX_HEIGHT_MM:g} mm; choose at most {MAX_HEIGHT_MM - _LEGEND_HEIGHT_MM:g}")
+    return ncols, rows_max, panel_height_mm
+
+
+def _region_pages(data: pd.DataFrame, regions, *, width, ncols, panel_height_mm, plot) -> tuple[list[list[str]], int]:
+    regions = list(regions) if regions is not None else ordered_unique(data["region"].map(text))
+    if not regions:
+        raise UsageError("no region to draw: the values table is empty")
+    ncols, rows_max, _ = _panel_layout(len(regions), width=width, ncols=ncols, panel_height_mm=panel_height_mm,
+                                       plot=plot)
+    per_page = ncols * rows_max
+    # balanced pages (10 regions in pages of up to 8: 6 and 4, not 8 and 2), whole rows on every page but the last
+    n_pages = int(np.ceil(len(regions) / per_page))
+    size = min(per_page, int(np.ceil(np.ceil(len(regions) / n_pages) / ncols)) * ncols)
+    return [regions[i:i + size] for i in range(0, len(regions), size)], ncols
+
+
 def participant_figure(
     data: pd.DataFrame,
     *,
     regions: Sequence[str] | None = None,
     ncols: int | None = None,
     width: Width = "double",
-    panel_height_mm: float = 58.0,
+    panel_height_mm: float = 50.0,
+    page: int | None = None,
     plot=None,
     **kwargs,
 ) -> Figure:
@@ -529,11 +610,16 @@ def participant_figure(
     regions : sequence of str, optional
         Regions to draw, in this order (default: all, in their order of appearance).
     ncols : int, optional
-        Panels per row (default: up to 3 at double width, 2 at single width).
-    width : "single", "double" or float
+        Panels per row (default: as many panels of at least 55 mm as the width holds, i.e. 3 at double width,
+        2 at one-and-a-half and 1 at single width; panels of :func:`stimulus_plot` at least 80 mm).
+    width : "single", "one-and-a-half", "double" or float
         Figure width in mm.
     panel_height_mm : float
         Height of one row of panels.
+    page : int, optional
+        Which page (from 1) to draw when the regions need more than one figure of at most 225 mm
+        (:func:`participant_pages` draws them all). Without it, regions that do not fit one page are an error
+        that says how many pages they need.
     plot : callable, optional
         The panel function (default :func:`participant_plot`; also :func:`precision_plot`,
         :func:`stimulus_plot`, :func:`covariate_plot`).
@@ -541,35 +627,72 @@ def participant_figure(
     Returns
     -------
     matplotlib.figure.Figure
+        Displayed inline in Jupyter as the cell's last expression (or with ``display(fig)``).
     """
     check_columns(data, REQUIRED_VALUES, "region values table")
     plot = plot or participant_plot
-    regions = list(regions) if regions is not None else ordered_unique(data["region"].map(text))
-    if not regions:
-        raise UsageError("no region to draw: the values table is empty")
+    pages, ncols = _region_pages(data, regions, width=width, ncols=ncols, panel_height_mm=panel_height_mm,
+                                 plot=plot)
+    if page is None:
+        if len(pages) > 1:
+            n = sum(len(p) for p in pages)
+            raise UsageError(f"{n} regions need {len(pages)} figures of at most {MAX_HEIGHT_MM:g} mm "
+                             f"({len(pages[0])} panels each at this width); pass page=1 to {len(pages)}, use "
+                             "participant_pages(...) for all of them, or choose regions=[...]")
+        page = 1
+    if not 1 <= int(page) <= len(pages):
+        raise UsageError(f"page must lie between 1 and {len(pages)}, got {page}")
+    names = pages[int(page) - 1]
     wmm = _width_mm(width)
-    ncols = ncols or max(1, min(len(regions), 3 if wmm >= 150 else 2))
-    nrows = int(np.ceil(len(regions) / ncols))
+    nrows = int(np.ceil(len(names) / ncols))
     with style():
-        fig = Figure(figsize=(wmm * _MM, (panel_height_mm * nrows + 14) * _MM), layout="constrained")
+        fig = Figure(figsize=(wmm * _MM, (panel_height_mm * nrows + _LEGEND_HEIGHT_MM) * _MM), layout="constrained")
         axes = fig.subplots(nrows, ncols, squeeze=False)
         handles: dict[str, Any] = {}
-        for ax, region in zip(axes.flat, regions):
+        for ax, region in zip(axes.flat, names):
             plot(data, region=region, ax=ax, legend=False, **kwargs)
             for h, lab in zip(*ax.get_legend_handles_labels()):
                 if lab and not lab.startswith("_"):
                     handles.setdefault(lab, h)
         handles = dict(sorted(handles.items(), key=lambda kv: _legend_rank(kv[0])))
-        for ax in list(axes.flat)[len(regions):]:
+        for ax in list(axes.flat)[len(names):]:
             ax.set_visible(False)
         contrast = kwargs.get("contrast")
-        if contrast is not None and kwargs.get("versus") is None:
-            fig.suptitle(f"contrast: {contrast}", fontsize=7.5)
+        title = f"contrast: {contrast}" if contrast is not None and kwargs.get("versus") is None else ""
+        if len(pages) > 1:
+            title = f"{title} (page {page} of {len(pages)})" if title else f"page {page} of {len(pages)}"
+        if title:
+            fig.suptitle(title, fontsize=7.5)
         if handles:
             fig.legend(list(handles.values()), list(handles.keys()), loc="outside lower center",
                        ncols=min(len(handles), 3 if wmm >= 150 else 2), handletextpad=0.3, columnspacing=1.2,
                        markerscale=0.8)
     return fig
+
+
+def participant_pages(
+    data: pd.DataFrame,
+    *,
+    regions: Sequence[str] | None = None,
+    ncols: int | None = None,
+    width: Width = "double",
+    panel_height_mm: float = 50.0,
+    plot=None,
+    **kwargs,
+) -> list[Figure]:
+    """All regions as :func:`participant_figure` pages, each at most 225 mm tall (same options).
+
+    Returns
+    -------
+    list of matplotlib.figure.Figure
+        One figure per page (one when the regions fit).
+    """
+    check_columns(data, REQUIRED_VALUES, "region values table")
+    pages, _ = _region_pages(data, regions, width=width, ncols=ncols, panel_height_mm=panel_height_mm,
+                             plot=plot or participant_plot)
+    return [participant_figure(data, regions=[r for p in pages for r in p], ncols=ncols, width=width,
+                               panel_height_mm=panel_height_mm, page=k, plot=plot, **kwargs)
+            for k in range(1, len(pages) + 1)]
 
 
 # --------------------------------------------------------------------------------------------- forest plot
@@ -583,8 +706,9 @@ def forest_plot(
     correction: str | None = None,
     alpha: float = 0.05,
     annotate: bool = True,
-    width: Width = "single",
+    width: Width = "one-and-a-half",
     legend: bool = True,
+    value_label: str | None = None,
     ax=None,
 ):
     """Effect sizes (or estimates) with their CIs across regions; filled markers survive the correction.
@@ -606,6 +730,13 @@ def forest_plot(
         Significance level.
     annotate : bool
         Write the value, its CI and the adjusted p to the right of each row.
+    width : "single", "one-and-a-half", "double" or float
+        Figure width (mm) when a new figure is made; the height follows the number of rows (at most
+        ``FOREST_ROWS_PER_PAGE`` rows fit one figure of 225 mm; :func:`forest_pages` splits longer tables).
+        With the demo's region names the data area is about 58 mm wide at the default one-and-a-half column
+        width; at single width (85 mm) use ``annotate=False`` for about 38 mm (24 mm with the annotations).
+    value_label : str, optional
+        Unit of the estimates (e.g. ``"% signal change"``), added to the axis label when estimates are drawn.
 
     Returns
     -------
@@ -647,8 +778,12 @@ def forest_plot(
         xlabel = "estimate"
     levels_ = ordered_unique(col(rows, "confidence"))
     level = number(levels_[0]) if levels_ else 0.95
+    if ax is None and len(rows) > FOREST_ROWS_PER_PAGE:
+        raise UsageError(f"{len(rows)} rows do not fit one forest plot of at most {MAX_HEIGHT_MM:g} mm "
+                         f"({FOREST_ROWS_PER_PAGE} rows); use forest_pages(...) to draw them on several pages, or "
+                         "choose fewer rows (design=, term=, contrast=)")
     with style():
-        ax = _new_axes(ax, width, 16 + 7 * len(rows))
+        ax = _new_axes(ax, width, _FOREST_TOP_MM + _FOREST_ROW_MM * len(rows))
         y = np.arange(len(rows))[::-1]
         for yi, a, b in zip(y, lo, hi):
             if np.isfinite(a) and np.isfinite(b):
@@ -663,25 +798,65 @@ def forest_plot(
         ax.scatter(m[~survive], y[~survive], s=26, marker="s", facecolor="white", edgecolor="#0072B2",
                    linewidths=1.0, zorder=3, label=lab_no)
         ax.axvline(0, **_ZERO_STYLE)
-        ax.set_yticks(y, labels)
+        ax.set_yticks(y, [_math_text(textwrap.fill(lab, 24)) for lab in labels])
         ax.set_ylim(-0.7, len(rows) - 0.3)
+        if measure == "estimate" and value_label:
+            xlabel = f"estimate, {_math_text(value_label)}"
         ax.set_xlabel(f"{xlabel} and {level:.0%} CI")
+        # few ticks: the labels (true minus signs) stay apart however narrow the data area
+        ax.xaxis.set_major_locator(mpl.ticker.MaxNLocator(nbins=5, steps=[1, 2, 2.5, 5, 10]))
         ax.spines["left"].set_visible(False)
         ax.tick_params(axis="y", length=0)
         if annotate:
             tr = blended_transform_factory(ax.transAxes, ax.transData)
+            p_name = "p" if pcol == "p" else r"p_\mathrm{%s}" % name.replace(" ", r"\ ")
             for yi, (_, r), pv in zip(y, rows.iterrows(), p):
                 bounded = measure == "effect_size" and text(r.get("effect_size_type")) in BOUNDED_EFFECTS
                 dec = 2
                 txt = (f"{format_number(r[measure], dec, leading_zero=not bounded)} "
                        f"{format_ci(r.get(lo_col), r.get(hi_col), dec, leading_zero=not bounded)}")
                 pt = format_p(pv)
-                txt += f"  p{'' if pcol == 'p' else '_' + name} {'= ' + pt if pt[0] not in '<>' else pt}"
-                ax.text(1.03, yi, txt, transform=tr, va="center", ha="left", fontsize=5.8, clip_on=False)
+                p_txt = f"${p_name}$ {'= ' + pt if pt[0] not in '<>' else pt}"
+                # two lines beside each row (value and CI, then the p-value), so the data area keeps its width
+                ax.text(1.02, yi + 0.2, _minus(txt), transform=tr, va="center", ha="left", fontsize=MIN_FONT_PT,
+                        clip_on=False)
+                ax.text(1.02, yi - 0.22, p_txt, transform=tr, va="center", ha="left", fontsize=MIN_FONT_PT,
+                        clip_on=False, color="0.25")
         if legend:
             ax.legend(loc="lower center", bbox_to_anchor=(0.5, 1.0), ncols=2, handletextpad=0.2,
                       columnspacing=1.0, borderaxespad=0.1)
     return ax
+
+
+def forest_pages(results: pd.DataFrame, *, rows_per_page: int | None = None, **kwargs) -> list[Figure]:
+    """:func:`forest_plot` of every row, split into figures of at most ``rows_per_page`` rows (at most 225 mm tall).
+
+    Parameters
+    ----------
+    results : DataFrame
+        Group results rows to draw (one analysis and term, typically).
+    rows_per_page : int, optional
+        Default (and maximum) ``FOREST_ROWS_PER_PAGE``; pages are balanced (26 rows: 13 and 13).
+    **kwargs
+        Options of :func:`forest_plot` (not ``ax``).
+
+    Returns
+    -------
+    list of matplotlib.figure.Figure
+    """
+    check_columns(results, REQUIRED_RESULTS, "results table")
+    per = min(int(rows_per_page or FOREST_ROWS_PER_PAGE), FOREST_ROWS_PER_PAGE)
+    if per < 1:
+        raise UsageError(f"rows_per_page must be at least 1, got {rows_per_page}")
+    n_pages = max(1, int(np.ceil(len(results) / per)))
+    size = int(np.ceil(len(results) / n_pages))
+    figs = []
+    for k in range(n_pages):
+        ax = forest_plot(results.iloc[k * size:(k + 1) * size], **kwargs)
+        if n_pages > 1:
+            ax.figure.suptitle(f"page {k + 1} of {n_pages}", fontsize=7.5)
+        figs.append(ax.figure)
+    return figs
 
 
 # --------------------------------------------------------------------------------------------- precision
@@ -698,6 +873,7 @@ def precision_plot(
     seed: int | None = 0,
     width: Width = "single",
     legend: bool = True,
+    value_label: str | None = None,
     ax=None,
     **_ignored,
 ):
@@ -751,9 +927,9 @@ def precision_plot(
         for frac, lab in ((1.0, "highest precision in the panel"), (0.25, "¼ of the panel's highest precision")):
             ax.scatter([], [], s=6 + 70 * frac, color="#56B4E9", edgecolor="#0072B2", linewidths=0.4, label=lab)
         ax.axhline(0, **_ZERO_STYLE)
-        ax.set_xticks([0], [f"{contrast}\n(n = {int(ok.sum())}, τ² = {format_number(tau2, 3)})"])
+        ax.set_xticks([0], [f"{contrast}\n(n = {int(ok.sum())}, $\\tau^2$ = {format_number(tau2, 3)})"])
         ax.set_xlim(-0.5, 0.6)
-        ax.set_ylabel("region value")
+        ax.set_ylabel(_value_axis_label(value_label))
         ax.set_title(textwrap.fill(f"{region} · {contrast}" if owned else region, 30))
         if legend:
             _dedupe_legend(ax, owned)
@@ -776,6 +952,7 @@ def stimulus_plot(
     seed: int | None = 0,
     width: Width = "single",
     legend: bool = True,
+    value_label: str | None = None,
     ax=None,
     **_ignored,
 ):
@@ -845,8 +1022,9 @@ def stimulus_plot(
         else:
             ax.set_xticks(range(len(levels_)), [f"{s}\n(n = {c})" for s, c in zip(levels_, counts)])
         ax.set_xlim(-0.6, len(levels_) - 0.4)
-        ax.set_ylabel("region value")
-        ax.set_title(textwrap.fill(f"{region} · per {stimulus}" if stimulus != "contrast" else f"{region} · per stimulus", 30))
+        ax.set_ylabel(_value_axis_label(value_label))
+        ax.set_title(textwrap.fill(region if not owned else (
+            f"{region} · per {stimulus}" if stimulus != "contrast" else f"{region} · per stimulus"), 30))
         if legend:
             _dedupe_legend(ax, owned)
     return ax
@@ -868,13 +1046,17 @@ def covariate_plot(
     confidence: float = 0.95,
     width: Width = "single",
     legend: bool = True,
+    value_label: str | None = None,
+    covariate_label: str | None = None,
     ax=None,
     **_ignored,
 ):
     """Region value against a covariate, with the least-squares line and its confidence band.
 
     The line is the simple regression of the value on the covariate (all participants); the model's
-    coefficient, adjusted for the other terms, is quoted in the legend when ``results`` hold the glm row.
+    coefficient, adjusted for the other terms, is quoted under the title when ``results`` hold the glm row.
+    ``covariate_label`` names the axis for readers (e.g. the participants sidecar's ``LongName`` with its unit)
+    instead of the column name; ``value_label`` names the values' axis.
 
     Returns
     -------
@@ -922,11 +1104,13 @@ def covariate_plot(
             # the slope belongs to this panel: under its title, not in a legend that all panels may share
             level = number(r.get("confidence"))
             level = confidence if not np.isfinite(level) else level
-            slope = (f"\nb = {format_number(r['estimate'], 3)}, {level:.0%} CI "
-                     f"{format_ci(r.get('ci_low'), r.get('ci_high'), 3)}")
+            b_txt = f"$b$ = {format_number(r['estimate'], 3)}"
+            ci_txt = f"{level:.0%} CI {format_ci(r.get('ci_low'), r.get('ci_high'), 3)}"
+            # one line when it fits a narrow panel's width at 7.5 pt, else the interval on its own line
+            slope = _minus(f"\n{b_txt}, {ci_txt}" if len(b_txt) + len(ci_txt) <= 32 else f"\n{b_txt}\n{ci_txt}")
         ax.axhline(0, **_ZERO_STYLE)
-        ax.set_xlabel(covariate)
-        ax.set_ylabel("region value")
+        ax.set_xlabel(_math_text(covariate_label) if covariate_label else covariate)
+        ax.set_ylabel(_value_axis_label(value_label))
         ax.set_title(textwrap.fill(f"{region} · {contrast}" if owned else region, 30) + slope)
         if legend:
             _dedupe_legend(ax, owned)

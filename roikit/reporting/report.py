@@ -44,8 +44,8 @@ from ._common import (
 )
 from .figures import (
     covariate_plot,
-    forest_plot,
-    participant_figure,
+    forest_pages,
+    participant_pages,
     precision_plot,
     save_figure,
     stimulus_plot,
@@ -118,8 +118,34 @@ def _term_slug(term: str) -> str:
     return slug(term)
 
 
+def labels_from_sidecar(participants_tsv: str | os.PathLike | None) -> dict[str, str]:
+    """Reader-facing names of participants.tsv columns from its JSON sidecar (BIDS layout).
+
+    ``LongName`` when given, else the column name with spaces for underscores; ``Units`` appended in
+    parentheses (``route_accuracy`` with ``"Units": "%"`` -> ``"route accuracy (%)"``).
+    """
+    if participants_tsv is None:
+        return {}
+    side = Path(participants_tsv).with_suffix(".json")
+    try:
+        import json
+
+        data = json.loads(side.read_text(encoding="utf-8")) if side.is_file() else {}
+    except (OSError, ValueError):
+        return {}
+    out = {}
+    for name, entry in (data.items() if isinstance(data, dict) else []):
+        if not isinstance(entry, dict):
+            continue
+        label = str(entry.get("LongName") or name.replace("_", " "))
+        units = entry.get("Units")
+        out[name] = f"{label} ({units})" if units and f"({units})" not in label else label
+    return out
+
+
 def _figure_plan(values: pd.DataFrame, results: pd.DataFrame, participants: pd.DataFrame | None,
-                 correct: str | None = None, labels: Labels | None = None) -> list[dict]:
+                 correct: str | None = None, labels: Labels | None = None, value_label: str | None = None,
+                 column_labels: dict[str, str] | None = None) -> list[dict]:
     """What to draw for each analysis: dicts with name, analysis, make (callable -> Figure), caption, width."""
     plan: list[dict] = []
     labels = labels or Labels()
@@ -134,35 +160,35 @@ def _figure_plan(values: pd.DataFrame, results: pd.DataFrame, participants: pd.D
         contrast = key.get("contrast") or None
         if contrast is not None and contrast not in contrasts_all:
             contrast = None
-        opts: dict[str, Any] = dict(results=results)
+        opts: dict[str, Any] = dict(results=results, value_label=value_label)
         flags = _FLAGS
         if design in ("one-sample", "fixed-effects") and contrast:
             note = (" The fixed-effects estimate describes only these participants and does not generalise to the "
                     "population." if design == "fixed-effects" else "")
             plan.append(dict(name=f"{prefix}_participants", caption=f"{escape_markup(title)}. {_POINTS}{flags}{note}",
-                             make=lambda c=contrast, d=design: participant_figure(values, contrast=c, design=d,
+                             make=lambda c=contrast, d=design: participant_pages(values, contrast=c, design=d,
                                                                                   **opts)))
         elif design == "paired" and contrast and key.get("versus") in contrasts_all:
             plan.append(dict(name=f"{prefix}_participants", caption=(
                 f"{escape_markup(title)}. Grey lines connect each participant's values; open points to the right are "
                 f"the within-participant differences with their mean and CI (diamond). {_POINTS}{flags}"),
-                make=lambda c=contrast, v=key["versus"]: participant_figure(values, contrast=c, versus=v, **opts)))
+                make=lambda c=contrast, v=key["versus"]: participant_pages(values, contrast=c, versus=v, **opts)))
         elif design == "two-group" and contrast and key.get("group_column"):
             levels = [s for s in key.get("levels", "").split(",") if s] or None
             plan.append(dict(name=f"{prefix}_participants", caption=(
                 f"{escape_markup(title)}. Groups differ in colour and marker (Okabe–Ito palette); the diamond is the "
                 f"difference between the group means with its CI. {_POINTS}{flags}"),
-                make=lambda c=contrast, g=key["group_column"], lv=levels: participant_figure(
+                make=lambda c=contrast, g=key["group_column"], lv=levels: participant_pages(
                     values, contrast=c, group=g, levels=lv, participants=participants, **opts)))
         elif design == "precision-weighted" and contrast:
             if "variance" in values.columns:
                 plan.append(dict(name=f"{prefix}_precision", caption=(
                     f"{escape_markup(title)}. Point area is proportional to each participant's weight 1/(*v*_{{i}} + "
                     f"τ^{{2}}); the black marker is the precision-weighted estimate with its CI. {flags.strip()}"),
-                    make=lambda c=contrast: participant_figure(values, contrast=c, plot=precision_plot, **opts)))
+                    make=lambda c=contrast: participant_pages(values, contrast=c, plot=precision_plot, **opts)))
             else:
                 plan.append(dict(name=f"{prefix}_participants", caption=f"{escape_markup(title)}. {_POINTS}",
-                                 make=lambda c=contrast: participant_figure(values, contrast=c, **opts)))
+                                 make=lambda c=contrast: participant_pages(values, contrast=c, **opts)))
         elif design == "glm" and contrast:
             drawn = False
             for term in _formula_columns(key.get("formula", "")):
@@ -173,13 +199,13 @@ def _figure_plan(values: pd.DataFrame, results: pd.DataFrame, participants: pd.D
                         f"{escape_markup(title)}: region values against {escape_markup(labels.variable(term))}. The line is the simple "
                         "least-squares fit with its 95% confidence band; each panel's title quotes the model's "
                         "coefficient b, which is adjusted for the other terms."),
-                        make=lambda t=term, c=contrast, g=group: participant_figure(
+                        make=lambda t=term, c=contrast, g=group: participant_pages(
                             values, contrast=c, covariate=t, group=g, participants=participants, plot=covariate_plot,
-                            **opts)))
+                            covariate_label=(column_labels or {}).get(t) or labels.variable(t), **opts)))
                     drawn = True
             if not drawn:
                 plan.append(dict(name=f"{prefix}_participants", caption=f"{escape_markup(title)}. {_POINTS}",
-                                 make=lambda c=contrast: participant_figure(values, contrast=c, **opts)))
+                                 make=lambda c=contrast: participant_pages(values, contrast=c, **opts)))
         elif design == "mixed":
             crossed = [c[3:] for c in rows.columns if c.startswith("sd_") and c not in ("sd_participant", "sd_residual")
                        and has_values(rows, c) and c[3:] in values.columns]
@@ -195,7 +221,7 @@ def _figure_plan(values: pd.DataFrame, results: pd.DataFrame, participants: pd.D
                     f"{escape_markup(title)}: per-{escape_markup(labels.variable(stim))} estimates (mean and 95% CI across participants, "
                     "black) with every participant's value behind them; the dotted line is the mean of the "
                     "per-stimulus means, the dashed line zero."),
-                    make=lambda s=stim, g=group, v=model_values: participant_figure(v, stimulus=s, group=g,
+                    make=lambda s=stim, g=group, v=model_values: participant_pages(v, stimulus=s, group=g,
                                                                     participants=participants, plot=stimulus_plot,
                                                                     **opts)))
         # forest plots: one per term with an interval (intercepts of models left out)
@@ -221,13 +247,71 @@ def _figure_plan(values: pd.DataFrame, results: pd.DataFrame, participants: pd.D
                          f"{size} region{'s' if size != 1 else ''} ({corrected_p_symbol(primary)} < .05); open "
                          "squares do not.")
             name = f"{prefix}_forest" if len(drawn_terms) == 1 else _short(f"{prefix}_forest-{_term_slug(term)}")
-            plan.append(dict(name=name, width="single", caption=(
+            in_value_units = design not in ("glm", "mixed") or is_intercept(term)
+            plan.append(dict(name=name, caption=(
                 f"{escape_markup(title)}, {escape_markup(label)}: estimates with their 95% CIs across regions. "
                 f"{marks} The dashed line marks zero."),
-                make=lambda pt=part, c=primary: forest_plot(pt, correction=c).figure))
+                make=lambda pt=part, c=primary, u=in_value_units: forest_pages(
+                    pt, correction=c, value_label=value_label if u else None)))
         for item in plan[start:]:
             item["analysis"] = n_analysis
     return plan
+
+
+def _region_figures(values: pd.DataFrame, values_prov: dict, regions, background) -> tuple[list, Any, str]:
+    """Region figure pages, the realised regions and what the background is (raises UsageError if impossible)."""
+    from .region_figure import mean_background, region_pages, regions_from_provenance
+
+    if regions is None:
+        try:
+            regions = regions_from_provenance(values_prov)
+        except (OSError, ValueError, KeyError, TypeError) as exc:
+            raise UsageError(f"the regions could not be rebuilt from the values' provenance ({exc}); pass "
+                             "regions= (the realised regions) to draw them") from exc
+    names = [n for n in ordered_unique(values["region"].map(text)) if n in regions.names]
+    if not names:
+        raise UsageError("none of the values' regions is in the region set")
+    image, what = None, "the regions' union (grey)"
+    if isinstance(background, str) and background == "maps":
+        paths = [i["path"] for i in values_prov.get("inputs", []) if isinstance(i, dict) and i.get("path")
+                 and Path(i["path"]).is_file()]
+        if paths:
+            try:
+                image = mean_background(paths, regions.grid)
+            except (OSError, ValueError) as exc:  # a map that cannot be read: the regions are still drawn
+                what = f"regions in grey (the maps could not be averaged: {exc})"
+            else:
+                used = min(len(paths), 100)
+                what = (f"mean of the {used} maps" if used == len(paths)
+                        else f"mean of {used} of the {len(paths)} maps")
+    elif background is not None:
+        image = background
+        what = os.fspath(background) if isinstance(background, (str, os.PathLike)) else "the given image"
+    drawn = names[:_MAX_REGIONS_DRAWN]
+    pages = region_pages(regions, names=drawn, background=image, title=f"background: {what}")
+    if len(names) > len(drawn):  # an atlas of hundreds of regions: the first pages, and say so
+        what += (f"; the first {len(drawn)} of the {len(names)} regions are drawn (roikit regions ... --figure FILE "
+                 "draws them all; the table lists them all)")
+    return pages, regions.__class__(regions.grid, names, [regions.voxels[regions.names.index(n)] for n in names],
+                                    [regions.weights[regions.names.index(n)] for n in names],
+                                    [regions.sources[regions.names.index(n)] for n in names]), what
+
+
+def _region_rows(regions) -> list[list[str]]:
+    from .format import format_number
+
+    rows = []
+    for r in regions.summary().to_dict("records"):
+        rows.append([str(r["region"]), str(r["source"]), format_number(r["n_voxels"], 0),
+                     format_number(r["volume_mm3"], 0), format_number(r["x_mm"], 1), format_number(r["y_mm"], 1),
+                     format_number(r["z_mm"], 1)])
+    return rows
+
+
+#: Regions drawn in the report's region figure (five pages at double width); the table lists them all.
+_MAX_REGIONS_DRAWN = 50
+
+_REGION_HEAD = ["Region", "Definition", "Voxels", "Volume (mm³)", "x (mm)", "y (mm)", "z (mm)"]
 
 
 #: The writer recorded in a report folder's manifest (:mod:`roikit._outputs`).
@@ -289,6 +373,10 @@ def write_report(
     figure_formats: tuple[str, ...] = ("pdf", "svg", "png"),
     correct: str | None = None,
     labels: dict | None = None,
+    value_label: str | None = None,
+    regions: Any = None,
+    region_background: Any = "maps",
+    column_labels: dict[str, str] | None = None,
     _staged: bool = False,
 ) -> dict[str, Any]:
     """Write tables, figures, methods and results text (Markdown and Word), references, an index, a
@@ -323,6 +411,18 @@ def write_report(
         Draw the figures (False for a quick text-and-tables report).
     figure_formats : tuple of str
         Files written per figure (PNG is always written: the HTML embeds it).
+    value_label : str, optional
+        Axis label of the region values with their unit, e.g. ``"Parameter estimate (a.u.)"`` or
+        ``"% signal change"`` (default "region value").
+    regions : Regions, optional
+        The realised regions, for the "Regions" section (each region on slices through its centre, with a
+        table of centre and size); default: rebuilt from the values' provenance when it describes them.
+    region_background : "maps", array, path or None
+        Background of the region figure: ``"maps"`` (the mean of the maps listed in the values' provenance),
+        an image on the regions' grid or a file, or None (the regions' union in grey).
+    column_labels : dict, optional
+        Reader-facing names of participants.tsv columns for axis labels (default: from the participants
+        sidecar's ``LongName`` and ``Units`` when ``participants`` is a path; see :func:`labels_from_sidecar`).
     correct : str, optional
         The primary correction to report (text, table notes, figure markers) instead of each analysis's own
         (the first entry of its ``correction`` column); must be one the results carry, or ``none``.
@@ -350,7 +450,9 @@ def write_report(
     out = Path(out)
     if not _staged:  # write everything into a staging folder, then switch it in as one set
         options = dict(participants=participants, provenance=provenance, title=title, circular=circular,
-                       figures=figures, figure_formats=figure_formats, correct=correct, labels=labels)
+                       figures=figures, figure_formats=figure_formats, correct=correct, labels=labels,
+                       value_label=value_label, regions=regions, region_background=region_background,
+                       column_labels=column_labels)
         with FolderOutputs(out, writer=REPORT_WRITER, overwrite=overwrite) as tx, \
                 warnings.catch_warnings(record=True) as caught:
             warnings.simplefilter("always")
@@ -370,6 +472,8 @@ def write_report(
                                    w.filename, w.lineno)
         return moved
     side = read_sidecar_labels(participants) if isinstance(participants, (str, os.PathLike)) else {}
+    if column_labels is None:
+        column_labels = labels_from_sidecar(participants) if isinstance(participants, (str, os.PathLike)) else {}
     values = _as_table(values, "values", REQUIRED_VALUES)
     results = _as_table(results, "results", REQUIRED_RESULTS)
     participants = _as_table(participants, "participants", ("participant_id",))
@@ -420,26 +524,55 @@ def write_report(
     figure_items: list[ReportFigure] = []
     figure_paths: list[Path] = []
     figure_errors: list[str] = []
+    region_items: list[ReportFigure] = []
+    drawn_regions = None
+    region_note = ""
+    formats = tuple(dict.fromkeys(tuple(figure_formats) + ("png",)))
+
+    def add_figure(fig, name: str, caption: str, alt: str, analysis) -> ReportFigure:
+        paths = save_figure(fig, out / "figures" / name, width=None, formats=formats, overwrite=overwrite)
+        number_ = len(figure_items) + 1
+        for p in paths:
+            figure_paths.append(listed(p, analysis, f"figure ({p.suffix[1:]})", f"Figure {number_}. {caption}"))
+        png_path = next(p for p in paths if p.suffix == ".png")
+        item = ReportFigure(png=png_path.read_bytes(), alt=alt, caption=caption, number=number_, name=name,
+                            width_mm=float(fig.get_size_inches()[0] * 25.4), file=png_path.relative_to(out).as_posix())
+        figure_items.append(item)
+        return item
+
+    if figures and regions is None and not values_prov.get("region_sources"):
+        region_note = ("The values carry no description of the regions (no extraction provenance), so the regions "
+                       "are not drawn; pass the realised regions (regions=...) to draw them.")
+    elif figures:
+        # where the regions are (the manuscript's first region figure), then the analyses' figures
+        try:
+            pages, drawn_regions, background_text = _region_figures(values, values_prov, regions, region_background)
+        except (UsageError, OSError, ValueError) as exc:  # roikit's errors subclass these too
+            figure_errors.append(f"regions: {exc}")
+            pages = []
+        for k, fig in enumerate(pages, start=1):
+            name = "regions" + (f"_page{k}" if len(pages) > 1 else "")
+            caption = (f"The regions of interest, each on a sagittal, a coronal and an axial slice through its centre "
+                       f"(world coordinates in mm; L, left; R, right) over the {escape_markup(background_text)}; "
+                       "one colour per region (Okabe–Ito palette, repeating after seven)."
+                       + (f" (Page {k} of {len(pages)}.)" if len(pages) > 1 else ""))
+            region_items.append(add_figure(fig, name, caption, f"Regions of interest on orthogonal slices, page {k} "
+                                                               f"of {len(pages)}", "all"))
     if figures:
-        for item in _figure_plan(values, results, participants, correct=correct, labels=names):
+        for item in _figure_plan(values, results, participants, correct=correct, labels=names,
+                                 value_label=value_label, column_labels=column_labels):
             try:
-                fig = item["make"]()
+                made = item["make"]()
             except UsageError as exc:  # a figure that cannot be drawn is reported, never silently skipped
                 figure_errors.append(f"{item['name']}: {exc}")
                 continue
-            formats = tuple(dict.fromkeys(tuple(figure_formats) + ("png",)))
-            paths = save_figure(fig, out / "figures" / item["name"], width=item.get("width"), formats=formats,
-                                overwrite=overwrite)
-            number_ = len(figure_items) + 1
-            for p in paths:
-                figure_paths.append(listed(p, item.get("analysis", "n/a"), f"figure ({p.suffix[1:]})",
-                                           f"Figure {number_}. {item['caption']}"))
-            png_path = next(p for p in paths if p.suffix == ".png")
-            png = png_path.read_bytes()
-            alt = render(item["caption"], "plain").split(". ")[0]  # markup rendered: underscores in names stay
-            figure_items.append(ReportFigure(png=png, alt=alt, caption=item["caption"], number=number_,
-                                             name=item["name"], width_mm=float(fig.get_size_inches()[0] * 25.4),
-                                             file=png_path.relative_to(out).as_posix()))
+            pages = made if isinstance(made, list) else [made]  # regions beyond one page go onto further figures
+            for k, fig in enumerate(pages, start=1):
+                suffix = f"_p{k}" if len(pages) > 1 else ""
+                name = _short(item["name"], ".png" + suffix) + suffix  # the page number is never cut off
+                caption = item["caption"] + (f" (Page {k} of {len(pages)}.)" if len(pages) > 1 else "")
+                alt = render(caption, "plain").split(". ")[0]  # markup rendered: underscores in names stay
+                add_figure(fig, name, caption, alt, item.get("analysis", "n/a"))
 
     # ---------------------------------------------------------------- text
     found = cautions(results, provenance=values_prov, circular=circular)
@@ -450,6 +583,11 @@ def write_report(
     references = reference_list(cited)
     cited_all = list(dict.fromkeys(cited + [c["cites"] for c in found if c.get("cites")]))
     md = ["# Methods", ""] + [render(p, "markdown") + "\n" for p in method_paragraphs]
+    if drawn_regions is not None:
+        md += ["## Regions", "", "| " + " | ".join(_REGION_HEAD) + " |", "|" + "---|" * len(_REGION_HEAD)]
+        md += ["| " + " | ".join(escape_markup(c) for c in row) + " |" for row in _region_rows(drawn_regions)]
+        md += ["", "Centre: centre of mass in world coordinates (mm). " + " ".join(
+            f"Figure {f.number}." for f in region_items), ""]
     md += ["## References", ""] + [render(r, "markdown") + "\n" for r in references]
     methods_path = listed(atomic_write_bytes(out / "methods.md", "\n".join(md).encode("utf-8"), overwrite=overwrite),
                           "all", "methods (Markdown)", "Methods section with its reference list")
@@ -490,11 +628,24 @@ def write_report(
             detail_html], css_class="cautions"))
     sections.append(Section("methods", "Methods", ["\n".join(f"<p>{render(p, 'html')}</p>"
                                                               for p in method_paragraphs)]))
+    if region_note:
+        sections.append(Section("regions", "Regions", [f"<p>{_html.escape(region_note)}</p>"]))
+    if drawn_regions is not None:
+        head = "".join(f"<th>{_html.escape(h)}</th>" for h in _REGION_HEAD)
+        rows_html = "".join("<tr>" + "".join(f"<td>{_html.escape(c)}</td>" for c in row) + "</tr>"
+                            for row in _region_rows(drawn_regions))
+        sections.append(Section("regions", "Regions", [figure_html(f) for f in region_items] + [
+            '<figure class="table" id="region-table"><figcaption><span class="table-number">Regions</span><br>'
+            '<span class="table-title">Centre (centre of mass, world mm) and size of each region</span></figcaption>'
+            '<p class="scroll-hint" aria-hidden="true"></p><div class="table-scroll" tabindex="0" role="region" '
+            f'aria-label="Regions, scrolls sideways"><table class="apa regions"><thead><tr>{head}</tr></thead>'
+            f'<tbody>{rows_html}</tbody></table></div></figure>']))
     body = ["\n".join(f"<p>{render(p, 'html')}</p>" for p in result_paragraphs)]
     body += [t.to_html() for t in tables]
     sections.append(Section("results", "Results", body))
-    if figure_items:
-        sections.append(Section("figures", "Figures", [figure_html(f) for f in figure_items]))
+    analysis_items = [f for f in figure_items if all(f is not r for r in region_items)]
+    if analysis_items:
+        sections.append(Section("figures", "Figures", [figure_html(f) for f in analysis_items]))
     sections.append(Section("descriptives", "Descriptive statistics", [desc.to_html()]))
     sections.append(Section("assumptions", "Assumptions and scope", [
         "<ul>" + "".join(f"<li>{render(a, 'html')}</li>" for a in assumption_lines) + "</ul>",
@@ -531,6 +682,7 @@ def write_report(
         "versions": versions,
         "inputs": extra.get("inputs", []),
         "options": {"title": title, "circular": list(circular or []), "figures": figures, "correct": correct,
+                    "value_label": value_label,
                     **extra.get("options", {})},
         "seeds": seeds,
         "analyses": [dict(k, primary_correction=primary_correction(r, correct)) for k, r in split_analyses(results)],

@@ -195,6 +195,7 @@ def run_study(
         study = load_study(study)
     out = Path(out) if out is not None else study.default_out
     from ..reporting import write_report
+    from ..reporting.report import labels_from_sidecar
 
     seconds: dict[str, float] = {}
 
@@ -239,7 +240,8 @@ def run_study(
                              **read_sidecar_labels(study.participants_path)},
                      provenance={"inputs": inputs, "options": {"command": "roikit run", "out": os.fspath(out)}},
                      title=study.title, circular=study.circular, figures=figures,
-                     figure_formats=tuple(figure_formats))
+                     figure_formats=tuple(figure_formats), value_label=study.value_label, regions=study.realised,
+                     column_labels=labels_from_sidecar(study.participants_path))
         seconds["report"] = time.perf_counter() - t0
         for w in caught:  # messages naming the temporary folder name the output folder instead
             if str(tmp) in str(w.message):

@@ -41,7 +41,7 @@ class StudyError(UsageError):
 #: Every key a study file may hold, by section (``analysis`` keys mirror the command-line options).
 STUDY_KEYS: dict[str, tuple[str, ...]] = {
     "": ("study", "maps", "regions", "extraction", "analysis"),
-    "study": ("title", "participants", "contrasts", "regions"),
+    "study": ("title", "participants", "contrasts", "regions", "value_label"),
     "maps": ("effect", "variance", "list"),
     "regions": ("atlas", "labels", "sphere", "mask", "probability", "split_hemispheres", "within", "select",
                 "rename", "circular", "space", "citation"),
@@ -237,6 +237,8 @@ class Study:
     analyses : list of Analysis
     raw : dict
         The parsed TOML.
+    value_label : str or None
+        Axis label of the region values with their unit in the figures (``[study] value_label``).
     """
 
     path: Path
@@ -252,6 +254,7 @@ class Study:
     jobs: int
     analyses: list[Analysis]
     raw: dict = field(repr=False, default_factory=dict)
+    value_label: str | None = None
 
     @property
     def default_out(self) -> Path:
@@ -389,6 +392,7 @@ def load_study(path: PathLike) -> Study:
     section = c.table(raw.get("study"), "study") or {}
     c.keys(section, "study", "study")
     title = c.string(section, "title", "study") or path.stem
+    value_label = c.string(section, "value_label", "study")
     participants_path = c.file(section, "participants", "study", what="participants table")
     participants = None
     if participants_path is not None:
@@ -454,7 +458,7 @@ def load_study(path: PathLike) -> Study:
         raise StudyError(path, c.problems)
     return Study(path=path, title=title, participants_path=participants_path, participants=participants, maps=maps,
                  regions=regions, realised=realised, circular=circular, statistic=statistic, keep_zeros=keep_zeros,
-                 jobs=jobs, analyses=analyses, raw=raw)
+                 jobs=jobs, analyses=analyses, raw=raw, value_label=value_label)
 
 
 def _check_maps(c: _Checker, raw: dict) -> pd.DataFrame | None:

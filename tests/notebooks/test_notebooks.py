@@ -1,4 +1,5 @@
-"""The template notebooks run top to bottom in a fresh kernel against the demo study and save their outputs."""
+"""The template notebooks run top to bottom in a fresh kernel against the demo study, show their figures inline,
+use only roikit's public API, and save their outputs."""
 
 from __future__ import annotations
 
@@ -21,7 +22,8 @@ NAMES = sorted(p.name for p in FOLDER.glob("*.ipynb"))
 EXPECTED = {
     "01_from_maps_to_a_region_table.ipynb": ["region_values.tsv", "region_values.json",
                                               "tables/coverage_by_participant.tsv", "tables/regions.tsv",
-                                              "figures/first_look_novel-vs-familiar.png", "figures/coverage_by_participant.png"],
+                                              "figures/first_look_novel-vs-familiar.png", "figures/coverage_by_participant.png",
+                                              "figures/regions.png"],
     "02_is_there_an_effect.ipynb": ["tables/a1-one-sample.md",
                                     "tables/a1-one-sample.docx",
                                     "tables/a2-paired.tsv",
@@ -95,6 +97,37 @@ def test_notebook_runs_top_to_bottom(name, demo):
     assert not errors
     for rel in EXPECTED[name]:
         assert (demo["out"] / rel).is_file(), rel
+    # every cell that draws shows its figures inline (roikit builds figures without pyplot: plt.show() shows none)
+    drawing = [c for c in nb.cells if "figure" in c.metadata.get("tags", [])]
+    assert drawing, "no cell is tagged as drawing a figure"
+    for cell in drawing:
+        images = [o for o in cell.outputs if o.output_type in ("display_data", "execute_result")
+                  and "image/png" in o.get("data", {})]
+        assert len(images) == cell.metadata["roikit"]["figures"], cell.source[:200]
+    # no figure shown as a mere "<Figure size ...>" text, no progress-bar text or widget warnings in the outputs
+    # (a progress bar is a widget: in Jupyter it draws as one; its plain-text stand-in is one line, kept by nbclient)
+    widget = "application/vnd.jupyter.widget-view+json"
+    for cell in nb.cells:
+        for o in cell.outputs if cell.cell_type == "code" else []:
+            data = o.get("data", {})
+            shown = "" if "image/png" in data or widget in data else o.get("text", "") + str(data.get("text/plain", ""))
+            assert "<Figure size" not in shown, cell.source[:200]
+            assert "TqdmWarning" not in shown and "IProgress" not in shown, shown[:300]
+            assert "it/s]" not in shown and "map/s]" not in shown, shown[:300]
+
+
+def test_notebooks_use_only_the_public_api():
+    """No private module or name (``roikit._tables``, ``from roikit.x import _helper``), no pyplot, no helper
+    functions repeated in every notebook."""
+    import re
+
+    for name in NAMES:
+        nb = nbformat.read(FOLDER / name, as_version=4)
+        source = "\n".join(c.source for c in nb.cells if c.cell_type == "code")
+        assert not re.search(r"roikit(\.\w+)*\._", source), name
+        assert not re.search(r"from roikit[\w.]* import [^\n]*\b_\w", source), name
+        assert "pyplot" not in source and "plt." not in source, name
+        assert not re.search(r"^def ", nb.cells[2].source, re.M), f"{name}: helper functions in the setup cell"
 
 
 @pytest.mark.slow

@@ -77,8 +77,8 @@ def test_report_renders_with_figures(report, tmp_path):
     naturals = re.findall(r'data-natural="(\d+)x(\d+)"', dom)
     boxes = [tuple(map(int, b.split(","))) for b in re.findall(r'data-box="([-\d,]+)"', dom)]
     assert len(naturals) == 2 and len(boxes) == 2
-    # the figures are 180 mm and 85 mm wide at 300 dpi: 2126 and 1004 px once decoded
-    assert sorted(int(w) for w, _ in naturals) == pytest.approx([1004, 2126], abs=3)
+    # the figures are 180 mm (participants) and 120 mm (forest plot) wide at 300 dpi: 2126 and 1417 px once decoded
+    assert sorted(int(w) for w, _ in naturals) == pytest.approx([1417, 2126], abs=3)
     # 2) the screenshot of the real report: not blank, and the figure areas are drawn
     shot = tmp_path / "shot.png"
     _run(browser, ["--window-size=1200,4000", f"--screenshot={shot}", report.as_uri()], tmp_path)

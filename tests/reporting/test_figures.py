@@ -12,13 +12,16 @@ from scipy import stats
 
 from roikit.errors import UsageError
 from roikit.reporting.figures import (
+    FOREST_ROWS_PER_PAGE,
     GROUP_COLORS,
     OKABE_ITO,
     covariate_plot,
     fit_line,
+    forest_pages,
     forest_plot,
     mean_ci,
     participant_figure,
+    participant_pages,
     participant_plot,
     precision_plot,
     save_figure,
@@ -195,7 +198,8 @@ def test_covariate_plot(values, participants, results_by_design):
     ax = covariate_plot(values, region="left hippocampus", contrast="novel", covariate="age", group="group",
                         participants=participants, results=results_by_design["glm"])
     assert len(_points(ax)) == 32
-    assert "b = -0.006, 95% CI" in ax.get_title()  # the model's slope under the panel title
+    # the model's slope under the panel title (true minus signs; the interval on its own line when long)
+    assert "$b$ = \u22120.006\n95% CI [\u22120.010, \u22120.002]" in ax.get_title()
     with pytest.raises(UsageError, match="covariate 'height'"):
         covariate_plot(values, region="left hippocampus", contrast="novel", covariate="height")
 
@@ -224,3 +228,395 @@ def test_save_figure_formats_fonts_and_width(values, tmp_path):
         save_figure(ax.figure, tmp_path / "one.png", formats=("png",))
     with pytest.raises(UsageError, match="width must be"):
         save_figure(ax.figure, tmp_path / "two", width="triple")
+
+
+# --------------------------------------------------------------------------------------------- print sizes
+#: Journal column widths (mm): single 85-90, one-and-a-half 114-140, double 180 (common practice, no single source).
+ALLOWED_WIDTHS_MM = ((85.0, 90.0), (114.0, 140.0), (180.0, 180.0))
+
+
+def _visible_ticklabels(axis):
+    """Tick labels matplotlib draws: ticks inside the view interval with non-empty text."""
+    lo, hi = sorted(axis.get_view_interval())
+    out = []
+    for tick in axis.get_major_ticks():
+        label = tick.label1
+        if lo - 1e-9 <= tick.get_loc() <= hi + 1e-9 and label.get_visible() and label.get_text().strip():
+            out.append(label)
+    return out
+
+
+def audit_saved_figure(fig, path):
+    """Save as roikit saves, then measure the figure at that size: width, height, smallest text, tick overlaps.
+
+    Returns (width_mm, height_mm, smallest_pt, overlaps, outside): overlaps lists colliding tick-label pairs,
+    outside the texts reaching beyond the figure's edge (cut off when saved).
+    """
+    from matplotlib.backends.backend_agg import FigureCanvasAgg
+    from matplotlib.text import Text
+
+    save_figure(fig, path, formats=("png",), overwrite=True)
+    width_mm, height_mm = fig.get_size_inches() * 25.4
+    FigureCanvasAgg(fig)
+    fig.canvas.draw()  # the layout of the saved size
+    renderer = fig.canvas.get_renderer()
+    ticks = {id(t) for ax in fig.axes for axis in (ax.xaxis, ax.yaxis) for tick in axis.get_major_ticks()
+             for t in (tick.label1, tick.label2)}
+    drawn = {id(t) for ax in fig.axes if ax.get_visible() for axis in (ax.xaxis, ax.yaxis)
+             for t in _visible_ticklabels(axis)}
+    texts = [t for t in fig.findobj(Text) if t.get_visible() and t.get_text().strip()
+             and (id(t) not in ticks or id(t) in drawn)]
+    sizes = [t.get_fontsize() for t in texts]
+    page = fig.bbox
+    outside = [t.get_text() for t in texts if (lambda b: b.x0 < page.x0 - 1 or b.x1 > page.x1 + 1 or b.y0 < page.y0 - 1
+                                                or b.y1 > page.y1 + 1)(t.get_window_extent(renderer))]
+    overlaps = []
+    for ax in fig.axes:
+        if not ax.get_visible():
+            continue
+        for axis in (ax.xaxis, ax.yaxis):
+            boxes = [(t.get_text(), t.get_window_extent(renderer)) for t in _visible_ticklabels(axis)]
+            for i in range(len(boxes)):
+                for j in range(i + 1, len(boxes)):
+                    if boxes[i][1].overlaps(boxes[j][1]):
+                        overlaps.append((boxes[i][0], boxes[j][0]))
+    return float(width_mm), float(height_mm), min(sizes), overlaps, outside
+
+
+def _figure_kinds(values, participants, results_by_design, results):
+    towns = values[values.contrast.str.startswith("town")]
+    return {
+        "one-sample": lambda: participant_figure(values, contrast="novel", results=results_by_design["one-sample"],
+                                                 value_label="Parameter estimate (a.u.)"),
+        "paired": lambda: participant_figure(values, contrast="novel", versus="familiar",
+                                             results=results_by_design["paired"]),
+        "two-group": lambda: participant_figure(values, contrast="novel", group="group", participants=participants,
+                                                results=results_by_design["two-group"]),
+        "within-between": lambda: participant_figure(values, contrasts=["novel", "familiar"], group="group",
+                                                     participants=participants, results=results),
+        "precision": lambda: participant_figure(values, contrast="novel", plot=precision_plot,
+                                                results=results_by_design["precision-weighted"]),
+        "stimuli": lambda: participant_figure(towns, plot=stimulus_plot, group="group", participants=participants),
+        "covariate": lambda: participant_figure(values, contrast="novel", covariate="age", group="group",
+                                                participants=participants, plot=covariate_plot,
+                                                results=results_by_design["glm"]),
+        "forest effect sizes": lambda: forest_plot(results_by_design["paired"]).figure,
+        "forest estimates": lambda: forest_plot(results_by_design["glm"], term="age").figure,
+        "single plot": lambda: participant_plot(values, region="left hippocampus", contrast="novel").figure,
+        "single stimulus plot": lambda: stimulus_plot(towns, region="left hippocampus").figure,
+        "paired, single column": lambda: participant_figure(values, contrast="novel", versus="familiar",
+                                                            results=results_by_design["paired"], width="single"),
+        "stimuli, single column": lambda: participant_figure(towns, plot=stimulus_plot, width="single"),
+        "covariate, 1.5 column": lambda: participant_figure(values, contrast="novel", covariate="age",
+                                                            participants=participants, plot=covariate_plot,
+                                                            results=results_by_design["glm"], width="one-and-a-half"),
+        "forest, single column": lambda: forest_plot(results_by_design["one-sample"], width="single").figure,
+    }
+
+
+KINDS = ["one-sample", "paired", "two-group", "within-between", "precision", "stimuli", "covariate",
+         "forest effect sizes", "forest estimates", "single plot", "single stimulus plot", "paired, single column",
+         "stimuli, single column", "covariate, 1.5 column", "forest, single column"]
+
+
+@pytest.mark.parametrize("kind", KINDS)
+def test_every_figure_kind_prints_at_journal_size(kind, values, participants, results_by_design, results, tmp_path):
+    fig = _figure_kinds(values, participants, results_by_design, results)[kind]()
+    width, height, smallest, overlaps, outside = audit_saved_figure(fig, tmp_path / "figure")
+    assert any(lo - 0.5 <= width <= hi + 0.5 for lo, hi in ALLOWED_WIDTHS_MM), width
+    assert height <= 225.0 + 1e-6
+    assert smallest >= 7.0, f"{kind}: text at {smallest} pt"
+    assert not overlaps, f"{kind}: tick labels collide: {overlaps}"
+    assert not outside, f"{kind}: text cut off at the figure's edge: {outside}"
+
+
+def test_the_audit_sees_colliding_ticks_and_small_text(tmp_path):
+    """The audit itself can fail: crowded ticks and 5-pt text on a narrow figure are caught."""
+    from matplotlib.figure import Figure
+
+    fig = Figure(figsize=(20 / 25.4, 20 / 25.4))
+    ax = fig.add_subplot()
+    ax.set_xticks(range(10), [f"label {k}" for k in range(10)])
+    ax.text(0, 0, "tiny", fontsize=5)
+    ax.text(1.5, 0.5, "beyond the edge", transform=ax.transAxes)
+    _, _, smallest, overlaps, outside = audit_saved_figure(fig, tmp_path / "bad")
+    assert smallest == 5 and overlaps and "beyond the edge" in outside
+
+
+def _many_regions(values, n):
+    base = values[values.region == "left hippocampus"]
+    return pd.concat([base.assign(region=f"region {k:02d}") for k in range(n)], ignore_index=True)
+
+
+def test_many_regions_go_onto_pages_no_taller_than_225_mm(values, tmp_path):
+    many = _many_regions(values, 14)
+    with pytest.raises(UsageError, match="14 regions need 2 figures.*page=1 to 2"):
+        participant_figure(many, contrast="novel")
+    pages = participant_pages(many, contrast="novel")
+    assert len(pages) == 2
+    drawn = [ax.get_title() for fig in pages for ax in fig.axes if ax.get_visible()]
+    assert [t.split(" · ")[0] for t in drawn] == [f"region {k:02d}" for k in range(14)]  # every region, in order
+    for fig in pages:
+        assert fig.get_size_inches()[1] * 25.4 <= 225.0
+    with pytest.raises(UsageError, match="page must lie between 1 and 2"):
+        participant_figure(many, contrast="novel", page=3)
+
+
+def test_long_forest_plots_are_split_into_pages(results_by_design):
+    rows = results_by_design["paired"]
+    long = pd.concat([rows.assign(region=rows.region + f" {k}") for k in range(12)], ignore_index=True)  # 36 rows
+    assert len(long) > FOREST_ROWS_PER_PAGE
+    with pytest.raises(UsageError, match="forest_pages"):
+        forest_plot(long)
+    pages = forest_pages(long)
+    assert len(pages) == 2
+    assert sum(len(fig.axes[0].get_yticks()) for fig in pages) == len(long)
+    assert all(fig.get_size_inches()[1] * 25.4 <= 225.0 for fig in pages)
+
+
+def test_forest_plot_true_minus_and_p_subscript(results_by_design):
+    ax = forest_plot(results_by_design["glm"], term="age")
+    texts = [t.get_text() for t in ax.texts]
+    assert any("\u2212" in t for t in texts)  # negative estimates with true minus signs
+    assert not any(re.search(r"(^|[\s\[(])-\d", t) for t in texts)  # no hyphen-minus before a digit
+    assert any(t.startswith(r"$p_\mathrm{Holm}$") for t in texts)  # subscript, not raw p_Holm
+    assert not any("p_Holm" in t and "$" not in t for t in texts)
+
+
+def test_distinct_markers_for_distinct_meanings(values, results_by_design):
+    ax = participant_plot(values, region="right hippocampus", contrast="novel", versus="familiar",
+                          results=results_by_design["paired"])
+    low = [c for c in ax.collections if c.get_label() == "low coverage (< 50% voxels)"][0]
+    diff = [line for line in ax.lines if line.get_label() == "difference and CI"][0]
+    # the low-coverage flag is an open hexagon, the difference a filled diamond
+    assert diff.get_marker() == "D" and diff.get_markerfacecolor() == diff.get_markeredgecolor()
+    assert low.get_paths()[0].vertices.shape != matplotlib.markers.MarkerStyle("D").get_path().vertices.shape
+    assert low.get_facecolor().size == 0 or low.get_facecolor()[0][3] == 0  # open
+
+
+def test_value_and_covariate_labels(values, participants, results_by_design):
+    ax = participant_plot(values, region="left hippocampus", contrast="novel", value_label="% signal change")
+    assert ax.get_ylabel() == r"% signal change"
+    ax = covariate_plot(values, region="left hippocampus", contrast="novel", covariate="age",
+                        participants=participants, covariate_label="age (years)", value_label="Parameter estimate (a.u.)")
+    assert ax.get_xlabel() == "age (years)" and ax.get_ylabel() == "Parameter estimate (a.u.)"
+    ax = forest_plot(results_by_design["one-sample"], measure="estimate", value_label="% signal change")
+    assert ax.get_xlabel() == "estimate, % signal change and 95% CI"
+    assert participant_plot(values, region="left hippocampus", contrast="novel").get_ylabel() == "region value"
+
+
+# --------------------------------------------------------------------------------------------- region figure
+@pytest.fixture()
+def small_regions(tmp_path):
+    """Two atlas boxes and a sphere on the small test grid (2 mm voxels, x flipped), known by construction."""
+    from helpers import SMALL_SHAPE, save_nifti
+    from roikit.regions import Atlas, RegionSet, Sphere
+
+    atlas = np.zeros(SMALL_SHAPE, dtype=np.int16)
+    atlas[2:6, 3:8, 4:8] = 1
+    atlas[12:18, 10:14, 6:10] = 2
+    save_nifti(tmp_path / "atlas.nii.gz", atlas, dtype=np.int16)
+    pd.DataFrame({"index": [1, 2], "name": ["right caudate", "left caudate"]}).to_csv(
+        tmp_path / "atlas.tsv", sep="\t", index=False)
+    brain = np.zeros(SMALL_SHAPE, dtype=np.float32)
+    brain[1:19, 1:23, 1:17] = 1.0 + np.arange(18)[:, None, None] / 18
+    save_nifti(tmp_path / "background.nii.gz", brain)
+    region_set = RegionSet([Atlas(tmp_path / "atlas.nii.gz", tmp_path / "atlas.tsv"),
+                            Sphere("prior peak", (-10.0, 0.0, 0.0), 4.0)])
+    from roikit.images import read_header
+
+    grid = read_header(tmp_path / "atlas.nii.gz").grid
+    return region_set, region_set.realise(grid), tmp_path
+
+
+def test_region_figure_draws_each_region_through_its_centre(small_regions, tmp_path):
+    from matplotlib.colors import to_hex
+
+    from roikit.reporting.region_figure import REGION_COLORS, region_figure
+
+    _, regions, folder = small_regions
+    fig = region_figure(regions, background=folder / "background.nii.gz", title="background: test image")
+    titles = [sub.get_suptitle() for sub in fig.subfigs if sub.get_visible()]
+    assert titles == ["right caudate (80 voxels)", "left caudate (96 voxels)", "prior peak (33 voxels)"]
+    sphere = fig.subfigs[2]
+    # the sphere's centre (-10, 0, 0) mm: the slices go through it (true minus sign)
+    assert [ax.get_xlabel() for ax in sphere.axes] == ["x = \u221210 mm", "y = 0 mm", "z = 0 mm"]
+    # one colour per region, and the overlay holds the region's voxels of that slice: a sphere of radius 4 mm on
+    # 2 mm voxels has 9 + 12 + 9 voxels... its central slice holds 13 voxels (|i|,|j| offsets with i^2+j^2 <= 4)
+    overlay = sphere.axes[2].images[1]
+    assert to_hex(overlay.get_cmap()(1.0)) == REGION_COLORS[2].lower()
+    assert int(np.ma.count(overlay.get_array())) == 13
+    width, height, smallest, overlaps, outside = audit_saved_figure(fig, tmp_path / "regions")
+    assert width == pytest.approx(180) and height <= 225 and smallest >= 7 and not overlaps and not outside
+
+
+def test_region_figure_pages_and_grey_background(small_regions, tmp_path):
+    from roikit.regions import RegionSet, Sphere
+    from roikit.reporting.region_figure import region_figure, region_pages
+
+    _, regions, _ = small_regions
+    spheres = RegionSet([Sphere(f"peak {k:02d}", (-10.0 + (k % 5) * 4, -10.0 + (k // 5) * 6, 0.0), 3.0)
+                         for k in range(13)]).realise(regions.grid)
+    with pytest.raises(UsageError, match="13 regions need 2 figures"):
+        region_figure(spheres)
+    pages = region_pages(spheres)
+    assert len(pages) == 2
+    drawn = [sub.get_suptitle().split(" (")[0] for fig in pages for sub in fig.subfigs if sub.get_visible()]
+    assert drawn == [f"peak {k:02d}" for k in range(13)]
+    for fig in pages:
+        _, height, smallest, _, outside = audit_saved_figure(fig, tmp_path / "p")
+        assert height <= 225 and smallest >= 7 and not outside
+    single = region_figure(regions, width="single")
+    assert single.get_size_inches()[0] * 25.4 == pytest.approx(85)
+
+
+def test_regions_rebuilt_from_the_values_provenance(small_regions):
+    from roikit.reporting.region_figure import regions_from_provenance
+
+    region_set, regions, _ = small_regions
+    prov = {"region_sources": region_set.describe(), **regions.provenance()}
+    rebuilt = regions_from_provenance(prov)
+    assert rebuilt.names == regions.names
+    assert all(np.array_equal(a, b) for a, b in zip(rebuilt.voxels, regions.voxels))
+    prov["regions"][0]["n_voxels"] = 81
+    with pytest.raises(UsageError, match="differ from those recorded"):
+        regions_from_provenance(prov)
+    with pytest.raises(UsageError, match="does not describe the regions"):
+        regions_from_provenance({})
+
+
+def test_mean_background_ignores_missing_voxels(tmp_path):
+    from helpers import SMALL_SHAPE, save_nifti
+    from roikit.reporting.region_figure import mean_background
+
+    a = np.zeros(SMALL_SHAPE, dtype=np.float32)
+    b = np.zeros(SMALL_SHAPE, dtype=np.float32)
+    a[1, 1, 1], b[1, 1, 1] = 2.0, 4.0
+    a[2, 2, 2], b[2, 2, 2] = 3.0, np.nan  # the NaN is missing, not zero
+    paths = [save_nifti(tmp_path / "a.nii.gz", a), save_nifti(tmp_path / "b.nii.gz", b)]
+    mean = mean_background(paths)
+    assert mean[1, 1, 1] == pytest.approx(3.0) and mean[2, 2, 2] == pytest.approx(3.0)
+    assert np.isnan(mean[0, 0, 0])
+
+
+def test_regions_command_draws_the_figure(small_regions, tmp_path, capsys):
+    from roikit.cli import main
+
+    _, _, folder = small_regions
+    base = ["regions", "--atlas", str(folder / "atlas.nii.gz"), "--labels", str(folder / "atlas.tsv"),
+            "--sphere", "prior peak=-10,0,0,4"]
+    assert main(base + ["--figure", str(tmp_path / "where.png"), "--background",
+                        str(folder / "background.nii.gz")]) == 0
+    assert (tmp_path / "where.png").read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
+    assert "figure: " in capsys.readouterr().out
+    assert main(base + ["--figure", str(tmp_path / "all" / "where")]) == 2  # no such folder
+    (tmp_path / "all").mkdir()
+    assert main(base + ["--figure", str(tmp_path / "all" / "where")]) == 0
+    assert sorted(p.name for p in (tmp_path / "all").glob("where.*")) == ["where.pdf", "where.png", "where.svg"]
+    capsys.readouterr()
+    assert main(base + ["--figure", str(tmp_path / "where.png")]) == 1  # exists, no --overwrite
+    assert "--overwrite" in capsys.readouterr().err
+    assert main(base + ["--figure", str(tmp_path / "where.png"), "--overwrite"]) == 0
+    assert main(base + ["--figure", str(tmp_path / "where.jpg")]) == 2
+    assert main(base + ["--background", str(folder / "background.nii.gz")]) == 2  # a background needs --figure
+    assert "--figure" in capsys.readouterr().err
+
+
+def test_report_has_a_regions_section(small_regions, values, results_by_design, tmp_path):
+    import warnings
+
+    from roikit.reporting import write_report
+
+    _, regions, folder = small_regions
+    names = {"left hippocampus": "right caudate", "right hippocampus": "left caudate",
+             "retrosplenial cortex": "prior peak"}
+    vals = values.assign(region=values.region.map(names))
+    vals.attrs = {}
+    rows = results_by_design["one-sample"].assign(region=lambda d: d.region.map(names))
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        written = write_report(vals, rows, out=tmp_path / "r", figure_formats=("png",), regions=regions,
+                               region_background=folder / "background.nii.gz", value_label="% signal change")
+    html = written["html"].read_text()
+    assert '<section id="regions"' in html and "Centre (centre of mass, world mm)" in html
+    assert (tmp_path / "r" / "figures" / "regions.png").is_file()
+    methods = written["methods"].read_text()
+    assert "## Regions" in methods and "| prior peak | sphere | 33 |" in methods
+    assert "−10.0" in methods or "-10.0" in methods
+
+
+def test_report_names_a_region_figure_it_could_not_draw(small_regions, values, results_by_design, tmp_path):
+    import warnings
+
+    from roikit.reporting import write_report
+
+    _, regions, folder = small_regions
+    names = {"left hippocampus": "right caudate", "right hippocampus": "left caudate",
+             "retrosplenial cortex": "prior peak"}
+    vals = values.assign(region=values.region.map(names))
+    rows = results_by_design["one-sample"].assign(region=lambda d: d.region.map(names))
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        written = write_report(vals, rows, out=tmp_path / "r", figure_formats=("png",), regions=regions,
+                               region_background=folder / "no_such_image.nii.gz")
+    html = written["html"].read_text()
+    assert "Figures not drawn" in html and "regions: " in html and "no_such_image.nii.gz" in html
+    assert any(p.name.startswith("participants_") for p in written["figures"])  # the other figures still drawn
+
+
+def test_report_without_region_description_says_so(values, results_by_design, tmp_path):
+    import warnings
+
+    from roikit.reporting import write_report
+
+    vals = values.copy()
+    vals.attrs = {}
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        written = write_report(vals, results_by_design["one-sample"], out=tmp_path / "r", figure_formats=("png",))
+    assert "no description of the regions" in written["html"].read_text()
+
+
+def test_labels_from_the_participants_sidecar(tmp_path):
+    import json
+
+    from roikit.reporting.report import labels_from_sidecar
+
+    (tmp_path / "participants.tsv").write_text("participant_id\troute_accuracy\tage\n")
+    (tmp_path / "participants.json").write_text(json.dumps({
+        "route_accuracy": {"Description": "share of routes", "Units": "%"},
+        "age": {"LongName": "Age", "Units": "years"}}))
+    assert labels_from_sidecar(tmp_path / "participants.tsv") == {"route_accuracy": "route accuracy (%)",
+                                                                  "age": "Age (years)"}
+    assert labels_from_sidecar(tmp_path / "missing.tsv") == {}
+
+
+def test_report_command_takes_a_value_label(values, results_by_design, participants, tmp_path, monkeypatch):
+    import json
+
+    import roikit.reporting.report as report_module
+    from roikit._tables import write_table
+    from roikit.cli import main
+
+    seen = []
+    real = report_module.participant_pages
+
+    def spy(data, **kwargs):
+        seen.append({k: kwargs.get(k) for k in ("value_label", "covariate_label")})
+        return real(data, **kwargs)
+
+    monkeypatch.setattr(report_module, "participant_pages", spy)
+
+    write_table(tmp_path / "values.tsv", values)
+    write_table(tmp_path / "results.tsv", results_by_design["glm"])
+    write_table(tmp_path / "participants.tsv", participants)
+    (tmp_path / "participants.json").write_text(json.dumps({"age": {"LongName": "Age at scan", "Units": "years"}}))
+    status = main(["report", "--values", str(tmp_path / "values.tsv"), "--results", str(tmp_path / "results.tsv"),
+                   "--participants", str(tmp_path / "participants.tsv"), "--out", str(tmp_path / "r"),
+                   "--value-label", "% signal change"])
+    assert status == 0
+    prov = json.loads((tmp_path / "r" / "provenance.json").read_text())
+    assert prov["options"]["value_label"] == "% signal change"
+    assert any(p.name.startswith("covariate_age") for p in (tmp_path / "r" / "figures").glob("*.png"))
+    # the axis labels the figures were drawn with: the user's unit, and the sidecar's long name with its unit
+    assert {"value_label": "% signal change", "covariate_label": "Age at scan (years)"} in seen

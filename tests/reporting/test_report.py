@@ -255,14 +255,14 @@ def test_stimulus_figure_shows_only_the_contrasts_of_the_mixed_model(tmp_path, v
         extra.append(towns.assign(contrast=town, value=towns["value"] + 0.1 * k))
     both = pd.concat([values, *extra], ignore_index=True)
     seen = []
-    real = report_module.participant_figure
+    real = report_module.participant_pages
 
     def spy(data, **kwargs):
         if kwargs.get("stimulus"):
             seen.append(sorted(set(data["contrast"])))
         return real(data, **kwargs)
 
-    monkeypatch.setattr(report_module, "participant_figure", spy)
+    monkeypatch.setattr(report_module, "participant_pages", spy)
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
         write_report(both, mixed, participants=participants, out=tmp_path / "r", figure_formats=("png",))

@@ -293,3 +293,26 @@ def test_study_fwe_without_permutations_is_refused(study_dir):
     (study_dir / "study.toml").write_text(text)
     with pytest.raises(StudyError, match="analysis\\[1\\].correct: fwe .*needs permutations; add permutations = 5000"):
         load_study(study_dir / "study.toml")
+
+
+def test_value_label_from_the_study_file_and_the_command_line(study_dir):
+    """`[study] value_label` reaches the report (figures' axis label, provenance); `--value-label` overrides it."""
+    import json
+
+    text = (study_dir / "study.toml").read_text()
+    (study_dir / "study.toml").write_text(text.replace('participants = "participants.tsv"\n',
+                                                      'participants = "participants.tsv"\nvalue_label = "% signal change"\n'))
+    from roikit.study import load_study
+
+    assert load_study(study_dir / "study.toml").value_label == "% signal change"
+    status, _, err = _cli(["run", str(study_dir / "study.toml"), "--no-figures"])
+    assert status == 0, err
+    assert "% signal change" in (study_dir / "results" / "provenance.json").read_text()
+    status, _, err = _cli(["run", str(study_dir / "study.toml"), "--out", str(study_dir / "other"),
+                           "--value-label", "Parameter estimate (a.u.)"])
+    assert status == 0, err
+    report_prov = json.loads((study_dir / "other" / "provenance.json").read_text())
+    assert "Parameter estimate (a.u.)" in json.dumps(report_prov)
+    # the regions drawn in the report: the Regions section with the region figure
+    assert (study_dir / "other" / "figures" / "regions.png").is_file()
+    assert '<section id="regions"' in (study_dir / "other" / "report.html").read_text()
