@@ -78,6 +78,7 @@ _EFFECT_MARKUP = {
     "g": "*g*",
     "g_z": "*g*_{z}",
     "d_total": "*d*_{total}",
+    "d_wkj": "*d*_{WKJ}",
     "partial_eta2": "*η*^{2}_{p}",
     "eta2": "*η*^{2}",
     "omega2": "*ω*^{2}",

@@ -73,6 +73,18 @@ REFERENCES: dict[str, Reference] = {r.key: r for r in [
   title = {Resampling-Based Multiple Testing: Examples and Methods for p-Value Adjustment},
   publisher = {Wiley}, address = {New York}, year = {1993}
 }"""),
+    _r("westfall2014", "Westfall, Kenny & Judd, 2014",
+       "Westfall, J., Kenny, D. A., & Judd, C. M. (2014). Statistical power and optimal design in experiments in "
+       "which samples of participants respond to samples of stimuli. *Journal of Experimental Psychology: General, "
+       "143*(5), 2020–2045. https://doi.org/10.1037/xge0000014",
+       """@article{westfall2014,
+  author = {Westfall, Jacob and Kenny, David A. and Judd, Charles M.},
+  title = {Statistical power and optimal design in experiments in which samples of participants respond to samples
+           of stimuli},
+  journal = {Journal of Experimental Psychology: General},
+  volume = {143}, number = {5}, pages = {2020--2045}, year = {2014},
+  doi = {10.1037/xge0000014}
+}"""),
     _r("satterthwaite1946", "Satterthwaite, 1946",
        "Satterthwaite, F. E. (1946). An approximate distribution of estimates of variance components. "
        "*Biometrics Bulletin, 2*(6), 110–114. https://doi.org/10.2307/3002019",

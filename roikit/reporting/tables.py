@@ -111,6 +111,8 @@ _EFFECT_TEXT = {
     "d_total": "*d*_{total} = estimate divided by the square root of (*τ*^{2} + typical first-level variance), the "
                "estimate in units of the "
                "model-implied SD of one participant's value (no CI)",
+    "d_wkj": "*d*_{WKJ} = estimate divided by the square root of the summed variance components of the mixed model "
+             "(Westfall, Kenny & Judd, 2014; no CI)",
 }
 
 _FLAG_TEXT = {

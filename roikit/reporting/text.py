@@ -650,6 +650,8 @@ _EFFECT_DEFS = {
     "d_total": "*d*_{total} = the estimate divided by √(*τ*^{2} + *v̄*), with *v̄* the typical first-level "
                "sampling variance (no interval)",
     "generalized_eta2": "generalized *η*^{2}",
+    "d_wkj": "*d*_{WKJ} = the estimate divided by the square root of the sum of the model's variance components "
+             "({westfall}; no interval)",
 }
 
 
@@ -663,6 +665,8 @@ def _symbols_sentence(results: pd.DataFrame, cite: Citations, primaries: list[st
             continue
         if "{hedges}" in d:
             d = d.replace("{hedges}", cite.cite("hedges1981"))
+        if "{westfall}" in d:
+            d = d.replace("{westfall}", cite.cite("westfall2014"))
         defs.append(d)
     designs = set(results["design"].map(text))
     symbols = []

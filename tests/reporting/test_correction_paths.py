@@ -66,7 +66,7 @@ def test_each_correction_is_reported_as_run(values, participants, primary):
     # figure legend of the forest plot the report draws (walk the matplotlib legend texts)
     forest = [item for item in _figure_plan(values, results, participants) if "_forest" in item["name"]]
     assert [item["name"] for item in forest] == ["a1-one-sample_forest"]
-    fig = forest[0]["make"]()
+    (fig,) = forest[0]["make"]()  # one page: 10 regions
     legend = _legend_texts(fig)
     plt.close(fig)
     assert legend and any(legend_word in t for t in legend), legend

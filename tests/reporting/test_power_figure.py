@@ -75,7 +75,7 @@ def test_sensitivity_sentence_in_methods_text():
     d = TTestPower().solve_power(None, nobs=30, alpha=0.0125, power=0.8)
     assert f"*d*_{{z}} = {d:.2f}" in sentence and "*n* = 30" in sentence and ".0125 per test" in sentence
     assert "Holm across 4 regions" in sentence
-    text = methods_text(None, rows, style="plain")
+    text = methods_text(None, rows, style="plain").replace("\u00a0", " ")  # APA: no-break spaces around =
     assert "the smallest effect detectable with 80% power was d_z = " in text
     # designs without a closed form get no sentence
     assert sensitivity_sentence(rows.assign(design="mixed")) == ""
