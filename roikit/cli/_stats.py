@@ -6,75 +6,64 @@ import argparse
 import sys
 from pathlib import Path
 
-from .. import __version__
-from .._tables import check_output, read_table, sha256_file, sidecar_path, write_table
+from .._options import add_arguments, plural, resolve, suggest, DESIGN_ALIASES
 from ..errors import UsageError
-from ..stats import COLUMN_DESCRIPTIONS, available_designs, run_design
 
-#: Command-line design options, passed to the design in snake_case when given.
-_DESIGN_OPTIONS = ("contrast", "versus", "group", "levels", "welch", "formula", "tau2", "random", "crossed")
+HELP = "group statistics (one-sample, paired, two-group, glm, ...) for every region"
 
 
 def add_parser(subparsers) -> None:
+    from ..stats import available_designs
+
+    designs = ", ".join(available_designs())
     p = subparsers.add_parser(
         "stats",
-        help="group statistics (one-sample, paired, two-group, glm, ...) for every region",
+        help=HELP,
         description="Test a group design in every region of a region values table at once, correct across "
         "regions within each design and term, and write RESULTS.tsv with a JSON sidecar describing every "
-        "column, the options, the seed and the SHA-256 of the inputs. Designs: " + ", ".join(available_designs()),
+        "column, the options, the seed and the SHA-256 of the inputs. The options are the [[analysis]] keys of "
+        "a study file (docs/study-file.md). Designs: " + designs,
     )
     p.add_argument("values", metavar="VALUES.tsv", help="region values table written by `roikit extract`")
-    p.add_argument("--design", required=True, metavar="DESIGN", help="one of: " + ", ".join(available_designs()))
-    g = p.add_argument_group("design options")
-    g.add_argument("--contrast", metavar="C", help="contrast tested (paired: the first, A)")
-    g.add_argument("--versus", metavar="B", help="paired: the contrast subtracted (term 'A - B')")
-    g.add_argument("--group", metavar="COLUMN", help="two-group: participants.tsv column holding the groups")
-    g.add_argument("--levels", metavar="L1,L2", help="two-group: the two levels compared (term 'L1 - L2')")
-    g.add_argument("--welch", action="store_true", help="two-group: Welch's unequal-variance t-test")
-    g.add_argument("--formula", metavar="FORMULA", help="model formula, e.g. \"value ~ age + group\"")
-    g.add_argument("--tau2", metavar="METHOD", help="precision-weighted: between-participant variance estimator "
-                   "(reml, ml, dl, pm)")
-    g.add_argument("--random", metavar="TERMS", help="mixed: random terms per participant, e.g. \"1 + contrast\"")
-    g.add_argument("--crossed", metavar="COLUMN", help="mixed: crossed random intercept for this column")
-    g.add_argument("--jobs", type=int, default=None, metavar="N",
-                   help="mixed: fit the regions in N worker processes (default 1)")
+    p.add_argument("--design", required=True, metavar="DESIGN", help="one of: " + designs)
+    add_arguments(p, "analysis", group_title="design options", only_design=True)
     p.add_argument("--participants", metavar="participants.tsv", help="participants table (groups, covariates)")
     p.add_argument("--out", required=True, metavar="RESULTS.tsv", help="output table")
-    p.add_argument("--correct", default="holm,fdr", metavar="LIST",
-                   help="corrections across regions: comma-separated holm, fdr, bonferroni (default holm,fdr)")
-    p.add_argument("--permutations", type=int, default=0, metavar="N",
-                   help="permutations for the max-statistic family-wise p (p_fwe); default 0 (none)")
-    p.add_argument("--seed", type=int, default=None, metavar="S", help="seed of the permutations (recorded)")
-    p.add_argument("--confidence", type=float, default=0.95, metavar="LEVEL", help="confidence level (0.95)")
+    add_arguments(p, "analysis", only_design=False, skip=("design",))
     p.add_argument("--overwrite", action="store_true", help="replace existing output files")
     p.set_defaults(func=run)
 
 
 def run(args: argparse.Namespace) -> int:
+    from .. import __version__
+    from .._tables import check_output, read_table, sha256_file, sidecar_path, write_table
+    from ..stats import COLUMN_DESCRIPTIONS, available_designs, run_design
+
     out = check_output(args.out, overwrite=args.overwrite)
     check_output(sidecar_path(out), overwrite=args.overwrite)
     if args.design not in available_designs():
-        raise UsageError(f"--design {args.design!r} is not available; expected one of: {', '.join(available_designs())}")
-    if args.permutations < 0:
-        raise UsageError(f"--permutations must be 0 or more, got {args.permutations}")
+        raise UsageError(f"--design {args.design!r} is not a design{suggest(args.design, available_designs(), DESIGN_ALIASES)} "
+                         f"(designs: {', '.join(available_designs())})")
+    options, problems = resolve(args, "analysis", only_design=True)
+    shared, more = resolve(args, "analysis", only_design=False)
+    problems += more
+    if problems:
+        raise UsageError("; ".join(problems))
     values = read_table(args.values)
     participants = (
         read_table(args.participants, label_columns=("participant_id",)) if args.participants else None
     )
-    options = {name: getattr(args, name) for name in _DESIGN_OPTIONS}
     options = {k: v for k, v in options.items() if v is not None and v is not False}
-    if args.jobs is not None:
-        if args.jobs < 1:
-            raise UsageError(f"--jobs must be at least 1, got {args.jobs}")
-        options["n_jobs"] = args.jobs
+    correct, permutations, seed, confidence = (shared.get(k) for k in ("correct", "permutations", "seed",
+                                                                        "confidence"))
     results = run_design(
         values,
         args.design,
         participants=participants,
-        correct=args.correct,
-        permutations=args.permutations,
-        seed=args.seed,
-        confidence=args.confidence,
+        correct=correct,
+        permutations=permutations,
+        seed=seed,
+        confidence=confidence,
         **options,
     )
     extra = results.attrs.get("column_descriptions", {}) if isinstance(results.attrs, dict) else {}
@@ -90,10 +79,10 @@ def run(args: argparse.Namespace) -> int:
         "options": {
             "design": args.design,
             **options,
-            "correct": args.correct,
-            "permutations": args.permutations,
-            "seed": seeds[0] if seeds else args.seed,
-            "confidence": args.confidence,
+            "correct": correct,
+            "permutations": permutations,
+            "seed": seeds[0] if seeds else seed,
+            "confidence": confidence,
         },
         "inputs": inputs,
         "software": {"roikit": __version__},
@@ -102,7 +91,7 @@ def run(args: argparse.Namespace) -> int:
     }
     path = write_table(out, results, sidecar=sidecar, overwrite=args.overwrite)
     sys.stderr.write(
-        f"roikit stats: {args.design}, {results['region'].nunique()} regions x {results['term'].nunique()} term(s) "
-        f"-> {path}\n"
+        f"roikit stats: {args.design}, {plural(results['region'].nunique(), 'region')} x "
+        f"{plural(results['term'].nunique(), 'term')} -> {path}\n"
     )
     return 0

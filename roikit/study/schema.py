@@ -2,7 +2,6 @@
 
 from __future__ import annotations
 
-import difflib
 import re
 import tomllib
 from dataclasses import dataclass, field
@@ -12,6 +11,7 @@ from typing import Any, Iterable, Sequence
 import numpy as np
 import pandas as pd
 
+from .._options import DESIGN_ALIASES, check_value, option, options_in, study_keys, suggest
 from .._typing import PathLike
 from ..errors import InputFileError, RoikitError, UsageError
 from ..extraction import STATISTICS, VALUE_COLUMNS, find_maps, read_map_list, read_participants
@@ -38,36 +38,23 @@ class StudyError(UsageError):
 # Keys
 # --------------------------------------------------------------------------------------------------
 
-#: Every key a study file may hold, by section (``analysis`` keys mirror the command-line options).
-STUDY_KEYS: dict[str, tuple[str, ...]] = {
-    "": ("study", "maps", "regions", "extraction", "analysis"),
-    "study": ("title", "participants"),
-    "maps": ("effect", "variance", "list"),
-    "regions": ("atlas", "labels", "sphere", "mask", "probability", "split_hemispheres", "within", "select",
-                "rename", "circular"),
-    "regions.sphere": ("name", "center", "radius"),
-    "regions.mask": ("name", "image"),
-    "regions.probability": ("image", "threshold", "name", "labels"),
-    "extraction": ("statistic", "keep_zeros", "jobs"),
-    "analysis": ("design", "contrast", "versus", "group", "levels", "welch", "formula", "random", "crossed",
-                 "tau2", "correct", "permutations", "seed", "confidence"),
-}
+#: Every key a study file may hold, by section (from the one table of options, ``roikit._options``).
+STUDY_KEYS: dict[str, tuple[str, ...]] = study_keys()
 
-#: Analysis keys that are design options (passed to the design when given).
-_DESIGN_OPTIONS = ("contrast", "versus", "group", "levels", "welch", "formula", "random", "crossed", "tau2")
+#: Analysis keys that are design options (passed to the design when given, under their Python names).
+_DESIGN_OPTIONS = tuple(o.study_key for o in options_in("analysis") if o.design_option)
 
 #: Options each design cannot do without (beyond what its signature requires).
 _NEEDS = {
     "one-sample": ("contrast",),
     "paired": ("contrast", "versus"),
-    "two-group": ("contrast", "group", "levels"),
+    "two-group": ("contrast", "group"),
     "glm": ("contrast", "formula"),
     "precision-weighted": ("contrast",),
     "fixed-effects": ("contrast",),
     "mixed": ("formula",),
 }
 _NEEDS_VARIANCE = ("precision-weighted", "fixed-effects")
-_TAU2 = ("reml", "ml", "dl", "pm")
 
 #: Transforms a study-file formula may call (formulaic's, by these names only).
 FORMULA_TRANSFORMS = ("C", "center", "log", "scale", "standardize")
@@ -93,8 +80,7 @@ def _type_name(value: Any) -> str:
 
 
 def _suggest(word: str, choices: Iterable[str]) -> str:
-    close = difflib.get_close_matches(str(word), [str(c) for c in choices], n=1, cutoff=0.6)
-    return f"; did you mean {close[0]!r}?" if close else ""
+    return suggest(word, choices)
 
 
 def _listing(items: Iterable[Any], limit: int = 12) -> str:
@@ -675,13 +661,13 @@ def _check_analyses(c: _Checker, raw: dict, *, contrasts, participants, columns,
             c.add(f"{key}.design", f"missing; one of {', '.join(designs)}")
             continue
         if design not in designs:
-            c.add(f"{key}.design", f"{design!r} is not a design{_suggest(design, designs)} "
+            c.add(f"{key}.design", f"{design!r} is not a design{suggest(design, designs, DESIGN_ALIASES)} "
                                    f"(designs: {', '.join(designs)})")
             continue
         import inspect
 
         params = inspect.signature(DESIGNS[design]).parameters
-        accepted = [n for n in _DESIGN_OPTIONS if n in params]
+        accepted = [n for n in _DESIGN_OPTIONS if option(n, "analysis").py in params]
         required = [n for n, p in params.items() if p.kind is inspect.Parameter.KEYWORD_ONLY
                     and p.default is inspect.Parameter.empty and n not in ("participants", "confidence")]
         required += [n for n in _NEEDS.get(design, ()) if n not in required]
@@ -747,8 +733,19 @@ def _check_analyses(c: _Checker, raw: dict, *, contrasts, participants, columns,
                             c.add(f"{key}.levels", f"{level!r} is not a value of column {group}"
                                                    f"{_suggest(level, found)}; found {_listing(found)}")
                 options["levels"] = items
-        if "welch" in block and "welch" in accepted:
-            options["welch"] = c.boolean(block, "welch", key, False)
+        for name in ("welch", "tau2", "jobs"):  # simple values: the checks of the one table of options
+            if name in block and name in accepted:
+                problem = check_value(option(name, "analysis"), block[name])
+                if problem:
+                    c.add(f"{key}.{name}", problem)
+                options[option(name, "analysis").py] = block[name]
+        if "levels" not in block and "levels" in accepted and participants is not None:
+            group = options.get("group")
+            if isinstance(group, str) and group in participants.columns:
+                found = _participant_values(participants, group)
+                if len(found) != 2:
+                    c.add(f"{key}.levels", f"missing; column {group} has {len(found)} levels ({_listing(found)}), "
+                                           "so name the two compared, e.g. levels = [\"younger\", \"older\"]")
         for name, tilde in (("formula", True), ("random", False)):
             if name in block and name in accepted:
                 value = block[name]
@@ -768,32 +765,32 @@ def _check_analyses(c: _Checker, raw: dict, *, contrasts, participants, columns,
                 c.add(f"{key}.crossed", f"must be a column of the region values table or participants.tsv"
                                         f"{_suggest(str(value), columns)}; found {value!r}")
             options["crossed"] = value
-        if "tau2" in block and "tau2" in accepted:
-            value = block["tau2"]
-            if value not in _TAU2:
-                c.add(f"{key}.tau2", f"must be one of {', '.join(_TAU2)}, found {value!r}")
-            options["tau2"] = value
         if design in _NEEDS_VARIANCE and maps_known and not has_variance:
             c.add(f"{key}.design", f"{design!r} needs first-level variances; give [maps] variance = \"...\" "
                                    "(or a variance_path column in the map list)")
-        correct = block.get("correct", "holm,fdr")
+        correct = block.get("correct", option("correct", "analysis").default)
         try:
             if not isinstance(correct, (str, list)):
                 raise UsageError(f"must be a string such as \"holm,fdr\" or an array, found {_type_name(correct)}")
             parse_corrections(correct)
         except UsageError as exc:
             c.add(f"{key}.correct", str(exc))
-        permutations = c.integer(block, "permutations", key, 0, minimum=0) or 0
-        seed = c.integer(block, "seed", key, None, minimum=0)
+        for name in ("permutations", "seed", "confidence"):
+            if name in block:
+                problem = check_value(option(name, "analysis"), block[name])
+                if problem:
+                    c.add(f"{key}.{name}", problem)
+        permutations = block.get("permutations", 0)
+        permutations = permutations if isinstance(permutations, int) and not isinstance(permutations, bool) else 0
+        seed = block.get("seed")
+        seed = seed if isinstance(seed, int) and not isinstance(seed, bool) and seed >= 0 else None
         if permutations and design not in PERMUTATIONS:
             c.add(f"{key}.permutations", f"design {design!r} has no permutation test; designs with one: "
                                          f"{', '.join(PERMUTATIONS)}")
         if permutations and seed is None:
             c.add(f"{key}.seed", "missing; permutations in a study file need a seed so that the run can be "
                                  "repeated exactly (e.g. seed = 1)")
-        confidence = block.get("confidence", 0.95)
-        if isinstance(confidence, bool) or not isinstance(confidence, (int, float)) or not 0 < confidence < 1:
-            c.add(f"{key}.confidence", f"must be a number between 0 and 1 (e.g. 0.95), found {confidence!r}")
+        confidence = block.get("confidence", option("confidence", "analysis").default)
         if len(c.problems) == n_before:
             analyses.append(Analysis(number, design, options, correct=correct, permutations=permutations, seed=seed,
                                      confidence=float(confidence)))

@@ -162,7 +162,7 @@ crossed = "town"
     problems = info.value.problems
     assert any(p.startswith("analysis[3].welch: does not apply to design 'paired'") for p in problems)
     assert any(p.startswith("analysis[3].versus: must differ from contrast") for p in problems)
-    assert any(p.startswith("analysis[3].confidence: must be a number between 0 and 1") for p in problems)
+    assert any(p.startswith("analysis[3].confidence: must be a number strictly between 0 and 1") for p in problems)
     assert any(p.startswith("analysis[4].random: random '1 + contrast ~ x': '~' is not allowed") for p in problems)
     assert any(p.startswith("analysis[4].crossed: must be a column") for p in problems)
 
