@@ -44,7 +44,8 @@ class Option:
         ``analysis``) or ``""`` for a command-line-only option.
     type : str
         ``str``, ``int``, ``float``, ``bool``, ``path``, ``names`` (a string or array of strings; on the command
-        line comma-separated), ``table`` (sub-tables), ``mapping`` (old = "new").
+        line comma-separated), ``table`` (sub-tables), ``mapping`` (old = "new"), ``coords`` ([x, y, z]),
+        ``bool_or_names`` (true/false or an array of names).
     help : str
         One sentence (shown by ``--help`` and in the reference page).
     default : any
@@ -130,7 +131,7 @@ OPTIONS: tuple[Option, ...] = (
            "[[regions.probability]] image, threshold, and name (3D) or labels (4D)", metavar="NAME=IMAGE"),
     Option("threshold", "", "float", "probability threshold of --probability maps", default=0.5, minimum=0,
            exclusive=True, metavar="P"),
-    Option("split_hemispheres", "regions", "names", "split regions into left (x < 0 mm) and right (x > 0 mm) "
+    Option("split_hemispheres", "regions", "bool_or_names", "split regions into left (x < 0 mm) and right (x > 0 mm) "
            "parts: true for every region, or an array of region names", default=False,
            example='true'),
     Option("midline", "regions", "str", "what a hemisphere split does with voxels at x = 0 mm: drop them "
@@ -145,7 +146,7 @@ OPTIONS: tuple[Option, ...] = (
     Option("circular", "regions", "names", "regions defined from the same data that are tested (each output "
            "carries a circularity caution)", metavar="REGION", example='["prior peak"]'),
     Option("name", "regions.sphere", "str", "region name", flag="", example='"prior peak"'),
-    Option("center", "regions.sphere", "str", "three numbers [x, y, z] in world mm", flag="",
+    Option("center", "regions.sphere", "coords", "three numbers [x, y, z] in world mm", flag="",
            example="[30.0, -20.0, -14.0]"),
     Option("radius", "regions.sphere", "float", "radius in mm", flag="", minimum=0, exclusive=True,
            example="6.0"),
