@@ -30,7 +30,9 @@ class _Parser(argparse.ArgumentParser):
         self.exit(2, f"{self.prog}: error: {message}\n")
 
 
-def build_parser() -> argparse.ArgumentParser:
+def build_parser(only: str | None = None) -> argparse.ArgumentParser:
+    """The ``roikit`` parser; with ``only``, only that sub-command gets its options (the others their one-line
+    help), so that ``roikit --help`` and ``--version`` do not import the libraries every command needs."""
     parser = _Parser(
         prog="roikit",
         description="Region-of-interest group analysis of first-level contrast maps. "
@@ -43,7 +45,10 @@ def build_parser() -> argparse.ArgumentParser:
         if importlib.util.find_spec(module_name) is None:
             continue
         module = importlib.import_module(module_name)
-        module.add_parser(sub)
+        if only is None or only == name or not hasattr(module, "HELP"):
+            module.add_parser(sub)
+        else:
+            sub.add_parser(name, help=module.HELP)
     return parser
 
 
@@ -53,7 +58,9 @@ def _format_warning(message, category, filename, lineno, line=None):
 
 def main(argv: list[str] | None = None) -> int:
     """Entry point of the ``roikit`` console script."""
-    parser = build_parser()
+    argv = sys.argv[1:] if argv is None else list(argv)
+    first = next((a for a in argv if not a.startswith("-")), "")
+    parser = build_parser(first if first in COMMANDS else "")
     args = parser.parse_args(argv)
     if args.command is None:
         parser.print_help(sys.stderr)

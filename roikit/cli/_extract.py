@@ -5,15 +5,16 @@ from __future__ import annotations
 import argparse
 import sys
 
-from .._tables import check_output, sidecar_path
 from ..errors import ExtractionError, UsageError
-from ..extraction import extract, find_maps, read_map_list, write_values
 from ._sources import add_region_options, region_set_from_args
+
+
+HELP = "summarise every map over every region into a region values table"
 
 
 def add_parser(subparsers) -> None:
     p = subparsers.add_parser(
-        "extract", help="summarise every map over every region into a region values table",
+        "extract", help=HELP,
         description="Read each first-level map once and summarise it over every region. Writes the region values "
                     "table (TSV, n/a for missing) and a JSON sidecar with column descriptions and provenance.")
     p.add_argument("--maps", metavar="PATTERN",
@@ -52,6 +53,9 @@ def _dask_client(address: str):
 
 
 def run(args: argparse.Namespace) -> int:
+    from .._tables import check_output, sidecar_path
+    from ..extraction import extract, find_maps, read_map_list, write_values
+
     if args.jobs < 1:
         raise UsageError(f"--jobs must be at least 1, got {args.jobs}")
     check_output(args.out, overwrite=args.overwrite)

@@ -7,14 +7,16 @@ import json
 import sys
 from pathlib import Path
 
-from .._tables import read_table, sha256_file, sidecar_path
 from ..errors import InputFileError, UsageError
+
+
+HELP = "tables, figures, methods text and a self-contained HTML report"
 
 
 def add_parser(subparsers) -> None:
     p = subparsers.add_parser(
         "report",
-        help="tables, figures, methods text and a self-contained HTML report",
+        help=HELP,
         description="Write DIR/tables/ (Markdown, LaTeX booktabs, HTML, Word, TSV), DIR/figures/ (PDF, SVG, "
         "300-dpi PNG at journal widths), DIR/methods.md, a single self-contained DIR/report.html and "
         "DIR/provenance.json (inputs with SHA-256, versions, options, seeds) from a region values table and a "
@@ -32,6 +34,8 @@ def add_parser(subparsers) -> None:
 
 
 def _sidecar(path: Path) -> dict:
+    from .._tables import sidecar_path
+
     side = sidecar_path(path)
     if not side.is_file():
         return {}
@@ -43,6 +47,7 @@ def _sidecar(path: Path) -> dict:
 
 
 def run(args: argparse.Namespace) -> int:
+    from .._tables import read_table, sha256_file, sidecar_path
     from ..reporting.report import check_report_outputs, write_report
 
     out = Path(args.out)

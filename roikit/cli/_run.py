@@ -4,13 +4,15 @@ from __future__ import annotations
 
 import argparse
 
-from ..study import load_study, run_study
+
+
+HELP = "run a study file: extraction, every analysis and the report"
 
 
 def add_parser(subparsers) -> None:
     p = subparsers.add_parser(
         "run",
-        help="run a study file: extraction, every analysis and the report",
+        help=HELP,
         description="Validate the study file (TOML; keys mirror the command-line options; paths relative to the "
         "file) and report every problem at once; then extract the region values (maps unchanged since an earlier "
         "run into the same folder are taken from its cache in DIR/.cache/), run every [[analysis]] and write "
@@ -28,6 +30,8 @@ def add_parser(subparsers) -> None:
 
 
 def run(args: argparse.Namespace) -> int:
+    from ..study import load_study, run_study
+
     study = load_study(args.study)
     result = run_study(study, out=args.out, overwrite=args.overwrite, progress=False if args.quiet else None,
                         figures=not args.no_figures)

@@ -5,7 +5,6 @@ from __future__ import annotations
 import argparse
 
 from ..errors import UsageError
-from ..regions import Atlas, Mask, ProbabilityMap, RegionSet, Sphere
 
 __all__ = ["add_region_options", "region_set_from_args"]
 
@@ -36,7 +35,9 @@ def _name_value(text: str, option: str) -> tuple[str, str]:
     return name.strip(), value.strip()
 
 
-def region_set_from_args(args: argparse.Namespace) -> RegionSet:
+def region_set_from_args(args: argparse.Namespace):
+    from ..regions import Atlas, Mask, ProbabilityMap, RegionSet, Sphere
+
     sources = []
     if (args.atlas is None) != (args.labels is None):
         raise UsageError("--atlas and --labels go together: an atlas image needs its label table (index, name)")
