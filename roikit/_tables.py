@@ -20,6 +20,7 @@ import numpy as np
 import pandas as pd
 
 from .errors import InputFileError, OutputExistsError, UsageError
+from ._options import spell
 
 __all__ = [
     "read_table",
@@ -41,7 +42,7 @@ def check_output(path: os.PathLike | str, *, overwrite: bool) -> Path:
     path = Path(path)
     if path.exists() and not overwrite:
         raise OutputExistsError(
-            f"{path}: file exists; pass --overwrite (overwrite=True) to replace it, or choose another path"
+            f"{path}: file exists; pass {spell('overwrite', True)} to replace it, or choose another path"
         )
     return path
 

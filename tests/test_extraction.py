@@ -250,7 +250,7 @@ def test_write_values_is_atomic_and_refuses_to_overwrite(tiny_study, tmp_path):
     assert side["provenance"]["regions"][0]["n_voxels"] == 80
     from roikit.errors import OutputExistsError
 
-    with pytest.raises(OutputExistsError, match="file exists; pass --overwrite"):
+    with pytest.raises(OutputExistsError, match="file exists; pass overwrite=True"):
         write_values(tmp_path / "values.tsv", values)
     write_values(tmp_path / "values.tsv", values, overwrite=True)
     assert not [p for p in os.listdir(tmp_path) if p.endswith(".tmp")]

@@ -15,6 +15,7 @@ import sys
 import warnings
 
 from .. import __version__
+from .._options import entry_point
 from ..errors import RoikitError, RoikitWarning, UsageError
 
 __all__ = ["main", "build_parser"]
@@ -68,7 +69,7 @@ def main(argv: list[str] | None = None) -> int:
     previous = warnings.formatwarning
     warnings.formatwarning = _format_warning
     try:
-        with warnings.catch_warnings():
+        with warnings.catch_warnings(), entry_point("cli"):
             warnings.simplefilter("always", RoikitWarning)
             return int(args.func(args) or 0)
     except UsageError as exc:

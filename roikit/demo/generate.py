@@ -26,6 +26,7 @@ import pandas as pd
 from scipy import ndimage
 
 from .. import __version__
+from .._options import spell
 from .._tables import write_json, write_table
 from .._typing import PathLike, Seed
 from ..errors import OutputExistsError, UsageError
@@ -388,7 +389,7 @@ def _prepare_target(out: Path, overwrite: bool) -> None:
     if out.exists():
         if not overwrite:
             raise OutputExistsError(
-                f"{out}: folder exists; pass --overwrite (overwrite=True) to replace an earlier demo study, "
+                f"{out}: folder exists; pass {spell('overwrite', True)} to replace an earlier demo study, "
                 "or choose another folder"
             )
         if not out.is_dir() or (any(out.iterdir()) and not _is_demo_study(out)):

@@ -13,6 +13,7 @@ from pathlib import Path
 
 import pandas as pd
 
+from .._options import spell
 from .._typing import PathLike, Seed
 from ..errors import OutputExistsError
 from ..extraction import find_maps
@@ -89,8 +90,8 @@ def _check_targets(out: Path, overwrite: bool) -> None:
     existing = [p for p in (study, results) if p.exists()]
     if existing and not overwrite:
         raise OutputExistsError(
-            f"{existing[0]}: exists; pass --overwrite (overwrite=True) to replace an earlier demo, "
-            "or choose another --out folder"
+            f"{existing[0]}: exists; pass {spell('overwrite', True)} to replace an earlier demo, "
+            "or choose another output folder"
         )
     if study.exists() and not _is_demo_study(study):
         raise OutputExistsError(

@@ -18,6 +18,8 @@ from typing import Any, Iterable
 import numpy as np
 import pandas as pd
 
+from .._options import spell
+
 from .. import __version__
 from .._tables import atomic_write_bytes, check_output, read_table, sha256_file, write_json
 from ..errors import CautionWarning, OutputExistsError, UsageError
@@ -183,8 +185,8 @@ def check_report_outputs(out: Path, overwrite: bool) -> None:
     existing = [name for name in REPORT_OUTPUTS if (out / name).exists()]
     if existing:
         raise OutputExistsError(
-            f"{out}: report output(s) {', '.join(existing)} already exist; pass --overwrite (overwrite=True) "
-            "to replace them, or choose another --out directory")
+            f"{out}: report output(s) {', '.join(existing)} already exist; pass {spell('overwrite', True)} "
+            "to replace them, or choose another output folder")
 
 
 def write_report(

@@ -22,6 +22,7 @@ from typing import Iterable, Sequence
 import numpy as np
 import pandas as pd
 
+from .._options import spell
 from ..errors import CoverageWarning, DesignError, MissingValueWarning, UsageError
 
 __all__ = [
@@ -311,8 +312,7 @@ def join_participants(
     columns = list(columns)
     if participants is None:
         raise UsageError(
-            f"this design needs participants.tsv column(s) {', '.join(columns)}; pass participants=... "
-            "(--participants participants.tsv)"
+            f"this design needs participants.tsv column(s) {', '.join(columns)}; pass {spell('participants')}"
         )
     if not isinstance(participants, pd.DataFrame):
         raise UsageError(f"participants must be a DataFrame, got {type(participants).__name__}")

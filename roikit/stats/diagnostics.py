@@ -12,6 +12,7 @@ import numpy as np
 import pandas as pd
 from scipy import stats
 
+from .._options import spell
 from ..errors import DiagnosticWarning
 from ._common import join_ids
 
@@ -142,7 +143,7 @@ def warn_diagnostics(results: pd.DataFrame, *, context: str, alpha: float = 0.05
         if len(bad):
             parts.append(
                 f"unequal group variances (Brown-Forsythe p < {alpha}) in {len(bad)} region(s): "
-                f"{', '.join(map(str, bad))} (consider welch=True)"
+                f"{', '.join(map(str, bad))} (consider {spell('welch', True)})"
             )
     if "max_cooks_d" in rows.columns:
         cd = pd.to_numeric(rows["max_cooks_d"], errors="coerce")

@@ -20,6 +20,7 @@ from scipy import linalg as _la
 from scipy import optimize as _opt
 from scipy import stats as _st
 
+from .._options import spell
 from ..errors import ConvergenceError, DesignError, DiagnosticWarning, UsageError
 from ._common import COLUMN_DESCRIPTIONS
 from ._registry import register
@@ -682,7 +683,7 @@ def mixed(
 
     context = "mixed"
     if formula is None:
-        raise UsageError("mixed: no formula given; pass formula='value ~ contrast * group' (--formula)")
+        raise UsageError(f"mixed: no formula given; pass {spell('formula', example='value ~ contrast * group')}")
     if df_method not in ("satterthwaite", "z"):
         raise UsageError(f"df_method: found {df_method!r}, expected 'satterthwaite' (default) or 'z'")
     if isinstance(n_jobs, bool) or not isinstance(n_jobs, (int, np.integer)) or n_jobs < 1:
@@ -695,8 +696,8 @@ def mixed(
     if crossed is not None:
         crossed = str(crossed)
         if crossed == "participant_id":
-            raise DesignError("mixed: crossed='participant_id' repeats the participant random effect; name another "
-                              "column (e.g. crossed='contrast' for stimuli)")
+            raise DesignError("mixed: crossed 'participant_id' repeats the participant random effect; name another "
+                              f"column (e.g. {spell('crossed', example='contrast')} for stimuli)")
     contrasts = _split_list(contrast, parameter="contrast")
     data = values
     if contrasts is not None:
@@ -710,8 +711,8 @@ def mixed(
     if len(present) > 1 and "contrast" not in used:
         raise DesignError(
             f"mixed: the values table holds {len(present)} contrasts ({', '.join(map(str, present))}) but neither "
-            "formula, random nor crossed names 'contrast'; select the contrasts to model with contrast='...' "
-            "(e.g. contrast='novel') or add contrast to the formula"
+            "formula, random nor crossed names 'contrast'; select the contrasts to model with "
+            f"{spell('contrast', example='novel')} or add contrast to the formula"
         )
     data = data.reset_index(drop=True)
     from_participants = [v for v in sorted(used) if v not in data.columns]

@@ -14,6 +14,7 @@ from typing import Sequence
 
 import pandas as pd
 
+from .._options import plural, spell
 from .._tables import sha256_file, sidecar_path, write_json, write_table
 from .._typing import PathLike
 from ..errors import OutputExistsError, RoikitError, RoikitWarning
@@ -163,7 +164,7 @@ def run_study(
     if existing and not overwrite:
         raise OutputExistsError(
             f"{out}: holds the outputs of an earlier run ({', '.join(p.name for p in existing[:4])}"
-            f"{' ...' if len(existing) > 4 else ''}); pass --overwrite (overwrite=True) to replace them (the "
+            f"{' ...' if len(existing) > 4 else ''}); pass {spell('overwrite', True)} to replace them (the "
             "extraction cache is kept, so only new maps are read), or choose another --out folder")
     from ..reporting import write_report
 

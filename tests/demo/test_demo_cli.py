@@ -153,7 +153,7 @@ def test_pipeline_is_deterministic_and_overwrites_only_a_demo(tmp_path):
     assert set(first.group_results["design"]) == {"one-sample", "paired", "two-group", "glm", "precision-weighted",
                                                   "mixed"}
     assert first.outputs["report"].is_file() and first.report["html"] == first.outputs["report"]
-    with pytest.raises(OutputExistsError, match="pass --overwrite"):
+    with pytest.raises(OutputExistsError, match="pass overwrite=True"):
         run_demo(tmp_path / "a", seed=5, n_per_group=3, progress=False)
     # the same seed again, replacing the earlier demo: identical tables
     again = run_demo(tmp_path / "a", seed=5, n_per_group=3, overwrite=True, progress=False, figures=False)

@@ -327,7 +327,7 @@ def test_route_accuracy_model_matches_its_recorded_slope():
 
 
 def test_existing_folder_is_not_replaced_without_consent(small):
-    with pytest.raises(OutputExistsError, match="folder exists; pass --overwrite"):
+    with pytest.raises(OutputExistsError, match="folder exists; pass overwrite=True"):
         make_study(small.path, seed=11, n_per_group=N_PER_GROUP)
 
 

@@ -150,7 +150,7 @@ def test_html_is_self_contained(full_report):
 
 def test_refuses_to_overwrite(full_report, values, results):
     out, _ = full_report
-    with pytest.raises(OutputExistsError, match="already exist; pass --overwrite"):
+    with pytest.raises(OutputExistsError, match="already exist; pass overwrite=True"):
         write_report(values, results, out=out, figures=False)
 
 
