@@ -463,7 +463,8 @@ def _run_tasks_in_worker(tasks):
 def _progress(total: int, progress: bool | None, desc: str):
     from tqdm.auto import tqdm
 
-    disable = (not progress) if progress is not None else total < 20
+    # shown only on a terminal (tqdm's disable=None checks isatty) and as a widget in Jupyter (tqdm.auto)
+    disable = True if progress is False or (progress is None and total < 20) else None
     return tqdm(total=total, desc=desc, unit="map", disable=disable, leave=False)
 
 
@@ -741,8 +742,10 @@ def _warn_empty(table: pd.DataFrame) -> None:
         who = [f"{r.participant_id}/{r.contrast}/{r.region}" for r in empty.itertuples(index=False)]
         shown = ", ".join(who[:12]) + (f" and {len(who) - 12} more" if len(who) > 12 else "")
         warnings.warn(CoverageWarning(
-            f"{len(empty)} participant x contrast x region value(s) have no valid voxel and are n/a "
-            f"(rows kept): {shown}"), stacklevel=3)
+            f"{len(empty)} participant x contrast x region value{'s' if len(empty) != 1 else ''} have no valid "
+            f"voxel and are n/a (rows kept): {shown}",
+            findings=[{"problem": "no valid voxel: value n/a", "participant_id": r.participant_id,
+                       "region": r.region} for r in empty.itertuples(index=False)]), stacklevel=3)
 
 
 def write_values(path: str | os.PathLike, values: pd.DataFrame, *, overwrite: bool = False) -> Path:

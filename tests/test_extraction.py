@@ -245,8 +245,10 @@ def test_write_values_is_atomic_and_refuses_to_overwrite(tiny_study, tmp_path):
     np.testing.assert_array_equal(back["value"].to_numpy(), values["value"].to_numpy())  # exact round trip
     import json
 
-    side = json.loads((tmp_path / "values.json").read_text())
-    assert set(side["columns"]) == set(values.columns)
+    raw = json.loads((tmp_path / "values.json").read_text())
+    assert set(raw) == set(values.columns) | {"GeneratedBy"}
+    assert raw["n_voxels"] == {"Description": raw["n_voxels"]["Description"], "Units": "voxels"}
+    side = raw["GeneratedBy"][0]
     assert side["provenance"]["regions"][0]["n_voxels"] == 80
     from roikit.errors import OutputExistsError
 

@@ -57,6 +57,25 @@ def _format_warning(message, category, filename, lineno, line=None):
     return f"roikit: warning: {message}\n"
 
 
+def _print_warnings(caught, args) -> None:
+    """At most one line per problem (<= 200 characters) on stderr; nothing with --quiet."""
+    from ..errors import WARNING_PREFIX, summarise_warnings, warning_records
+
+    if getattr(args, "quiet", False) or not caught:
+        return
+    ours = [w for w in caught if issubclass(w.category, RoikitWarning)]
+    lines = summarise_warnings(warning_records(ours), prefix=WARNING_PREFIX)
+    for w in caught:
+        if not issubclass(w.category, RoikitWarning):
+            text = str(w.message).splitlines()[0] if str(w.message) else w.category.__name__
+            lines.append(WARNING_PREFIX + (text if len(text) <= 180 else text[:177] + "..."))
+    lines = list(dict.fromkeys(lines))
+    where = getattr(args, "warnings_file", None)
+    if where is not None and ours:
+        lines.append(f"roikit: every warning, one row per participant and region: {where}")
+    sys.stderr.write("".join(line + "\n" for line in lines))
+
+
 def main(argv: list[str] | None = None) -> int:
     """Entry point of the ``roikit`` console script."""
     argv = sys.argv[1:] if argv is None else list(argv)
@@ -68,10 +87,14 @@ def main(argv: list[str] | None = None) -> int:
         return 2
     previous = warnings.formatwarning
     warnings.formatwarning = _format_warning
+    caught: list = []
     try:
-        with warnings.catch_warnings(), entry_point("cli"):
+        with warnings.catch_warnings(record=True) as caught, entry_point("cli"):
             warnings.simplefilter("always", RoikitWarning)
-            return int(args.func(args) or 0)
+            try:
+                return int(args.func(args) or 0)
+            finally:
+                _print_warnings(caught, args)
     except UsageError as exc:
         print(f"roikit {args.command}: error: {exc}", file=sys.stderr)
         return 2

@@ -25,7 +25,9 @@ def add_parser(subparsers) -> None:
     p.add_argument("--seed", type=int, default=DEFAULT_SEED, metavar="S",
                    help=f"seed of the generator (default {DEFAULT_SEED}); the same seed gives the same study")
     p.add_argument("--overwrite", action="store_true", help="replace an earlier demo in DIR (never anything else)")
-    p.add_argument("--quiet", action="store_true", help="no progress bar; print only where the outputs are")
+    p.add_argument("--quiet", action="store_true",
+                   help="no progress bar and no warnings on stderr (they stay in DIR/results/warnings.tsv and the "
+                        "report); print only where the outputs are")
     p.set_defaults(func=run)
 
 
@@ -35,6 +37,7 @@ def run(args: argparse.Namespace) -> int:
     if args.seed < 0:
         raise UsageError(f"--seed must be a non-negative integer, got {args.seed}")
     demo = run_demo(args.out, seed=args.seed, overwrite=args.overwrite, progress=not args.quiet)
+    args.warnings_file = demo.results / "warnings.tsv"
     truth = demo.study.ground_truth
     if args.quiet:
         print(demo.study.path)

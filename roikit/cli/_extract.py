@@ -5,6 +5,7 @@ from __future__ import annotations
 import argparse
 import sys
 
+from .._options import plural
 from ..errors import ExtractionError, UsageError
 from ._sources import add_region_options, region_set_from_args
 
@@ -36,7 +37,7 @@ def add_parser(subparsers) -> None:
     p.add_argument("--scheduler", metavar="ADDRESS",
                    help="run on a Dask cluster whose scheduler listens at ADDRESS (e.g. tcp://10.0.0.5:8786); "
                         "needs the `distributed` extra")
-    p.add_argument("--quiet", action="store_true", help="no progress bar or summary")
+    p.add_argument("--quiet", action="store_true", help="no progress bar, summary or warnings on stderr")
     p.add_argument("--overwrite", action="store_true", help="replace existing output files")
     p.set_defaults(func=run)
 
@@ -80,6 +81,6 @@ def run(args: argparse.Namespace) -> int:
     if not args.quiet:
         n_missing = int(values["value"].isna().sum())
         sys.stderr.write(
-            f"roikit extract: {len(maps)} maps x {values['region'].nunique()} regions -> {path} "
+            f"roikit extract: {plural(len(maps), 'map')} x {plural(values['region'].nunique(), 'region')} -> {path} "
             f"({len(values)} rows, {n_missing} n/a)\n")
     return 0

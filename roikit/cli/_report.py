@@ -3,11 +3,11 @@
 from __future__ import annotations
 
 import argparse
-import json
 import sys
 from pathlib import Path
 
-from ..errors import InputFileError, UsageError
+from .._options import plural
+from ..errors import UsageError
 
 
 HELP = "tables, figures, methods text and a self-contained HTML report"
@@ -27,6 +27,8 @@ def add_parser(subparsers) -> None:
     p.add_argument("--participants", metavar="participants.tsv", help="participants table (groups, covariates)")
     p.add_argument("--out", required=True, metavar="DIR", help="output directory")
     p.add_argument("--overwrite", action="store_true", help="replace existing report files")
+    p.add_argument("--quiet", action="store_true", help="no summary and no warnings on stderr (the report's "
+                   "cautions section keeps them)")
     p.add_argument("--title", default="Region-of-interest group analysis", help="report title")
     p.add_argument("--circular", action="append", default=[], metavar="REGION",
                    help="region defined from the same data that are tested (adds a circularity caution; repeatable)")
@@ -34,16 +36,9 @@ def add_parser(subparsers) -> None:
 
 
 def _sidecar(path: Path) -> dict:
-    from .._tables import sidecar_path
+    from .._tables import read_sidecar
 
-    side = sidecar_path(path)
-    if not side.is_file():
-        return {}
-    try:
-        data = json.loads(side.read_text(encoding="utf-8"))
-    except (OSError, json.JSONDecodeError) as exc:
-        raise InputFileError(f"{side}: JSON sidecar cannot be read ({exc}); fix or remove it") from exc
-    return data if isinstance(data, dict) else {}
+    return read_sidecar(path)
 
 
 def run(args: argparse.Namespace) -> int:
@@ -79,6 +74,8 @@ def run(args: argparse.Namespace) -> int:
                            provenance={"inputs": inputs, "options": options}, title=args.title,
                            circular=args.circular)
     n_fig = sum(1 for p in written["figures"] if p.suffix == ".png")
-    print(f"roikit report: wrote {len(written['tables'])} table files, {n_fig} figures, "
+    if args.quiet:
+        return 0
+    print(f"roikit report: wrote {plural(len(written['tables']), 'table file')}, {plural(n_fig, 'figure')}, "
           f"{written['methods'].name}, {written['html'].name} and {written['provenance'].name} in {out}")
     return 0

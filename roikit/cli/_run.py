@@ -25,7 +25,9 @@ def add_parser(subparsers) -> None:
     p.add_argument("--overwrite", action="store_true",
                    help="replace the outputs of an earlier run in DIR (its extraction cache is reused)")
     p.add_argument("--no-figures", action="store_true", help="skip the report's figures (faster; tables and text only)")
-    p.add_argument("--quiet", action="store_true", help="no progress bar; print only the output folder")
+    p.add_argument("--quiet", action="store_true",
+                   help="no progress bar and no warnings on stderr (they stay in DIR/warnings.tsv and the report); "
+                        "print only the output folder")
     p.set_defaults(func=run)
 
 
@@ -35,5 +37,6 @@ def run(args: argparse.Namespace) -> int:
     study = load_study(args.study)
     result = run_study(study, out=args.out, overwrite=args.overwrite, progress=False if args.quiet else None,
                         figures=not args.no_figures)
+    args.warnings_file = result.out / "warnings.tsv"
     print(result.out if args.quiet else result.summary())
     return 0

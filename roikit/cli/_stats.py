@@ -31,6 +31,8 @@ def add_parser(subparsers) -> None:
     p.add_argument("--out", required=True, metavar="RESULTS.tsv", help="output table")
     add_arguments(p, "analysis", only_design=False, skip=("design",))
     p.add_argument("--overwrite", action="store_true", help="replace existing output files")
+    p.add_argument("--quiet", action="store_true", help="no summary and no warnings on stderr (the results keep "
+                   "their diagnostic columns)")
     p.set_defaults(func=run)
 
 
@@ -90,8 +92,7 @@ def run(args: argparse.Namespace) -> int:
         "For research group analysis, not for clinical decisions.",
     }
     path = write_table(out, results, sidecar=sidecar, overwrite=args.overwrite)
-    sys.stderr.write(
-        f"roikit stats: {args.design}, {plural(results['region'].nunique(), 'region')} x "
-        f"{plural(results['term'].nunique(), 'term')} -> {path}\n"
-    )
+    if not args.quiet:
+        sys.stderr.write(f"roikit stats: {args.design}, {plural(results['region'].nunique(), 'region')} x "
+                         f"{plural(results['term'].nunique(), 'term')} -> {path}\n")
     return 0

@@ -679,7 +679,7 @@ def _write_all(tmp, geo, model, noise_rngs, recorded_seed, n_per_group, problems
     dropout_b = geo.dropout[brain_idx]
     n_vox = geo.labels.size
     planted = model["planted"]
-    iterator = tqdm(range(len(ids)), desc="demo: writing maps", unit="participant", disable=not progress,
+    iterator = tqdm(range(len(ids)), desc="demo: writing maps", unit="participant", disable=None if progress else True,
                     leave=False)
     for i in iterator:
         pid = ids[i]

@@ -167,7 +167,7 @@ def run_demo(
     out.mkdir(parents=True, exist_ok=True)
     results = out / "results"
     seconds: dict[str, float] = {}
-    bar = tqdm(total=2, desc="roikit demo", unit="step", disable=not progress, leave=False)
+    bar = tqdm(total=2, desc="roikit demo", unit="step", disable=None if progress else True, leave=False)
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always")
         try:

@@ -363,7 +363,8 @@ def write_report(
     if found:
         kinds = ordered_unique(c["kind"] for c in found)
         warnings.warn(CautionWarning(
-            f"the report carries {len(found)} caution(s) ({', '.join(kinds)}); read them in {html_path}"),
+            f"the report carries {len(found)} caution{'s' if len(found) != 1 else ''} ({', '.join(kinds)}); "
+            f"read them in {html_path}"),
             stacklevel=2)
     return {"tables": table_paths, "figures": figure_paths, "methods": methods_path, "html": html_path,
             "provenance": prov_path, "cautions": found}

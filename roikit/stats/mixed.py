@@ -794,10 +794,12 @@ def mixed(
     out = pd.concat(frames, ignore_index=True)
     flagged = [r for r, res in zip(regions, results) if res["fit"].boundary]
     if flagged:
-        warnings.warn(
+        warnings.warn(DiagnosticWarning(
             f"{context}: a random-effect variance is at its boundary (SD < {BOUNDARY_TOL:g} x residual SD) in "
-            f"{len(flagged)} region(s): {', '.join(flagged)}; the model is singular there (column 'boundary'); "
-            "consider a simpler random structure", DiagnosticWarning, stacklevel=3)
+            f"{len(flagged)} region{'s' if len(flagged) != 1 else ''}: {', '.join(flagged)}; the model is singular "
+            "there (column 'boundary'); consider a simpler random structure", context=context,
+            findings=[{"problem": "random-effect variance at its boundary (singular fit; column boundary)",
+                       "region": r} for r in flagged]), stacklevel=3)
     return out
 
 
@@ -830,7 +832,7 @@ def _run_regions(payloads: list[dict], regions: Sequence[str], n_jobs: int, exec
     def _named(region, exc):
         return type(exc)(f"mixed: region {region!r}: {exc}")
 
-    bar = tqdm(total=len(payloads), desc="mixed models", unit="region", leave=False, disable=len(payloads) < 20)
+    bar = tqdm(total=len(payloads), desc="mixed models", unit="region", leave=False, disable=True if len(payloads) < 20 else None)
     try:
         if executor is not None:
             return _collect(regions, [executor.submit(_fit_region_one_thread, p) for p in payloads], _named, bar)

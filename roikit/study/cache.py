@@ -132,8 +132,11 @@ def _extract_with_cache(study: Study, out: Path, *, progress: bool | None) -> tu
         who = [f"{rows[i]['participant_id']}/{rows[i]['contrast']}/{names[r]}" for i in reused_empty
                for r in np.flatnonzero(n_valid[i] == 0)]
         warnings.warn(CoverageWarning(
-            f"{len(who)} participant x contrast x region value(s) have no valid voxel and are n/a (rows kept; "
-            f"from the extraction cache): {_listing(who)}"), stacklevel=3)
+            f"{len(who)} participant x contrast x region value{'s' if len(who) != 1 else ''} have no valid voxel "
+            f"and are n/a (rows kept; from the extraction cache): {_listing(who)}",
+            findings=[{"problem": "no valid voxel: value n/a", "participant_id": rows[i]["participant_id"],
+                       "region": names[r]} for i in reused_empty for r in np.flatnonzero(n_valid[i] == 0)]),
+            stacklevel=3)
     table.attrs["roikit"] = base
 
     new_entries = {}

@@ -17,7 +17,8 @@ import pandas as pd
 from .._options import plural, spell
 from .._tables import sha256_file, sidecar_path, write_json, write_table
 from .._typing import PathLike
-from ..errors import OutputExistsError, RoikitError, RoikitWarning
+from ..errors import (WARNING_COLUMNS, OutputExistsError, RoikitError, RoikitWarning, summarised,
+                      warning_records)
 from ..extraction import VALUE_COLUMNS
 from ..stats import COLUMN_DESCRIPTIONS
 from .cache import _extract_with_cache
@@ -65,7 +66,7 @@ class StudyRun:
         lines = [
             f"roikit run: {study.title}",
             f"  {n_part} participants, {len(study.maps)} maps ({self.extracted} extracted, {self.reused} from the "
-            f"cache), {n_regions} regions x {len(study.analyses)} analyses",
+            f"cache), {plural(n_regions, 'region')} x {plural(len(study.analyses), 'analysis', 'analyses')}",
         ]
         for analysis, rows in zip(study.analyses, self.per_analysis):
             lines.append(f"  {analysis.label}:")
@@ -74,17 +75,16 @@ class StudyRun:
             if "population_inference" in rows.columns and not rows["population_inference"].astype(bool).all():
                 lines.append("    caution: fixed effects describe these participants only (no population inference)")
         if study.circular:
-            lines.append(f"  caution: circular region definition(s): {', '.join(study.circular)}")
+            lines.append(f"  caution: circular region {'definition' if len(study.circular) == 1 else 'definitions'}: "
+                         f"{', '.join(study.circular)}")
         if self.warnings:
-            counts: dict[str, int] = {}
-            for w in self.warnings:
-                counts[w["category"]] = counts.get(w["category"], 0) + 1
-            lines.append(f"  warnings: {len(self.warnings)} ("
-                         + ", ".join(f"{k} x{v}" for k, v in counts.items()) + "; listed in provenance.json)")
+            problems = list(dict.fromkeys(w["problem"] for w in self.warnings))
+            lines.append(f"  warnings: {plural(len(problems), 'problem')} ({plural(len(self.warnings), 'finding')}; "
+                         "listed in warnings.tsv and the report)")
         else:
             lines.append("  warnings: none")
         lines.append(f"  outputs: {self.out}{os.sep} (report.html, group_results.tsv, region_values.tsv, tables/, "
-                     "figures/, methods.md, provenance.json)")
+                     "figures/, methods.md, warnings.tsv, provenance.json)")
         return "\n".join(lines)
 
 def _survivors(part: pd.DataFrame, alpha: float) -> str:
@@ -165,7 +165,7 @@ def run_study(
         raise OutputExistsError(
             f"{out}: holds the outputs of an earlier run ({', '.join(p.name for p in existing[:4])}"
             f"{' ...' if len(existing) > 4 else ''}); pass {spell('overwrite', True)} to replace them (the "
-            "extraction cache is kept, so only new maps are read), or choose another --out folder")
+            "extraction cache is kept, so only new maps are read), or choose another output folder")
     from ..reporting import write_report
 
     seconds: dict[str, float] = {}
@@ -212,16 +212,21 @@ def run_study(
             for w in caught:  # messages naming the temporary folder name the output folder instead
                 if str(tmp) in str(w.message):
                     w.message = w.category(str(w.message).replace(str(tmp), str(out)))
-            recorded = [{"category": w.category.__name__, "message": str(w.message)} for w in caught
-                        if issubclass(w.category, RoikitWarning)]
+            rows = warning_records([w for w in caught if issubclass(w.category, RoikitWarning)])
+            recorded = [{k: r[k] for k in WARNING_COLUMNS} for r in rows]
+            written.append(write_table(tmp / "warnings.tsv", pd.DataFrame(recorded, columns=list(WARNING_COLUMNS)),
+                                       sidecar={"description": "every warning of this run, one row per finding"}))
             seconds["total"] = time.perf_counter() - t_start
             _extend_provenance(tmp / "provenance.json", study, out, cache_info, per_analysis, recorded, seconds,
                                written, tmp)
             _move_into_place(tmp, out)
         finally:
             shutil.rmtree(tmp, ignore_errors=True)
-    for w in caught:  # re-issue, so callers (and the command line) see them
-        warnings.warn_explicit(w.message, w.category, w.filename, w.lineno)
+    for w in caught:  # re-issue other libraries' warnings as they were, roikit's one per problem
+        if not issubclass(w.category, RoikitWarning):
+            warnings.warn_explicit(w.message, w.category, w.filename, w.lineno)
+    for w in summarised(rows):
+        warnings.warn(w, stacklevel=2)
     outputs = {name: out / name for name in OUTPUTS if (out / name).exists()}
     return StudyRun(study=study, out=out, values=values, results=results, per_analysis=per_analysis,
                     outputs=outputs, extracted=cache_info["extracted"], reused=cache_info["reused"],

@@ -61,7 +61,7 @@ FORMULA_TRANSFORMS = ("C", "center", "log", "scale", "standardize")
 
 #: What ``run_study`` writes into the output folder (besides the cache).
 OUTPUTS = ("region_values.tsv", "region_values.json", "group_results.tsv", "group_results.json", "tables",
-           "figures", "report.html", "methods.md", "provenance.json")
+           "figures", "report.html", "methods.md", "warnings.tsv", "warnings.json", "provenance.json")
 
 #: Folder (inside the output folder) holding the extraction cache.
 CACHE_FOLDER = ".cache"

@@ -26,7 +26,7 @@ def test_extract_writes_the_contract_table_and_sidecar(tiny_study, tmp_path, cap
     assert list(table.columns) == ["participant_id", "contrast", "region", "value", "n_voxels", "n_valid", "variance"]
     assert len(table) == 4 * 2 * 4
     assert table["region"].unique().tolist() == ["right caudate", "left caudate", "retrosplenial cortex", "prior peak"]
-    side = json.loads(out.with_suffix(".json").read_text())
+    side = json.loads(out.with_suffix(".json").read_text())["GeneratedBy"][0]
     assert side["provenance"]["statistic"] == "mean"
     assert {r["region"] for r in side["provenance"]["regions"]} == set(table["region"])
     assert all(len(i["sha256"]) == 64 for i in side["provenance"]["inputs"])

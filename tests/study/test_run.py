@@ -139,7 +139,7 @@ def test_outputs_are_not_replaced_without_consent(study_dir):
     run_study(study_dir / "study.toml", out=out, figures=False)
     (out / "notes.txt").write_text("mine")
     before = (out / "group_results.tsv").read_bytes()
-    with pytest.raises(OutputExistsError, match="--overwrite"):
+    with pytest.raises(OutputExistsError, match="overwrite=True"):
         run_study(study_dir / "study.toml", out=out, figures=False)
     assert (out / "group_results.tsv").read_bytes() == before
     run_study(study_dir / "study.toml", out=out, overwrite=True, figures=False)
