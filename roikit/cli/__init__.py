@@ -21,7 +21,7 @@ from ..errors import RoikitError, RoikitWarning, UsageError
 __all__ = ["main", "build_parser"]
 
 #: Sub-commands in the order ``roikit --help`` lists them.
-COMMANDS = ("demo", "regions", "extract", "stats", "report", "run")
+COMMANDS = ("demo", "init", "regions", "extract", "stats", "report", "run")
 
 
 class _Parser(argparse.ArgumentParser):
