@@ -34,7 +34,7 @@ import numpy as np
 import pandas as pd
 
 from ._tables import read_table
-from .errors import LabelTableWarning, RegionError, ResamplingWarning, UsageError
+from .errors import LabelTableWarning, RegionError, RegionOverlapWarning, ResamplingWarning, RoikitWarning, UsageError
 from .images import DEFAULT_ATOL, Grid, check_overlap, load_map, read_header, resample_nearest
 
 __all__ = [
@@ -45,7 +45,15 @@ __all__ = [
     "RegionSet",
     "Regions",
     "read_label_table",
+    "MIDLINE",
+    "OVERLAP_WARNING_SHARE",
 ]
+
+#: What a hemisphere split may do with voxels at x = 0 mm.
+MIDLINE = ("drop", "both", "left", "right")
+
+#: Regions sharing more than this share of the smaller region's voxels are announced when realised.
+OVERLAP_WARNING_SHARE = 0.2
 
 
 # --------------------------------------------------------------------------------------------------
@@ -119,6 +127,47 @@ class Regions:
             })
         return pd.DataFrame(rows, columns=["region", "n_voxels", "volume_mm3", "x_mm", "y_mm", "z_mm", "source"])
 
+    def overlaps(self) -> pd.DataFrame:
+        """Pairs of regions that share voxels (both count in a correction family).
+
+        Returns
+        -------
+        DataFrame with columns ``region_a``, ``region_b`` (in region order), ``n_shared`` (voxels in both),
+        ``share_of_a``, ``share_of_b`` (n_shared over each region's voxels) and ``share_of_smaller``; no rows when
+        no region overlaps another.
+        """
+        columns = ["region_a", "region_b", "n_shared", "share_of_a", "share_of_b", "share_of_smaller"]
+        if len(self.voxels) < 2:
+            return pd.DataFrame(columns=columns)
+        lengths = np.array([len(v) for v in self.voxels])
+        vox = np.concatenate(self.voxels) if lengths.sum() else np.zeros(0, np.int64)
+        rid = np.repeat(np.arange(len(self.voxels)), lengths)
+        order = np.argsort(vox, kind="stable")
+        vox, rid = vox[order], rid[order]
+        _, starts, counts = np.unique(vox, return_index=True, return_counts=True)
+        shared: dict[tuple[int, int], int] = {}
+        for start, count in zip(starts[counts > 1], counts[counts > 1]):
+            ids = rid[start:start + count]
+            for i in range(count):
+                for j in range(i + 1, count):
+                    key = (int(min(ids[i], ids[j])), int(max(ids[i], ids[j])))
+                    shared[key] = shared.get(key, 0) + 1
+        rows = []
+        for (a, b), n in sorted(shared.items()):
+            rows.append({"region_a": self.names[a], "region_b": self.names[b], "n_shared": n,
+                         "share_of_a": n / lengths[a], "share_of_b": n / lengths[b],
+                         "share_of_smaller": n / min(lengths[a], lengths[b])})
+        return pd.DataFrame(rows, columns=columns)
+
+    def overlap_matrix(self) -> pd.DataFrame:
+        """Regions x regions: voxels shared by each pair (the diagonal holds each region's voxel count)."""
+        m = pd.DataFrame(0, index=list(self.names), columns=list(self.names), dtype=np.int64)
+        for name, n in zip(self.names, self.n_voxels):
+            m.loc[name, name] = int(n)
+        for row in self.overlaps().itertuples(index=False):
+            m.loc[row.region_a, row.region_b] = m.loc[row.region_b, row.region_a] = int(row.n_shared)
+        return m
+
     def to_label_image(self) -> np.ndarray:
         """A 3D int32 image with region k (1-based) at its voxels; later regions win where regions overlap."""
         out = np.zeros(self.grid.n_voxels, dtype=np.int32)
@@ -132,7 +181,9 @@ class Regions:
         regions = []
         for row, src in zip(summary.to_dict("records"), self.sources):
             regions.append({**row, "source": src})
-        return {"grid": self.grid.to_dict(), "regions": regions, "resampling": list(self.resampling)}
+        overlaps = self.overlaps()
+        return {"grid": self.grid.to_dict(), "regions": regions, "resampling": list(self.resampling),
+                "overlaps": overlaps.to_dict("records")}
 
 
 # --------------------------------------------------------------------------------------------------
@@ -209,8 +260,9 @@ class Atlas(_Source):
     ----------
     image : path
         3D NIfTI image of integer labels.
-    labels : path or DataFrame
-        Label table with ``index`` and ``name`` columns (BIDS style TSV).
+    labels : path or DataFrame, optional
+        Label table with ``index`` and ``name`` columns (BIDS style TSV). Without one, every label value in the
+        image becomes a region named ``label <index>``, with a :class:`LabelTableWarning` saying so.
 
     Notes
     -----
@@ -220,12 +272,25 @@ class Atlas(_Source):
     """
 
     image: str | os.PathLike
-    labels: str | os.PathLike | pd.DataFrame
+    labels: str | os.PathLike | pd.DataFrame | None = None
     kind = "atlas"
 
     def realise(self, grid, *, atol, log):
-        table = self.labels if isinstance(self.labels, pd.DataFrame) else read_label_table(self.labels)
         data = _image_on_grid(self.image, grid, what="atlas", atol=atol, log=log)
+        if self.labels is None:
+            values = np.unique(data[np.isfinite(data) & (data != 0)])
+            if np.any(values != np.round(values)):
+                raise RegionError(f"atlas {self.image}: values are not integer labels; is it a probability map? "
+                                  "use a probability source with a threshold instead")
+            table = pd.DataFrame({"index": values.astype(np.int64),
+                                  "name": [f"label {int(v)}" for v in values]})
+            warnings.warn(LabelTableWarning(
+                f"atlas {self.image} has no label table: its {len(table)} labels are named 'label <index>' "
+                f"(label {int(values[0]) if len(values) else '-'} ...); give a TSV with index and name columns to "
+                "name them", findings=[{"problem": "atlas without a label table: regions named 'label <index>'"}]),
+                stacklevel=3)
+        else:
+            table = self.labels if isinstance(self.labels, pd.DataFrame) else read_label_table(self.labels)
         flat = data.ravel(order="F")
         if np.any(np.isfinite(flat) & (flat != np.round(flat))):
             raise RegionError(f"atlas {self.image}: values are not integer labels; is it a probability map? "
@@ -241,7 +306,8 @@ class Atlas(_Source):
         wanted = set(table["index"].tolist())
         absent = [int(i) for i in table["index"] if int(i) not in by_label]
         unlabelled = sorted(set(by_label) - wanted)
-        labels_name = self.labels if not isinstance(self.labels, pd.DataFrame) else "label table"
+        labels_name = "label table" if isinstance(self.labels, pd.DataFrame) else (
+            self.labels if self.labels is not None else "(none: generated names)")
         if absent:
             names = table.set_index("index").loc[absent, "name"].tolist()
             warnings.warn(LabelTableWarning(
@@ -429,14 +495,23 @@ class RegionSet:
         return RegionSet(self.sources + other.sources)
 
     # operations ----------------------------------------------------------------------------------
-    def split_hemispheres(self, names: Iterable[str] | None = None, *, left: str = "left {name}",
-                          right: str = "right {name}") -> "RegionSet":
-        """Split regions into left (world x < 0) and right (x > 0) parts; midline voxels (x = 0) are dropped
-        and counted in the region's source record.
+    def split_hemispheres(self, names: Iterable[str] | None = None, *, midline: str = "drop",
+                          left: str = "left {name}", right: str = "right {name}") -> "RegionSet":
+        """Split regions into left (world x < 0) and right (x > 0) parts.
+
+        Parameters
+        ----------
+        names : iterable of str, optional
+            Regions to split (default: all).
+        midline : {"drop", "both", "left", "right"}
+            Voxels at x = 0 mm: dropped (counted in the region's source record and announced with a warning),
+            given to both halves, or to one side.
 
         Assumes the world space has x increasing to the right (RAS+, as in MNI space).
         """
-        return self._with(("split", None if names is None else list(names), left, right))
+        if midline not in MIDLINE:
+            raise UsageError(f"midline must be one of {', '.join(MIDLINE)}, got {midline!r}")
+        return self._with(("split", None if names is None else list(names), left, right, midline))
 
     def intersect(self, mask, *, name: str = "analysis mask") -> "RegionSet":
         """Keep only voxels inside a brain/analysis mask image (non-zero voxels)."""
@@ -487,8 +562,10 @@ class RegionSet:
             for r in regions:
                 if len(r.voxels) == 0:
                     raise RegionError(_empty_message(r, grid))
-        return Regions(grid, names, [r.voxels for r in regions], [r.weights for r in regions],
-                       [r.source for r in regions], log)
+        realised = Regions(grid, names, [r.voxels for r in regions], [r.weights for r in regions],
+                           [r.source for r in regions], log)
+        _warn_overlaps(realised)
+        return realised
 
     def describe(self) -> list[dict]:
         """JSON-able list of sources and operations."""
@@ -503,6 +580,24 @@ class RegionSet:
             out.append({"operation": step[0], "arguments": [os.fspath(a) if isinstance(a, os.PathLike) else a
                                                             for a in step[1:]]})
         return out
+
+
+def _warn_overlaps(regions: Regions, share: float = OVERLAP_WARNING_SHARE) -> None:
+    """One :class:`RegionOverlapWarning` naming the pairs that share more than ``share`` of the smaller region."""
+    table = regions.overlaps()
+    big = table[table["share_of_smaller"] > share]
+    if big.empty:
+        return
+    pairs = []
+    for row in big.itertuples(index=False):
+        smaller, larger = ((row.region_a, row.region_b) if row.share_of_a >= row.share_of_b
+                           else (row.region_b, row.region_a))
+        n_small = int(regions.n_voxels[regions.names.index(smaller)])
+        pairs.append(f"{row.n_shared}/{n_small} voxels of {smaller} lie in {larger}")
+    warnings.warn(RegionOverlapWarning(
+        f"overlapping regions (both count in each correction family): {'; '.join(pairs)}",
+        findings=[{"problem": "overlapping regions (both count in each correction family)", "region": p}
+                  for p in pairs]), stacklevel=3)
 
 
 def _empty_message(region: _Region, grid: Grid) -> str:
@@ -522,24 +617,38 @@ def _apply(step, regions: list[_Region], grid: Grid, *, atol, log) -> list[_Regi
     kind = step[0]
     by_name = {r.name: r for r in regions}
     if kind == "split":
-        _, names, left, right = step
+        _, names, left, right, midline = step
         unknown = [n for n in (names or []) if n not in by_name]
         if unknown:
             raise RegionError(f"split_hemispheres: unknown region(s) {unknown}; regions are {list(by_name)}")
         out = []
+        dropped: list[tuple[str, int]] = []
         for r in regions:
             if names is not None and r.name not in names:
                 out.append(r)
                 continue
             x = grid.voxel_to_world(grid.flat_to_ijk(r.voxels))[:, 0]
-            n_mid = int(np.sum(x == 0))
-            for side, keep in ((left, x < 0), (right, x > 0)):
+            mid = x == 0
+            n_mid = int(np.sum(mid))
+            if n_mid and midline == "drop":
+                dropped.append((r.name, n_mid))
+            for side, keep in ((left, (x < 0) | (mid & (midline in ("both", "left")))),
+                               (right, (x > 0) | (mid & (midline in ("both", "right"))))):
                 src = {**r.source, "hemisphere": "left" if side is left else "right", "parent": r.name,
-                       "midline_voxels_dropped": n_mid}
+                       "midline_voxels": n_mid, "midline": midline,
+                       "midline_voxels_dropped": n_mid if midline == "drop" else 0}
                 if not keep.any():
                     src["emptied_by"] = "splitting into hemispheres"
                 out.append(_Region(side.format(name=r.name), r.voxels[keep],
                                    None if r.weights is None else r.weights[keep], src))
+        if dropped:
+            total = sum(n for _, n in dropped)
+            warnings.warn(RoikitWarning(
+                f"hemisphere split: {total} midline voxel{'s' if total != 1 else ''} (x = 0 mm) dropped: "
+                + ", ".join(f"{name} {n}" for name, n in dropped)
+                + "; midline = \"both\", \"left\" or \"right\" keeps them",
+                findings=[{"problem": "midline voxels (x = 0 mm) dropped by the hemisphere split",
+                           "region": f"{name} ({n} voxels)"} for name, n in dropped]), stacklevel=4)
         return out
     if kind == "intersect":
         _, mask, name = step

@@ -512,7 +512,7 @@ def _check_regions(c: _Checker, raw: dict) -> tuple[RegionSet | None, list[str] 
 
     if "atlas" in section or "labels" in section:
         atlas = c.file(section, "atlas", "regions", required=True, what="atlas image")
-        labels = c.file(section, "labels", "regions", required=True, what="label table")
+        labels = c.file(section, "labels", "regions", what="label table") if "labels" in section else None
         names_known = False
         if atlas is not None and labels is not None:
             try:
@@ -522,6 +522,8 @@ def _check_regions(c: _Checker, raw: dict) -> tuple[RegionSet | None, list[str] 
                 names_known = True
             except RoikitError as exc:
                 c.add("regions.labels", str(exc))
+        elif atlas is not None and "labels" not in section:  # names 'label <index>', known once realised
+            sources.append(Atlas(atlas))
 
     def blocks(name: str) -> list[tuple[str, dict]]:
         value = section.get(name, [])
@@ -589,10 +591,17 @@ def _check_regions(c: _Checker, raw: dict) -> tuple[RegionSet | None, list[str] 
     regionset = RegionSet(sources)
 
     split = section.get("split_hemispheres", False)
+    midline = section.get("midline", option("midline", "regions").default)
+    problem = check_value(option("midline", "regions"), midline)
+    if problem:
+        c.add("regions.midline", problem)
+        midline = option("midline", "regions").default
+    elif "midline" in section and split is False:
+        c.add("regions.midline", "applies to a hemisphere split; add split_hemispheres = true (or a list of regions)")
     if split is not False:
         if split is True:
             names = [f"{side} {n}" for n in names for side in ("left", "right")]
-            regionset = regionset.split_hemispheres()
+            regionset = regionset.split_hemispheres(midline=midline)
         else:
             chosen = c.names(split, "regions.split_hemispheres")
             if chosen is not None:
@@ -601,7 +610,7 @@ def _check_regions(c: _Checker, raw: dict) -> tuple[RegionSet | None, list[str] 
                     c.add("regions.split_hemispheres", f"unknown region(s) {_listing(unknown)}; regions are "
                                                        f"{_listing(names, 20)}{_suggest(unknown[0], names)}")
                 names = [x for n in names for x in ((f"left {n}", f"right {n}") if n in chosen else (n,))]
-                regionset = regionset.split_hemispheres(chosen)
+                regionset = regionset.split_hemispheres(chosen, midline=midline)
     within = c.file(section, "within", "regions", what="analysis mask") if "within" in section else None
     if within is not None:
         regionset = regionset.intersect(within)

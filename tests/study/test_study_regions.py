@@ -1,0 +1,42 @@
+"""Region hygiene in study files: midline, an atlas without a label table, overlap in the values' provenance."""
+
+from __future__ import annotations
+
+import pandas as pd
+import pytest
+
+from roikit.cli import main
+from roikit.study import load_study
+from roikit.study.schema import StudyError
+
+
+def test_midline_key_and_atlas_without_labels(study_dir):
+    text = (study_dir / "study.toml").read_text()
+    text = text.replace('labels = "atlas.tsv"\n', 'split_hemispheres = ["label 3"]\nmidline = "both"\n')
+    (study_dir / "study.toml").write_text(text)
+    with pytest.warns(Warning):
+        study = load_study(study_dir / "study.toml")
+    assert study.realised.names[:2] == ["label 1", "label 2"]
+    assert "left label 3" in study.realised.names and "right label 3" in study.realised.names
+    (study_dir / "study.toml").write_text(text.replace('midline = "both"', 'midline = "center"'))
+    with pytest.raises(StudyError, match="regions.midline: must be one of drop, both, left, right"):
+        load_study(study_dir / "study.toml")
+
+
+def test_midline_on_the_command_line(study_dir, tmp_path, capsys):
+    # a sphere centred on x = 0 mm: symmetric halves when the midline is dropped, the left half larger by the
+    # midline slab when it goes left (by construction)
+    like = str(study_dir / "maps" / "sub-01_contrast-novel_effect.nii.gz")
+    counts = {}
+    for midline in ("drop", "left"):
+        out = tmp_path / f"{midline}.tsv"
+        assert main(["regions", "--sphere", "c=0,0,0,4", "--split-hemispheres", "--midline", midline,
+                     "--like", like, "--out", str(out)]) == 0
+        table = pd.read_csv(out, sep="\t")
+        counts[midline] = dict(zip(table["region"], table["n_voxels"]))
+    assert counts["drop"]["left c"] == counts["drop"]["right c"] == counts["left"]["right c"]
+    assert counts["left"]["left c"] > counts["drop"]["left c"]
+    capsys.readouterr()
+    with pytest.raises(SystemExit):
+        main(["regions", "--atlas", "a.nii.gz", "--midline", "centre"])
+    assert "invalid choice: 'centre'" in capsys.readouterr().err
