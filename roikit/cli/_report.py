@@ -30,6 +30,7 @@ def add_parser(subparsers) -> None:
     p.add_argument("--quiet", action="store_true", help="no summary and no warnings on stderr (the report's "
                    "cautions section keeps them)")
     p.add_argument("--title", default="Region-of-interest group analysis", help="report title")
+    p.add_argument("--regions", metavar="A,B", help="draw and tabulate only these regions (comma-separated names)")
     p.add_argument("--circular", action="append", default=[], metavar="REGION",
                    help="region defined from the same data that are tested (adds a circularity caution; repeatable)")
     p.set_defaults(func=run)
@@ -39,6 +40,43 @@ def _sidecar(path: Path) -> dict:
     from .._tables import read_sidecar
 
     return read_sidecar(path)
+
+
+def _names(text: str) -> list[str]:
+    return [t.strip() for t in text.split(",") if t.strip()]
+
+
+def _same_regions(values, results, args):
+    """Keep only ``--regions`` (when given); refuse values and results that do not cover the same regions."""
+    from .._options import suggest
+
+    in_values = list(dict.fromkeys(values["region"].astype(str)))
+    in_results = list(dict.fromkeys(results["region"].astype(str))) if "region" in results.columns else []
+    # rows about a pair of regions ("A - B") are fine when both are in the values table
+    pairs = {r for r in in_results if " - " in r and all(x in in_values for x in r.split(" - "))}
+    if args.regions is not None:
+        wanted = _names(args.regions)
+        unknown = [r for r in wanted if r not in in_values]
+        if not wanted or unknown:
+            raise UsageError(f"--regions: {', '.join(map(repr, unknown)) or 'no name given'} not in {args.values}"
+                             f"{suggest(unknown[0], in_values) if unknown else ''}; its regions are "
+                             f"{', '.join(in_values)}")
+        values = values[values["region"].astype(str).isin(wanted)]
+        keep = results["region"].astype(str).isin(wanted) | results["region"].astype(str).map(
+            lambda r: " - " in r and all(x in wanted for x in r.split(" - ")))
+        results = results[keep]
+        in_values, in_results = wanted, [r for r in in_results if r in wanted or r in pairs]
+    only_values = [r for r in in_values if r not in in_results]
+    only_results = [r for r in in_results if r not in in_values and r not in pairs]
+    if only_values or only_results:
+        parts = []
+        if only_values:
+            parts.append(f"only in --values: {', '.join(only_values[:8])}{' ...' if len(only_values) > 8 else ''}")
+        if only_results:
+            parts.append(f"only in --results: {', '.join(only_results[:8])}{' ...' if len(only_results) > 8 else ''}")
+        raise UsageError(f"{args.values} and {args.results} do not cover the same regions ({'; '.join(parts)}); "
+                         "give the values the results were computed from, or --regions A,B to report some regions")
+    return values.reset_index(drop=True), results.reset_index(drop=True)
 
 
 def run(args: argparse.Namespace) -> int:
@@ -53,6 +91,7 @@ def run(args: argparse.Namespace) -> int:
     values = read_table(values_path)
     results = read_table(results_path)
     participants = read_table(args.participants, label_columns=("participant_id",)) if args.participants else None
+    values, results = _same_regions(values, results, args)
     side = _sidecar(values_path)
     prov = side.get("provenance") if isinstance(side.get("provenance"), dict) else {}
     if prov:
