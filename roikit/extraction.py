@@ -44,7 +44,7 @@ from .errors import (
     UsageError,
 )
 from .images import DEFAULT_ATOL, MapHeader, check_same_grid, read_flat, read_header
-from .regions import Regions, RegionSet
+from .regions import RealisedRegions, RegionSet
 
 __all__ = [
     "find_maps",
@@ -316,7 +316,7 @@ class _Index:
     n_voxels: np.ndarray
 
     @classmethod
-    def build(cls, regions: Regions, *, weighted: bool) -> "_Index":
+    def build(cls, regions: RealisedRegions, *, weighted: bool) -> "_Index":
         vox = list(regions.voxels)
         lengths = np.array([len(v) for v in vox], dtype=np.int64)
         allv = np.concatenate(vox) if vox else np.empty(0, dtype=np.int64)
@@ -495,7 +495,7 @@ def _headers(maps: pd.DataFrame, *, atol: float):
 
 def extract(
     maps: pd.DataFrame,
-    regions: RegionSet | Regions,
+    regions: RegionSet | RealisedRegions,
     *,
     statistic: Literal["mean", "median", "trimmed-mean", "weighted-mean"] = "mean",
     keep_zeros: bool = False,
@@ -512,7 +512,7 @@ def extract(
     ----------
     maps : DataFrame
         A maps table (:func:`find_maps`, :func:`read_map_list`, :func:`maps_from_4d`).
-    regions : RegionSet or Regions
+    regions : RegionSet or RealisedRegions
         Regions; a RegionSet is realised on the maps' grid (resampling region images if needed).
     statistic : {"mean", "median", "trimmed-mean", "weighted-mean"}
         Summary over a region's valid voxels. ``trimmed-mean`` cuts 20% from each end
@@ -571,13 +571,13 @@ def extract(
     if isinstance(regions, RegionSet):
         region_sources = regions.describe()
         realised = regions.realise(grid, atol=atol)
-    elif isinstance(regions, Regions):
+    elif isinstance(regions, RealisedRegions):
         region_sources = None
         realised = regions
         if not realised.grid.matches(grid, atol=atol):
             raise UsageError("regions were realised on another grid than the maps'; pass the RegionSet instead")
     else:
-        raise UsageError(f"regions must be a RegionSet or Regions, got {type(regions).__name__}")
+        raise UsageError(f"regions must be a RegionSet or RealisedRegions, got {type(regions).__name__}")
     index = _Index.build(realised, weighted=statistic == "weighted-mean")
     names = list(realised.names)
     n_regions, n_maps = len(names), len(tasks)

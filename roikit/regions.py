@@ -2,7 +2,7 @@
 
 A :class:`RegionSet` is a *description* (sources plus operations such as hemisphere
 splitting, intersection, selection, renaming and union). It is realised on a
-voxel grid with :meth:`RegionSet.realise`, which returns :class:`Regions`: the
+voxel grid with :meth:`RegionSet.realise`, which returns :class:`RealisedRegions`: the
 voxels of each region as sorted flat indices in the grid's Fortran order (plus
 weights for probability regions). Regions may overlap; nothing is stored as one
 dense volume per region, so hundreds of regions cost a few megabytes.
@@ -10,7 +10,7 @@ dense volume per region, so hundreds of regions cost a few megabytes.
 Region images on another grid than the target are resampled with nearest
 neighbour through the two affines (:func:`roikit.images.resample_nearest`);
 this is announced once per image with a :class:`ResamplingWarning` and
-recorded in :attr:`Regions.resampling`.
+recorded in :attr:`RealisedRegions.resampling`.
 
 Examples
 --------
@@ -34,7 +34,8 @@ import numpy as np
 import pandas as pd
 
 from ._tables import read_table
-from .errors import LabelTableWarning, RegionError, RegionOverlapWarning, ResamplingWarning, RoikitWarning, UsageError
+from .errors import (LabelTableWarning, RegionError, RegionOverlapWarning, ResamplingWarning, RoikitDeprecationWarning,
+                     RoikitWarning, UsageError)
 from .images import DEFAULT_ATOL, Grid, check_overlap, load_map, read_header, resample_nearest
 
 __all__ = [
@@ -43,7 +44,7 @@ __all__ = [
     "Sphere",
     "ProbabilityMap",
     "RegionSet",
-    "Regions",
+    "RealisedRegions",
     "read_label_table",
     "MIDLINE",
     "OVERLAP_WARNING_SHARE",
@@ -70,8 +71,11 @@ class _Region:
 
 
 @dataclass
-class Regions:
-    """Regions realised on one grid (the output of :meth:`RegionSet.realise`).
+class RealisedRegions:
+    """Regions realised on one grid (the output of :meth:`RegionSet.realise`): the voxels of each region.
+
+    A :class:`RegionSet` says how regions are defined; a ``RealisedRegions`` holds their voxels on one grid.
+    (``Regions`` is its former name, kept as a deprecated alias.)
 
     Attributes
     ----------
@@ -530,7 +534,7 @@ class RegionSet:
         return self._with(("union", name, list(names), keep))
 
     # realisation ---------------------------------------------------------------------------------
-    def realise(self, grid: Grid, *, atol: float = DEFAULT_ATOL, allow_empty: bool = False) -> Regions:
+    def realise(self, grid: Grid, *, atol: float = DEFAULT_ATOL, allow_empty: bool = False) -> RealisedRegions:
         """Realise the regions on ``grid``.
 
         Parameters
@@ -544,7 +548,7 @@ class RegionSet:
 
         Returns
         -------
-        Regions
+        RealisedRegions
         """
         if not self.sources:
             raise RegionError("no regions given; name at least one atlas, mask, sphere or probability map")
@@ -562,7 +566,7 @@ class RegionSet:
             for r in regions:
                 if len(r.voxels) == 0:
                     raise RegionError(_empty_message(r, grid))
-        realised = Regions(grid, names, [r.voxels for r in regions], [r.weights for r in regions],
+        realised = RealisedRegions(grid, names, [r.voxels for r in regions], [r.weights for r in regions],
                            [r.source for r in regions], log)
         _warn_overlaps(realised)
         return realised
@@ -582,7 +586,7 @@ class RegionSet:
         return out
 
 
-def _warn_overlaps(regions: Regions, share: float = OVERLAP_WARNING_SHARE) -> None:
+def _warn_overlaps(regions: RealisedRegions, share: float = OVERLAP_WARNING_SHARE) -> None:
     """One :class:`RegionOverlapWarning` naming the pairs that share more than ``share`` of the smaller region."""
     table = regions.overlaps()
     big = table[table["share_of_smaller"] > share]
@@ -686,3 +690,12 @@ def _apply(step, regions: list[_Region], grid: Grid, *, atol, log) -> list[_Regi
         kept = regions if keep else [r for r in regions if r.name not in names]
         return kept + [_Region(name, vox, None, {"kind": "union", "of": names})]
     raise UsageError(f"unknown region operation {kind!r}")  # pragma: no cover
+
+
+def __getattr__(name: str):
+    # former names, kept for a while with a RoikitDeprecationWarning
+    if name == "Regions":
+        warnings.warn(RoikitDeprecationWarning("roikit.regions.Regions is now RealisedRegions (the voxels of a "
+                                               "RegionSet on one grid); import RealisedRegions"), stacklevel=2)
+        return RealisedRegions
+    raise AttributeError(f"module {__name__!r} has no attribute {name!r}")

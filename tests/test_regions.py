@@ -206,3 +206,12 @@ def test_atlas_without_label_table_gets_generated_names(tiny_study, small_grid):
         regions = RegionSet([Atlas(tiny_study["atlas"])]).realise(small_grid)
     assert regions.names == ["label 1", "label 2", "label 3"]
     assert regions.n_voxels.tolist() == [80, 96, 64]
+
+
+def test_former_name_of_realised_regions_is_deprecated():
+    import roikit.regions as regions_module
+    from roikit.errors import RoikitDeprecationWarning
+    from roikit.regions import RealisedRegions
+
+    with pytest.warns(RoikitDeprecationWarning, match="now RealisedRegions"):
+        assert regions_module.Regions is RealisedRegions

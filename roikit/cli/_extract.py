@@ -5,7 +5,7 @@ from __future__ import annotations
 import argparse
 import sys
 
-from .._options import plural
+from .._options import add_arguments, plural, resolve
 from ..errors import ExtractionError, UsageError
 from ._sources import add_region_options, region_set_from_args
 
@@ -27,13 +27,7 @@ def add_parser(subparsers) -> None:
     p.add_argument("--variance", metavar="PATTERN", help="path pattern of the matching variance maps")
     add_region_options(p)
     p.add_argument("--out", required=True, metavar="VALUES.tsv", help="output table")
-    p.add_argument("--statistic", choices=["mean", "median", "trimmed-mean", "weighted-mean"], default="mean",
-                   help="summary over a region's valid voxels (default mean; trimmed-mean cuts 20%% per end; "
-                        "weighted-mean weights probability regions by probability)")
-    p.add_argument("--keep-zeros", action="store_true",
-                   help="treat voxels exactly 0 as data (default: as missing, as many packages write 0 outside "
-                        "their analysis mask)")
-    p.add_argument("--jobs", type=int, default=1, metavar="N", help="worker processes (default 1)")
+    add_arguments(p, "extraction")  # --statistic, --keep-zeros, --jobs: the [extraction] keys of a study file
     p.add_argument("--scheduler", metavar="ADDRESS",
                    help="run on a Dask cluster whose scheduler listens at ADDRESS (e.g. tcp://10.0.0.5:8786); "
                         "needs the `distributed` extra")
@@ -57,8 +51,9 @@ def run(args: argparse.Namespace) -> int:
     from .._tables import check_output, sidecar_path
     from ..extraction import extract, find_maps, read_map_list, write_values
 
-    if args.jobs < 1:
-        raise UsageError(f"--jobs must be at least 1, got {args.jobs}")
+    options, problems = resolve(args, "extraction")
+    if problems:
+        raise UsageError("; ".join(problems))
     check_output(args.out, overwrite=args.overwrite)
     check_output(sidecar_path(args.out), overwrite=args.overwrite)
     if (args.maps is None) == (args.map_list is None):
@@ -70,8 +65,7 @@ def run(args: argparse.Namespace) -> int:
         if args.variance:
             raise UsageError("--variance goes with --maps; with --map-list give a variance_path column")
         maps = read_map_list(args.map_list)
-    options = dict(statistic=args.statistic, keep_zeros=args.keep_zeros, n_jobs=args.jobs,
-                   progress=False if args.quiet else None)
+    options["progress"] = False if args.quiet else None
     if args.scheduler:
         with _dask_client(args.scheduler) as client:
             values = extract(maps, regions, client=client, **options)

@@ -17,13 +17,13 @@ from .._typing import PathLike
 from ..errors import CoverageWarning
 from ..extraction import TRIM, assemble_values, extract
 from ..images import check_same_grid, read_header
-from ..regions import Regions
+from ..regions import RealisedRegions
 from .schema import _CACHE_FILE, _CACHE_FORMAT, CACHE_FOLDER, Study, _listing, load_study
 
 # --------------------------------------------------------------------------------------------------
 
 
-def _fingerprint(realised: Regions, statistic: str, keep_zeros: bool) -> str:
+def _fingerprint(realised: RealisedRegions, statistic: str, keep_zeros: bool) -> str:
     """SHA-256 of the realised regions (grid, names, voxels, weights) and the extraction choices."""
     h = hashlib.sha256()
     header = {"roikit": __version__, "cache_format": _CACHE_FORMAT, "statistic": statistic,

@@ -16,7 +16,7 @@ from .._typing import PathLike
 from ..errors import InputFileError, RoikitError, UsageError
 from ..extraction import STATISTICS, VALUE_COLUMNS, find_maps, read_map_list, read_participants
 from ..images import read_header
-from ..regions import Atlas, Mask, ProbabilityMap, Regions, RegionSet, Sphere, read_label_table
+from ..regions import Atlas, Mask, ProbabilityMap, RealisedRegions, RegionSet, Sphere, read_label_table
 from ..stats import available_designs, run_design
 from ..stats._registry import DESIGNS, PERMUTATIONS
 from ..stats.corrections import parse_corrections
@@ -254,7 +254,7 @@ class Study:
     maps : DataFrame
         The maps table (participant_id, [session_id], contrast, path, [variance_path], [volume]).
     regions : RegionSet
-    realised : Regions
+    realised : RealisedRegions
         The regions realised on the maps' grid.
     circular : list of str
         Regions marked as defined from the same data (flagged in the report).
@@ -272,7 +272,7 @@ class Study:
     participants: pd.DataFrame | None
     maps: pd.DataFrame
     regions: RegionSet
-    realised: Regions
+    realised: RealisedRegions
     circular: list[str]
     statistic: str
     keep_zeros: bool
