@@ -43,7 +43,7 @@ from .figures import (
     save_figure,
     stimulus_plot,
 )
-from .format import escape_markup, render
+from .format import escape_markup, format_percent, render
 from .html import ReportFigure, Section, figure_html, report_html
 from .tables import ReportTable, descriptives_table, results_tables
 from .text import SCOPE_STATEMENT, assumptions, cautions, methods_text, results_text, software_versions
@@ -176,6 +176,37 @@ def _figure_plan(values: pd.DataFrame, results: pd.DataFrame, participants: pd.D
                 "rate, as named in the legend); open squares do not. The dashed line marks zero."),
                 make=lambda pt=part: forest_plot(pt).figure))
     return plan
+
+
+def _overlap_html(provenance: dict | None, regions: set) -> list[str]:
+    """The voxels shared by overlapping regions, as a matrix (nothing when no region overlaps another)."""
+    pairs = (provenance or {}).get("overlaps") if isinstance(provenance, dict) else None
+    pairs = [p for p in pairs or [] if p.get("region_a") in regions and p.get("region_b") in regions]
+    if not pairs:
+        return []
+    sizes = {r.get("region"): r.get("n_voxels") for r in (provenance.get("regions") or []) if isinstance(r, dict)}
+    names = ordered_unique([p["region_a"] for p in pairs] + [p["region_b"] for p in pairs])
+    shared = {(p["region_a"], p["region_b"]): p for p in pairs}
+    esc = _html.escape
+    head = "".join(f"<th>{esc(str(n))}</th>" for n in names)
+    rows = []
+    for a in names:
+        cells = []
+        for b in names:
+            p = shared.get((a, b)) or shared.get((b, a))
+            if a == b:
+                cells.append(f"<td>{esc(str(sizes.get(a, '')))}</td>")
+            elif p is None:
+                cells.append("<td>0</td>")
+            else:
+                share = p["share_of_a"] if p["region_a"] == a else p["share_of_b"]
+                cells.append(f"<td>{int(p['n_shared'])} ({format_percent(100 * share)})</td>")
+        rows.append(f"<tr><th>{esc(str(a))}</th>{''.join(cells)}</tr>")
+    note = ("Voxels shared by regions that overlap (diagonal: the region's voxels; in brackets: the share of the "
+            "row's region). Overlapping regions are tested separately and both count in each correction family, "
+            "so their tests are not independent.")
+    return [f'<div class="table-wrap"><table><thead><tr><th></th>{head}</tr></thead><tbody>{"".join(rows)}'
+            f"</tbody></table></div>", f"<p>{esc(note)}</p>"]
 
 
 def check_report_outputs(out: Path, overwrite: bool) -> None:
@@ -322,6 +353,9 @@ def write_report(
     if figure_items:
         sections.append(Section("figures", "Figures", [figure_html(f) for f in figure_items]))
     sections.append(Section("descriptives", "Descriptive statistics", [f'<div class="table-wrap">{desc.to_html()}</div>']))
+    overlap_html = _overlap_html(values_prov, set(values["region"].astype(str)))
+    if overlap_html:
+        sections.append(Section("overlap", "Region overlap", overlap_html))
     sections.append(Section("assumptions", "Assumptions and scope", [
         "<ul>" + "".join(f"<li>{render(a, 'html')}</li>" for a in assumption_lines) + "</ul>",
         f"<p>{_html.escape(SCOPE_STATEMENT)}</p>"]))

@@ -44,3 +44,17 @@ def test_values_and_results_must_cover_the_same_regions(tmp_path, capsys):
     err = capsys.readouterr().err
     assert "do not cover the same regions (only in --results: right hippocampus, retrosplenial cortex)" in err
     assert err.count("\n") == 1
+
+
+def test_report_shows_the_overlap_of_regions(tmp_path):
+    # provenance of a values table whose regions overlap: 30 of the sphere's 33 voxels lie in region A (80 voxels)
+    vpath, rpath, values = _files(tmp_path)
+    provenance = {"regions": [{"region": "left hippocampus", "n_voxels": 80},
+                              {"region": "right hippocampus", "n_voxels": 33}],
+                  "overlaps": [{"region_a": "left hippocampus", "region_b": "right hippocampus", "n_shared": 30,
+                                "share_of_a": 30 / 80, "share_of_b": 30 / 33, "share_of_smaller": 30 / 33}]}
+    write_table(vpath, values, sidecar={"provenance": provenance}, overwrite=True)
+    out = tmp_path / "report"
+    assert main(["report", "--values", str(vpath), "--results", str(rpath), "--out", str(out), "--quiet"]) == 0
+    html = (out / "report.html").read_text()
+    assert "Region overlap" in html and "30 (37.5%)" in html and "30 (90.9%)" in html
