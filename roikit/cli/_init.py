@@ -54,7 +54,8 @@ def run(args: argparse.Namespace) -> int:
         f"  found:        {plural(len(proposal.participants), 'participant')} x "
         f"{plural(len(proposal.contrasts), 'contrast')} ({', '.join(proposal.contrasts[:6])}"
         f"{' ...' if len(proposal.contrasts) > 6 else ''}), {plural(len(study.realised.names), 'region')}",
-        f"  analyses:     " + "; ".join(f"{a['design']} {a.get('contrast', '')}".strip() for a in proposal.analyses),
+        "  analyses:     " + "; ".join(f"{a['design']} {a.get('contrast', '')}".strip()
+                                    + (f" vs {a['versus']}" if a.get("versus") else "") for a in proposal.analyses),
     ]
     lines += [f"  note: {n}" for n in proposal.notes]
     lines.append(f"Edit it (every key: docs/study-file.md), then: roikit run {path}")
