@@ -389,8 +389,8 @@ def add_arguments(parser, section: str, *, group_title: str | None = None, skip:
             text = designs_text[o.py] + text
         text = text.replace("%", "%%")
         kwargs: dict[str, Any] = {"dest": o.py, "help": text}
-        if o.type == "bool":
-            kwargs.update(action="store_true", default=None)
+        if o.type == "bool":  # "--no-x" flags store False (for an option whose default is True)
+            kwargs.update(action="store_false" if o.cli.startswith("--no-") else "store_true", default=None)
         else:
             kwargs.update(metavar=o.metavar or o.name.upper(), default=None)
             if o.type == "int":

@@ -33,6 +33,7 @@ import pandas as pd
 import scipy.sparse as sp
 
 from . import __version__
+from ._options import spell
 from ._tables import read_table, write_table
 from .errors import (
     CoverageWarning,
@@ -154,7 +155,7 @@ def find_maps(
     full = full.replace(os.sep, "/")
     glob_pattern, rx = _pattern_regex(full)
     if "{contrast}" not in pattern and contrast is None:
-        raise UsageError(f"pattern {pattern!r} has no {{contrast}} placeholder; add one or give contrast=")
+        raise UsageError(f"pattern {pattern!r} has no {{contrast}} placeholder; add one or give {spell('contrast')}")
     candidates = sorted(glob.glob(glob_pattern))
     rows = []
     for path in candidates:

@@ -44,6 +44,10 @@ STUDY_KEYS: dict[str, tuple[str, ...]] = study_keys()
 #: Analysis keys that are design options (passed to the design when given, under their Python names).
 _DESIGN_OPTIONS = tuple(o.study_key for o in options_in("analysis") if o.design_option)
 
+#: Design options with checks of their own below (contrasts, columns, formulas); the others are checked by the
+#: options table alone (type, choices, range), so a new option needs only its entry in ``roikit/_options.py``.
+_SPECIAL = ("contrast", "versus", "group", "levels", "formula", "random", "crossed")
+
 #: Options each design cannot do without (beyond what its signature requires).
 _NEEDS = {
     "one-sample": ("contrast",),
@@ -742,7 +746,7 @@ def _check_analyses(c: _Checker, raw: dict, *, contrasts, participants, columns,
                             c.add(f"{key}.levels", f"{level!r} is not a value of column {group}"
                                                    f"{_suggest(level, found)}; found {_listing(found)}")
                 options["levels"] = items
-        for name in ("welch", "tau2", "jobs"):  # simple values: the checks of the one table of options
+        for name in [n for n in _DESIGN_OPTIONS if n not in _SPECIAL]:  # checked by the table's rules alone
             if name in block and name in accepted:
                 problem = check_value(option(name, "analysis"), block[name])
                 if problem:
