@@ -424,3 +424,21 @@ def resolve(args, section: str, *, only_design: bool | None = None) -> tuple[dic
             problems.append(f"{o.cli} {problem}")
         values[o.py] = value
     return values, problems
+
+
+def progress_bar(*, show: bool | None = True, **kwargs):
+    """A tqdm progress bar shown only where it helps: on a terminal (tqdm's ``disable=None`` checks that stderr is
+    a tty, so log files get no cursor escapes) and as a widget in Jupyter. ``show=False`` hides it."""
+    from tqdm.auto import tqdm
+
+    if not show:
+        disable = True
+    else:
+        try:
+            from tqdm.notebook import tqdm_notebook
+
+            in_notebook = issubclass(tqdm, tqdm_notebook)
+        except ImportError:  # pragma: no cover - tqdm always has it
+            in_notebook = False
+        disable = False if in_notebook else None
+    return tqdm(disable=disable, **kwargs)

@@ -33,7 +33,7 @@ import pandas as pd
 import scipy.sparse as sp
 
 from . import __version__
-from ._options import spell
+from ._options import progress_bar, spell
 from ._tables import read_table, write_table
 from .errors import (
     CoverageWarning,
@@ -462,11 +462,9 @@ def _run_tasks_in_worker(tasks):
 
 
 def _progress(total: int, progress: bool | None, desc: str):
-    from tqdm.auto import tqdm
-
-    # shown only on a terminal (tqdm's disable=None checks isatty) and as a widget in Jupyter (tqdm.auto)
-    disable = True if progress is False or (progress is None and total < 20) else None
-    return tqdm(total=total, desc=desc, unit="map", disable=disable, leave=False)
+    # shown only on a terminal and as a widget in Jupyter (roikit._options.progress_bar)
+    show = not (progress is False or (progress is None and total < 20))
+    return progress_bar(show=show, total=total, desc=desc, unit="map", leave=False)
 
 
 def _headers(maps: pd.DataFrame, *, atol: float):

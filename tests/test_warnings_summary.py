@@ -74,3 +74,22 @@ def test_a_new_option_is_one_table_entry(monkeypatch):
     assert parser.parse_args(["--no-center"]).center is False
     assert parser.parse_args([]).center is None
     assert "center" in _options.study_keys()["analysis"]
+
+
+def test_progress_bars_only_on_a_terminal():
+    import io
+
+    from roikit._options import progress_bar
+
+    class Terminal(io.StringIO):
+        def isatty(self):
+            return True
+
+    for stream, shown in ((io.StringIO(), False), (Terminal(), True)):
+        bar = progress_bar(total=3, file=stream, desc="extracting")
+        bar.update(3)
+        bar.close()
+        assert ("extracting" in stream.getvalue()) is shown
+    hidden = io.StringIO()
+    progress_bar(show=False, total=3, file=hidden).close()
+    assert hidden.getvalue() == ""

@@ -26,7 +26,7 @@ import pandas as pd
 from scipy import ndimage
 
 from .. import __version__
-from .._options import spell
+from .._options import progress_bar, spell
 from .._tables import write_json, write_table
 from .._typing import PathLike, Seed
 from ..errors import OutputExistsError, UsageError
@@ -623,7 +623,6 @@ def make_study(
 
 
 def _write_all(tmp, geo, model, noise_rngs, recorded_seed, n_per_group, problems, progress):
-    from tqdm.auto import tqdm
 
     files: list[Path] = []
 
@@ -679,8 +678,8 @@ def _write_all(tmp, geo, model, noise_rngs, recorded_seed, n_per_group, problems
     dropout_b = geo.dropout[brain_idx]
     n_vox = geo.labels.size
     planted = model["planted"]
-    iterator = tqdm(range(len(ids)), desc="demo: writing maps", unit="participant", disable=None if progress else True,
-                    leave=False)
+    iterator = progress_bar(show=progress, iterable=range(len(ids)), desc="demo: writing maps", unit="participant",
+                            leave=False)
     for i in iterator:
         pid = ids[i]
         prng = noise_rngs[i]

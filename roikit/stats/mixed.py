@@ -20,7 +20,7 @@ from scipy import linalg as _la
 from scipy import optimize as _opt
 from scipy import stats as _st
 
-from .._options import spell
+from .._options import progress_bar, spell
 from ..errors import ConvergenceError, DesignError, DiagnosticWarning, UsageError
 from ._common import COLUMN_DESCRIPTIONS
 from ._registry import register
@@ -827,12 +827,10 @@ def _fit_region_one_thread(payload: dict) -> dict:
 
 
 def _run_regions(payloads: list[dict], regions: Sequence[str], n_jobs: int, executor=None) -> list[dict]:
-    from tqdm.auto import tqdm
-
     def _named(region, exc):
         return type(exc)(f"mixed: region {region!r}: {exc}")
 
-    bar = tqdm(total=len(payloads), desc="mixed models", unit="region", leave=False, disable=True if len(payloads) < 20 else None)
+    bar = progress_bar(show=len(payloads) >= 20, total=len(payloads), desc="mixed models", unit="region", leave=False)
     try:
         if executor is not None:
             return _collect(regions, [executor.submit(_fit_region_one_thread, p) for p in payloads], _named, bar)
