@@ -13,11 +13,12 @@ def add_parser(subparsers) -> None:
     p = subparsers.add_parser(
         "run",
         help=HELP,
-        description="Validate the study file (TOML; keys mirror the command-line options; paths relative to the "
-        "file) and report every problem at once; then extract the region values (maps unchanged since an earlier "
+        description="Validate the study file (TOML; every key and its command-line twin are listed in "
+        "docs/study-file.md; `roikit init FOLDER` writes a first one; paths are relative to the file) and report "
+        "every problem at once; then extract the region values (maps unchanged since an earlier "
         "run into the same folder are taken from its cache in DIR/.cache/), run every [[analysis]] and write "
-        "region_values.tsv, group_results.tsv (with JSON sidecars), tables/, figures/, report.html, methods.md "
-        "and provenance.json into DIR, and print a short summary.",
+        "region_values.tsv, group_results.tsv (with JSON sidecars), tables/, figures/, report.html, methods.md, "
+        "warnings.tsv and provenance.json into DIR, and print a short summary.",
     )
     p.add_argument("study", metavar="STUDY.toml", help="the study file")
     p.add_argument("--out", metavar="DIR", default=None,

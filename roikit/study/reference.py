@@ -113,6 +113,14 @@ def study_file_reference() -> str:
             default = "-" if o.default is None else (str(o.default).lower() if isinstance(o.default, bool)
                                                      else str(o.default))
             text = o.help + (" (one of: " + ", ".join(map(str, o.choices)) + ")" if o.choices else "")
+            if o.name == "design" and is_analysis:
+                from ..stats._registry import DESIGNS
+
+                text += " (one of: " + ", ".join(DESIGNS) + ")"
+            if o.name == "permutations" and is_analysis:
+                from ..stats._registry import PERMUTATIONS
+
+                text += "; designs with a permutation test: " + ", ".join(PERMUTATIONS)
             cells = [f"`{o.study_key}`", f"`{o.cli}`" if o.cli else "-", _TYPES.get(o.type, o.type),
                      f"`{default}`" if default != "-" else "-"]
             if is_analysis:
