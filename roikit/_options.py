@@ -26,7 +26,7 @@ from dataclasses import dataclass, field
 from typing import Any, Iterable, Iterator
 
 __all__ = ["Option", "OPTIONS", "option", "options_in", "study_keys", "flag", "spell", "entry_point",
-           "check_value", "suggest", "add_arguments", "resolve", "plural", "DESIGN_ALIASES"]
+           "check_value", "suggest", "add_arguments", "resolve", "plural", "noun", "progress_bar", "DESIGN_ALIASES"]
 
 _MISSING = object()
 
@@ -304,6 +304,12 @@ def _is_bool(name: str) -> bool:
 def plural(n: int, word: str, many: str | None = None) -> str:
     """``plural(1, "region")`` -> ``"1 region"``; ``plural(3, "analysis", "analyses")`` -> ``"3 analyses"``."""
     return f"{n} {word if n == 1 else (many or word + 's')}"
+
+
+def noun(count, word: str, many: str | None = None) -> str:
+    """The word in the singular or plural for ``count`` (a number or a sized collection), without the number."""
+    n = count if isinstance(count, (int, float)) else len(count)
+    return word if n == 1 else (many or word + "s")
 
 
 def suggest(word: Any, choices: Iterable[Any], aliases: dict | None = None) -> str:

@@ -33,7 +33,7 @@ import pandas as pd
 import scipy.sparse as sp
 
 from . import __version__
-from ._options import progress_bar, spell
+from ._options import noun, progress_bar, spell
 from ._tables import read_table, write_table
 from .errors import (
     CoverageWarning,
@@ -197,13 +197,13 @@ def _validate_maps(maps: pd.DataFrame, *, source: str) -> pd.DataFrame:
     required = ["participant_id", "contrast", "path"]
     missing = [c for c in required if c not in maps.columns]
     if missing:
-        raise MapDiscoveryError(f"{source}: map list lacks column(s) {missing}; found {list(maps.columns)}")
+        raise MapDiscoveryError(f"{source}: map list lacks {noun(missing, 'column')} {missing}; found {list(maps.columns)}")
     maps = maps.copy()
     for c in ("participant_id", "session_id", "contrast", "path", "variance_path"):
         if c in maps.columns:
             if maps[c].isna().any():
                 rows = (np.flatnonzero(maps[c].isna().to_numpy()) + 1).tolist()
-                raise MapDiscoveryError(f"{source}: column {c} is empty in row(s) {rows[:10]}")
+                raise MapDiscoveryError(f"{source}: column {c} is empty in {noun(rows, 'row')} {rows[:10]}")
             maps[c] = maps[c].astype(str)
     bad = [p for p in maps["participant_id"] if not p.startswith("sub-") or len(p) == 4]
     if bad:
@@ -387,7 +387,7 @@ def _region_variance(v: np.ndarray, valid: np.ndarray, n_valid: np.ndarray, inde
         per_region = np.rint(index.count @ bad.astype(np.float64)).astype(int)
         which = [f"{names[r]} ({per_region[r]})" for r in np.flatnonzero(per_region)][:5]
         raise ImageFormatError(
-            f"{path}: {int(bad.sum())} voxel(s) with valid effect data have zero, negative or missing variance "
+            f"{path}: {int(bad.sum())} {noun(int(bad.sum()), 'voxel')} with valid effect data have zero, negative or missing variance "
             f"(regions: {', '.join(which)}); a variance map must be positive wherever the effect map has data"
         )
     with np.errstate(invalid="ignore", divide="ignore"):
@@ -487,7 +487,7 @@ def _headers(maps: pd.DataFrame, *, atol: float):
             vh = read_header(vp)
             check_same_grid(h.grid, vh.grid, a_name=h.path, b_name=vh.path, atol=atol)
             if vh.n_volumes != h.n_volumes:
-                raise ImageFormatError(f"{vp}: {vh.n_volumes} volume(s), but its effect map {h.path} has {h.n_volumes}")
+                raise ImageFormatError(f"{vp}: {vh.n_volumes} {noun(vh.n_volumes, 'volume')}, but its effect map {h.path} has {h.n_volumes}")
         tasks.append(_Task(h.path, vol, h, vp if vh is not None else None, vh))
     return tasks, first
 

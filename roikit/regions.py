@@ -33,6 +33,7 @@ from typing import Iterable, Mapping, Sequence
 import numpy as np
 import pandas as pd
 
+from ._options import noun
 from ._tables import read_table
 from .errors import (LabelTableWarning, RegionError, RegionOverlapWarning, ResamplingWarning, RoikitDeprecationWarning,
                      RoikitWarning, UsageError)
@@ -206,7 +207,7 @@ def read_label_table(path) -> pd.DataFrame:
     missing = [c for c in ("index", "name") if c not in table.columns]
     if missing:
         raise RegionError(
-            f"{path}: label table lacks column(s) {', '.join(missing)}; found {', '.join(map(str, table.columns))}; "
+            f"{path}: label table lacks {noun(missing, 'column')} {', '.join(missing)}; found {', '.join(map(str, table.columns))}; "
             "a label table is a TSV with `index` and `name` columns"
         )
     idx = pd.to_numeric(table["index"], errors="coerce")
@@ -624,7 +625,7 @@ def _apply(step, regions: list[_Region], grid: Grid, *, atol, log) -> list[_Regi
         _, names, left, right, midline = step
         unknown = [n for n in (names or []) if n not in by_name]
         if unknown:
-            raise RegionError(f"split_hemispheres: unknown region(s) {unknown}; regions are {list(by_name)}")
+            raise RegionError(f"split_hemispheres: unknown {noun(unknown, 'region')} {unknown}; regions are {list(by_name)}")
         out = []
         dropped: list[tuple[str, int]] = []
         for r in regions:
@@ -670,20 +671,20 @@ def _apply(step, regions: list[_Region], grid: Grid, *, atol, log) -> list[_Regi
         names = step[1]
         unknown = [n for n in names if n not in by_name]
         if unknown:
-            raise RegionError(f"select: unknown region(s) {unknown}; regions are {list(by_name)}")
+            raise RegionError(f"select: unknown {noun(unknown, 'region')} {unknown}; regions are {list(by_name)}")
         return [by_name[n] for n in names]
     if kind == "rename":
         mapping = step[1]
         unknown = [n for n in mapping if n not in by_name]
         if unknown:
-            raise RegionError(f"rename: unknown region(s) {unknown}; regions are {list(by_name)}")
+            raise RegionError(f"rename: unknown {noun(unknown, 'region')} {unknown}; regions are {list(by_name)}")
         return [_Region(mapping.get(r.name, r.name), r.voxels, r.weights, {**r.source, **(
             {"original_name": r.name} if r.name in mapping else {})}) for r in regions]
     if kind == "union":
         _, name, names, keep = step
         unknown = [n for n in names if n not in by_name]
         if unknown:
-            raise RegionError(f"union: unknown region(s) {unknown}; regions are {list(by_name)}")
+            raise RegionError(f"union: unknown {noun(unknown, 'region')} {unknown}; regions are {list(by_name)}")
         if any(by_name[n].weights is not None for n in names):
             raise RegionError(f"union {name!r}: probability-weighted regions cannot be merged; threshold them into masks")
         vox = np.unique(np.concatenate([by_name[n].voxels for n in names]))

@@ -162,7 +162,7 @@ def test_non_positive_variance_inside_valid_voxels_is_an_error(tiny_study, tmp_p
     epath = tiny_study["maps"][("sub-01", "novel")][0]
     maps = pd.DataFrame([{"participant_id": "sub-01", "contrast": "novel", "path": str(epath),
                           "variance_path": str(vpath)}])
-    with pytest.raises(ImageFormatError, match=r"var.nii.gz: 2 voxel\(s\) .* right caudate \(1\), left caudate \(1\)"):
+    with pytest.raises(ImageFormatError, match=r"var.nii.gz: 2 voxels .* right caudate \(1\), left caudate \(1\)"):
         extract(maps, RegionSet([Atlas(tiny_study["atlas"], tiny_study["labels"])]))
 
 

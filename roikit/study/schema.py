@@ -11,7 +11,7 @@ from typing import Any, Iterable, Sequence
 import numpy as np
 import pandas as pd
 
-from .._options import DESIGN_ALIASES, check_value, option, options_in, study_keys, suggest
+from .._options import DESIGN_ALIASES, check_value, noun, option, options_in, study_keys, suggest
 from .._typing import PathLike
 from ..errors import InputFileError, RoikitError, UsageError
 from ..extraction import STATISTICS, VALUE_COLUMNS, find_maps, read_map_list, read_participants
@@ -459,7 +459,7 @@ def load_study(path: PathLike) -> Study:
         else:
             unknown = [n for n in circular if n not in realised.names]
             if unknown:
-                c.add("regions.circular", f"unknown region(s) {_listing(unknown)}; regions are "
+                c.add("regions.circular", f"unknown {noun(unknown, 'region')} {_listing(unknown)}; regions are "
                                           f"{_listing(realised.names, 20)}")
     if c.problems:
         raise StudyError(path, c.problems)
@@ -611,7 +611,7 @@ def _check_regions(c: _Checker, raw: dict) -> tuple[RegionSet | None, list[str] 
             if chosen is not None:
                 unknown = [n for n in chosen if complete and n not in names]
                 if unknown:
-                    c.add("regions.split_hemispheres", f"unknown region(s) {_listing(unknown)}; regions are "
+                    c.add("regions.split_hemispheres", f"unknown {noun(unknown, 'region')} {_listing(unknown)}; regions are "
                                                        f"{_listing(names, 20)}{_suggest(unknown[0], names)}")
                 names = [x for n in names for x in ((f"left {n}", f"right {n}") if n in chosen else (n,))]
                 regionset = regionset.split_hemispheres(chosen, midline=midline)
@@ -623,7 +623,7 @@ def _check_regions(c: _Checker, raw: dict) -> tuple[RegionSet | None, list[str] 
         if chosen is not None:
             unknown = [n for n in chosen if complete and n not in names]
             if unknown:
-                c.add("regions.select", f"unknown region(s) {_listing(unknown)}{_suggest(unknown[0], names)}; "
+                c.add("regions.select", f"unknown {noun(unknown, 'region')} {_listing(unknown)}{_suggest(unknown[0], names)}; "
                                         f"regions are {_listing(names, 20)}")
             names = chosen
             regionset = regionset.select(chosen)
@@ -634,7 +634,7 @@ def _check_regions(c: _Checker, raw: dict) -> tuple[RegionSet | None, list[str] 
         else:
             unknown = [n for n in mapping if complete and n not in names]
             if unknown:
-                c.add("regions.rename", f"unknown region(s) {_listing(unknown)}{_suggest(unknown[0], names)}; "
+                c.add("regions.rename", f"unknown {noun(unknown, 'region')} {_listing(unknown)}{_suggest(unknown[0], names)}; "
                                         f"regions are {_listing(names, 20)}")
             names = [mapping.get(n, n) for n in names]
             regionset = regionset.rename(mapping)
