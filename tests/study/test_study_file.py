@@ -84,7 +84,7 @@ design = "anova"
         "study.colour: unknown key",
         "regions.sphere[1].center: must be three numbers",
         "regions.sphere[1].radius: must be a positive number",
-        "regions.select: unknown region(s) left caudat; did you mean 'left caudate'?",
+        "regions.select: unknown region left caudat; did you mean 'left caudate'?",
         "extraction.statistic: must be one of mean, median, trimmed-mean, weighted-mean, found 'meen'; "
         "did you mean 'mean'?",
         "analysis[1].contrasts: unknown key; did you mean 'contrast'?",
