@@ -150,7 +150,8 @@ WARNING_COLUMNS = ("kind", "problem", "participant_id", "region", "context", "me
 def warning_records(caught) -> list[dict]:
     """Rows (one per finding) from caught warnings (``warnings.catch_warnings(record=True)``) or messages.
 
-    Warnings that are not roikit's are kept with kind ``other``. Columns: :data:`WARNING_COLUMNS`.
+    Warnings that are not roikit's are kept with kind ``other``; a finding repeated word for word is kept once.
+    Columns: :data:`WARNING_COLUMNS`.
     """
     rows: list[dict] = []
     for w in caught:
@@ -165,7 +166,10 @@ def warning_records(caught) -> list[dict]:
             rows.append({"kind": kind, "problem": f.get("problem") or _strip_context(text, context),
                          "participant_id": f.get("participant_id"), "region": f.get("region"),
                          "context": f.get("context", context), "message": text, "_category": category})
-    return rows
+    unique: dict = {}  # the same finding raised twice (e.g. regions realised at loading and at extraction) is one row
+    for row in rows:
+        unique.setdefault(tuple(str(row[k]) for k in WARNING_COLUMNS), row)
+    return list(unique.values())
 
 
 #: How the command line starts a warning line.

@@ -212,7 +212,8 @@ def run_study(
             for w in caught:  # messages naming the temporary folder name the output folder instead
                 if str(tmp) in str(w.message):
                     w.message = w.category(str(w.message).replace(str(tmp), str(out)))
-            rows = warning_records([w for w in caught if issubclass(w.category, RoikitWarning)])
+            rows = warning_records([w for w in list(study.load_warnings) + list(caught)
+                                    if issubclass(w.category, RoikitWarning)])
             recorded = [{k: r[k] for k in WARNING_COLUMNS} for r in rows]
             written.append(write_table(tmp / "warnings.tsv", pd.DataFrame(recorded, columns=list(WARNING_COLUMNS)),
                                        sidecar={"description": "every warning of this run, one row per finding"}))

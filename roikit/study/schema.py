@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import re
 import tomllib
+import warnings
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any, Iterable, Sequence
@@ -268,6 +269,9 @@ class Study:
     analyses : list of Analysis
     raw : dict
         The parsed TOML.
+    load_warnings : list
+        Warnings raised while realising the regions (overlaps, resampling, label tables); ``run_study`` lists them
+        in ``warnings.tsv``.
     """
 
     path: Path
@@ -283,6 +287,7 @@ class Study:
     jobs: int
     analyses: list[Analysis]
     raw: dict = field(repr=False, default_factory=dict)
+    load_warnings: list = field(repr=False, default_factory=list)
 
     @property
     def default_out(self) -> Path:
@@ -450,10 +455,15 @@ def load_study(path: PathLike) -> Study:
 
     # realise the regions on the maps' grid (only when everything else is sound: it reads images)
     realised = None
+    load_warnings: list = []
     if not c.problems and maps is not None and regions is not None:
         try:
             grid = read_header(maps["path"].iloc[0]).grid
-            realised = regions.realise(grid)
+            with warnings.catch_warnings(record=True) as load_warnings:  # kept for the run's warnings.tsv
+                warnings.simplefilter("always")
+                realised = regions.realise(grid)
+            for w in load_warnings:
+                warnings.warn_explicit(w.message, w.category, w.filename, w.lineno)
         except RoikitError as exc:
             c.add("regions", str(exc))
         else:
@@ -465,7 +475,7 @@ def load_study(path: PathLike) -> Study:
         raise StudyError(path, c.problems)
     return Study(path=path, title=title, participants_path=participants_path, participants=participants, maps=maps,
                  regions=regions, realised=realised, circular=circular, statistic=statistic, keep_zeros=keep_zeros,
-                 jobs=jobs, analyses=analyses, raw=raw)
+                 jobs=jobs, analyses=analyses, raw=raw, load_warnings=list(load_warnings))
 
 
 def _check_maps(c: _Checker, raw: dict) -> pd.DataFrame | None:

@@ -40,3 +40,23 @@ def test_midline_on_the_command_line(study_dir, tmp_path, capsys):
     with pytest.raises(SystemExit):
         main(["regions", "--atlas", "a.nii.gz", "--midline", "centre"])
     assert "invalid choice: 'centre'" in capsys.readouterr().err
+
+
+def test_overlap_found_when_the_study_is_loaded_is_in_warnings_tsv(study_dir, tmp_path):
+    from roikit._tables import read_table
+    from roikit.study import run_study
+
+    text = (study_dir / "study.toml").read_text().replace(
+        "[[analysis]]", '[[regions.sphere]]\nname = "peak copy"\ncenter = [-10.0, 0.0, 0.0]\nradius = 4.0\n\n'
+        "[[analysis]]", 1)
+    (study_dir / "study.toml").write_text(text)
+    with pytest.warns(Warning, match="overlapping regions"):
+        study = load_study(study_dir / "study.toml")
+    with pytest.warns(Warning):
+        run_study(study, out=tmp_path / "results", figures=False)
+    table = read_table(tmp_path / "results" / "warnings.tsv")
+    overlap = table[table["kind"] == "region overlap"]
+    # the sphere overlaps an atlas region, and its copy overlaps both: three findings, each once
+    assert overlap["region"].tolist() == ["22/33 voxels of prior peak lie in left caudate",
+                                          "22/33 voxels of peak copy lie in left caudate",
+                                          "33/33 voxels of prior peak lie in peak copy"]
