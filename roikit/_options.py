@@ -139,9 +139,10 @@ OPTIONS: tuple[Option, ...] = (
            choices=("drop", "both", "left", "right"), example='"both"'),
     Option("within", "regions", "path", "keep only region voxels inside this brain or analysis mask",
            metavar="IMAGE", example='"brain_mask.nii.gz"'),
-    Option("select", "regions", "names", "keep only these regions, in this order", flag="",
+    Option("select", "regions", "names", "keep only these regions, in this order", metavar="A,B",
            example='["left hippocampus", "right hippocampus"]'),
-    Option("rename", "regions", "mapping", "rename regions: a table of old = \"new\" names", flag="",
+    Option("rename", "regions", "mapping", "rename regions: a table of old = \"new\" names (command line: "
+           "OLD=NEW, repeatable)", metavar="OLD=NEW",
            example='{ "prior peak" = "sphere at prior peak" }'),
     Option("circular", "regions", "names", "regions defined from the same data that are tested (each output "
            "carries a circularity caution)", metavar="REGION", example='["prior peak"]'),

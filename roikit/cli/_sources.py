@@ -31,6 +31,9 @@ def add_region_options(parser: argparse.ArgumentParser) -> None:
                        help=f"{midline.help} (default {midline.default})")
     group.add_argument("--within", metavar="IMAGE",
                        help="keep only region voxels inside this brain/analysis mask")
+    group.add_argument("--select", metavar="A,B", help=option("select", "regions").help + " (comma-separated)")
+    group.add_argument("--rename", metavar="OLD=NEW", action="append", default=[],
+                       help="rename a region (repeatable)")
 
 
 def _name_value(text: str, option: str) -> tuple[str, str]:
@@ -71,4 +74,12 @@ def region_set_from_args(args: argparse.Namespace):
         regions = regions.split_hemispheres(midline=args.midline)
     if args.within:
         regions = regions.intersect(args.within)
+    if getattr(args, "select", None):
+        chosen = [n.strip() for n in args.select.split(",") if n.strip()]
+        if not chosen:
+            raise UsageError("--select: give region names separated by commas, e.g. --select 'left hippocampus,V1'")
+        regions = regions.select(chosen)
+    mapping = dict(_name_value(text, "--rename") for text in getattr(args, "rename", []) or [])
+    if mapping:
+        regions = regions.rename(mapping)
     return regions

@@ -60,3 +60,11 @@ def test_overlap_found_when_the_study_is_loaded_is_in_warnings_tsv(study_dir, tm
     assert overlap["region"].tolist() == ["22/33 voxels of prior peak lie in left caudate",
                                           "22/33 voxels of peak copy lie in left caudate",
                                           "33/33 voxels of prior peak lie in peak copy"]
+
+
+def test_select_and_rename_on_the_command_line_as_in_a_study_file(study_dir, tmp_path):
+    out = tmp_path / "regions.tsv"
+    assert main(["regions", "--atlas", str(study_dir / "atlas.nii.gz"), "--labels", str(study_dir / "atlas.tsv"),
+                 "--select", "left caudate,right caudate", "--rename", "left caudate=caudate L", "--like",
+                 str(study_dir / "maps" / "sub-01_contrast-novel_effect.nii.gz"), "--out", str(out)]) == 0
+    assert pd.read_csv(out, sep="\t")["region"].tolist() == ["caudate L", "right caudate"]
