@@ -188,25 +188,25 @@ def _overlap_html(provenance: dict | None, regions: set) -> list[str]:
     names = ordered_unique([p["region_a"] for p in pairs] + [p["region_b"] for p in pairs])
     shared = {(p["region_a"], p["region_b"]): p for p in pairs}
     esc = _html.escape
-    head = "".join(f"<th>{esc(str(n))}</th>" for n in names)
+    head = "".join(f'<th class="r">{esc(str(n))}</th>' for n in names)
     rows = []
     for a in names:
         cells = []
         for b in names:
             p = shared.get((a, b)) or shared.get((b, a))
             if a == b:
-                cells.append(f"<td>{esc(str(sizes.get(a, '')))}</td>")
+                cells.append(f'<td class="r">{esc(str(sizes.get(a, "")))}</td>')
             elif p is None:
-                cells.append("<td>0</td>")
+                cells.append('<td class="r">0</td>')
             else:
                 share = p["share_of_a"] if p["region_a"] == a else p["share_of_b"]
-                cells.append(f"<td>{int(p['n_shared'])} ({format_percent(100 * share)})</td>")
-        rows.append(f"<tr><th>{esc(str(a))}</th>{''.join(cells)}</tr>")
+                cells.append(f'<td class="r">{int(p["n_shared"])} ({format_percent(100 * share)})</td>')
+        rows.append(f'<tr><td class="l">{esc(str(a))}</td>{"".join(cells)}</tr>')
     note = ("Voxels shared by regions that overlap (diagonal: the region's voxels; in brackets: the share of the "
             "row's region). Overlapping regions are tested separately and both count in each correction family, "
             "so their tests are not independent.")
-    return [f'<div class="table-wrap"><table><thead><tr><th></th>{head}</tr></thead><tbody>{"".join(rows)}'
-            f"</tbody></table></div>", f"<p>{esc(note)}</p>"]
+    return [f'<div class="table-wrap"><table class="apa"><thead><tr><th></th>{head}</tr></thead>'
+            f'<tbody>{"".join(rows)}</tbody></table></div>', f"<p>{esc(note)}</p>"]
 
 
 def check_report_outputs(out: Path, overwrite: bool) -> None:
