@@ -68,3 +68,17 @@ def test_select_and_rename_on_the_command_line_as_in_a_study_file(study_dir, tmp
                  "--select", "left caudate,right caudate", "--rename", "left caudate=caudate L", "--like",
                  str(study_dir / "maps" / "sub-01_contrast-novel_effect.nii.gz"), "--out", str(out)]) == 0
     assert pd.read_csv(out, sep="\t")["region"].tolist() == ["caudate L", "right caudate"]
+
+
+def test_quiet_run_prints_no_warning_but_keeps_them_in_the_files(study_dir, tmp_path, capsys):
+    out = tmp_path / "results"
+    assert main(["run", str(study_dir / "study.toml"), "--out", str(out), "--no-figures", "--quiet"]) == 0
+    captured = capsys.readouterr()
+    assert captured.err == "" and captured.out.strip() == str(out)
+    assert (out / "warnings.tsv").is_file()
+    out2 = tmp_path / "loud"
+    assert main(["run", str(study_dir / "study.toml"), "--out", str(out2), "--no-figures"]) == 0
+    err = capsys.readouterr().err.splitlines()
+    assert err and all(len(line) <= 200 for line in err)
+    assert err[-1].startswith("roikit: every warning, one row per participant and region:")
+    assert len(err) - 1 == len(set(pd.read_csv(out2 / "warnings.tsv", sep="\t")["problem"]))
