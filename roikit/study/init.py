@@ -20,7 +20,7 @@ import pandas as pd
 from .._options import plural
 from .._tables import check_output
 from .._typing import PathLike
-from ..errors import MapDiscoveryError, RoikitError, UsageError
+from ..errors import MapDiscoveryError, UsageError
 from ..extraction import find_maps, read_participants
 from .schema import Study, load_study
 
@@ -379,10 +379,7 @@ def write_study_file(
     try:
         with os.fdopen(fd, "w", encoding="utf-8") as fh:
             fh.write(proposal.text)
-        try:
-            study = load_study(tmp)
-        except RoikitError:
-            raise
+        study = load_study(tmp)  # a StudyError lists every problem; nothing is written then
         os.replace(tmp, out)
     finally:
         if os.path.exists(tmp):

@@ -13,7 +13,7 @@ import inspect
 import sys
 from pathlib import Path
 
-from .._options import OPTIONS, Option, options_in
+from .._options import Option, options_in
 
 __all__ = ["study_file_reference", "write_reference"]
 
