@@ -353,6 +353,10 @@ def write_report(
     if figure_items:
         sections.append(Section("figures", "Figures", [figure_html(f) for f in figure_items]))
     sections.append(Section("descriptives", "Descriptive statistics", [f'<div class="table-wrap">{desc.to_html()}</div>']))
+    if extra.get("warnings"):  # one line per problem (roikit.errors.summarise_warnings); every finding: warnings.tsv
+        sections.append(Section("warnings", "Warnings", ["<ul>" + "".join(
+            f"<li>{_html.escape(str(line))}</li>" for line in extra["warnings"]) + "</ul>",
+            "<p>Every finding, one row per participant and region, is in warnings.tsv beside this report.</p>"]))
     overlap_html = _overlap_html(values_prov, set(values["region"].astype(str)))
     if overlap_html:
         sections.append(Section("overlap", "Region overlap", overlap_html))

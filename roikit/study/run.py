@@ -17,7 +17,7 @@ import pandas as pd
 from .._options import plural, spell
 from .._tables import sha256_file, sidecar_path, write_json, write_table
 from .._typing import PathLike
-from ..errors import (WARNING_COLUMNS, OutputExistsError, RoikitError, RoikitWarning, summarised,
+from ..errors import (WARNING_COLUMNS, OutputExistsError, RoikitError, RoikitWarning, summarise_warnings, summarised,
                       warning_records)
 from ..extraction import VALUE_COLUMNS
 from ..stats import COLUMN_DESCRIPTIONS
@@ -204,8 +204,11 @@ def run_study(
             if study.participants_path is not None:
                 inputs.append({"role": "participants", "path": os.fspath(study.participants_path),
                                "sha256": sha256_file(study.participants_path)})
+            so_far = warning_records([w for w in list(study.load_warnings) + list(caught)
+                                      if issubclass(w.category, RoikitWarning)])
             write_report(values, results, participants=study.participants, out=tmp, overwrite=True,
-                         provenance={"inputs": inputs, "options": {"command": "roikit run", "out": os.fspath(out)}},
+                         provenance={"inputs": inputs, "options": {"command": "roikit run", "out": os.fspath(out)},
+                                     "warnings": summarise_warnings(so_far)},
                          title=study.title, circular=study.circular, figures=figures,
                          figure_formats=tuple(figure_formats))
             seconds["report"] = time.perf_counter() - t0

@@ -82,3 +82,15 @@ def test_quiet_run_prints_no_warning_but_keeps_them_in_the_files(study_dir, tmp_
     assert err and all(len(line) <= 200 for line in err)
     assert err[-1].startswith("roikit: every warning, one row per participant and region:")
     assert len(err) - 1 == len(set(pd.read_csv(out2 / "warnings.tsv", sep="\t")["problem"]))
+
+
+def test_the_report_lists_the_run_s_warnings(study_dir, tmp_path):
+    from roikit.study import run_study
+
+    with pytest.warns(Warning):
+        run = run_study(study_dir / "study.toml", out=tmp_path / "results", figures=False)
+    html = (tmp_path / "results" / "report.html").read_text()
+    problems = list(dict.fromkeys(w["problem"] for w in run.warnings))
+    assert problems and '<section id="warnings">' in html
+    assert all(p.replace("'", "&#x27;").replace(">", "&gt;").replace("<", "&lt;") in html
+               for p in problems if "report carries" not in p)
