@@ -25,6 +25,8 @@ from .errors import InputFileError, OutputExistsError, OutputWriteError, UsageEr
 __all__ = [
     "read_table",
     "write_table",
+    "bids_sidecar",
+    "read_sidecar",
     "write_json",
     "sidecar_path",
     "sha256_file",
@@ -127,6 +129,75 @@ def _format_cell(x: Any) -> str:
     return text
 
 
+#: Units of columns roikit writes (the BIDS ``Units`` of their column descriptions).
+COLUMN_UNITS = {"n_voxels": "voxels", "n_valid": "voxels", "volume_mm3": "mm^3", "x_mm": "mm", "y_mm": "mm",
+                "z_mm": "mm", "radius_mm": "mm"}
+
+#: Levels of categorical columns roikit writes (the BIDS ``Levels``).
+COLUMN_LEVELS = {
+    "statistic_type": {"t": "t statistic (df in column df)", "F": "F statistic (df1, df)", "z": "z statistic"},
+    "population_inference": {"true": "random effects: inference about the population sampled",
+                             "false": "fixed effects: describes these participants only"},
+}
+
+
+def bids_sidecar(columns: Iterable[str], sidecar: dict) -> dict:
+    """A sidecar in the BIDS column-description layout.
+
+    ``{"columns": {name: text}, "description": ..., **other}`` becomes
+    ``{name: {"Description": text, ["Units": ...], ["Levels": {...}]}, ..., "GeneratedBy": [{"Name": "roikit",
+    "Version": ..., "Description": ..., **other}]}``: one entry per column of the table, plus one top-level
+    ``GeneratedBy`` entry holding the provenance. A sidecar that already has ``GeneratedBy`` is returned as is.
+    """
+    if "GeneratedBy" in sidecar:
+        return sidecar
+    from . import __version__
+
+    columns = [str(c) for c in columns]
+    if isinstance(sidecar.get("columns"), dict):
+        given = sidecar["columns"]
+        rest = {k: v for k, v in sidecar.items() if k != "columns"}
+    else:  # already column descriptions at the top level (e.g. participants.json)
+        given = {k: v for k, v in sidecar.items() if k in columns and isinstance(v, dict)}
+        rest = {k: v for k, v in sidecar.items() if k not in given}
+    out: dict = {}
+    for c in columns:
+        text = given.get(c, "")
+        entry = dict(text) if isinstance(text, dict) else {"Description": text or f"column {c} (see the documentation)"}
+        if c in COLUMN_UNITS:
+            entry.setdefault("Units", COLUMN_UNITS[c])
+        if c in COLUMN_LEVELS:
+            entry.setdefault("Levels", COLUMN_LEVELS[c])
+        out[str(c)] = entry
+    generated = {"Name": "roikit", "Version": __version__}
+    generated.update({("Description" if k == "description" else k): v for k, v in rest.items()})
+    out["GeneratedBy"] = [generated]
+    return out
+
+
+def read_sidecar(path: os.PathLike | str) -> dict:
+    """Read a table's JSON sidecar: ``{"columns": {name: description dict}, **the GeneratedBy entry}``.
+
+    Reads both the BIDS layout roikit writes and the earlier ``{"columns": {name: text}, ...}`` layout; ``{}``
+    when there is no sidecar.
+    """
+    side = sidecar_path(path) if Path(path).suffix != ".json" else Path(path)
+    if not side.is_file():
+        return {}
+    try:
+        data = json.loads(side.read_text(encoding="utf-8"))
+    except (OSError, ValueError) as exc:
+        raise InputFileError(f"{side}: JSON sidecar cannot be read ({exc}); fix or remove it") from exc
+    if not isinstance(data, dict):
+        return {}
+    if "GeneratedBy" not in data:
+        columns = data.get("columns", {}) if isinstance(data.get("columns"), dict) else {}
+        return {**data, "columns": {c: (v if isinstance(v, dict) else {"Description": v}) for c, v in columns.items()}}
+    generated = data["GeneratedBy"][0] if isinstance(data["GeneratedBy"], list) and data["GeneratedBy"] else {}
+    columns = {k: v for k, v in data.items() if k != "GeneratedBy" and isinstance(v, dict)}
+    return {**(generated if isinstance(generated, dict) else {}), "columns": columns}
+
+
 def write_table(
     path: os.PathLike | str,
     data: pd.DataFrame,
@@ -147,7 +218,8 @@ def write_table(
     data : DataFrame
         The table; its index is not written.
     sidecar : dict, optional
-        Written as JSON beside the table (``x.tsv`` -> ``x.json``).
+        Written as JSON beside the table (``x.tsv`` -> ``x.json``) in the BIDS column-description layout
+        (:func:`bids_sidecar`: every column described, plus one ``GeneratedBy`` entry with the rest).
     overwrite : bool
         Replace existing files (with ``writer``: files that are not unchanged outputs of ``writer``).
     writer : str, optional
@@ -162,7 +234,7 @@ def write_table(
         lines.append("\t".join(_format_cell(x) for x in row))
     files = {path.name: ("\n".join(lines) + "\n").encode("utf-8")}
     if sidecar is not None:
-        files[sidecar_path(path).name] = _json_bytes(sidecar)
+        files[sidecar_path(path).name] = _json_bytes(bids_sidecar(data.columns, sidecar))
     if writer is not None:
         write_files(path.parent, files, writer=writer, overwrite=overwrite)
         return path

@@ -35,6 +35,7 @@ import pandas as pd
 import scipy.sparse as sp
 
 from . import __version__
+from ._options import noun, progress_bar, spell
 from ._tables import read_table, write_table
 from .errors import (
     CoverageWarning,
@@ -47,7 +48,7 @@ from .errors import (
     UsageError,
 )
 from .images import DEFAULT_ATOL, MapHeader, check_same_grid, read_flat, read_header, verify_data
-from .regions import Regions, RegionSet
+from .regions import RealisedRegions, RegionSet
 
 __all__ = [
     "find_maps",
@@ -163,7 +164,7 @@ def find_maps(
     prefix = "" if os.path.isabs(pattern) else os.path.join(root, "").replace(os.sep, "/")
     glob_pattern, rx = _pattern_regex(pattern.replace(os.sep, "/"), prefix)
     if "{contrast}" not in pattern and contrast is None:
-        raise UsageError(f"pattern {pattern!r} has no {{contrast}} placeholder; add one or give contrast=")
+        raise UsageError(f"pattern {pattern!r} has no {{contrast}} placeholder; add one or give {spell('contrast')}")
     candidates = sorted(glob.glob(glob_pattern))
     rows = []
     unmatched = []
@@ -220,13 +221,13 @@ def _validate_maps(maps: pd.DataFrame, *, source: str) -> pd.DataFrame:
     required = ["participant_id", "contrast", "path"]
     missing = [c for c in required if c not in maps.columns]
     if missing:
-        raise MapDiscoveryError(f"{source}: map list lacks column(s) {missing}; found {list(maps.columns)}")
+        raise MapDiscoveryError(f"{source}: map list lacks {noun(missing, 'column')} {missing}; found {list(maps.columns)}")
     maps = maps.copy()
     for c in ("participant_id", "session_id", "contrast", "path", "variance_path"):
         if c in maps.columns:
             if maps[c].isna().any():
                 rows = (np.flatnonzero(maps[c].isna().to_numpy()) + 1).tolist()
-                raise MapDiscoveryError(f"{source}: column {c} is empty in row(s) {rows[:10]}")
+                raise MapDiscoveryError(f"{source}: column {c} is empty in {noun(rows, 'row')} {rows[:10]}")
             maps[c] = maps[c].astype(str)
     bad = [p for p in maps["participant_id"] if not p.startswith("sub-") or len(p) == 4]
     if bad:
@@ -360,7 +361,7 @@ class _Index:
     n_voxels: np.ndarray
 
     @classmethod
-    def build(cls, regions: Regions, *, weighted: bool) -> "_Index":
+    def build(cls, regions: RealisedRegions, *, weighted: bool) -> "_Index":
         vox = list(regions.voxels)
         lengths = np.array([len(v) for v in vox], dtype=np.int64)
         allv = np.concatenate(vox) if vox else np.empty(0, dtype=np.int64)
@@ -430,7 +431,7 @@ def _region_variance(v: np.ndarray, valid: np.ndarray, n_valid: np.ndarray, inde
         per_region = np.rint(index.count @ bad.astype(np.float64)).astype(int)
         which = [f"{names[r]} ({per_region[r]})" for r in np.flatnonzero(per_region)][:5]
         raise ImageFormatError(
-            f"{path}: {int(bad.sum())} voxel(s) with valid effect data have zero, negative or missing variance "
+            f"{path}: {int(bad.sum())} {noun(int(bad.sum()), 'voxel')} with valid effect data have zero, negative or missing variance "
             f"(regions: {', '.join(which)}); a variance map must be positive wherever the effect map has data"
         )
     with np.errstate(invalid="ignore", divide="ignore"):
@@ -545,10 +546,9 @@ def _run_tasks_in_worker(tasks):
 
 
 def _progress(total: int, progress: bool | None, desc: str):
-    from tqdm.auto import tqdm
-
-    disable = (not progress) if progress is not None else total < 20
-    return tqdm(total=total, desc=desc, unit="map", disable=disable, leave=False)
+    # shown only on a terminal and as a widget in Jupyter (roikit._options.progress_bar)
+    show = not (progress is False or (progress is None and total < 20))
+    return progress_bar(show=show, total=total, desc=desc, unit="map", leave=False)
 
 
 def _headers(maps: pd.DataFrame, *, atol: float):
@@ -572,14 +572,14 @@ def _headers(maps: pd.DataFrame, *, atol: float):
             vh = read_header(vp)
             check_same_grid(h.grid, vh.grid, a_name=h.path, b_name=vh.path, atol=atol)
             if vh.n_volumes != h.n_volumes:
-                raise ImageFormatError(f"{vp}: {vh.n_volumes} volume(s), but its effect map {h.path} has {h.n_volumes}")
+                raise ImageFormatError(f"{vp}: {vh.n_volumes} {noun(vh.n_volumes, 'volume')}, but its effect map {h.path} has {h.n_volumes}")
         tasks.append(_Task(h.path, vol, h, vp if vh is not None else None, vh))
     return tasks, first
 
 
 def extract(
     maps: pd.DataFrame,
-    regions: RegionSet | Regions,
+    regions: RegionSet | RealisedRegions,
     *,
     statistic: Literal["mean", "median", "trimmed-mean", "weighted-mean"] = "mean",
     keep_zeros: bool = False,
@@ -596,7 +596,7 @@ def extract(
     ----------
     maps : DataFrame
         A maps table (:func:`find_maps`, :func:`read_map_list`, :func:`maps_from_4d`).
-    regions : RegionSet or Regions
+    regions : RegionSet or RealisedRegions
         Regions; a RegionSet is realised on the maps' grid (resampling region images if needed).
     statistic : {"mean", "median", "trimmed-mean", "weighted-mean"}
         Summary over a region's valid voxels. ``trimmed-mean`` cuts 20% from each end
@@ -655,13 +655,13 @@ def extract(
     if isinstance(regions, RegionSet):
         region_sources = regions.describe()
         realised = regions.realise(grid, atol=atol)
-    elif isinstance(regions, Regions):
+    elif isinstance(regions, RealisedRegions):
         region_sources = None
         realised = regions
         if not realised.grid.matches(grid, atol=atol):
             raise UsageError("regions were realised on another grid than the maps'; pass the RegionSet instead")
     else:
-        raise UsageError(f"regions must be a RegionSet or Regions, got {type(regions).__name__}")
+        raise UsageError(f"regions must be a RegionSet or RealisedRegions, got {type(regions).__name__}")
     index = _Index.build(realised, weighted=statistic == "weighted-mean")
     names = list(realised.names)
     n_regions, n_maps = len(names), len(tasks)
@@ -878,8 +878,10 @@ def _warn_empty(table: pd.DataFrame) -> None:
         who = [f"{r.participant_id}/{r.contrast}/{r.region}" for r in empty.itertuples(index=False)]
         shown = ", ".join(who[:12]) + (f" and {len(who) - 12} more" if len(who) > 12 else "")
         warnings.warn(CoverageWarning(
-            f"{len(empty)} participant x contrast x region value(s) have no valid voxel and are n/a "
-            f"(rows kept): {shown}"), stacklevel=3)
+            f"{len(empty)} participant x contrast x region value{'s' if len(empty) != 1 else ''} have no valid "
+            f"voxel and are n/a (rows kept): {shown}",
+            findings=[{"problem": "no valid voxel: value n/a", "participant_id": r.participant_id,
+                       "region": r.region} for r in empty.itertuples(index=False)]), stacklevel=3)
 
 
 def write_values(path: str | os.PathLike, values: pd.DataFrame, *, overwrite: bool = False) -> Path:

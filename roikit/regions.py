@@ -2,7 +2,7 @@
 
 A :class:`RegionSet` is a *description* (sources plus operations such as hemisphere
 splitting, intersection, selection, renaming and union). It is realised on a
-voxel grid with :meth:`RegionSet.realise`, which returns :class:`Regions`: the
+voxel grid with :meth:`RegionSet.realise`, which returns :class:`RealisedRegions`: the
 voxels of each region as sorted flat indices in the grid's Fortran order (plus
 weights for probability regions). Regions may overlap; nothing is stored as one
 dense volume per region, so hundreds of regions cost a few megabytes.
@@ -10,7 +10,7 @@ dense volume per region, so hundreds of regions cost a few megabytes.
 Region images on another grid than the target are resampled with nearest
 neighbour through the two affines (:func:`roikit.images.resample_nearest`);
 this is announced once per image with a :class:`ResamplingWarning` and
-recorded in :attr:`Regions.resampling`.
+recorded in :attr:`RealisedRegions.resampling`.
 
 Examples
 --------
@@ -33,8 +33,10 @@ from typing import Iterable, Mapping, Sequence
 import numpy as np
 import pandas as pd
 
+from ._options import noun
 from ._tables import read_table
-from .errors import LabelTableWarning, RegionError, ResamplingWarning, UsageError
+from .errors import (LabelTableWarning, RegionError, RegionOverlapWarning, ResamplingWarning, RoikitDeprecationWarning,
+                     RoikitWarning, UsageError)
 from .images import DEFAULT_ATOL, Grid, check_overlap, load_map, read_header, resample_nearest
 
 __all__ = [
@@ -43,9 +45,17 @@ __all__ = [
     "Sphere",
     "ProbabilityMap",
     "RegionSet",
-    "Regions",
+    "RealisedRegions",
     "read_label_table",
+    "MIDLINE",
+    "OVERLAP_WARNING_SHARE",
 ]
+
+#: What a hemisphere split may do with voxels at x = 0 mm.
+MIDLINE = ("drop", "both", "left", "right")
+
+#: Regions sharing more than this share of the smaller region's voxels are announced when realised.
+OVERLAP_WARNING_SHARE = 0.2
 
 
 # --------------------------------------------------------------------------------------------------
@@ -62,8 +72,11 @@ class _Region:
 
 
 @dataclass
-class Regions:
-    """Regions realised on one grid (the output of :meth:`RegionSet.realise`).
+class RealisedRegions:
+    """Regions realised on one grid (the output of :meth:`RegionSet.realise`): the voxels of each region.
+
+    A :class:`RegionSet` says how regions are defined; a ``RealisedRegions`` holds their voxels on one grid.
+    (``Regions`` is its former name, kept as a deprecated alias.)
 
     Attributes
     ----------
@@ -119,6 +132,47 @@ class Regions:
             })
         return pd.DataFrame(rows, columns=["region", "n_voxels", "volume_mm3", "x_mm", "y_mm", "z_mm", "source"])
 
+    def overlaps(self) -> pd.DataFrame:
+        """Pairs of regions that share voxels (both count in a correction family).
+
+        Returns
+        -------
+        DataFrame with columns ``region_a``, ``region_b`` (in region order), ``n_shared`` (voxels in both),
+        ``share_of_a``, ``share_of_b`` (n_shared over each region's voxels) and ``share_of_smaller``; no rows when
+        no region overlaps another.
+        """
+        columns = ["region_a", "region_b", "n_shared", "share_of_a", "share_of_b", "share_of_smaller"]
+        if len(self.voxels) < 2:
+            return pd.DataFrame(columns=columns)
+        lengths = np.array([len(v) for v in self.voxels])
+        vox = np.concatenate(self.voxels) if lengths.sum() else np.zeros(0, np.int64)
+        rid = np.repeat(np.arange(len(self.voxels)), lengths)
+        order = np.argsort(vox, kind="stable")
+        vox, rid = vox[order], rid[order]
+        _, starts, counts = np.unique(vox, return_index=True, return_counts=True)
+        shared: dict[tuple[int, int], int] = {}
+        for start, count in zip(starts[counts > 1], counts[counts > 1]):
+            ids = rid[start:start + count]
+            for i in range(count):
+                for j in range(i + 1, count):
+                    key = (int(min(ids[i], ids[j])), int(max(ids[i], ids[j])))
+                    shared[key] = shared.get(key, 0) + 1
+        rows = []
+        for (a, b), n in sorted(shared.items()):
+            rows.append({"region_a": self.names[a], "region_b": self.names[b], "n_shared": n,
+                         "share_of_a": n / lengths[a], "share_of_b": n / lengths[b],
+                         "share_of_smaller": n / min(lengths[a], lengths[b])})
+        return pd.DataFrame(rows, columns=columns)
+
+    def overlap_matrix(self) -> pd.DataFrame:
+        """Regions x regions: voxels shared by each pair (the diagonal holds each region's voxel count)."""
+        m = pd.DataFrame(0, index=list(self.names), columns=list(self.names), dtype=np.int64)
+        for name, n in zip(self.names, self.n_voxels):
+            m.loc[name, name] = int(n)
+        for row in self.overlaps().itertuples(index=False):
+            m.loc[row.region_a, row.region_b] = m.loc[row.region_b, row.region_a] = int(row.n_shared)
+        return m
+
     def to_label_image(self) -> np.ndarray:
         """A 3D int32 image with region k (1-based) at its voxels; later regions win where regions overlap."""
         out = np.zeros(self.grid.n_voxels, dtype=np.int32)
@@ -132,7 +186,9 @@ class Regions:
         regions = []
         for row, src in zip(summary.to_dict("records"), self.sources):
             regions.append({**row, "source": src})
-        return {"grid": self.grid.to_dict(), "regions": regions, "resampling": list(self.resampling)}
+        overlaps = self.overlaps()
+        return {"grid": self.grid.to_dict(), "regions": regions, "resampling": list(self.resampling),
+                "overlaps": overlaps.to_dict("records")}
 
 
 # --------------------------------------------------------------------------------------------------
@@ -151,7 +207,7 @@ def read_label_table(path) -> pd.DataFrame:
     missing = [c for c in ("index", "name") if c not in table.columns]
     if missing:
         raise RegionError(
-            f"{path}: label table lacks column(s) {', '.join(missing)}; found {', '.join(map(str, table.columns))}; "
+            f"{path}: label table lacks {noun(missing, 'column')} {', '.join(missing)}; found {', '.join(map(str, table.columns))}; "
             "a label table is a TSV with `index` and `name` columns"
         )
     idx = pd.to_numeric(table["index"], errors="coerce")
@@ -225,8 +281,9 @@ class Atlas(_Source):
     ----------
     image : path
         3D NIfTI image of integer labels.
-    labels : path or DataFrame
-        Label table with ``index`` and ``name`` columns (BIDS style TSV).
+    labels : path or DataFrame, optional
+        Label table with ``index`` and ``name`` columns (BIDS style TSV). Without one, every label value in the
+        image becomes a region named ``label <index>``, with a :class:`LabelTableWarning` saying so.
 
     Notes
     -----
@@ -236,14 +293,27 @@ class Atlas(_Source):
     """
 
     image: str | os.PathLike
-    labels: str | os.PathLike | pd.DataFrame
+    labels: str | os.PathLike | pd.DataFrame | None = None
     space: str | None = None
     citation: str | None = None
     kind = "atlas"
 
     def realise(self, grid, *, atol, log):
-        table = self.labels if isinstance(self.labels, pd.DataFrame) else read_label_table(self.labels)
         data = _image_on_grid(self.image, grid, what="atlas", atol=atol, log=log)
+        if self.labels is None:
+            values = np.unique(data[np.isfinite(data) & (data != 0)])
+            if np.any(values != np.round(values)):
+                raise RegionError(f"atlas {self.image}: values are not integer labels; is it a probability map? "
+                                  "use a probability source with a threshold instead")
+            table = pd.DataFrame({"index": values.astype(np.int64),
+                                  "name": [f"label {int(v)}" for v in values]})
+            warnings.warn(LabelTableWarning(
+                f"atlas {self.image} has no label table: its {len(table)} labels are named 'label <index>' "
+                f"(label {int(values[0]) if len(values) else '-'} ...); give a TSV with index and name columns to "
+                "name them", findings=[{"problem": "atlas without a label table: regions named 'label <index>'"}]),
+                stacklevel=3)
+        else:
+            table = self.labels if isinstance(self.labels, pd.DataFrame) else read_label_table(self.labels)
         flat = data.ravel(order="F")
         if np.any(np.isfinite(flat) & (flat != np.round(flat))):
             raise RegionError(f"atlas {self.image}: values are not integer labels; is it a probability map? "
@@ -259,7 +329,8 @@ class Atlas(_Source):
         wanted = set(table["index"].tolist())
         absent = [int(i) for i in table["index"] if int(i) not in by_label]
         unlabelled = sorted(set(by_label) - wanted)
-        labels_name = self.labels if not isinstance(self.labels, pd.DataFrame) else "label table"
+        labels_name = "label table" if isinstance(self.labels, pd.DataFrame) else (
+            self.labels if self.labels is not None else "(none: generated names)")
         if absent:
             names = table.set_index("index").loc[absent, "name"].tolist()
             warnings.warn(LabelTableWarning(
@@ -468,14 +539,23 @@ class RegionSet:
         return RegionSet(self.sources + other.sources)
 
     # operations ----------------------------------------------------------------------------------
-    def split_hemispheres(self, names: Iterable[str] | None = None, *, left: str = "left {name}",
-                          right: str = "right {name}") -> "RegionSet":
-        """Split regions into left (world x < 0) and right (x > 0) parts; midline voxels (x = 0) are dropped
-        and counted in the region's source record.
+    def split_hemispheres(self, names: Iterable[str] | None = None, *, midline: str = "drop",
+                          left: str = "left {name}", right: str = "right {name}") -> "RegionSet":
+        """Split regions into left (world x < 0) and right (x > 0) parts.
+
+        Parameters
+        ----------
+        names : iterable of str, optional
+            Regions to split (default: all).
+        midline : {"drop", "both", "left", "right"}
+            Voxels at x = 0 mm: dropped (counted in the region's source record and announced with a warning),
+            given to both halves, or to one side.
 
         Assumes the world space has x increasing to the right (RAS+, as in MNI space).
         """
-        return self._with(("split", None if names is None else list(names), left, right))
+        if midline not in MIDLINE:
+            raise UsageError(f"midline must be one of {', '.join(MIDLINE)}, got {midline!r}")
+        return self._with(("split", None if names is None else list(names), left, right, midline))
 
     def intersect(self, mask, *, name: str = "analysis mask") -> "RegionSet":
         """Keep only voxels inside a brain/analysis mask image (non-zero voxels)."""
@@ -494,7 +574,7 @@ class RegionSet:
         return self._with(("union", name, list(names), keep))
 
     # realisation ---------------------------------------------------------------------------------
-    def realise(self, grid: Grid, *, atol: float = DEFAULT_ATOL, allow_empty: bool = False) -> Regions:
+    def realise(self, grid: Grid, *, atol: float = DEFAULT_ATOL, allow_empty: bool = False) -> RealisedRegions:
         """Realise the regions on ``grid``.
 
         Parameters
@@ -508,7 +588,7 @@ class RegionSet:
 
         Returns
         -------
-        Regions
+        RealisedRegions
         """
         if not self.sources:
             raise RegionError("no regions given; name at least one atlas, mask, sphere or probability map")
@@ -526,8 +606,10 @@ class RegionSet:
             for r in regions:
                 if len(r.voxels) == 0:
                     raise RegionError(_empty_message(r, grid))
-        return Regions(grid, names, [r.voxels for r in regions], [r.weights for r in regions],
-                       [r.source for r in regions], log)
+        realised = RealisedRegions(grid, names, [r.voxels for r in regions], [r.weights for r in regions],
+                           [r.source for r in regions], log)
+        _warn_overlaps(realised)
+        return realised
 
     def describe(self) -> list[dict]:
         """JSON-able list of sources and operations."""
@@ -542,6 +624,24 @@ class RegionSet:
             out.append({"operation": step[0], "arguments": [os.fspath(a) if isinstance(a, os.PathLike) else a
                                                             for a in step[1:]]})
         return out
+
+
+def _warn_overlaps(regions: RealisedRegions, share: float = OVERLAP_WARNING_SHARE) -> None:
+    """One :class:`RegionOverlapWarning` naming the pairs that share more than ``share`` of the smaller region."""
+    table = regions.overlaps()
+    big = table[table["share_of_smaller"] > share]
+    if big.empty:
+        return
+    pairs = []
+    for row in big.itertuples(index=False):
+        smaller, larger = ((row.region_a, row.region_b) if row.share_of_a >= row.share_of_b
+                           else (row.region_b, row.region_a))
+        n_small = int(regions.n_voxels[regions.names.index(smaller)])
+        pairs.append(f"{row.n_shared}/{n_small} voxels of {smaller} lie in {larger}")
+    warnings.warn(RegionOverlapWarning(
+        f"overlapping regions (both count in each correction family): {'; '.join(pairs)}",
+        findings=[{"problem": "overlapping regions (both count in each correction family)", "region": p}
+                  for p in pairs]), stacklevel=3)
 
 
 def _empty_message(region: _Region, grid: Grid) -> str:
@@ -561,24 +661,38 @@ def _apply(step, regions: list[_Region], grid: Grid, *, atol, log) -> list[_Regi
     kind = step[0]
     by_name = {r.name: r for r in regions}
     if kind == "split":
-        _, names, left, right = step
+        _, names, left, right, midline = step
         unknown = [n for n in (names or []) if n not in by_name]
         if unknown:
-            raise RegionError(f"split_hemispheres: unknown region(s) {unknown}; regions are {list(by_name)}")
+            raise RegionError(f"split_hemispheres: unknown {noun(unknown, 'region')} {unknown}; regions are {list(by_name)}")
         out = []
+        dropped: list[tuple[str, int]] = []
         for r in regions:
             if names is not None and r.name not in names:
                 out.append(r)
                 continue
             x = grid.voxel_to_world(grid.flat_to_ijk(r.voxels))[:, 0]
-            n_mid = int(np.sum(x == 0))
-            for side, keep in ((left, x < 0), (right, x > 0)):
+            mid = x == 0
+            n_mid = int(np.sum(mid))
+            if n_mid and midline == "drop":
+                dropped.append((r.name, n_mid))
+            for side, keep in ((left, (x < 0) | (mid & (midline in ("both", "left")))),
+                               (right, (x > 0) | (mid & (midline in ("both", "right"))))):
                 src = {**r.source, "hemisphere": "left" if side is left else "right", "parent": r.name,
-                       "midline_voxels_dropped": n_mid}
+                       "midline_voxels": n_mid, "midline": midline,
+                       "midline_voxels_dropped": n_mid if midline == "drop" else 0}
                 if not keep.any():
                     src["emptied_by"] = "splitting into hemispheres"
                 out.append(_Region(side.format(name=r.name), r.voxels[keep],
                                    None if r.weights is None else r.weights[keep], src))
+        if dropped:
+            total = sum(n for _, n in dropped)
+            warnings.warn(RoikitWarning(
+                f"hemisphere split: {total} midline voxel{'s' if total != 1 else ''} (x = 0 mm) dropped: "
+                + ", ".join(f"{name} {n}" for name, n in dropped)
+                + "; midline = \"both\", \"left\" or \"right\" keeps them",
+                findings=[{"problem": "midline voxels (x = 0 mm) dropped by the hemisphere split",
+                           "region": f"{name} ({n} voxels)"} for name, n in dropped]), stacklevel=4)
         return out
     if kind == "intersect":
         _, mask, name = step
@@ -596,23 +710,32 @@ def _apply(step, regions: list[_Region], grid: Grid, *, atol, log) -> list[_Regi
         names = step[1]
         unknown = [n for n in names if n not in by_name]
         if unknown:
-            raise RegionError(f"select: unknown region(s) {unknown}; regions are {list(by_name)}")
+            raise RegionError(f"select: unknown {noun(unknown, 'region')} {unknown}; regions are {list(by_name)}")
         return [by_name[n] for n in names]
     if kind == "rename":
         mapping = step[1]
         unknown = [n for n in mapping if n not in by_name]
         if unknown:
-            raise RegionError(f"rename: unknown region(s) {unknown}; regions are {list(by_name)}")
+            raise RegionError(f"rename: unknown {noun(unknown, 'region')} {unknown}; regions are {list(by_name)}")
         return [_Region(mapping.get(r.name, r.name), r.voxels, r.weights, {**r.source, **(
             {"original_name": r.name} if r.name in mapping else {})}) for r in regions]
     if kind == "union":
         _, name, names, keep = step
         unknown = [n for n in names if n not in by_name]
         if unknown:
-            raise RegionError(f"union: unknown region(s) {unknown}; regions are {list(by_name)}")
+            raise RegionError(f"union: unknown {noun(unknown, 'region')} {unknown}; regions are {list(by_name)}")
         if any(by_name[n].weights is not None for n in names):
             raise RegionError(f"union {name!r}: probability-weighted regions cannot be merged; threshold them into masks")
         vox = np.unique(np.concatenate([by_name[n].voxels for n in names]))
         kept = regions if keep else [r for r in regions if r.name not in names]
         return kept + [_Region(name, vox, None, {"kind": "union", "of": names})]
     raise UsageError(f"unknown region operation {kind!r}")  # pragma: no cover
+
+
+def __getattr__(name: str):
+    # former names, kept for a while with a RoikitDeprecationWarning
+    if name == "Regions":
+        warnings.warn(RoikitDeprecationWarning("roikit.regions.Regions is now RealisedRegions (the voxels of a "
+                                               "RegionSet on one grid); import RealisedRegions"), stacklevel=2)
+        return RealisedRegions
+    raise AttributeError(f"module {__name__!r} has no attribute {name!r}")

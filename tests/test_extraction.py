@@ -163,7 +163,7 @@ def test_non_positive_variance_inside_valid_voxels_is_an_error(tiny_study, tmp_p
     epath = tiny_study["maps"][("sub-01", "novel")][0]
     maps = pd.DataFrame([{"participant_id": "sub-01", "contrast": "novel", "path": str(epath),
                           "variance_path": str(vpath)}])
-    with pytest.raises(ImageFormatError, match=r"var.nii.gz: 2 voxel\(s\) .* right caudate \(1\), left caudate \(1\)"):
+    with pytest.raises(ImageFormatError, match=r"var.nii.gz: 2 voxels .* right caudate \(1\), left caudate \(1\)"):
         extract(maps, RegionSet([Atlas(tiny_study["atlas"], tiny_study["labels"])]))
 
 
@@ -246,8 +246,10 @@ def test_write_values_is_atomic_reruns_and_refuses_foreign_files(tiny_study, tmp
     np.testing.assert_array_equal(back["value"].to_numpy(), values["value"].to_numpy())  # exact round trip
     import json
 
-    side = json.loads((tmp_path / "values.json").read_text())
-    assert set(side["columns"]) == set(values.columns)
+    raw = json.loads((tmp_path / "values.json").read_text())
+    assert set(raw) == set(values.columns) | {"GeneratedBy"}
+    assert raw["n_voxels"] == {"Description": raw["n_voxels"]["Description"], "Units": "voxels"}
+    side = raw["GeneratedBy"][0]
     assert side["provenance"]["regions"][0]["n_voxels"] == 80
     from roikit.errors import OutputExistsError
 

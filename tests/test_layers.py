@@ -6,7 +6,7 @@ from pathlib import Path
 import roikit
 
 ORDER = ["base", "images", "regions", "extraction", "stats", "reporting", "study", "demo", "cli"]
-BASE = {"errors", "_tables", "_typing", "_outputs", "__init__"}
+BASE = {"errors", "_tables", "_typing", "_outputs", "_options", "__init__"}
 PACKAGE = Path(roikit.__file__).parent
 
 

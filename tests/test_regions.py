@@ -157,3 +157,61 @@ def test_region_images_on_another_grid_are_resampled_and_recorded(tmp_path, smal
     save_nifti(tmp_path / "far.nii.gz", fine[::2, ::2, ::2], affine=far, dtype=np.uint8)
     with pytest.raises(GridMismatchError, match="do not overlap"):
         RegionSet([Mask("far", tmp_path / "far.nii.gz")]).realise(small_grid)
+
+
+@pytest.mark.parametrize("midline, n_left, n_right", [("drop", 16, 32), ("both", 32, 48), ("left", 32, 32),
+                                                      ("right", 16, 48)])
+def test_midline_voxels_can_be_dropped_or_assigned(tiny_study, small_grid, midline, n_left, n_right):
+    # by construction (see above): slabs at x = 4, 2, 0, -2 mm of 16 voxels each; x = 0 is the midline slab
+    base = RegionSet([Atlas(tiny_study["atlas"], tiny_study["labels"])])
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
+        regions = base.split_hemispheres(["retrosplenial cortex"], midline=midline).realise(small_grid)
+    assert regions.n_voxels.tolist()[2:] == [n_left, n_right]
+    assert regions.sources[2]["midline_voxels"] == 16
+    said = [str(w.message) for w in caught if "midline" in str(w.message)]
+    if midline == "drop":
+        assert said and "16 midline voxels (x = 0 mm) dropped: retrosplenial cortex 16" in said[0]
+    else:
+        assert not said
+    with pytest.raises(UsageError, match="midline must be one of drop, both, left, right"):
+        base.split_hemispheres(midline="centre")
+
+
+def test_overlapping_regions_are_reported(tiny_study, small_grid):
+    # region 1 of the atlas is the block [2:6, 3:8, 4:8] (80 voxels); a mask on [2:6, 3:8, 4:5] (20 voxels)
+    # lies inside it: 20/20 of the mask, 20/80 of the atlas region, by construction
+    from helpers import save_nifti as save
+
+    mask = np.zeros(SMALL_SHAPE, dtype=np.uint8)
+    mask[2:6, 3:8, 4:5] = 1
+    path = tiny_study["atlas"].parent / "inner.nii.gz"
+    save(path, mask, dtype=np.uint8)
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
+        regions = RegionSet([Atlas(tiny_study["atlas"], tiny_study["labels"]), Mask("inner", path)]).realise(
+            small_grid)
+    table = regions.overlaps()
+    assert table[["region_a", "region_b", "n_shared"]].values.tolist() == [["right caudate", "inner", 20]]
+    assert table["share_of_b"].tolist() == [1.0] and table["share_of_a"].tolist() == [0.25]
+    matrix = regions.overlap_matrix()
+    assert matrix.loc["inner", "right caudate"] == 20 and matrix.loc["inner", "inner"] == 20
+    assert matrix.loc["left caudate", "inner"] == 0
+    assert any("20/20 voxels of inner lie in right caudate" in str(w.message) for w in caught)
+    assert regions.provenance()["overlaps"][0]["n_shared"] == 20
+
+
+def test_atlas_without_label_table_gets_generated_names(tiny_study, small_grid):
+    with pytest.warns(LabelTableWarning, match="has no label table: its 3 labels are named 'label <index>'"):
+        regions = RegionSet([Atlas(tiny_study["atlas"])]).realise(small_grid)
+    assert regions.names == ["label 1", "label 2", "label 3"]
+    assert regions.n_voxels.tolist() == [80, 96, 64]
+
+
+def test_former_name_of_realised_regions_is_deprecated():
+    import roikit.regions as regions_module
+    from roikit.errors import RoikitDeprecationWarning
+    from roikit.regions import RealisedRegions
+
+    with pytest.warns(RoikitDeprecationWarning, match="now RealisedRegions"):
+        assert regions_module.Regions is RealisedRegions

@@ -20,7 +20,14 @@ def test_tsv_round_trip_with_na_labels_and_exact_floats(tmp_path):
     back = read_table(path)
     assert back["participant_id"].tolist() == ["sub-007", "sub-01"]
     assert back["value"].iloc[0] == 0.1 + 0.2 and np.isnan(back["value"].iloc[1])
-    assert (tmp_path / "t.json").exists()
+    import json
+
+    from roikit._tables import read_sidecar
+
+    side = json.loads((tmp_path / "t.json").read_text())
+    assert side["value"] == {"Description": "x"} and side["GeneratedBy"][0]["Name"] == "roikit"
+    assert set(side) == set(table.columns) | {"GeneratedBy"}
+    assert read_sidecar(path)["columns"]["value"] == {"Description": "x"}
     with pytest.raises(OutputExistsError):
         write_table(path, table)
 

@@ -15,12 +15,13 @@ import sys
 import warnings
 
 from .. import __version__
+from .._options import entry_point
 from ..errors import RoikitError, RoikitWarning, UsageError, describe_os_error
 
 __all__ = ["main", "build_parser"]
 
 #: Sub-commands in the order ``roikit --help`` lists them.
-COMMANDS = ("demo", "regions", "extract", "stats", "report", "run", "plan")
+COMMANDS = ("demo", "init", "regions", "extract", "stats", "report", "run", "plan")
 
 
 class _Parser(argparse.ArgumentParser):
@@ -30,7 +31,9 @@ class _Parser(argparse.ArgumentParser):
         self.exit(2, f"{self.prog}: error: {message}\n")
 
 
-def build_parser() -> argparse.ArgumentParser:
+def build_parser(only: str | None = None) -> argparse.ArgumentParser:
+    """The ``roikit`` parser; with ``only``, only that sub-command gets its options (the others their one-line
+    help), so that ``roikit --help`` and ``--version`` do not import the libraries every command needs."""
     parser = _Parser(
         prog="roikit",
         description="Region-of-interest group analysis of first-level contrast maps. "
@@ -43,7 +46,10 @@ def build_parser() -> argparse.ArgumentParser:
         if importlib.util.find_spec(module_name) is None:
             continue
         module = importlib.import_module(module_name)
-        module.add_parser(sub)
+        if only is None or only == name or not hasattr(module, "HELP"):
+            module.add_parser(sub)
+        else:
+            sub.add_parser(name, help=module.HELP)
     return parser
 
 
@@ -51,9 +57,30 @@ def _format_warning(message, category, filename, lineno, line=None):
     return f"roikit: warning: {message}\n"
 
 
+def _print_warnings(caught, args) -> None:
+    """At most one line per problem (<= 200 characters) on stderr; nothing with --quiet."""
+    from ..errors import WARNING_PREFIX, summarise_warnings, warning_records
+
+    if getattr(args, "quiet", False) or not caught:
+        return
+    ours = [w for w in caught if issubclass(w.category, RoikitWarning)]
+    lines = summarise_warnings(warning_records(ours), prefix=WARNING_PREFIX)
+    for w in caught:
+        if not issubclass(w.category, RoikitWarning):
+            text = str(w.message).splitlines()[0] if str(w.message) else w.category.__name__
+            lines.append(WARNING_PREFIX + (text if len(text) <= 180 else text[:177] + "..."))
+    lines = list(dict.fromkeys(lines))
+    where = getattr(args, "warnings_file", None)
+    if where is not None and ours:
+        lines.append(f"roikit: every warning, one row per participant and region: {where}")
+    sys.stderr.write("".join(line + "\n" for line in lines))
+
+
 def main(argv: list[str] | None = None) -> int:
     """Entry point of the ``roikit`` console script."""
-    parser = build_parser()
+    argv = sys.argv[1:] if argv is None else list(argv)
+    first = next((a for a in argv if not a.startswith("-")), "")
+    parser = build_parser(first if first in COMMANDS else "")
     args = parser.parse_args(argv)
     if args.command is None:
         parser.print_help(sys.stderr)
@@ -62,10 +89,14 @@ def main(argv: list[str] | None = None) -> int:
 
     previous = warnings.formatwarning
     warnings.formatwarning = _format_warning
+    caught: list = []
     try:
-        with warnings.catch_warnings(), command_line():
+        with warnings.catch_warnings(record=True) as caught, entry_point("cli"), command_line():
             warnings.simplefilter("always", RoikitWarning)
-            return int(args.func(args) or 0)
+            try:
+                return int(args.func(args) or 0)
+            finally:
+                _print_warnings(caught, args)
     except UsageError as exc:
         print(f"roikit {args.command}: error: {exc}", file=sys.stderr)
         return 2

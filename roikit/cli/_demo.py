@@ -5,13 +5,18 @@ from __future__ import annotations
 import argparse
 import os
 
-from ..demo import DEFAULT_SEED, run_demo
 from ..errors import UsageError
+
+
+HELP = "write an invented example study to DIR/study and run the pipeline into DIR/results"
+
+#: Seed of the demo's generator (the same as roikit.demo.DEFAULT_SEED; a test checks they agree).
+DEFAULT_SEED = 2024
 
 
 def add_parser(subparsers) -> None:
     p = subparsers.add_parser(
-        "demo", help="write an invented example study to DIR/study and run the pipeline into DIR/results",
+        "demo", help=HELP,
         description="Generate the invented wayfinding study (32 adults, younger and older; first-level effect and "
                     "variance maps for novel, familiar, novel-vs-familiar and town1..town6; an atlas of nine "
                     "regions and a prior-peak sphere; participants.tsv; a study file; the ground truth) in "
@@ -20,14 +25,19 @@ def add_parser(subparsers) -> None:
     p.add_argument("--seed", type=int, default=DEFAULT_SEED, metavar="S",
                    help=f"seed of the generator (default {DEFAULT_SEED}); the same seed gives the same study")
     p.add_argument("--overwrite", action="store_true", help="replace an earlier demo in DIR (never anything else)")
-    p.add_argument("--quiet", action="store_true", help="no progress bar; print only where the outputs are")
+    p.add_argument("--quiet", action="store_true",
+                   help="no progress bar and no warnings on stderr (they stay in DIR/results/warnings.tsv and the "
+                        "report); print only where the outputs are")
     p.set_defaults(func=run)
 
 
 def run(args: argparse.Namespace) -> int:
+    from ..demo import run_demo
+
     if args.seed < 0:
         raise UsageError(f"--seed must be a non-negative integer, got {args.seed}")
     demo = run_demo(args.out, seed=args.seed, overwrite=args.overwrite, progress=not args.quiet)
+    args.warnings_file = demo.results / "warnings.tsv"
     truth = demo.study.ground_truth
     if args.quiet:
         print(demo.study.path)

@@ -5,16 +5,17 @@ from __future__ import annotations
 import argparse
 import sys
 
-from .._outputs import check_files
-from .._tables import sidecar_path
+from .._options import add_arguments, plural, resolve
 from ..errors import ExtractionError, UsageError
-from ..extraction import VALUES_WRITER, extract, find_maps, read_map_list, write_values
 from ._sources import add_region_options, region_set_from_args
+
+
+HELP = "summarise every map over every region into a region values table"
 
 
 def add_parser(subparsers) -> None:
     p = subparsers.add_parser(
-        "extract", help="summarise every map over every region into a region values table",
+        "extract", help=HELP,
         description="Read each first-level map once and summarise it over every region. Writes the region values "
                     "table (TSV, n/a for missing) and a JSON sidecar with column descriptions and provenance.")
     p.add_argument("--maps", metavar="PATTERN",
@@ -26,17 +27,11 @@ def add_parser(subparsers) -> None:
     p.add_argument("--variance", metavar="PATTERN", help="path pattern of the matching variance maps")
     add_region_options(p)
     p.add_argument("--out", required=True, metavar="VALUES.tsv", help="output table")
-    p.add_argument("--statistic", choices=["mean", "median", "trimmed-mean", "weighted-mean"], default="mean",
-                   help="summary over a region's valid voxels (default mean; trimmed-mean cuts 20%% per end; "
-                        "weighted-mean weights probability regions by probability)")
-    p.add_argument("--keep-zeros", action="store_true",
-                   help="treat voxels exactly 0 as data (default: as missing, as many packages write 0 outside "
-                        "their analysis mask)")
-    p.add_argument("--jobs", type=int, default=1, metavar="N", help="worker processes (default 1)")
+    add_arguments(p, "extraction")  # --statistic, --keep-zeros, --jobs: the [extraction] keys of a study file
     p.add_argument("--scheduler", metavar="ADDRESS",
                    help="run on a Dask cluster whose scheduler listens at ADDRESS (e.g. tcp://10.0.0.5:8786); "
                         "needs the `distributed` extra")
-    p.add_argument("--quiet", action="store_true", help="no progress bar or summary")
+    p.add_argument("--quiet", action="store_true", help="no progress bar, summary or warnings on stderr")
     p.add_argument("--overwrite", action="store_true", help="replace files roikit extract did not write (its own earlier "
                    "output is replaced without it)")
     p.set_defaults(func=run)
@@ -54,8 +49,13 @@ def _dask_client(address: str):
 
 
 def run(args: argparse.Namespace) -> int:
-    if args.jobs < 1:
-        raise UsageError(f"--jobs must be at least 1, got {args.jobs}")
+    from .._outputs import check_files
+    from .._tables import sidecar_path
+    from ..extraction import VALUES_WRITER, extract, find_maps, read_map_list, write_values
+
+    options, problems = resolve(args, "extraction")
+    if problems:
+        raise UsageError("; ".join(problems))
     # fail fast, before any work: a rerun replaces its own table and sidecar; anything else needs --overwrite
     check_files([args.out, sidecar_path(args.out)], writer=VALUES_WRITER, overwrite=args.overwrite)
     if (args.maps is None) == (args.map_list is None):
@@ -67,8 +67,7 @@ def run(args: argparse.Namespace) -> int:
         if args.variance:
             raise UsageError("--variance goes with --maps; with --map-list give a variance_path column")
         maps = read_map_list(args.map_list)
-    options = dict(statistic=args.statistic, keep_zeros=args.keep_zeros, n_jobs=args.jobs,
-                   progress=False if args.quiet else None)
+    options["progress"] = False if args.quiet else None
     if args.scheduler:
         with _dask_client(args.scheduler) as client:
             values = extract(maps, regions, client=client, **options)
@@ -78,6 +77,6 @@ def run(args: argparse.Namespace) -> int:
     if not args.quiet:
         n_missing = int(values["value"].isna().sum())
         sys.stderr.write(
-            f"roikit extract: {len(maps)} maps x {values['region'].nunique()} regions -> {path} "
+            f"roikit extract: {plural(len(maps), 'map')} x {plural(values['region'].nunique(), 'region')} -> {path} "
             f"({len(values)} rows, {n_missing} n/a)\n")
     return 0

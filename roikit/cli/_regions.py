@@ -5,16 +5,16 @@ from __future__ import annotations
 import argparse
 import sys
 
-from .._tables import write_table
 from ..errors import UsageError
-from ..images import Grid, read_grid
-from ..regions import Atlas, Mask, ProbabilityMap
 from ._sources import add_region_options, region_set_from_args
+
+
+HELP = "list regions: name, voxels, volume, centre of mass"
 
 
 def add_parser(subparsers) -> None:
     p = subparsers.add_parser(
-        "regions", help="list regions: name, voxels, volume, centre of mass",
+        "regions", help=HELP,
         description="List the regions of the given sources on a grid (the grid of --like MAP, else of the first "
                     "region image): name, n_voxels, volume_mm3 and centre of mass in world mm.")
     add_region_options(p)
@@ -31,7 +31,10 @@ def add_parser(subparsers) -> None:
     p.set_defaults(func=run)
 
 
-def _grid(args: argparse.Namespace, regions) -> Grid:
+def _grid(args: argparse.Namespace, regions):
+    from ..images import read_grid
+    from ..regions import Atlas, Mask, ProbabilityMap
+
     if args.like:
         return read_grid(args.like)
     for source in regions.sources:
@@ -41,6 +44,8 @@ def _grid(args: argparse.Namespace, regions) -> Grid:
 
 
 def run(args: argparse.Namespace) -> int:
+    from .._tables import write_table
+
     if args.figure:
         _figure_target(args)  # a wrong --figure stops before any work
     elif args.background:

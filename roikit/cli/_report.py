@@ -3,18 +3,20 @@
 from __future__ import annotations
 
 import argparse
-import json
 import sys
 from pathlib import Path
 
-from .._tables import read_table, sha256_file, sidecar_path
-from ..errors import InputFileError, UsageError
+from .._options import plural
+from ..errors import UsageError
+
+
+HELP = "tables, figures, methods text and a self-contained HTML report"
 
 
 def add_parser(subparsers) -> None:
     p = subparsers.add_parser(
         "report",
-        help="tables, figures, methods text and a self-contained HTML report",
+        help=HELP,
         description="Write DIR/tables/ (Markdown, LaTeX booktabs, HTML, Word, TSV), DIR/figures/ (PDF, SVG, "
         "300-dpi PNG at journal widths), DIR/methods.md, a single self-contained DIR/report.html and "
         "DIR/provenance.json (inputs with SHA-256, versions, options, seeds) from a region values table and a "
@@ -26,7 +28,10 @@ def add_parser(subparsers) -> None:
     p.add_argument("--out", required=True, metavar="DIR", help="output directory")
     p.add_argument("--overwrite", action="store_true", help="write into a DIR that holds files roikit report did "
                    "not write (an earlier report there is replaced without it)")
+    p.add_argument("--quiet", action="store_true", help="no summary and no warnings on stderr (the report's "
+                   "cautions section keeps them)")
     p.add_argument("--title", default="Region-of-interest group analysis", help="report title")
+    p.add_argument("--regions", metavar="A,B", help="draw and tabulate only these regions (comma-separated names)")
     p.add_argument("--contrasts", metavar="contrasts.tsv", default=None,
                    help="contrasts table; its JSON sidecar (LongName, Levels) names contrasts and their variables in "
                    "the text and tables")
@@ -46,17 +51,50 @@ def add_parser(subparsers) -> None:
 
 
 def _sidecar(path: Path) -> dict:
-    side = sidecar_path(path)
-    if not side.is_file():
-        return {}
-    try:
-        data = json.loads(side.read_text(encoding="utf-8"))
-    except (OSError, json.JSONDecodeError) as exc:
-        raise InputFileError(f"{side}: JSON sidecar cannot be read ({exc}); fix or remove it") from exc
-    return data if isinstance(data, dict) else {}
+    from .._tables import read_sidecar
+
+    return read_sidecar(path)
+
+
+def _names(text: str) -> list[str]:
+    return [t.strip() for t in text.split(",") if t.strip()]
+
+
+def _same_regions(values, results, args):
+    """Keep only ``--regions`` (when given); refuse values and results that do not cover the same regions."""
+    from .._options import suggest
+
+    in_values = list(dict.fromkeys(values["region"].astype(str)))
+    in_results = list(dict.fromkeys(results["region"].astype(str))) if "region" in results.columns else []
+    # rows about a pair of regions ("A - B") are fine when both are in the values table
+    pairs = {r for r in in_results if " - " in r and all(x in in_values for x in r.split(" - "))}
+    if args.regions is not None:
+        wanted = _names(args.regions)
+        unknown = [r for r in wanted if r not in in_values]
+        if not wanted or unknown:
+            raise UsageError(f"--regions: {', '.join(map(repr, unknown)) or 'no name given'} not in {args.values}"
+                             f"{suggest(unknown[0], in_values) if unknown else ''}; its regions are "
+                             f"{', '.join(in_values)}")
+        values = values[values["region"].astype(str).isin(wanted)]
+        keep = results["region"].astype(str).isin(wanted) | results["region"].astype(str).map(
+            lambda r: " - " in r and all(x in wanted for x in r.split(" - ")))
+        results = results[keep]
+        in_values, in_results = wanted, [r for r in in_results if r in wanted or r in pairs]
+    only_values = [r for r in in_values if r not in in_results]
+    only_results = [r for r in in_results if r not in in_values and r not in pairs]
+    if only_values or only_results:
+        parts = []
+        if only_values:
+            parts.append(f"only in --values: {', '.join(only_values[:8])}{' ...' if len(only_values) > 8 else ''}")
+        if only_results:
+            parts.append(f"only in --results: {', '.join(only_results[:8])}{' ...' if len(only_results) > 8 else ''}")
+        raise UsageError(f"{args.values} and {args.results} do not cover the same regions ({'; '.join(parts)}); "
+                         "give the values the results were computed from, or --regions A,B to report some regions")
+    return values.reset_index(drop=True), results.reset_index(drop=True)
 
 
 def run(args: argparse.Namespace) -> int:
+    from .._tables import read_table, sha256_file, sidecar_path
     from ..reporting.report import check_report_outputs, labels_from_sidecar, write_report
 
     out = Path(args.out)
@@ -67,6 +105,7 @@ def run(args: argparse.Namespace) -> int:
     values = read_table(values_path)
     results = read_table(results_path)
     participants = read_table(args.participants, label_columns=("participant_id",)) if args.participants else None
+    values, results = _same_regions(values, results, args)
     from ..reporting._common import read_sidecar_labels
 
     labels = {**(read_sidecar_labels(args.contrasts) if args.contrasts else {}),
@@ -94,7 +133,9 @@ def run(args: argparse.Namespace) -> int:
                            region_background=args.background or "maps",
                            column_labels=labels_from_sidecar(args.participants) if args.participants else None)
     n_fig = sum(1 for p in written["figures"] if p.suffix == ".png")
-    print(f"roikit report: wrote {len(written['tables'])} table files, {n_fig} figures, methods and results "
-          f"(.md, .docx), {written['references'].name}, {written['html'].name}, {written['provenance'].name} and "
-          f"{written['index'].name} (every file with its caption) in {out}")
+    if args.quiet:
+        return 0
+    print(f"roikit report: wrote {plural(len(written['tables']), 'table file')}, {plural(n_fig, 'figure')}, methods "
+          f"and results (.md, .docx), {written['references'].name}, {written['html'].name}, "
+          f"{written['provenance'].name} and {written['index'].name} (every file with its caption) in {out}")
     return 0

@@ -4,8 +4,8 @@ from __future__ import annotations
 
 import argparse
 
+from .._options import option
 from ..errors import UsageError
-from ..regions import Atlas, Mask, ProbabilityMap, RegionSet, Sphere
 
 __all__ = ["add_region_options", "region_set_from_args"]
 
@@ -14,7 +14,8 @@ def add_region_options(parser: argparse.ArgumentParser) -> None:
     group = parser.add_argument_group("region sources (combinable; regions keep this order: atlas, masks, "
                                       "probability maps, spheres)")
     group.add_argument("--atlas", metavar="IMAGE", help="labelled atlas image (integer labels, 0 = background)")
-    group.add_argument("--labels", metavar="TSV", help="label table of the atlas: TSV with `index` and `name` columns")
+    group.add_argument("--labels", metavar="TSV", help="label table of the atlas: TSV with `index` and `name` columns "
+                       "(without one, regions are named 'label <index>' with a warning)")
     group.add_argument("--mask", metavar="NAME=IMAGE", action="append", default=[],
                        help="binary mask image as a region (repeatable)")
     group.add_argument("--sphere", metavar="NAME=X,Y,Z,RADIUS", action="append", default=[],
@@ -25,8 +26,14 @@ def add_region_options(parser: argparse.ArgumentParser) -> None:
                        help="probability threshold for --probability maps (default 0.5)")
     group.add_argument("--split-hemispheres", action="store_true",
                        help="split every region into left (x < 0 mm) and right (x > 0 mm) parts")
+    midline = option("midline", "regions")
+    group.add_argument(midline.cli, choices=midline.choices, default=midline.default,
+                       help=f"{midline.help} (default {midline.default})")
     group.add_argument("--within", metavar="IMAGE",
                        help="keep only region voxels inside this brain/analysis mask")
+    group.add_argument("--select", metavar="A,B", help=option("select", "regions").help + " (comma-separated)")
+    group.add_argument("--rename", metavar="OLD=NEW", action="append", default=[],
+                       help="rename a region (repeatable)")
 
 
 def _name_value(text: str, option: str) -> tuple[str, str]:
@@ -36,10 +43,12 @@ def _name_value(text: str, option: str) -> tuple[str, str]:
     return name.strip(), value.strip()
 
 
-def region_set_from_args(args: argparse.Namespace) -> RegionSet:
+def region_set_from_args(args: argparse.Namespace):
+    from ..regions import Atlas, Mask, ProbabilityMap, RegionSet, Sphere
+
     sources = []
-    if (args.atlas is None) != (args.labels is None):
-        raise UsageError("--atlas and --labels go together: an atlas image needs its label table (index, name)")
+    if args.atlas is None and args.labels is not None:
+        raise UsageError("--labels goes with --atlas IMAGE (the label table names the atlas's labels)")
     if args.atlas is not None:
         sources.append(Atlas(args.atlas, args.labels))
     for text in args.mask:
@@ -62,7 +71,15 @@ def region_set_from_args(args: argparse.Namespace) -> RegionSet:
         raise UsageError("no region source given; use --atlas/--labels, --mask, --sphere or --probability")
     regions = RegionSet(sources)
     if args.split_hemispheres:
-        regions = regions.split_hemispheres()
+        regions = regions.split_hemispheres(midline=args.midline)
     if args.within:
         regions = regions.intersect(args.within)
+    if getattr(args, "select", None):
+        chosen = [n.strip() for n in args.select.split(",") if n.strip()]
+        if not chosen:
+            raise UsageError("--select: give region names separated by commas, e.g. --select 'left hippocampus,V1'")
+        regions = regions.select(chosen)
+    mapping = dict(_name_value(text, "--rename") for text in getattr(args, "rename", []) or [])
+    if mapping:
+        regions = regions.rename(mapping)
     return regions

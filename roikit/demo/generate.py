@@ -27,6 +27,7 @@ from scipy import ndimage
 
 from .. import __version__
 from .._outputs import consent_hint, consent_option
+from .._options import progress_bar
 from .._tables import write_json, write_table
 from .._typing import PathLike, Seed
 from ..errors import OutputExistsError, UsageError
@@ -93,20 +94,21 @@ class _RegionSpec:
 
 
 # Region centres are plausible MNI-like coordinates written from memory, rounded; they are
-# not taken from any atlas. Effects are in invented percent-signal-change units.
+# not taken from any atlas; the abbreviations are our own (side as a suffix). Effects are in invented
+# percent-signal-change units.
 _REGIONS = (
-    _RegionSpec("left hippocampus", "lHC", (-28, -22, -14), (6, 14, 6), (0.70, 0.40), (0.20, 0.20), 0.35, 0.15),
-    _RegionSpec("right hippocampus", "rHC", (28, -22, -14), (6, 14, 6), (0.75, 0.45), (0.20, 0.22), 0.35, 0.15),
-    _RegionSpec("left parahippocampal gyrus", "lPHG", (-24, -46, -10), (5, 8, 5), (0.55, 0.45), (0.30, 0.28),
+    _RegionSpec("left hippocampus", "hipp-L", (-28, -22, -14), (6, 14, 6), (0.70, 0.40), (0.20, 0.20), 0.35, 0.15),
+    _RegionSpec("right hippocampus", "hipp-R", (28, -22, -14), (6, 14, 6), (0.75, 0.45), (0.20, 0.22), 0.35, 0.15),
+    _RegionSpec("left parahippocampal gyrus", "parahipp-L", (-24, -46, -10), (5, 8, 5), (0.55, 0.45), (0.30, 0.28),
                 0.35, 0.15),
-    _RegionSpec("right parahippocampal gyrus", "rPHG", (24, -46, -10), (5, 8, 5), (0.60, 0.48), (0.30, 0.28),
+    _RegionSpec("right parahippocampal gyrus", "parahipp-R", (24, -46, -10), (5, 8, 5), (0.60, 0.48), (0.30, 0.28),
                 0.35, 0.15),
-    _RegionSpec("retrosplenial cortex", "RSC", (0, -52, 12), (10, 6, 8), (0.70, 0.60), (0.50, 0.45), 0.35, 0.15),
-    _RegionSpec("medial prefrontal cortex", "mPFC", (0, 48, 2), (10, 10, 10), (0.15, 0.10), (0.15, 0.10), 0.30,
+    _RegionSpec("retrosplenial cortex", "retrospl", (0, -52, 12), (10, 6, 8), (0.70, 0.60), (0.50, 0.45), 0.35, 0.15),
+    _RegionSpec("medial prefrontal cortex", "medpref", (0, 48, 2), (10, 10, 10), (0.15, 0.10), (0.15, 0.10), 0.30,
                 0.10),
-    _RegionSpec("left caudate", "lCAU", (-13, 12, 10), (4, 9, 7), (0.10, 0.10), (0.45, 0.40), 0.30, 0.10),
-    _RegionSpec("right caudate", "rCAU", (13, 12, 10), (4, 9, 7), (0.10, 0.10), (0.45, 0.40), 0.30, 0.10),
-    _RegionSpec("primary visual cortex", "V1", (0, -88, 4), (12, 8, 10), (1.20, 1.00), (1.20, 1.00), 0.40, 0.25),
+    _RegionSpec("left caudate", "caud-L", (-13, 12, 10), (4, 9, 7), (0.10, 0.10), (0.45, 0.40), 0.30, 0.10),
+    _RegionSpec("right caudate", "caud-R", (13, 12, 10), (4, 9, 7), (0.10, 0.10), (0.45, 0.40), 0.30, 0.10),
+    _RegionSpec("primary visual cortex", "vis1", (0, -88, 4), (12, 8, 10), (1.20, 1.00), (1.20, 1.00), 0.40, 0.25),
 )
 REGION_NAMES = tuple(r.name for r in _REGIONS)
 _MTL = ("left hippocampus", "right hippocampus", "left parahippocampal gyrus", "right parahippocampal gyrus")
@@ -622,7 +624,6 @@ def make_study(
 
 
 def _write_all(tmp, geo, model, noise_rngs, recorded_seed, n_per_group, problems, progress):
-    from tqdm.auto import tqdm
 
     files: list[Path] = []
 
@@ -678,8 +679,8 @@ def _write_all(tmp, geo, model, noise_rngs, recorded_seed, n_per_group, problems
     dropout_b = geo.dropout[brain_idx]
     n_vox = geo.labels.size
     planted = model["planted"]
-    iterator = tqdm(range(len(ids)), desc="demo: writing maps", unit="participant", disable=not progress,
-                    leave=False)
+    iterator = progress_bar(show=progress, iterable=range(len(ids)), desc="demo: writing maps", unit="participant",
+                            leave=False)
     for i in iterator:
         pid = ids[i]
         prng = noise_rngs[i]

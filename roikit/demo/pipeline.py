@@ -14,6 +14,7 @@ from pathlib import Path
 import pandas as pd
 
 from .._outputs import consent_hint, consent_option
+from .._options import progress_bar
 from .._typing import PathLike, Seed
 from ..errors import OutputExistsError
 from ..extraction import find_maps
@@ -160,14 +161,12 @@ def run_demo(
     >>> run.outputs["report"]  # doctest: +SKIP
     PosixPath('roikit-demo/results/report.html')
     """
-    from tqdm.auto import tqdm
-
     out = Path(out)
     _check_targets(out, overwrite)
     out.mkdir(parents=True, exist_ok=True)
     results = out / "results"
     seconds: dict[str, float] = {}
-    bar = tqdm(total=2, desc="roikit demo", unit="step", disable=not progress, leave=False)
+    bar = progress_bar(show=progress, total=2, desc="roikit demo", unit="step", leave=False)
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always")
         try:

@@ -3,6 +3,12 @@
 The only layer that rounds numbers. Everything starts from the tidy tables the other layers write: the
 region values table and the group results table (plus participants.tsv).
 
+Names follow one rule (one name per kind of thing returned): ``*_plot`` draws one panel on an Axes
+(``participant_plot``, ``forest_plot``); ``*_figure`` returns a whole Figure of panels (``participant_figure``);
+a bare noun returns numbers as a DataFrame (``descriptives``); ``*_table``/``*_tables`` return formatted
+:class:`ReportTable` objects ready to write (``descriptives_table``, ``results_tables``; ``results_table`` is the
+single-table shortcut and refuses results that need several).
+
 Examples
 --------
 >>> from roikit.reporting import write_report, in_text, results_tables, participant_plot

@@ -39,6 +39,7 @@ from matplotlib.collections import LineCollection
 from matplotlib.transforms import blended_transform_factory
 from scipy import stats
 
+from .._options import spell
 from .._tables import atomic_write_bytes, check_output
 from ..errors import UsageError
 from ._common import (
@@ -431,7 +432,7 @@ def participant_plot(
         labels = group_of(part, participants, group)
         if labels is None:
             raise UsageError(f"group column {group!r} is neither in the values table nor in participants; "
-                             "pass participants=... or choose an existing column")
+                             f"pass {spell('participants')} or choose an existing column")
         part["_group"] = labels.to_numpy()
         groups = [str(g) for g in levels] if levels is not None else ordered_unique(part["_group"])
         part = part[part["_group"].isin(groups)]

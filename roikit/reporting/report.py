@@ -18,6 +18,7 @@ from typing import Any, Iterable
 import numpy as np
 import pandas as pd
 
+
 from .. import __version__
 from .._outputs import FolderOutputs, check_folder
 from .._tables import atomic_write_bytes, read_table, sha256_file, write_json
@@ -50,7 +51,7 @@ from .figures import (
     save_figure,
     stimulus_plot,
 )
-from .format import correction_name, corrected_p_symbol, escape_markup, render
+from .format import correction_name, corrected_p_symbol, escape_markup, format_percent, render
 from .html import ReportFigure, Section, figure_html, report_html
 from .tables import ReportTable, descriptives_table, results_tables, word_document, write_latex_preamble
 from .references import bibtex, reference_list
@@ -312,6 +313,37 @@ def _region_rows(regions) -> list[list[str]]:
 _MAX_REGIONS_DRAWN = 50
 
 _REGION_HEAD = ["Region", "Definition", "Voxels", "Volume (mm³)", "x (mm)", "y (mm)", "z (mm)"]
+
+
+def _overlap_html(provenance: dict | None, regions: set) -> list[str]:
+    """The voxels shared by overlapping regions, as a matrix (nothing when no region overlaps another)."""
+    pairs = (provenance or {}).get("overlaps") if isinstance(provenance, dict) else None
+    pairs = [p for p in pairs or [] if p.get("region_a") in regions and p.get("region_b") in regions]
+    if not pairs:
+        return []
+    sizes = {r.get("region"): r.get("n_voxels") for r in (provenance.get("regions") or []) if isinstance(r, dict)}
+    names = ordered_unique([p["region_a"] for p in pairs] + [p["region_b"] for p in pairs])
+    shared = {(p["region_a"], p["region_b"]): p for p in pairs}
+    esc = _html.escape
+    head = "".join(f'<th class="r">{esc(str(n))}</th>' for n in names)
+    rows = []
+    for a in names:
+        cells = []
+        for b in names:
+            p = shared.get((a, b)) or shared.get((b, a))
+            if a == b:
+                cells.append(f'<td class="r">{esc(str(sizes.get(a, "")))}</td>')
+            elif p is None:
+                cells.append('<td class="r">0</td>')
+            else:
+                share = p["share_of_a"] if p["region_a"] == a else p["share_of_b"]
+                cells.append(f'<td class="r">{int(p["n_shared"])} ({format_percent(100 * share)})</td>')
+        rows.append(f'<tr><td class="l">{esc(str(a))}</td>{"".join(cells)}</tr>')
+    note = ("Voxels shared by regions that overlap (diagonal: the region's voxels; in brackets: the share of the "
+            "row's region). Overlapping regions are tested separately and both count in each correction family, "
+            "so their tests are not independent.")
+    return [f'<figure class="table" id="region-overlap"><p class="scroll-hint" aria-hidden="true"></p><div class="table-scroll" tabindex="0" role="region" aria-label="Region overlap, scrolls sideways"><table class="apa"><thead><tr><th></th>{head}</tr></thead>'
+            f'<tbody>{"".join(rows)}</tbody></table></div></figure>', f"<p>{esc(note)}</p>"]
 
 
 #: The writer recorded in a report folder's manifest (:mod:`roikit._outputs`).
@@ -647,6 +679,13 @@ def write_report(
     if analysis_items:
         sections.append(Section("figures", "Figures", [figure_html(f) for f in analysis_items]))
     sections.append(Section("descriptives", "Descriptive statistics", [desc.to_html()]))
+    if extra.get("warnings"):  # one line per problem (roikit.errors.summarise_warnings); every finding: warnings.tsv
+        sections.append(Section("warnings", "Warnings", ["<ul>" + "".join(
+            f"<li>{_html.escape(str(line))}</li>" for line in extra["warnings"]) + "</ul>",
+            "<p>Every finding, one row per participant and region, is in warnings.tsv beside this report.</p>"]))
+    overlap_html = _overlap_html(values_prov, set(values["region"].astype(str)))
+    if overlap_html:
+        sections.append(Section("overlap", "Region overlap", overlap_html))
     sections.append(Section("assumptions", "Assumptions and scope", [
         "<ul>" + "".join(f"<li>{render(a, 'html')}</li>" for a in assumption_lines) + "</ul>",
         f"<p>{_html.escape(SCOPE_STATEMENT)}</p>"]))
@@ -701,10 +740,12 @@ def write_report(
     if long_names:  # a safety net: names are built short, so this means a bug
         raise RuntimeError(f"roikit wrote file names longer than {MAX_NAME} characters: {long_names}")
     if found:
-        lines = [render(c["text"], "plain") for c in found]
+        # one line on stderr (the per-participant lines are the warnings' own summaries; every caution is in the
+        # report, results.md and warnings.tsv)
+        kinds = ordered_unique(c["kind"] for c in found)
         warnings.warn(CautionWarning(
-            f"the report carries {len(found)} caution(s) (details in {html_path}):\n" + "\n".join(
-                "  " + line for line in lines)), stacklevel=2)
+            f"the report carries {len(found)} caution{'s' if len(found) != 1 else ''} ({', '.join(kinds)}); "
+            f"read them in {html_path}"), stacklevel=2)
     return {"tables": table_paths, "figures": figure_paths, "methods": methods_path, "methods_docx": methods_docx,
             "results": results_path, "results_docx": results_docx, "references": bib_path, "index": index_path,
             "html": html_path, "provenance": prov_path, "cautions": found}

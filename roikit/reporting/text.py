@@ -100,7 +100,10 @@ def software_versions() -> dict[str, str]:
 def _prov(provenance: dict | None) -> dict:
     if not isinstance(provenance, dict):
         return {}
-    # a values sidecar nests the provenance under "provenance"
+    # a values sidecar (BIDS layout) keeps it in its GeneratedBy entry, nested under "provenance"
+    generated = provenance.get("GeneratedBy")
+    if isinstance(generated, list) and generated and isinstance(generated[0], dict):
+        provenance = generated[0]
     if "provenance" in provenance and isinstance(provenance["provenance"], dict) and "regions" not in provenance:
         return provenance["provenance"]
     return provenance

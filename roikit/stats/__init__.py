@@ -19,6 +19,7 @@ from typing import Sequence
 import numpy as np
 import pandas as pd
 
+from .._options import _ENTRY, flag, spell
 from .._tables import read_table
 from .._typing import Seed
 from ..errors import UsageError
@@ -51,8 +52,9 @@ def _participants_table(participants) -> pd.DataFrame | None:
 
 
 def _flag(name: str) -> str:
-    """The command-line spelling of a design option (``n_jobs`` is ``--jobs``)."""
-    return "--" + {"n_jobs": "jobs"}.get(name, name).replace("_", "-")
+    """A design option as the user spells it where they are (``--jobs`` on the command line, ``n_jobs`` in
+    Python)."""
+    return flag(name) if _ENTRY.get() == "cli" else name
 
 
 def _check_options(func, design: str, options: dict) -> None:
@@ -63,8 +65,7 @@ def _check_options(func, design: str, options: dict) -> None:
     lacking = [n for n in required if n not in options]
     if lacking:
         raise UsageError(
-            f"design {design!r} needs {', '.join(n + '=' for n in lacking)} "
-            f"({', '.join(_flag(n) for n in lacking)}); none was given"
+            f"design {design!r} needs {', '.join(spell(n) for n in lacking)}; none was given"
         )
     if any(p.kind is inspect.Parameter.VAR_KEYWORD for p in parameters.values()):
         return
@@ -73,7 +74,8 @@ def _check_options(func, design: str, options: dict) -> None:
     unknown = [k for k in options if k not in accepted]
     if unknown:
         raise UsageError(
-            f"option(s) {', '.join(_flag(k) for k in unknown)} do not apply to design {design!r}; "
+            f"{'option' if len(unknown) == 1 else 'options'} {', '.join(_flag(k) for k in unknown)} "
+            f"{'does' if len(unknown) == 1 else 'do'} not apply to design {design!r}; "
             f"it takes {', '.join(_flag(k) for k in accepted) or 'no options'}"
         )
 
@@ -202,7 +204,7 @@ def run_design(
         permute = PERMUTATIONS.get(design)
         if permute is None:
             raise UsageError(
-                f"design {design!r} does not support permutations; use permutations=0 (drop --permutations) or one "
+                f"design {design!r} does not support permutations; use {spell('permutations', 0)} or one "
                 f"of: {', '.join(d for d in available_designs() if d in PERMUTATIONS)}"
             )
         recorded_seed, rng = _resolve_seed(seed)

@@ -22,6 +22,7 @@ from typing import Iterable, Sequence
 import numpy as np
 import pandas as pd
 
+from .._options import spell
 from ..errors import CoverageWarning, DesignError, MissingValueWarning, UsageError
 
 __all__ = [
@@ -319,8 +320,7 @@ def join_participants(
     columns = list(columns)
     if participants is None:
         raise UsageError(
-            f"this design needs participants.tsv column(s) {', '.join(columns)}; pass participants=... "
-            "(--participants participants.tsv)"
+            f"this design needs participants.tsv column(s) {', '.join(columns)}; pass {spell('participants')}"
         )
     if not isinstance(participants, pd.DataFrame):
         raise UsageError(f"participants must be a DataFrame, got {type(participants).__name__}")
@@ -370,10 +370,15 @@ def warn_exclusions(
     if not parts:
         return
     total = sum(len(ids) for ids in excluded)
-    warnings.warn(
-        f"{context}: {total} participant-region value(s) excluded ({reason}), each for its region only: "
-        + "; ".join(parts),
-        MissingValueWarning,
+    # a participant with no value in any region (e.g. no map for the contrast) is one finding, not one per region
+    everywhere = set.intersection(*(set(ids) for ids in excluded)) if len(regions) > 1 else set()
+    findings = [{"problem": f"no value in any region ({reason}; no map?), left out", "participant_id": pid}
+                for pid in sorted(everywhere)]
+    findings += [{"problem": f"{reason}, left out of that region's test", "participant_id": pid, "region": r}
+                 for r, ids in zip(regions, excluded) for pid in ids if pid not in everywhere]
+    warnings.warn(MissingValueWarning(
+        f"{context}: {total} participant-region value{'s' if total != 1 else ''} excluded ({reason}), each for "
+        "its region only: " + "; ".join(parts), findings=findings, context=context),
         stacklevel=stacklevel,
     )
 
@@ -417,10 +422,12 @@ def warn_low_coverage(
     parts = [f"{r}: {', '.join(ids)}" for r, ids in zip(regions, flagged) if len(ids)]
     if not parts:
         return
-    warnings.warn(
+    problem = f"fewer than {LOW_COVERAGE_THRESHOLD:.0%} valid voxels in a region (kept)"
+    warnings.warn(CoverageWarning(
         f"{context}: participants with fewer than {LOW_COVERAGE_THRESHOLD:.0%} valid voxels "
         f"(n_valid / n_voxels) in a region: " + "; ".join(parts),
-        CoverageWarning,
+        findings=[{"problem": problem, "participant_id": pid, "region": r}
+                  for r, ids in zip(regions, flagged) for pid in ids], context=context),
         stacklevel=stacklevel,
     )
 

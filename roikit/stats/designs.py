@@ -17,6 +17,7 @@ import numpy as np
 import pandas as pd
 from scipy import linalg, stats
 
+from .._options import spell
 from ..errors import DesignError, MissingValueWarning, UsageError
 from ._common import (
     check_minimum_n,
@@ -146,7 +147,7 @@ def ols_matrix(x: np.ndarray, y: np.ndarray) -> dict[str, np.ndarray]:
 
 def _require(option: str, value: object, design: str, flag: str) -> None:
     if value is None or (isinstance(value, str) and not value.strip()):
-        raise UsageError(f"design {design!r} needs {option}= ({flag}); none was given")
+        raise UsageError(f"design {design!r} needs {spell(option)}; none was given")
 
 
 def _diagnostic_columns(resid: pd.DataFrame) -> dict:
@@ -359,7 +360,7 @@ def _prepare_two_group(values, participants, contrast, group, levels, *, warn: b
         if len(observed_levels) != 2:
             raise UsageError(
                 f"column {group!r} has {len(observed_levels)} level(s) ({', '.join(observed_levels)}); "
-                "pass levels='L1,L2' (--levels L1,L2) to choose the two groups compared"
+                f"pass {spell('levels', example='L1,L2')} to choose the two groups compared"
             )
         levels = observed_levels
     for lev in levels:
@@ -534,7 +535,7 @@ def _prepare_glm(values, participants, contrast, formula, *, center=True, warn=T
     if unknown:
         raise UsageError(
             f"glm formula {formula!r} names {', '.join(unknown)}, not a column of participants.tsv"
-            + (f" (available: {', '.join(p_columns)})" if p_columns else " (pass participants=... / --participants)")
+            + (f" (available: {', '.join(p_columns)})" if p_columns else f" (pass {spell('participants')})")
         )
     data = (
         join_participants(list(y.index), participants, variables)

@@ -12,6 +12,7 @@ import numpy as np
 import pandas as pd
 from scipy import stats
 
+from .._options import spell
 from ..errors import DiagnosticWarning
 from ._common import join_ids
 
@@ -123,9 +124,13 @@ def residual_diagnostics(residuals: np.ndarray | pd.DataFrame, ids: Sequence[str
 def warn_diagnostics(results: pd.DataFrame, *, context: str, alpha: float = 0.05, stacklevel: int = 3) -> None:
     """One :class:`DiagnosticWarning` summarising the diagnostic columns of a results table (nothing if clean)."""
     parts = []
+    findings: list[dict] = []
     rows = results.drop_duplicates("region") if "region" in results.columns else results
     if "n_outliers" in rows.columns:
         flagged = rows[pd.to_numeric(rows["n_outliers"], errors="coerce").fillna(0) > 0]
+        findings += [{"problem": "robust outlier (modified z > 3.5), kept", "participant_id": pid.strip(),
+                      "region": r} for r, ids in zip(flagged["region"], flagged["outlier_ids"])
+                     for pid in str(ids).split(",") if pid.strip()]
         if len(flagged):
             parts.append(
                 f"robust outliers (modified z > 3.5) in {len(flagged)} region(s): "
@@ -136,18 +141,23 @@ def warn_diagnostics(results: pd.DataFrame, *, context: str, alpha: float = 0.05
         bad = rows.loc[sp < alpha, "region"]
         if len(bad):
             parts.append(f"Shapiro-Wilk p < {alpha} in {len(bad)} region(s): {', '.join(map(str, bad))}")
+            findings += [{"problem": f"residuals not normal (Shapiro-Wilk p < {alpha})", "region": r} for r in bad]
     if "brown_forsythe_p" in rows.columns:
         bp = pd.to_numeric(rows["brown_forsythe_p"], errors="coerce")
         bad = rows.loc[bp < alpha, "region"]
         if len(bad):
             parts.append(
                 f"unequal group variances (Brown-Forsythe p < {alpha}) in {len(bad)} region(s): "
-                f"{', '.join(map(str, bad))} (consider welch=True)"
+                f"{', '.join(map(str, bad))} (consider {spell('welch', True)})"
             )
+            findings += [{"problem": f"unequal group variances (Brown-Forsythe p < {alpha}; consider "
+                                     f"{spell('welch', True)})", "region": r} for r in bad]
     if "max_cooks_d" in rows.columns:
         cd = pd.to_numeric(rows["max_cooks_d"], errors="coerce")
         bad = rows.loc[cd > 1.0, "region"]
         if len(bad):
             parts.append(f"Cook's distance > 1 in {len(bad)} region(s): {', '.join(map(str, bad))}")
+            findings += [{"problem": "Cook's distance > 1", "region": r} for r in bad]
     if parts:
-        warnings.warn(f"{context}: " + " | ".join(parts), DiagnosticWarning, stacklevel=stacklevel)
+        warnings.warn(DiagnosticWarning(f"{context}: " + " | ".join(parts), findings=findings, context=context),
+                      stacklevel=stacklevel)

@@ -20,6 +20,7 @@ from scipy import linalg as _la
 from scipy import optimize as _opt
 from scipy import stats as _st
 
+from .._options import progress_bar, spell
 from ..errors import ConvergenceError, DesignError, DiagnosticWarning, UsageError
 from ._common import COLUMN_DESCRIPTIONS
 from ._registry import register
@@ -1240,7 +1241,7 @@ def mixed(
 
     context = "mixed"
     if formula is None:
-        raise UsageError("mixed: no formula given; pass formula='value ~ contrast * group' (--formula)")
+        raise UsageError(f"mixed: no formula given; pass {spell('formula', example='value ~ contrast * group')}")
     if df_method not in ("satterthwaite", "z"):
         raise UsageError(f"df_method: found {df_method!r}, expected 'satterthwaite' (default) or 'z'")
     if isinstance(n_jobs, bool) or not isinstance(n_jobs, (int, np.integer)) or n_jobs < 1:
@@ -1420,12 +1421,14 @@ def mixed(
         COLUMN_DESCRIPTIONS.setdefault(name, text)
     flagged = [(r, bt) for r, res, bt in zip(regions, results, boundary_terms) if res["fit"].boundary or bt]
     if flagged:
-        warnings.warn(
+        warnings.warn(DiagnosticWarning(
             f"{context}: a random-effect variance is at its boundary (SD < {BOUNDARY_TOL:g} x residual SD, or a "
-            f"correlation at +-1) in {len(flagged)} region(s): "
+            f"correlation at +-1) in {len(flagged)} region{'s' if len(flagged) != 1 else ''}: "
             + "; ".join(f"{r} ({', '.join(bt) or 'participant covariance'})" for r, bt in flagged)
             + "; the model is singular there (columns 'boundary', 'boundary_terms'); consider a simpler random "
-            "structure", DiagnosticWarning, stacklevel=3)
+            "structure", context=context,
+            findings=[{"problem": "random-effect variance at its boundary (singular fit; columns boundary, "
+                       "boundary_terms)", "region": r} for r, _bt in flagged]), stacklevel=3)
     return out
 
 
@@ -1569,12 +1572,10 @@ def _fit_region_one_thread(payload: dict) -> dict:
 
 
 def _run_regions(payloads: list[dict], regions: Sequence[str], n_jobs: int, executor=None) -> list[dict]:
-    from tqdm.auto import tqdm
-
     def _named(region, exc):
         return _both(type(exc), f"mixed: region {region!r}: {exc}")
 
-    bar = tqdm(total=len(payloads), desc="mixed models", unit="region", leave=False, disable=len(payloads) < 20)
+    bar = progress_bar(show=len(payloads) >= 20, total=len(payloads), desc="mixed models", unit="region", leave=False)
     try:
         if executor is not None:
             return _collect(regions, [executor.submit(_fit_region_one_thread, p) for p in payloads], _named, bar)

@@ -676,8 +676,11 @@ def precision_weighted(
     out = pd.concat(frames, ignore_index=True)
     if fit["boundary"].any():
         n_b = int(fit["boundary"].sum())
-        warnings.warn(f"{context}: the between-participant variance tau2 is estimated at 0 (boundary) in {n_b} "
-                      f"region(s): {', '.join(r for r, b in zip(regions, fit['boundary']) if b)}; the test then "
-                      "weights participants by their first-level precision only", DiagnosticWarning, stacklevel=3)
+        warnings.warn(DiagnosticWarning(
+            f"{context}: the between-participant variance tau2 is estimated at 0 (boundary) in "
+            f"{n_b} region{'s' if n_b != 1 else ''}: {', '.join(r for r, b in zip(regions, fit['boundary']) if b)}; "
+            "the test then weights participants by their first-level precision only", context=context,
+            findings=[{"problem": "tau2 estimated at 0 (boundary): precision weights only", "region": r}
+                      for r, b in zip(regions, fit["boundary"]) if b]), stacklevel=3)
     warn_diagnostics(out, context=context)
     return out

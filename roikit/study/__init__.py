@@ -54,10 +54,12 @@ Region operations are applied in this order: hemisphere split, intersection with
 
 The package is split by job: :mod:`~roikit.study.schema` (keys, validation, the checked :class:`Study`),
 :mod:`~roikit.study.cache` (the extraction cache, :func:`extract_study`) and :mod:`~roikit.study.run`
-(:func:`run_study`, :class:`StudyRun`).
+(:func:`run_study`, :class:`StudyRun`); :mod:`~roikit.study.init` writes a first study file from a folder of maps
+(:func:`write_study_file`, ``roikit init``) and :mod:`~roikit.study.reference` the study-file reference page.
 """
 
 from .cache import extract_study
+from .init import Proposal, propose_study, write_study_file
 from .run import StudyRun, run_study
 from .schema import (
     CACHE_FOLDER,
@@ -79,6 +81,9 @@ __all__ = [
     "load_study",
     "run_study",
     "extract_study",
+    "propose_study",
+    "write_study_file",
+    "Proposal",
     "check_formula",
     "FORMULA_TRANSFORMS",
     "STUDY_KEYS",

@@ -17,13 +17,13 @@ from .._typing import PathLike
 from ..errors import CoverageWarning, RoikitError, RoikitWarning
 from ..extraction import TRIM, assemble_values, extract
 from ..images import check_same_grid, read_header
-from ..regions import Regions
+from ..regions import RealisedRegions
 from .schema import _CACHE_FILE, _CACHE_FORMAT, CACHE_FOLDER, Study, _listing, load_study
 
 # --------------------------------------------------------------------------------------------------
 
 
-def _fingerprint(realised: Regions, statistic: str, keep_zeros: bool) -> str:
+def _fingerprint(realised: RealisedRegions, statistic: str, keep_zeros: bool) -> str:
     """SHA-256 of the realised regions (grid, names, voxels, weights) and the extraction choices."""
     h = hashlib.sha256()
     header = {"roikit": __version__, "cache_format": _CACHE_FORMAT, "statistic": statistic,
@@ -240,8 +240,11 @@ def _extract_with_cache(study: Study, out: Path, *, progress: bool | None, analy
         who = [f"{rows[i]['participant_id']}/{rows[i]['contrast']}/{names[r]}" for i in reused_empty
                for r in np.flatnonzero(n_valid[i] == 0)]
         warnings.warn(CoverageWarning(
-            f"{len(who)} participant x contrast x region value(s) have no valid voxel and are n/a (rows kept; "
-            f"from the extraction cache): {_listing(who)}"), stacklevel=3)
+            f"{len(who)} participant x contrast x region value{'s' if len(who) != 1 else ''} have no valid voxel "
+            f"and are n/a (rows kept; from the extraction cache): {_listing(who)}",
+            findings=[{"problem": "no valid voxel: value n/a", "participant_id": rows[i]["participant_id"],
+                       "region": names[r]} for i in reused_empty for r in np.flatnonzero(n_valid[i] == 0)]),
+            stacklevel=3)
     table.attrs["roikit"] = base
     store(list(range(len(rows))), base)
     return table, base["cache"]

@@ -12,10 +12,11 @@ from typing import Sequence
 
 import pandas as pd
 
+from .._options import plural
 from .._outputs import FolderOutputs
 from .._tables import sha256_file, sidecar_path, write_json, write_table
 from .._typing import PathLike
-from ..errors import RoikitError, RoikitWarning
+from ..errors import WARNING_COLUMNS, RoikitError, RoikitWarning, summarise_warnings, summarised, warning_records
 from ..extraction import VALUE_COLUMNS
 from ..stats import COLUMN_DESCRIPTIONS
 from .cache import _extract_with_cache
@@ -64,7 +65,7 @@ class StudyRun:
             f"roikit run: {study.title}",
             f"  {n_part} participants, {self.extracted + self.reused} maps ({self.extracted} extracted, "
             f"{self.reused} from the cache{_skipped(study, self.extracted + self.reused)}), "
-            f"{n_regions} regions x {len(study.analyses)} analyses",
+            f"{plural(n_regions, 'region')} x {plural(len(study.analyses), 'analysis', 'analyses')}",
         ]
         for analysis, rows in zip(study.analyses, self.per_analysis):
             lines.append(f"  {analysis.label}:")
@@ -73,18 +74,17 @@ class StudyRun:
             if "population_inference" in rows.columns and not rows["population_inference"].astype(bool).all():
                 lines.append("    caution: fixed effects describe these participants only (no population inference)")
         if study.circular:
-            lines.append(f"  caution: circular region definition(s): {', '.join(study.circular)}")
+            lines.append(f"  caution: circular region {'definition' if len(study.circular) == 1 else 'definitions'}: "
+                         f"{', '.join(study.circular)}")
         if self.warnings:
-            counts: dict[str, int] = {}
-            for w in self.warnings:
-                counts[w["category"]] = counts.get(w["category"], 0) + 1
-            lines.append(f"  warnings: {len(self.warnings)} ("
-                         + ", ".join(f"{k} x{v}" for k, v in counts.items()) + "; listed in provenance.json)")
+            problems = list(dict.fromkeys(w["problem"] for w in self.warnings))
+            lines.append(f"  warnings: {plural(len(problems), 'problem')} ({plural(len(self.warnings), 'finding')}; "
+                         "listed in warnings.tsv and the report)")
         else:
             lines.append("  warnings: none")
         lines.append(f"  outputs: {self.out}{os.sep} (report.html, methods.md/.docx, results.md/.docx, "
                      "references.bib, group_results.tsv, region_values.tsv, tables/, figures/, index.tsv, "
-                     "provenance.json)")
+                     "warnings.tsv, provenance.json)")
         return "\n".join(lines)
 
 def _primary_of(correct) -> str:
@@ -235,10 +235,13 @@ def run_study(
                            "sha256": sha256_file(study.participants_path)})
         from ..reporting._common import read_sidecar_labels
 
+        so_far = warning_records([w for w in list(study.load_warnings) + list(caught)
+                                  if issubclass(w.category, RoikitWarning)])
         write_report(values, results, participants=study.participants, out=tmp, overwrite=True, _staged=True,
                      labels={**read_sidecar_labels(getattr(study, "contrasts_path", None)),
                              **read_sidecar_labels(study.participants_path)},
-                     provenance={"inputs": inputs, "options": {"command": "roikit run", "out": os.fspath(out)}},
+                     provenance={"inputs": inputs, "options": {"command": "roikit run", "out": os.fspath(out)},
+                                 "warnings": summarise_warnings(so_far)},
                      title=study.title, circular=study.circular, figures=figures,
                      figure_formats=tuple(figure_formats), value_label=study.value_label, regions=study.realised,
                      column_labels=labels_from_sidecar(study.participants_path))
@@ -246,14 +249,20 @@ def run_study(
         for w in caught:  # messages naming the temporary folder name the output folder instead
             if str(tmp) in str(w.message):
                 w.message = w.category(str(w.message).replace(str(tmp), str(out)))
-        recorded = [{"category": w.category.__name__, "message": str(w.message)} for w in caught
-                    if issubclass(w.category, RoikitWarning)]
+        rows = warning_records([w for w in list(study.load_warnings) + list(caught)
+                                if issubclass(w.category, RoikitWarning)])
+        recorded = [{k: r[k] for k in WARNING_COLUMNS} for r in rows]
+        written.append(write_table(tmp / "warnings.tsv", pd.DataFrame(recorded, columns=list(WARNING_COLUMNS)),
+                                   sidecar={"description": "every warning of this run, one row per finding"}))
         seconds["total"] = time.perf_counter() - t_start
         _extend_provenance(tmp / "provenance.json", study, out, cache_info, per_analysis, recorded, seconds,
                            written, tmp)
         tx.commit()
-    for w in caught:  # re-issue, so callers (and the command line) see them
-        warnings.warn_explicit(w.message, w.category, w.filename, w.lineno)
+    for w in caught:  # re-issue other libraries' warnings as they were, roikit's one per problem
+        if not issubclass(w.category, RoikitWarning):
+            warnings.warn_explicit(w.message, w.category, w.filename, w.lineno)
+    for w in summarised(rows):
+        warnings.warn(w, stacklevel=2)
     outputs = {name: out / name for name in OUTPUTS if (out / name).exists()}
     return StudyRun(study=study, out=out, values=values, results=results, per_analysis=per_analysis,
                     outputs=outputs, extracted=cache_info["extracted"], reused=cache_info["reused"],

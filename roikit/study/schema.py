@@ -2,8 +2,8 @@
 
 from __future__ import annotations
 
-import difflib
 import tomllib
+import warnings
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any, Iterable, Sequence
@@ -11,11 +11,12 @@ from typing import Any, Iterable, Sequence
 import numpy as np
 import pandas as pd
 
+from .._options import DESIGN_ALIASES, check_value, noun, option, options_in, study_keys, suggest
 from .._typing import PathLike
 from ..errors import InputFileError, RoikitError, UsageError
 from ..extraction import STATISTICS, VALUE_COLUMNS, find_maps, read_map_list, read_participants
 from ..images import read_grid
-from ..regions import Atlas, Mask, ProbabilityMap, Regions, RegionSet, Sphere, read_label_table
+from ..regions import Atlas, Mask, ProbabilityMap, RealisedRegions, RegionSet, Sphere, read_label_table
 from ..stats import available_designs, run_design
 from ..stats._registry import DESIGNS, PERMUTATIONS
 from ..stats.corrections import parse_corrections
@@ -38,37 +39,27 @@ class StudyError(UsageError):
 # Keys
 # --------------------------------------------------------------------------------------------------
 
-#: Every key a study file may hold, by section (``analysis`` keys mirror the command-line options).
-STUDY_KEYS: dict[str, tuple[str, ...]] = {
-    "": ("study", "maps", "regions", "extraction", "analysis"),
-    "study": ("title", "participants", "contrasts", "regions", "value_label"),
-    "maps": ("effect", "variance", "list"),
-    "regions": ("atlas", "labels", "sphere", "mask", "probability", "split_hemispheres", "within", "select",
-                "rename", "circular", "space", "citation"),
-    "regions.sphere": ("name", "center", "radius", "space", "citation"),
-    "regions.mask": ("name", "image", "space", "citation"),
-    "regions.probability": ("image", "threshold", "name", "labels", "space", "citation"),
-    "extraction": ("statistic", "keep_zeros", "jobs"),
-    "analysis": ("design", "contrast", "versus", "group", "levels", "welch", "formula", "random", "crossed",
-                 "tau2", "correct", "permutations", "seed", "confidence", "nested", "center", "estimation", "test"),
-}
+#: Every key a study file may hold, by section (from the one table of options, ``roikit._options``).
+STUDY_KEYS: dict[str, tuple[str, ...]] = study_keys()
 
-#: Analysis keys that are design options (passed to the design when given).
-_DESIGN_OPTIONS = ("contrast", "versus", "group", "levels", "welch", "formula", "random", "crossed", "tau2",
-                   "nested", "center", "estimation", "test")
+#: Analysis keys that are design options (passed to the design when given, under their Python names).
+_DESIGN_OPTIONS = tuple(o.study_key for o in options_in("analysis") if o.design_option)
+
+#: Design options with checks of their own below (contrasts, columns, formulas); the others are checked by the
+#: options table alone (type, choices, range), so a new option needs only its entry in ``roikit/_options.py``.
+_SPECIAL = ("contrast", "versus", "group", "levels", "formula", "random", "crossed", "nested")
 
 #: Options each design cannot do without (beyond what its signature requires).
 _NEEDS = {
     "one-sample": ("contrast",),
     "paired": ("contrast", "versus"),
-    "two-group": ("contrast", "group", "levels"),
+    "two-group": ("contrast", "group"),
     "glm": ("contrast", "formula"),
     "precision-weighted": ("contrast",),
     "fixed-effects": ("contrast",),
     "mixed": ("formula",),
 }
 _NEEDS_VARIANCE = ("precision-weighted", "fixed-effects")
-_TAU2 = ("reml", "ml", "dl", "pm")
 
 #: Transforms a formula may apply to one column (the formula gate's, :data:`roikit.stats.formula.TRANSFORMS`).
 FORMULA_TRANSFORMS = TRANSFORMS
@@ -76,7 +67,7 @@ FORMULA_TRANSFORMS = TRANSFORMS
 #: What ``run_study`` writes into the output folder (besides the cache).
 OUTPUTS = ("region_values.tsv", "region_values.json", "group_results.tsv", "group_results.json", "tables",
            "figures", "report.html", "methods.md", "provenance.json", "methods.docx", "results.md", "results.docx",
-           "references.bib", "index.tsv")
+           "references.bib", "index.tsv", "warnings.tsv", "warnings.json")
 
 #: Folder (inside the output folder) holding the extraction cache.
 CACHE_FOLDER = ".cache"
@@ -95,8 +86,7 @@ def _type_name(value: Any) -> str:
 
 
 def _suggest(word: str, choices: Iterable[str]) -> str:
-    close = difflib.get_close_matches(str(word), [str(c) for c in choices], n=1, cutoff=0.6)
-    return f"; did you mean {close[0]!r}?" if close else ""
+    return suggest(word, choices)
 
 
 def _described(c, block: dict, key: str) -> dict:
@@ -227,7 +217,7 @@ class Study:
     maps : DataFrame
         The maps table (participant_id, [session_id], contrast, path, [variance_path], [volume]).
     regions : RegionSet
-    realised : Regions
+    realised : RealisedRegions
         The regions realised on the maps' grid.
     circular : list of str
         Regions marked as defined from the same data (flagged in the report).
@@ -239,6 +229,9 @@ class Study:
         The parsed TOML.
     value_label : str or None
         Axis label of the region values with their unit in the figures (``[study] value_label``).
+    load_warnings : list
+        Warnings raised while realising the regions (overlaps, resampling, label tables); ``run_study`` lists them
+        in ``warnings.tsv``.
     """
 
     path: Path
@@ -247,7 +240,7 @@ class Study:
     participants: pd.DataFrame | None
     maps: pd.DataFrame
     regions: RegionSet
-    realised: Regions
+    realised: RealisedRegions
     circular: list[str]
     statistic: str
     keep_zeros: bool
@@ -255,6 +248,7 @@ class Study:
     analyses: list[Analysis]
     raw: dict = field(repr=False, default_factory=dict)
     value_label: str | None = None
+    load_warnings: list = field(repr=False, default_factory=list)
 
     @property
     def default_out(self) -> Path:
@@ -403,13 +397,13 @@ def load_study(path: PathLike) -> Study:
 
     # [study] contrasts, regions: tables describing contrasts and regions (columns a formula may name)
     side_tables: dict[str, tuple[Path, pd.DataFrame]] = {}
-    for name, kind, option in (("contrasts", "contrasts", "contrasts"), ("regions", "regions", "region_table")):
+    for name, kind, parameter in (("contrasts", "contrasts", "contrasts"), ("regions", "regions", "region_table")):
         table_path = c.file(section, name, "study", what=f"{name} table")
         if table_path is not None:
             from ..stats._common import side_table
 
             try:
-                side_tables[option] = (table_path, side_table(table_path, kind=kind))
+                side_tables[parameter] = (table_path, side_table(table_path, kind=kind))
             except RoikitError as exc:
                 c.add(f"study.{name}", str(exc))
 
@@ -443,22 +437,28 @@ def load_study(path: PathLike) -> Study:
 
     # realise the regions on the maps' grid (only when everything else is sound: it reads images)
     realised = None
+    load_warnings: list = []
     if not c.problems and maps is not None and regions is not None:
         try:
             grid = read_grid(maps["path"].iloc[0])
-            realised = regions.realise(grid)
+            with warnings.catch_warnings(record=True) as load_warnings:  # kept for the run's warnings.tsv
+                warnings.simplefilter("always")
+                realised = regions.realise(grid)
+            for w in load_warnings:
+                warnings.warn_explicit(w.message, w.category, w.filename, w.lineno)
         except RoikitError as exc:
             c.add("regions", str(exc))
         else:
             unknown = [n for n in circular if n not in realised.names]
             if unknown:
-                c.add("regions.circular", f"unknown region(s) {_listing(unknown)}; regions are "
+                c.add("regions.circular", f"unknown {noun(unknown, 'region')} {_listing(unknown)}; regions are "
                                           f"{_listing(realised.names, 20)}")
     if c.problems:
         raise StudyError(path, c.problems)
     return Study(path=path, title=title, participants_path=participants_path, participants=participants, maps=maps,
                  regions=regions, realised=realised, circular=circular, statistic=statistic, keep_zeros=keep_zeros,
-                 jobs=jobs, analyses=analyses, raw=raw, value_label=value_label)
+                 jobs=jobs, analyses=analyses, raw=raw, value_label=value_label,
+                 load_warnings=list(load_warnings))
 
 
 def _check_maps(c: _Checker, raw: dict) -> pd.DataFrame | None:
@@ -509,7 +509,7 @@ def _check_regions(c: _Checker, raw: dict) -> tuple[RegionSet | None, list[str] 
 
     if "atlas" in section or "labels" in section:
         atlas = c.file(section, "atlas", "regions", required=True, what="atlas image")
-        labels = c.file(section, "labels", "regions", required=True, what="label table")
+        labels = c.file(section, "labels", "regions", what="label table") if "labels" in section else None
         names_known = False
         if atlas is not None and labels is not None:
             try:
@@ -519,6 +519,8 @@ def _check_regions(c: _Checker, raw: dict) -> tuple[RegionSet | None, list[str] 
                 names_known = True
             except RoikitError as exc:
                 c.add("regions.labels", str(exc))
+        elif atlas is not None and "labels" not in section:  # names 'label <index>', known once realised
+            sources.append(Atlas(atlas))
 
     def blocks(name: str) -> list[tuple[str, dict]]:
         value = section.get(name, [])
@@ -588,19 +590,26 @@ def _check_regions(c: _Checker, raw: dict) -> tuple[RegionSet | None, list[str] 
     regionset = RegionSet(sources)
 
     split = section.get("split_hemispheres", False)
+    midline = section.get("midline", option("midline", "regions").default)
+    problem = check_value(option("midline", "regions"), midline)
+    if problem:
+        c.add("regions.midline", problem)
+        midline = option("midline", "regions").default
+    elif "midline" in section and split is False:
+        c.add("regions.midline", "applies to a hemisphere split; add split_hemispheres = true (or a list of regions)")
     if split is not False:
         if split is True:
             names = [f"{side} {n}" for n in names for side in ("left", "right")]
-            regionset = regionset.split_hemispheres()
+            regionset = regionset.split_hemispheres(midline=midline)
         else:
             chosen = c.names(split, "regions.split_hemispheres")
             if chosen is not None:
                 unknown = [n for n in chosen if complete and n not in names]
                 if unknown:
-                    c.add("regions.split_hemispheres", f"unknown region(s) {_listing(unknown)}; regions are "
+                    c.add("regions.split_hemispheres", f"unknown {noun(unknown, 'region')} {_listing(unknown)}; regions are "
                                                        f"{_listing(names, 20)}{_suggest(unknown[0], names)}")
                 names = [x for n in names for x in ((f"left {n}", f"right {n}") if n in chosen else (n,))]
-                regionset = regionset.split_hemispheres(chosen)
+                regionset = regionset.split_hemispheres(chosen, midline=midline)
     within = c.file(section, "within", "regions", what="analysis mask") if "within" in section else None
     if within is not None:
         regionset = regionset.intersect(within)
@@ -609,7 +618,7 @@ def _check_regions(c: _Checker, raw: dict) -> tuple[RegionSet | None, list[str] 
         if chosen is not None:
             unknown = [n for n in chosen if complete and n not in names]
             if unknown:
-                c.add("regions.select", f"unknown region(s) {_listing(unknown)}{_suggest(unknown[0], names)}; "
+                c.add("regions.select", f"unknown {noun(unknown, 'region')} {_listing(unknown)}{_suggest(unknown[0], names)}; "
                                         f"regions are {_listing(names, 20)}")
             names = chosen
             regionset = regionset.select(chosen)
@@ -620,7 +629,7 @@ def _check_regions(c: _Checker, raw: dict) -> tuple[RegionSet | None, list[str] 
         else:
             unknown = [n for n in mapping if complete and n not in names]
             if unknown:
-                c.add("regions.rename", f"unknown region(s) {_listing(unknown)}{_suggest(unknown[0], names)}; "
+                c.add("regions.rename", f"unknown {noun(unknown, 'region')} {_listing(unknown)}{_suggest(unknown[0], names)}; "
                                         f"regions are {_listing(names, 20)}")
             names = [mapping.get(n, n) for n in names]
             regionset = regionset.rename(mapping)
@@ -661,13 +670,13 @@ def _check_analyses(c: _Checker, raw: dict, *, contrasts, participants, columns,
             c.add(f"{key}.design", f"missing; one of {', '.join(designs)}")
             continue
         if design not in designs:
-            c.add(f"{key}.design", f"{design!r} is not a design{_suggest(design, designs)} "
+            c.add(f"{key}.design", f"{design!r} is not a design{suggest(design, designs, DESIGN_ALIASES)} "
                                    f"(designs: {', '.join(designs)})")
             continue
         import inspect
 
         params = inspect.signature(DESIGNS[design]).parameters
-        accepted = [n for n in _DESIGN_OPTIONS if n in params]
+        accepted = [n for n in _DESIGN_OPTIONS if option(n, "analysis").py in params]
         required = [n for n, p in params.items() if p.kind is inspect.Parameter.KEYWORD_ONLY
                     and p.default is inspect.Parameter.empty and n not in ("participants", "confidence")]
         required += [n for n in _NEEDS.get(design, ()) if n not in required]
@@ -733,8 +742,19 @@ def _check_analyses(c: _Checker, raw: dict, *, contrasts, participants, columns,
                             c.add(f"{key}.levels", f"{level!r} is not a value of column {group}"
                                                    f"{_suggest(level, found)}; found {_listing(found)}")
                 options["levels"] = items
-        if "welch" in block and "welch" in accepted:
-            options["welch"] = c.boolean(block, "welch", key, False)
+        for name in [n for n in _DESIGN_OPTIONS if n not in _SPECIAL]:  # checked by the table's rules alone
+            if name in block and name in accepted:
+                problem = check_value(option(name, "analysis"), block[name])
+                if problem:
+                    c.add(f"{key}.{name}", problem)
+                options[option(name, "analysis").py] = block[name]
+        if "levels" not in block and "levels" in accepted and participants is not None:
+            group = options.get("group")
+            if isinstance(group, str) and group in participants.columns:
+                found = _participant_values(participants, group)
+                if len(found) != 2:
+                    c.add(f"{key}.levels", f"missing; column {group} has {len(found)} levels ({_listing(found)}), "
+                                           "so name the two compared, e.g. levels = [\"younger\", \"older\"]")
         for name, tilde in (("formula", True), ("random", False)):
             if name in block and name in accepted:
                 value = block[name]
@@ -760,36 +780,29 @@ def _check_analyses(c: _Checker, raw: dict, *, contrasts, participants, columns,
                 c.add(f"{key}.nested", f"must be a column of the region values table, contrasts.tsv or "
                                        f"participants.tsv{_suggest(str(value), columns)}; found {value!r}")
             options["nested"] = value
-        if "center" in block and "center" in accepted:
-            options["center"] = c.boolean(block, "center", key, True)
-        for name, allowed in (("estimation", ("reml", "ml")), ("test", ("knha", "knha-truncated", "z"))):
-            if name in block and name in accepted:
-                value = block[name]
-                if value not in allowed:
-                    c.add(f"{key}.{name}", f"must be one of {', '.join(allowed)}, found {value!r}"
-                                           f"{_suggest(str(value), allowed)}")
-                options[name] = value
-        for option, (table_path, _table) in (side_tables or {}).items():
-            if option in params:  # designs that join per-contrast / per-region columns get the table
-                options[option] = str(table_path)
-        if "tau2" in block and "tau2" in accepted:
-            value = block["tau2"]
-            if value not in _TAU2:
-                c.add(f"{key}.tau2", f"must be one of {', '.join(_TAU2)}, found {value!r}")
-            options["tau2"] = value
+        for parameter, (table_path, _table) in (side_tables or {}).items():
+            if parameter in params:  # designs that join per-contrast / per-region columns get the table
+                options[parameter] = str(table_path)
         if design in _NEEDS_VARIANCE and maps_known and not has_variance:
             c.add(f"{key}.design", f"{design!r} needs first-level variances; give [maps] variance = \"...\" "
                                    "(or a variance_path column in the map list)")
-        correct = block.get("correct", "holm,fdr")
+        correct = block.get("correct", option("correct", "analysis").default)
         try:
             if not isinstance(correct, (str, list)):
                 raise UsageError(f"must be a string such as \"holm,fdr\" or an array, found {_type_name(correct)}")
             parse_corrections(correct)
         except UsageError as exc:
             c.add(f"{key}.correct", str(exc))
-        permutations = c.integer(block, "permutations", key, 0, minimum=0) or 0
-        seed = c.integer(block, "seed", key, None, minimum=0)
-        if not permutations and isinstance(correct, (str, list)) and "fwe" in str(correct).lower():
+        for name in ("permutations", "seed", "confidence"):
+            if name in block:
+                problem = check_value(option(name, "analysis"), block[name])
+                if problem:
+                    c.add(f"{key}.{name}", problem)
+        permutations = block.get("permutations", 0)
+        permutations = permutations if isinstance(permutations, int) and not isinstance(permutations, bool) else 0
+        seed = block.get("seed")
+        seed = seed if isinstance(seed, int) and not isinstance(seed, bool) and seed >= 0 else None
+        if not permutations and isinstance(block.get("correct"), (str, list)) and "fwe" in str(block.get("correct")).lower():
             c.add(f"{key}.correct", "fwe (max-statistic permutation family-wise p) needs permutations; add "
                                     "permutations = 5000 and a seed to this [[analysis]], or choose holm, fdr, "
                                     "bonferroni or none")
@@ -802,9 +815,7 @@ def _check_analyses(c: _Checker, raw: dict, *, contrasts, participants, columns,
         if permutations and seed is None:
             c.add(f"{key}.seed", "missing; permutations in a study file need a seed so that the run can be "
                                  "repeated exactly (e.g. seed = 1)")
-        confidence = block.get("confidence", 0.95)
-        if isinstance(confidence, bool) or not isinstance(confidence, (int, float)) or not 0 < confidence < 1:
-            c.add(f"{key}.confidence", f"must be a number between 0 and 1 (e.g. 0.95), found {confidence!r}")
+        confidence = block.get("confidence", option("confidence", "analysis").default)
         if len(c.problems) == n_before:
             analyses.append(Analysis(number, design, options, correct=correct, permutations=permutations, seed=seed,
                                      confidence=float(confidence)))

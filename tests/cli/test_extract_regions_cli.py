@@ -26,7 +26,7 @@ def test_extract_writes_the_contract_table_and_sidecar(tiny_study, tmp_path, cap
     assert list(table.columns) == ["participant_id", "contrast", "region", "value", "n_voxels", "n_valid", "variance"]
     assert len(table) == 4 * 2 * 4
     assert table["region"].unique().tolist() == ["right caudate", "left caudate", "retrosplenial cortex", "prior peak"]
-    side = json.loads(out.with_suffix(".json").read_text())
+    side = json.loads(out.with_suffix(".json").read_text())["GeneratedBy"][0]
     assert side["provenance"]["statistic"] == "mean"
     assert {r["region"] for r in side["provenance"]["regions"]} == set(table["region"])
     assert all(len(i["sha256"]) == 64 for i in side["provenance"]["inputs"])
@@ -54,9 +54,10 @@ def test_extract_reruns_but_refuses_foreign_files_in_one_line(tiny_study, tmp_pa
     (["--maps", "x/{contrast}.nii.gz", "--sphere", "s=0,0,0,4"], 2, "no {subject} placeholder"),
     (["--maps", "{pattern}", "--sphere", "bad=1,2,3"], 2, "expected NAME=X,Y,Z,RADIUS"),
     (["--maps", "{pattern}", "--sphere", "far=900,0,0,5"], 1, "no voxel on the maps' grid"),
-    (["--maps", "{pattern}", "--atlas", "{atlas}"], 2, "--atlas and --labels go together"),
+    (["--maps", "{pattern}", "--labels", "{atlas}"], 2, "--labels goes with --atlas IMAGE"),
+    (["--maps", "{pattern}", "--atlas", "{atlas}", "--statistic", "mode"], 2, "--statistic must be one of mean, median"),
     (["--maps", "{pattern}", "--mask", "m={root}/missing.nii.gz"], 1, "missing.nii.gz: file not found"),
-    (["--maps", "{pattern}", "--sphere", "s=0,0,0,4", "--jobs", "0"], 2, "--jobs must be at least 1"),
+    (["--maps", "{pattern}", "--sphere", "s=0,0,0,4", "--jobs", "0"], 2, "--jobs must be an integer >= 1, found 0"),
     (["--sphere", "s=0,0,0,4"], 2, "exactly one of --maps PATTERN or --map-list"),
 ])
 def test_extract_errors_are_one_clear_line(tiny_study, tmp_path, capsys, args, code, message):

@@ -31,8 +31,12 @@ def test_stats_writes_results_and_sidecar(files, capsys):
     assert code == 0
     res = read_table(out)
     assert len(res) == 3 and (res["df_method"] == "welch").all() and "p_fwe" in res.columns
-    side = json.loads(out.with_suffix(".json").read_text())
-    assert set(res.columns) == set(side["columns"])
+    raw = json.loads(out.with_suffix(".json").read_text())
+    # BIDS column descriptions: one entry per column, plus one GeneratedBy entry with the provenance
+    assert set(raw) == set(res.columns) | {"GeneratedBy"}
+    assert raw["p"]["Description"] and raw["statistic_type"]["Levels"]["t"]
+    side = raw["GeneratedBy"][0]
+    assert side["Name"] == "roikit"
     assert side["options"]["seed"] == 4 and side["options"]["welch"] is True
     assert side["inputs"]["values"]["sha256"] == sha256_file(vpath)
     assert side["inputs"]["participants"]["sha256"] == sha256_file(ppath)
@@ -52,7 +56,7 @@ def test_stats_usage_errors(files, capsys):
     tmp, vpath, _ = files
     out = tmp / "r.tsv"
     assert main(["stats", str(vpath), "--design", "anova", "--out", str(out)]) == 2
-    assert "expected one of: one-sample" in capsys.readouterr().err
+    assert "is not a design (designs: one-sample" in capsys.readouterr().err
     assert main(["stats", str(vpath), "--design", "paired", "--contrast", "novel", "--out", str(out)]) == 2
     assert "--versus" in capsys.readouterr().err
     assert main(["stats", str(vpath), "--design", "one-sample", "--contrast", "town9", "--out", str(out)]) == 1

@@ -55,9 +55,15 @@ def test_glm_family_is_per_term(values):
 def test_unknown_design_and_options(values):
     with pytest.raises(UsageError, match="design 'anova' is not available; expected one of: one-sample, paired"):
         run_design(values, "anova", contrast="novel")
-    with pytest.raises(UsageError, match="--welch do not apply to design 'one-sample'"):
+    with pytest.raises(UsageError, match="option welch does not apply to design 'one-sample'"):
         run_design(values, "one-sample", contrast="novel", welch=True)
-    with pytest.raises(UsageError, match=r"needs versus= \(--versus\)"):
+    with pytest.raises(UsageError, match=r"needs versus=\.\.\.; none was given"):
+        run_design(values, "paired", contrast="novel")
+    from roikit._options import entry_point
+
+    with entry_point("cli"), pytest.raises(UsageError, match="option --welch does not apply"):
+        run_design(values, "one-sample", contrast="novel", welch=True)
+    with entry_point("cli"), pytest.raises(UsageError, match="needs --versus B; none was given"):
         run_design(values, "paired", contrast="novel")
     with pytest.raises(UsageError, match="confidence must be between 0 and 1"):
         run_design(values, "one-sample", contrast="novel", confidence=95)

@@ -88,7 +88,7 @@ design = "anova"
         "study.colour: unknown key",
         "regions.sphere[1].center: must be three numbers",
         "regions.sphere[1].radius: must be a positive number",
-        "regions.select: unknown region(s) left caudat; did you mean 'left caudate'?",
+        "regions.select: unknown region left caudat; did you mean 'left caudate'?",
         "extraction.statistic: must be one of mean, median, trimmed-mean, weighted-mean, found 'meen'; "
         "did you mean 'mean'?",
         "analysis[1].contrasts: unknown key; did you mean 'contrast'?",
@@ -165,7 +165,7 @@ crossed = "town"
     problems = info.value.problems
     assert any(p.startswith("analysis[3].welch: does not apply to design 'paired'") for p in problems)
     assert any(p.startswith("analysis[3].versus: must differ from contrast") for p in problems)
-    assert any(p.startswith("analysis[3].confidence: must be a number between 0 and 1") for p in problems)
+    assert any(p.startswith("analysis[3].confidence: must be a number strictly between 0 and 1") for p in problems)
     assert any(p.startswith("analysis[4].random: random '1 + contrast ~ x': '~' is not allowed") for p in problems)
     assert any(p.startswith("analysis[4].crossed: must be a column") for p in problems)
 
