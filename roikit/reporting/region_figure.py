@@ -26,7 +26,7 @@ from matplotlib.figure import Figure
 
 from ..errors import UsageError
 from ..images import Grid, load_map, read_flat, read_header, resample_nearest
-from ..regions import Atlas, Mask, ProbabilityMap, Regions, RegionSet, Sphere
+from ..regions import Atlas, Mask, ProbabilityMap, RealisedRegions, RegionSet, Sphere
 from .figures import MAX_HEIGHT_MM, MIN_FONT_PT, Width, _MM, _minus, _width_mm, style
 
 __all__ = ["region_figure", "region_pages", "region_table", "mean_background", "regions_from_provenance",
@@ -111,13 +111,13 @@ def mean_background(maps: Sequence[str | os.PathLike], grid: Grid | None = None,
         return np.where(count > 0, total / count, np.nan)
 
 
-def region_table(regions: Regions) -> pd.DataFrame:
+def region_table(regions: RealisedRegions) -> pd.DataFrame:
     """Centre (world mm) and size of each region: region, n_voxels, volume_mm3, x_mm, y_mm, z_mm, source."""
     return regions.summary()
 
 
 # --------------------------------------------------------------------------------------------- provenance
-def regions_from_provenance(provenance: dict) -> Regions:
+def regions_from_provenance(provenance: dict) -> RealisedRegions:
     """Rebuild the realised regions from a values table's provenance (sources, operations and grid).
 
     The region set is rebuilt from ``region_sources`` (sources, then operations in order) and realised on the
@@ -179,7 +179,7 @@ def _pages(names: list[str], per_page: int) -> list[list[str]]:
 
 
 def _layout(width: Width) -> tuple[int, int]:
-    """Regions per row and rows per page at ``width``."""
+    """RealisedRegions per row and rows per page at ``width``."""
     wmm = _width_mm(width)
     per_row = 2 if wmm >= 150 else 1
     rows = int((MAX_HEIGHT_MM - _TOP_MM) // _BLOCK_HEIGHT_MM)
@@ -187,7 +187,7 @@ def _layout(width: Width) -> tuple[int, int]:
 
 
 def region_figure(
-    regions: Regions,
+    regions: RealisedRegions,
     *,
     background: np.ndarray | str | os.PathLike | None = None,
     names: Sequence[str] | None = None,
@@ -199,13 +199,13 @@ def region_figure(
 
     Parameters
     ----------
-    regions : Regions
+    regions : RealisedRegions
         Realised regions (``RegionSet.realise(grid)``, or ``study.realised``).
     background : array, path or None
         An image on the regions' grid (e.g. :func:`mean_background` of the maps), an image file (resampled by
         nearest neighbour when on another grid), or None: all regions' union in light grey.
     names : sequence of str, optional
-        Regions to draw, in this order (default: all).
+        RealisedRegions to draw, in this order (default: all).
     width : "single", "one-and-a-half", "double" or float
         Figure width in mm (two regions per row at double width, one below).
     page : int, optional
@@ -326,7 +326,7 @@ def region_figure(
     return fig
 
 
-def region_pages(regions: Regions, *, names: Sequence[str] | None = None, width: Width = "double",
+def region_pages(regions: RealisedRegions, *, names: Sequence[str] | None = None, width: Width = "double",
                  **kwargs) -> list[Figure]:
     """All regions as :func:`region_figure` pages of at most 225 mm (same options)."""
     names = list(names) if names is not None else list(regions.names)

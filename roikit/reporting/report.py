@@ -446,7 +446,7 @@ def write_report(
     value_label : str, optional
         Axis label of the region values with their unit, e.g. ``"Parameter estimate (a.u.)"`` or
         ``"% signal change"`` (default "region value").
-    regions : Regions, optional
+    regions : RealisedRegions, optional
         The realised regions, for the "Regions" section (each region on slices through its centre, with a
         table of centre and size); default: rebuilt from the values' provenance when it describes them.
     region_background : "maps", array, path or None
