@@ -66,14 +66,14 @@ def test_true_plurals():
 
 def test_a_new_option_is_one_table_entry(monkeypatch):
     # a "--no-x" flag for an option whose default is True stores False; not given, it stays unset (None)
-    extra = Option("center", "analysis", "bool", "centre covariates", default=True, flag="--no-center",
+    extra = Option("shrink", "analysis", "bool", "shrink the estimates", default=True, flag="--no-shrink",
                    design_option=True)
     monkeypatch.setattr(_options, "OPTIONS", _options.OPTIONS + (extra,))
     parser = argparse.ArgumentParser()
     add_arguments(parser, "analysis", only_design=True)
-    assert parser.parse_args(["--no-center"]).center is False
-    assert parser.parse_args([]).center is None
-    assert "center" in _options.study_keys()["analysis"]
+    assert parser.parse_args(["--no-shrink"]).shrink is False
+    assert parser.parse_args([]).shrink is None
+    assert "shrink" in _options.study_keys()["analysis"]
 
 
 def test_progress_bars_only_on_a_terminal():

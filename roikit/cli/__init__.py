@@ -93,10 +93,9 @@ def main(argv: list[str] | None = None) -> int:
     try:
         with warnings.catch_warnings(record=True) as caught, entry_point("cli"), command_line():
             warnings.simplefilter("always", RoikitWarning)
-            try:
-                return int(args.func(args) or 0)
-            finally:
-                _print_warnings(caught, args)
+            status = int(args.func(args) or 0)
+            _print_warnings(caught, args)  # only after success: a failed command prints its one error line
+            return status
     except UsageError as exc:
         print(f"roikit {args.command}: error: {exc}", file=sys.stderr)
         return 2

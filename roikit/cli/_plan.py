@@ -7,13 +7,13 @@ import math
 import sys
 import warnings
 from pathlib import Path
-
-import numpy as np
-import pandas as pd
+from typing import TYPE_CHECKING
 
 from .. import __version__
-from .._tables import check_output, read_table, sha256_file, sidecar_path, write_table
 from ..errors import CautionWarning, DesignError, UsageError
+
+if TYPE_CHECKING:  # annotations only; imported where used, so start-up stays fast
+    import pandas as pd
 
 _DESIGNS = ("one-sample", "paired", "two-group", "precision-weighted", "crossed")
 _MAX_LINES = 12  # summary lines on stderr; the table holds every row
@@ -164,6 +164,10 @@ def add_parser(subparsers) -> None:
 
 
 def run(args: argparse.Namespace) -> int:
+    import numpy as np  # noqa: F401 - imported here, not at start-up (roikit --help stays fast)
+    import pandas as pd  # noqa: F401
+
+    from .._tables import check_output, read_table, sha256_file, sidecar_path, write_table  # noqa: F401
     from ..stats import power as pw
 
     out = check_output(args.out, overwrite=args.overwrite)
@@ -279,6 +283,10 @@ def _alpha(a: float) -> str:
 
 
 def _t_summary(table: pd.DataFrame) -> list[str]:
+    import numpy as np  # noqa: F401 - imported here, not at start-up (roikit --help stays fast)
+    import pandas as pd  # noqa: F401
+
+    from .._tables import check_output, read_table, sha256_file, sidecar_path, write_table  # noqa: F401
     lines = []
     for r in table.itertuples():
         what = f"{r.design}, {r.effect_size_type} = {r.effect_size:.3f}, n = {r.n}"
@@ -291,6 +299,10 @@ def _t_summary(table: pd.DataFrame) -> list[str]:
 
 
 def _pilot_summary(table: pd.DataFrame) -> list[str]:
+    import numpy as np  # noqa: F401 - imported here, not at start-up (roikit --help stays fast)
+    import pandas as pd  # noqa: F401
+
+    from .._tables import check_output, read_table, sha256_file, sidecar_path, write_table  # noqa: F401
     lines = []
     for r in table.itertuples():
         head = f"{r.region}: {r.effect_size_type} = {r.effect_size:.3f}"
@@ -304,6 +316,10 @@ def _pilot_summary(table: pd.DataFrame) -> list[str]:
 
 
 def _precision(args, pilot, effects, ns, family, inputs, notes, pw):
+    import numpy as np  # noqa: F401 - imported here, not at start-up (roikit --help stays fast)
+    import pandas as pd  # noqa: F401
+
+    from .._tables import check_output, read_table, sha256_file, sidecar_path, write_table  # noqa: F401
     if not ns:
         raise UsageError("precision-weighted plans are simulated on a grid of participants: give --n N[,N...]")
     if not args.values:
@@ -366,6 +382,10 @@ def _precision(args, pilot, effects, ns, family, inputs, notes, pw):
 
 
 def _crossed(args, pilot, effects, ns, family, notes, pw):
+    import numpy as np  # noqa: F401 - imported here, not at start-up (roikit --help stays fast)
+    import pandas as pd  # noqa: F401
+
+    from .._tables import check_output, read_table, sha256_file, sidecar_path, write_table  # noqa: F401
     if not ns or not args.stimuli:
         raise UsageError("the crossed design is planned on a grid: give --n P[,P...] (participants) and "
                          "--stimuli Q[,Q...]")
@@ -449,6 +469,10 @@ def _crossed(args, pilot, effects, ns, family, notes, pw):
 
 
 def _figure(args, table: pd.DataFrame, design: str) -> list:
+    import numpy as np  # noqa: F401 - imported here, not at start-up (roikit --help stays fast)
+    import pandas as pd  # noqa: F401
+
+    from .._tables import check_output, read_table, sha256_file, sidecar_path, write_table  # noqa: F401
     from ..reporting.figures import save_figure
     from ..reporting.power import crossed_power_figure, power_curve, simulated_power_figure
 

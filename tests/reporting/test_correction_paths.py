@@ -117,8 +117,12 @@ def test_cli_records_the_primary_correction_in_the_sidecar(tmp_path, values):
         warnings.simplefilter("ignore")
         assert main(["stats", str(path), "--design", "one-sample", "--contrast", "novel", "--out", str(out),
                      "--correct", "bonferroni,holm"]) == 0
-    sidecar = json.loads(out.with_suffix(".json").read_text())
+    from roikit._tables import read_sidecar
+
+    sidecar = read_sidecar(out)  # BIDS layout: the options sit in the GeneratedBy entry
     assert sidecar["options"]["primary_correction"] == "bonferroni"
+    assert json.loads(out.with_suffix(".json").read_text())["GeneratedBy"][0]["options"]["primary_correction"] \
+        == "bonferroni"
 
 
 def test_contrast_labels_from_a_contrasts_sidecar(values, results_by_design, participants):

@@ -234,6 +234,7 @@ def test_cli_report(tmp_path, values, results_by_design, participants, capsys):
     (tmp_path / "elsewhere").mkdir()
     (tmp_path / "elsewhere" / "notes.md").write_text("mine")
     other = args[:-4] + ["--out", str(tmp_path / "elsewhere")] + args[-2:]
+    capsys.readouterr()  # the successful rerun's warning lines
     assert main(other) == 1
     err = capsys.readouterr().err
     assert err.count("\n") == 1 and "pass --overwrite" in err

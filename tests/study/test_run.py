@@ -284,7 +284,9 @@ def test_study_correction_space_and_citation_reach_every_output(study_dir):
     assert "in MNI152NLin2009cAsym space" in methods and "(Invented atlas, 2026)" in methods
     assert "mm in MNI152NLin2009cAsym coordinates." in methods
     assert "*p*_Bonferroni" in (out / "results.md").read_text()
-    sidecar = json.loads((out / "group_results.json").read_text())
+    from roikit._tables import read_sidecar
+
+    sidecar = read_sidecar(out / "group_results.tsv")  # BIDS layout: provenance in the GeneratedBy entry
     assert [a["primary_correction"] for a in sidecar["analyses"]] == ["bonferroni", "holm"]
 
 
