@@ -286,7 +286,9 @@ def cautions(
         edge = ordered_unique(r for r, c in zip(rows["region"].map(text), col(rows, "boundary")) if flag(c) is True)
         if edge:
             terms = ordered_unique(t for v in col(rows, "boundary_terms") for t in ids(v))
-            what = (f"variance of {escape_markup(join_words(terms))}" if terms else "a variance component")
+            what = (f"the variance of {join_words(_component_name(t, rows) for t in terms)}" if terms
+                    else "the between-participant variance *τ*^{2}" if key.get("design") == "precision-weighted"
+                    else "a variance component")
             out.append({"kind": "boundary", "participant": "", "text": (
                 f"{name}: {what} estimated at zero in {escape_markup(_who_regions(edge))}; a singular fit, so the "
                 "model reduces to a simpler one there.")})
@@ -454,6 +456,24 @@ def _predictors(formula: str, rows: pd.DataFrame, key: dict, labels: Labels,
     terms = [t for t in ordered_unique(rows["term"].map(text)) if not is_intercept(t)]
     names = [term_label(t, key, labels, participants, terms) for t in terms]
     return join_words(escape_markup(n) for n in names) if names else "an intercept only"
+
+
+def _component_name(column: str, rows: pd.DataFrame, labels: Labels | None = None) -> str:
+    """A variance-component column (``sd_participant``, ``sd_participant_load``, ``sd_town``) in words."""
+    labels = labels or Labels()
+    column = str(column)
+    if not column.startswith("sd_"):
+        return escape_markup(column)
+    rest = column[3:]
+    if rest == "participant":
+        return "the by-participant intercept"
+    if rest == "residual":
+        return "the residual"
+    if rest.startswith("participant_"):
+        return f"the by-participant slope of {escape_markup(labels.variable(rest[len('participant_'):]))}"
+    kind = "nested" if rest in {text(v) for v in col(rows, "nested")} else "crossed"
+    inside = " within participant" if kind == "nested" else ""
+    return f"the {kind} intercept for {escape_markup(labels.variable(rest))}{inside}"
 
 
 def _random_phrase(rows: pd.DataFrame, labels: Labels) -> str:
