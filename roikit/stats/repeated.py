@@ -31,8 +31,10 @@ from ._common import (
     region_order,
     result_rows,
 )
+from ._common import side_table
 from ._registry import register
 from .anova import rm_anova
+from .designs import _group_labels
 from .effect_sizes import partial_eta2_interval
 
 __all__ = ["repeated_measures", "region_difference"]
@@ -44,34 +46,6 @@ def _split(names: str | Sequence[str] | None) -> list[str]:
     if isinstance(names, str):
         return [n.strip() for n in names.split(",") if n.strip()]
     return [str(n) for n in names]
-
-
-def _table(table, key: str, what: str, flag: str) -> pd.DataFrame | None:
-    if table is None:
-        return None
-    if not isinstance(table, pd.DataFrame):
-        from .._tables import read_table
-
-        table = read_table(table, label_columns=(key,))
-    if key not in table.columns:
-        raise UsageError(f"{what}: no column {key!r}; found {', '.join(map(str, table.columns))} ({flag})")
-    table = table.copy()
-    table[key] = table[key].astype(str)
-    if table[key].duplicated().any():
-        dup = ", ".join(pd.unique(table.loc[table[key].duplicated(), key]))
-        raise UsageError(f"{what} lists {dup} more than once; expected one row per {key}")
-    return table
-
-
-def _labels(series: pd.Series) -> pd.Series:
-    def fmt(v):
-        if v is None or (isinstance(v, float) and np.isnan(v)):
-            return None
-        if isinstance(v, (float, np.floating)) and float(v).is_integer():
-            return str(int(v))
-        return str(v)
-
-    return series.map(fmt)
 
 
 def _levels_in_order(series: pd.Series) -> list[str]:
@@ -90,7 +64,7 @@ def _plan_units(region_table, region_factors, regions):
         )
     table = region_table[region_table["region"].isin(regions)].copy()
     for f in region_factors:
-        table[f] = _labels(table[f])
+        table[f] = _group_labels(table[f])
     others = [c for c in table.columns if c not in ("region", *region_factors)]
     units: dict[str, list] = {}
     if others:
@@ -171,8 +145,8 @@ def repeated_measures(
         raise UsageError("repeated-measures needs at least one within factor (within='route', --within route)")
     if len(set(factors)) != len(factors):
         raise UsageError(f"within factors repeat a name: {', '.join(factors)}")
-    contrasts = _table(contrasts, "contrast", "contrasts table", "--contrasts")
-    region_table = _table(region_table, "region", "regions table", "--region-table")
+    contrasts = side_table(contrasts, kind="contrasts")
+    region_table = side_table(region_table, kind="regions")
     contrast_factors = [f for f in factors if contrasts is not None and f in contrasts.columns and f != "contrast"]
     region_factors = [f for f in factors if f not in contrast_factors]
     if region_factors and (region_table is None or any(f not in region_table.columns for f in region_factors)):
@@ -188,7 +162,7 @@ def repeated_measures(
     if contrast_factors:
         ctab = contrasts.copy()
         for f in contrast_factors:
-            ctab[f] = _labels(ctab[f])
+            ctab[f] = _group_labels(ctab[f])
         ctab = ctab.dropna(subset=contrast_factors)
         ctab = ctab[ctab["contrast"].isin(set(values["contrast"].astype(str)))]
         c_levels = [_levels_in_order(ctab[f]) for f in contrast_factors]
@@ -228,7 +202,7 @@ def repeated_measures(
     groups = None
     group_levels: list[str] = []
     if between is not None:
-        labels = _labels(join_participants(ids, participants, [between])[between])
+        labels = _group_labels(join_participants(ids, participants, [between])[between])
         group_levels = _levels_in_order(labels)
         if len(group_levels) < 2:
             raise DesignError(f"between column {between!r} has {len(group_levels)} level(s); need at least two")

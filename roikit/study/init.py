@@ -28,9 +28,9 @@ __all__ = ["propose_study", "write_study_file", "Proposal"]
 
 _NIFTI = (".nii.gz", ".nii")
 #: Entities that name the contrast, most likely first.
-_CONTRAST_KEYS = ("contrast", "con", "cope", "desc", "cond", "condition", "task")
+_CONTRAST_KEYS = ("contrast", "desc", "cond", "condition", "task")
 #: Suffixes of effect maps and of variance maps, most likely first.
-_EFFECT_SUFFIXES = ("effect", "beta", "estimate", "cope", "con", "contrast", "map")
+_EFFECT_SUFFIXES = ("effect", "beta", "estimate", "contrast", "map")
 _VARIANCE_HINT = re.compile(r"var", re.IGNORECASE)
 _DIFFERENCE = re.compile(r"(-|_)(vs|minus|gt|versus)(-|_)|>", re.IGNORECASE)
 _PAIR = re.compile(r"[-_](?:vs|minus|gt|versus)[-_]|>", re.IGNORECASE)
