@@ -206,10 +206,11 @@ def find_maps(
         )
     if unmatched:
         warnings.warn(
-            f"pattern {pattern!r}: {len(unmatched)} file(s) in the searched folders have the pattern's shape but not "
-            f"its labels (e.g. a subject label with '_' or '/') and were not used: {', '.join(unmatched[:10])}"
+            f"pattern {pattern!r}: {len(unmatched)} {noun(unmatched, 'file')} in the searched folders with "
+            f"the pattern's shape but not its labels (e.g. a subject label with '_' or '/'), not used: "
+            f"{', '.join(unmatched[:10])}"
             + (f" and {len(unmatched) - 10} more" if len(unmatched) > 10 else "")
-            + "; rename them or adjust the pattern if they belong to the study",
+            + "; rename such files or adjust the pattern if they belong to the study",
             InputWarning,
             stacklevel=2,
         )
@@ -263,7 +264,8 @@ def _validate_maps(maps: pd.DataFrame, *, source: str) -> pd.DataFrame:
             rows = (np.flatnonzero(bad) + 1).tolist()
             raise MapDiscoveryError(
                 f"{source}: column volume must hold whole numbers from 0 (the 0-based volume of a 4D file), found "
-                f"{maps['volume'][bad].astype(str).tolist()[:5]} in row(s) {rows[:10]}; fix those rows or leave the "
+                f"{maps['volume'][bad].astype(str).tolist()[:5]} in {noun(rows, 'row')} {rows[:10]}; fix the volume "
+                "there or leave the "
                 "cell n/a for 3D files"
             )
         maps["volume"] = number.astype("Int64")
@@ -865,7 +867,7 @@ def _warn_identical(maps: pd.DataFrame, tasks, digests) -> None:
     warnings.warn(
         f"{sum(len(m) for _k, m in same)} maps are byte-for-byte identical to another map of a different "
         f"participant or contrast (a copy or a wrong link?): " + "; ".join(parts)
-        + ("" if len(same) <= 5 else f"; and {len(same) - 5} more group(s)")
+        + ("" if len(same) <= 5 else f"; and {len(same) - 5} more {noun(len(same) - 5, 'group')}")
         + "; check the files: identical maps would enter the statistics as separate observations",
         InputWarning,
         stacklevel=3,

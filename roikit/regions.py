@@ -219,7 +219,8 @@ def read_label_table(path) -> pd.DataFrame:
     if blank.any():
         where = [f"line {i + 2} (index {table['index'].iloc[i]})" for i in np.flatnonzero(blank)[:10]]
         raise RegionError(
-            f"{path}: {int(blank.sum())} region(s) without a name ({', '.join(where)}); every label needs a name in "
+            f"{path}: {int(blank.sum())} {noun(int(blank.sum()), 'region')} without a name ({', '.join(where)}); "
+            "every label needs a name in "
             "the `name` column (a region with no name would be lost); fill in the names or remove those rows"
         )
     table = table.assign(index=idx.astype(np.int64), name=names.astype(str))

@@ -198,7 +198,7 @@ def test_map_list_volume_must_be_a_whole_number(tmp_path, tiny_study):
     p = tiny_study["maps"][("sub-01", "novel")][0]
     listing = tmp_path / "maps.tsv"
     listing.write_text(f"participant_id\tcontrast\tpath\tvolume\nsub-01\tnovel\t{p}\tabc\nsub-02\tnovel\t{p}\t-1\n")
-    with pytest.raises(MapDiscoveryError, match=r"volume must hold whole numbers .*'abc', '-1'.*row\(s\) \[1, 2\]"):
+    with pytest.raises(MapDiscoveryError, match=r"volume must hold whole numbers .*'abc', '-1'.*rows \[1, 2\]"):
         read_map_list(listing)
 
 
@@ -259,7 +259,7 @@ def test_unmatched_files_and_identical_maps_are_warned_about(tiny_study, tmp_pat
     maps_dir = Path(tiny_study["pattern"]).parent
     src = tiny_study["maps"][("sub-01", "novel")][0]
     (maps_dir / "sub-11_extra_contrast-novel_effect.nii.gz").write_bytes(src.read_bytes())  # glob yes, pattern no
-    with pytest.warns(InputWarning, match=r"1 file\(s\) .* not used: .*sub-11_extra_contrast-novel_effect"):
+    with pytest.warns(InputWarning, match=r"1 file in .* not used: .*sub-11_extra_contrast-novel_effect"):
         maps = find_maps(tiny_study["pattern"])
     (maps_dir / "sub-11_extra_contrast-novel_effect.nii.gz").unlink()
     (maps_dir / "sub-12_contrast-novel_effect.nii.gz").write_bytes(src.read_bytes())  # identical bytes
@@ -280,7 +280,7 @@ def test_two_group_lists_participants_of_a_third_level():
     groups = ["younger"] * 4 + ["older"] * 4 + ["middle"]
     participants = pd.DataFrame({"participant_id": ids, "group": groups})
     participants.loc[0, "group"] = None
-    with pytest.warns(MissingValueWarning, match=r"other level\(s\) of column 'group' .*middle: sub-09"):
+    with pytest.warns(MissingValueWarning, match=r"1 participant in a level of column 'group' other than .*middle: sub-09"):
         res = run_design(values, "two-group", contrast="novel", group="group", levels="younger,older",
                          participants=participants)
     assert res["n"].iloc[0] == 7

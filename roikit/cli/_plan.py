@@ -10,6 +10,7 @@ from pathlib import Path
 from typing import TYPE_CHECKING
 
 from .. import __version__
+from .._options import plural
 from ..errors import CautionWarning, DesignError, UsageError
 
 if TYPE_CHECKING:  # annotations only; imported where used, so start-up stays fast
@@ -269,11 +270,11 @@ def run(args: argparse.Namespace) -> int:
     for line in shown:
         sys.stderr.write(f"roikit plan: {line}\n")
     if len(shown) < len(summary):
-        sys.stderr.write(f"roikit plan: ... {len(summary) - len(shown)} more row(s) in {path}\n")
+        sys.stderr.write(f"roikit plan: ... {plural(len(summary) - len(shown), 'more row')} in {path}\n")
     for note in notes:
         if note != pw.INFLATION_NOTE and not note.startswith("the family"):
             sys.stderr.write(f"roikit plan: note: {note}\n")
-    sys.stderr.write(f"roikit plan: {len(table)} row(s) -> {path}"
+    sys.stderr.write(f"roikit plan: {plural(len(table), 'row')} -> {path}"
                      + (f"; figure {written_figure[-1]}" if written_figure else "") + "\n")
     return 0
 

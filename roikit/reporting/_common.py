@@ -7,6 +7,7 @@ from typing import Any, Iterable
 import numpy as np
 import pandas as pd
 
+from .._options import noun
 from ..errors import UsageError
 from .format import is_missing
 
@@ -23,7 +24,8 @@ def check_columns(data: pd.DataFrame, required: Iterable[str], what: str) -> Non
     missing = [c for c in required if c not in data.columns]
     if missing:
         raise UsageError(
-            f"{what} lacks column(s) {', '.join(missing)} (found: {', '.join(map(str, data.columns))}); "
+            f"{what} lacks {noun(missing, 'column')} {', '.join(missing)} (found: "
+            f"{', '.join(map(str, data.columns))}); "
             f"pass the table written by roikit"
         )
 

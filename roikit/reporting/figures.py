@@ -39,7 +39,7 @@ from matplotlib.collections import LineCollection
 from matplotlib.transforms import blended_transform_factory
 from scipy import stats
 
-from .._options import spell
+from .._options import noun, spell
 from .._tables import atomic_write_bytes, check_output
 from ..errors import UsageError
 from ._common import (
@@ -424,7 +424,7 @@ def participant_plot(
         raise UsageError(f"contrast is required: the values hold contrasts {', '.join(available)}")
     unknown = [c for c in conditions if c not in available]
     if unknown:
-        raise UsageError(f"contrast(s) {', '.join(unknown)} not found for region {region!r} "
+        raise UsageError(f"{noun(unknown, 'contrast')} {', '.join(unknown)} not found for region {region!r} "
                          f"(available: {', '.join(available)})")
     part = part[part["contrast"].map(text).isin(conditions)].copy()
     part[participant] = part[participant].astype(str)

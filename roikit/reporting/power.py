@@ -12,6 +12,7 @@ from __future__ import annotations
 import numpy as np
 import pandas as pd
 
+from .._options import noun
 from ..errors import UsageError
 from ..stats.power import EFFECT_SIZE_TYPES, T_DESIGNS, sensitivity, t_power
 from .format import format_number
@@ -64,7 +65,8 @@ def power_curve(
     needed = {"design", "effect_size", "effect_size_type", "n", "alpha_per_test"}
     missing = sorted(needed - set(data.columns))
     if missing:
-        raise UsageError(f"power_curve: plan table lacks column(s) {', '.join(missing)}; pass a roikit plan table")
+        raise UsageError(f"power_curve: plan table lacks {noun(missing, 'column')} {', '.join(missing)}; pass a "
+                         "roikit plan table")
     rows = data[data["design"].isin(T_DESIGNS) & np.isfinite(pd.to_numeric(data["effect_size"], errors="coerce"))]
     if rows.empty:
         raise UsageError("power_curve: no t-design rows with an effect size to draw (designs one-sample, paired, "
@@ -157,7 +159,7 @@ def crossed_power_figure(
     needed = {"n_participants", "n_stimuli", "power", "power_limit"}
     missing = sorted(needed - set(data.columns))
     if missing:
-        raise UsageError(f"crossed_power_figure: grid lacks column(s) {', '.join(missing)}")
+        raise UsageError(f"crossed_power_figure: grid lacks {noun(missing, 'column')} {', '.join(missing)}")
     stimuli = sorted(pd.unique(data["n_stimuli"].astype(int)))[: len(_COLORS)]
     from matplotlib.figure import Figure
 
@@ -219,7 +221,7 @@ def simulated_power_figure(
     needed = {"n", "power", "mc_se"}
     missing = sorted(needed - set(data.columns))
     if missing:
-        raise UsageError(f"simulated_power_figure: table lacks column(s) {', '.join(missing)}")
+        raise UsageError(f"simulated_power_figure: table lacks {noun(missing, 'column')} {', '.join(missing)}")
     key = "region" if "region" in data and data["region"].notna().any() else "mean"
     order = data.groupby(key, sort=False)["power"].max().sort_values(ascending=False).index[: len(_COLORS)]
     if target is None and "target_power" in data and pd.notna(data["target_power"]).any():

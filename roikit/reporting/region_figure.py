@@ -24,6 +24,7 @@ import pandas as pd
 from matplotlib.colors import LinearSegmentedColormap, ListedColormap
 from matplotlib.figure import Figure
 
+from .._options import noun
 from ..errors import UsageError
 from ..images import Grid, load_map, read_flat, read_header, resample_nearest
 from ..regions import Atlas, Mask, ProbabilityMap, RealisedRegions, RegionSet, Sphere
@@ -221,7 +222,8 @@ def region_figure(
     names = list(names) if names is not None else list(regions.names)
     unknown = [n for n in names if n not in regions.names]
     if unknown:
-        raise UsageError(f"region(s) {', '.join(unknown)} not in the region set ({', '.join(regions.names)})")
+        raise UsageError(f"{noun(unknown, 'region')} {', '.join(unknown)} not in the region set "
+                         f"({', '.join(regions.names)})")
     if not names:
         raise UsageError("no region to draw")
     per_row, rows = _layout(width)

@@ -22,7 +22,7 @@ from typing import Iterable, Sequence
 import numpy as np
 import pandas as pd
 
-from .._options import spell
+from .._options import noun, plural, spell
 from ..errors import CoverageWarning, DesignError, MissingValueWarning, UsageError
 
 __all__ = [
@@ -194,7 +194,8 @@ def check_values(values: pd.DataFrame, *, variance: bool = False) -> pd.DataFram
     missing = [c for c in required if c not in values.columns]
     if missing:
         raise UsageError(
-            f"region values table lacks column(s) {', '.join(missing)}; found {', '.join(map(str, values.columns))}; "
+            f"region values table lacks {noun(missing, 'column')} {', '.join(missing)}; found "
+            f"{', '.join(map(str, values.columns))}; "
             f"expected {', '.join(required)} (as written by roikit extract)"
         )
     values = values.copy(deep=False)
@@ -320,7 +321,8 @@ def join_participants(
     columns = list(columns)
     if participants is None:
         raise UsageError(
-            f"this design needs participants.tsv column(s) {', '.join(columns)}; pass {spell('participants')}"
+            f"this design needs participants.tsv {noun(columns, 'column')} {', '.join(columns)}; pass "
+            f"{spell('participants')}"
         )
     if not isinstance(participants, pd.DataFrame):
         raise UsageError(f"participants must be a DataFrame, got {type(participants).__name__}")
@@ -331,7 +333,7 @@ def join_participants(
     missing = [c for c in columns if c not in participants.columns]
     if missing:
         raise UsageError(
-            f"participants table lacks column(s) {', '.join(missing)}; available: "
+            f"participants table lacks {noun(missing, 'column')} {', '.join(missing)}; available: "
             f"{', '.join(c for c in map(str, participants.columns) if c != 'participant_id')}"
         )
     table = participants.copy()
@@ -442,7 +444,7 @@ def check_minimum_n(
         listed = ", ".join(f"{regions[j]} (n = {int(n[j])})" for j in bad[:10])
         more = f" and {bad.size - 10} more" if bad.size > 10 else ""
         raise DesignError(
-            f"{context + ': ' if context else ''}fewer than {minimum} {what} with values in region(s) "
+            f"{context + ': ' if context else ''}fewer than {minimum} {what} with values in {noun(bad.size, 'region')} "
             f"{listed}{more}; at least {minimum} are needed; check the missing values or drop these regions"
         )
 
@@ -455,7 +457,8 @@ def check_variance(sd: np.ndarray, regions: Sequence[str], *, context: str = "",
         listed = ", ".join(str(regions[j]) for j in bad[:10])
         more = f" and {bad.size - 10} more" if bad.size > 10 else ""
         raise DesignError(
-            f"{context + ': ' if context else ''}zero variance of the {what} in region(s) {listed}{more}; "
+            f"{context + ': ' if context else ''}zero variance of the {what} in {noun(bad.size, 'region')} "
+            f"{listed}{more}; "
             "a t statistic needs spread across participants; check the extraction (constant maps?)"
         )
 
@@ -613,7 +616,7 @@ def attach_columns(
         if absent:
             raise DesignError(
                 f"{prefix}{name} has no row for {key} {', '.join(absent[:8])}{' ...' if len(absent) > 8 else ''} "
-                f"(its column(s) {', '.join(cols)} are in the model); add those rows, or select the "
+                f"(the model uses its {noun(cols, 'column')} {', '.join(cols)}); add those rows, or select the "
                 f"{key}s that it describes"
             )
         joined = mapped.reindex(labels.astype(str).to_numpy())
@@ -665,7 +668,7 @@ def warn_dropped_observations(
     for r, n_obs, some, whole in zip(regions, n_observations, partly, wholly):
         if not n_obs:
             continue
-        text = f"{r}: {', '.join(some)} ({n_obs} observation(s) of {len(some)} participant(s)"
+        text = f"{r}: {', '.join(some)} ({plural(n_obs, 'observation')} of {plural(len(some), 'participant')}"
         if len(whole):
             text += f"; {len(whole)} of them left out entirely: {', '.join(whole)}"
         parts.append(text + ")")
@@ -674,7 +677,8 @@ def warn_dropped_observations(
     total = int(sum(n_observations))
     n_regions = sum(1 for n in n_observations if n)
     warnings.warn(
-        f"{context}: {total} observation(s) excluded in {n_regions} region(s) ({reason}), each for its region "
+        f"{context}: {plural(total, 'observation')} excluded in {plural(n_regions, 'region')} ({reason}), each for "
+        "its region "
         "only: " + "; ".join(parts),
         MissingValueWarning,
         stacklevel=stacklevel,

@@ -17,7 +17,7 @@ import numpy as np
 import pandas as pd
 from scipy import linalg, stats
 
-from .._options import spell
+from .._options import noun, plural, spell
 from ..errors import DesignError, MissingValueWarning, UsageError
 from ._common import (
     check_minimum_n,
@@ -183,7 +183,7 @@ def _prepare_paired(values, contrast, versus, *, warn: bool = True):
     dropped = [r for r in list(a.columns) + list(b.columns) if r not in regions]
     if dropped:
         raise DesignError(
-            f"paired design: region(s) {', '.join(dict.fromkeys(dropped))} have values for only one of "
+            f"paired design: {noun(dropped, 'region')} {', '.join(dict.fromkeys(dropped))} with values for only one of "
             f"{contrast!r} and {versus!r}; both contrasts need the same regions"
         )
     ids = list(dict.fromkeys(list(a.index) + list(b.index)))
@@ -359,7 +359,7 @@ def _prepare_two_group(values, participants, contrast, group, levels, *, warn: b
     if levels is None:
         if len(observed_levels) != 2:
             raise UsageError(
-                f"column {group!r} has {len(observed_levels)} level(s) ({', '.join(observed_levels)}); "
+                f"column {group!r} has {plural(len(observed_levels), 'level')} ({', '.join(observed_levels)}); "
                 f"pass {spell('levels', example='L1,L2')} to choose the two groups compared"
             )
         levels = observed_levels
@@ -372,7 +372,7 @@ def _prepare_two_group(values, participants, contrast, group, levels, *, warn: b
     no_group = list(labels.index[labels.isna()])
     if no_group and warn:
         warnings.warn(
-            f"two-group on {contrast!r}: {len(no_group)} participant(s) without a value in participants column "
+            f"two-group on {contrast!r}: {plural(len(no_group), 'participant')} without a value in participants column "
             f"{group!r} (or absent from participants.tsv) excluded from every region: {', '.join(no_group)}",
             MissingValueWarning,
             stacklevel=4,
@@ -382,8 +382,9 @@ def _prepare_two_group(values, participants, contrast, group, levels, *, warn: b
         by_level = "; ".join(f"{lev}: {', '.join(map(str, others.index[others == lev]))}"
                              for lev in pd.unique(others))
         warnings.warn(
-            f"two-group on {contrast!r}: {len(others)} participant(s) in other level(s) of column {group!r} than "
-            f"{levels[0]!r} and {levels[1]!r} are not part of this comparison: {by_level}",
+            f"two-group on {contrast!r}: {plural(len(others), 'participant')} in "
+            f"{noun(pd.unique(others), 'a level', 'levels')} of column {group!r} other than {levels[0]!r} and "
+            f"{levels[1]!r} left out of this comparison: {by_level}",
             MissingValueWarning,
             stacklevel=4,
         )
@@ -545,7 +546,8 @@ def _prepare_glm(values, participants, contrast, formula, *, center=True, warn=T
     incomplete = data.isna().any(axis=1).to_numpy()
     if incomplete.any() and warn:
         warnings.warn(
-            f"glm on {contrast!r}: {int(incomplete.sum())} participant(s) with missing {', '.join(variables)} in "
+            f"glm on {contrast!r}: {plural(int(incomplete.sum()), 'participant')} with missing "
+            f"{', '.join(variables)} in "
             f"participants.tsv (or absent from it) excluded from every region: "
             f"{', '.join(np.asarray(y.index)[incomplete])}",
             MissingValueWarning,
@@ -612,8 +614,9 @@ def _glm_permutation(
     incomplete = [r for r, e in zip(regions, excluded) if e]
     if incomplete:
         raise DesignError(
-            f"permutations for glm (Freedman-Lane) need complete data; region(s) {', '.join(incomplete[:10])} have "
-            "missing values; drop those participants or regions, or run without permutations"
+            f"permutations for glm (Freedman-Lane) need complete data; {noun(incomplete, 'region')} "
+            f"{', '.join(incomplete[:10])} with missing values; drop those participants or regions, or run without "
+            "permutations"
         )
     out, total, exact = freedman_lane_max(
         x, y.to_numpy(float), [(name, lmat) for name, lmat, _f in tests], permutations=permutations, rng=rng
@@ -700,7 +703,8 @@ def glm(
         rows = ~np.isnan(ymat[:, cols[0]])
         xs = x[rows]
         if np.linalg.matrix_rank(xs) < p:
-            where = f" for region(s) {', '.join(regions[c] for c in cols[:5])} (after excluding missing values)"
+            where = (f" for {noun(cols, 'region')} {', '.join(regions[c] for c in cols[:5])} "
+                     "(after excluding missing values)")
             raise DesignError(_collinear_message(xs, names, where))
         fit = ols_matrix(xs, ymat[np.ix_(rows, cols)])
         check_variance(np.sqrt(fit["sigma2"]), [regions[c] for c in cols], context=context, what="residuals")

@@ -12,7 +12,7 @@ import numpy as np
 import pandas as pd
 from scipy import stats
 
-from .._options import spell
+from .._options import plural, spell
 from ..errors import DiagnosticWarning
 from ._common import join_ids
 
@@ -133,21 +133,21 @@ def warn_diagnostics(results: pd.DataFrame, *, context: str, alpha: float = 0.05
                      for pid in str(ids).split(",") if pid.strip()]
         if len(flagged):
             parts.append(
-                f"robust outliers (modified z > 3.5) in {len(flagged)} region(s): "
+                f"robust outliers (modified z > 3.5) in {plural(len(flagged), 'region')}: "
                 + "; ".join(f"{r}: {ids}" for r, ids in zip(flagged["region"], flagged["outlier_ids"]))
             )
     if "shapiro_p" in rows.columns:
         sp = pd.to_numeric(rows["shapiro_p"], errors="coerce")
         bad = rows.loc[sp < alpha, "region"]
         if len(bad):
-            parts.append(f"Shapiro-Wilk p < {alpha} in {len(bad)} region(s): {', '.join(map(str, bad))}")
+            parts.append(f"Shapiro-Wilk p < {alpha} in {plural(len(bad), 'region')}: {', '.join(map(str, bad))}")
             findings += [{"problem": f"residuals not normal (Shapiro-Wilk p < {alpha})", "region": r} for r in bad]
     if "brown_forsythe_p" in rows.columns:
         bp = pd.to_numeric(rows["brown_forsythe_p"], errors="coerce")
         bad = rows.loc[bp < alpha, "region"]
         if len(bad):
             parts.append(
-                f"unequal group variances (Brown-Forsythe p < {alpha}) in {len(bad)} region(s): "
+                f"unequal group variances (Brown-Forsythe p < {alpha}) in {plural(len(bad), 'region')}: "
                 f"{', '.join(map(str, bad))} (consider {spell('welch', True)})"
             )
             findings += [{"problem": f"unequal group variances (Brown-Forsythe p < {alpha}; consider "
@@ -156,7 +156,7 @@ def warn_diagnostics(results: pd.DataFrame, *, context: str, alpha: float = 0.05
         cd = pd.to_numeric(rows["max_cooks_d"], errors="coerce")
         bad = rows.loc[cd > 1.0, "region"]
         if len(bad):
-            parts.append(f"Cook's distance > 1 in {len(bad)} region(s): {', '.join(map(str, bad))}")
+            parts.append(f"Cook's distance > 1 in {plural(len(bad), 'region')}: {', '.join(map(str, bad))}")
             findings += [{"problem": "Cook's distance > 1", "region": r} for r in bad]
     if parts:
         warnings.warn(DiagnosticWarning(f"{context}: " + " | ".join(parts), findings=findings, context=context),

@@ -14,6 +14,7 @@ import numpy as np
 import pandas as pd
 from scipy import stats as _st
 
+from .._options import noun, plural
 from ..errors import CautionWarning, DesignError
 from ._common import COLUMN_DESCRIPTIONS
 from ._registry import register
@@ -134,8 +135,9 @@ def fixed_effects(
     bad = np.argwhere(np.isfinite(V) & ~(V > 0))
     if bad.size:
         listed = ", ".join(f"{ids[i]} in {regions[j]} ({V[i, j]:g})" for i, j in bad[:5])
-        raise DesignError(f"fixed-effects: non-positive first-level variance(s) for {len(bad)} participant-region "
-                          f"value(s): {listed}; variances must be > 0; check the variance maps")
+        raise DesignError(f"fixed-effects: non-positive first-level {noun(len(bad), 'variance')} for "
+                          f"{plural(len(bad), 'participant-region value')}: {listed}; variances must be > 0; check "
+                          "the variance maps")
     mask = np.isfinite(y) & np.isfinite(V)
     excluded = [[ids[i] for i in np.flatnonzero(~mask[:, j])] for j in range(len(regions))]
     warn_exclusions(regions, excluded, context=context, reason="value or variance missing")
@@ -151,6 +153,6 @@ def fixed_effects(
         excluded_ids=[join_ids(e) for e in excluded], n_low_coverage=[len(c) for c in coverage],
         low_coverage_ids=[join_ids(c) for c in coverage], fixed_effects_only=True, caution=CAUTION,
     )
-    warnings.warn(f"{CAUTION} (contrast {contrast!r}, {len(ids)} participants, {len(regions)} region(s))",
+    warnings.warn(f"{CAUTION} (contrast {contrast!r}, {len(ids)} participants, {plural(len(regions), 'region')})",
                   CautionWarning, stacklevel=3)
     return out

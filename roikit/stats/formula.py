@@ -51,6 +51,7 @@ from typing import Iterable
 import numpy as np
 import pandas as pd
 
+from .._options import noun, plural
 from ..errors import DesignError, UsageError
 
 __all__ = ["TRANSFORMS", "MAX_TERMS", "MAX_COLUMNS", "MAX_POWER", "Formula", "parse_formula", "formula_problems"]
@@ -414,7 +415,7 @@ class Formula:
         where = context or f"{self.parameter} {self.text!r}"
         missing = [v for v in self.variables if v not in frame.columns]
         if missing:
-            raise error(f"{where}: column(s) {', '.join(missing)} not found in the data")
+            raise error(f"{where}: {noun(missing, 'column')} {', '.join(missing)} not found in the data")
         if not self.terms and not self.intercept:
             raise UsageError(f"{where}: the model has no terms (no intercept and no predictors); write e.g. "
                              "'value ~ 1' or 'value ~ age'")
@@ -452,7 +453,7 @@ class Formula:
                 bad = np.isfinite(x) & ~(x > 0)
                 if bad.any():
                     raise error(f"{where}: log({f.column}) needs values > 0; found {x[bad][0]:g} in "
-                                f"{int(bad.sum())} row(s); use a column with positive values or drop log()")
+                                f"{plural(int(bad.sum()), 'row')}; use a column with positive values or drop log()")
                 with np.errstate(all="ignore"):
                     x = np.log(x)
             if f.kind in ("center", "scale", "standardize"):

@@ -20,7 +20,7 @@ from scipy import linalg as _la
 from scipy import optimize as _opt
 from scipy import stats as _st
 
-from .._options import progress_bar, spell
+from .._options import noun, plural, progress_bar, spell
 from ..errors import ConvergenceError, DesignError, DiagnosticWarning, UsageError
 from ._common import COLUMN_DESCRIPTIONS
 from ._registry import register
@@ -1075,7 +1075,7 @@ def _check_support(region, factors: Sequence[RandomFactor], X: np.ndarray, names
         if L * f.r >= n:
             raise _both(
                 DesignError,
-                f"mixed: region {region!r}: {L} levels of {f.name!r} x {f.r} random effect(s) "
+                f"mixed: region {region!r}: {L} levels of {f.name!r} x {plural(f.r, 'random effect')} "
                 f"({', '.join(f.terms)}) = {L * f.r} random effects for {n} observations; the data cannot support "
                 "this random structure (the random effects must be fewer than the observations); use fewer random "
                 "terms, e.g. random='1'"
@@ -1275,7 +1275,7 @@ def mixed(
     if selected is not None:
         unknown = [c for c in selected if c not in set(values["contrast"])]
         if unknown:
-            raise DesignError(f"mixed: contrast(s) {', '.join(unknown)} not found; available: "
+            raise DesignError(f"mixed: {noun(unknown, 'contrast')} {', '.join(unknown)} not found; available: "
                               f"{', '.join(map(str, pd.unique(values['contrast'])))}")
         data = values[values["contrast"].isin(selected)]
     extra = [c for c in (crossed, nested) if c is not None]
@@ -1495,7 +1495,8 @@ def _warn_crossed_looks_nested(frame: pd.DataFrame, crossed: str, regions: Seque
             flagged.append(r)
     if flagged:
         warnings.warn(
-            f"mixed: the crossed column {crossed!r} looks nested within participant in {len(flagged)} region(s) "
+            f"mixed: the crossed column {crossed!r} looks nested within participant in "
+            f"{plural(len(flagged), 'region')} "
             f"({', '.join(flagged[:6])}{' ...' if len(flagged) > 6 else ''}): its levels' effects do not repeat "
             "across participants (large participant x level variation, no larger level effect); if its labels "
             f"restart within each participant, model it as nested={crossed!r} (--nested {crossed})",

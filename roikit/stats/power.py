@@ -29,6 +29,7 @@ import numpy as np
 import pandas as pd
 from scipy import optimize, stats
 
+from .._options import noun
 from .._typing import Seed
 from ..errors import ConvergenceError, DesignError, UsageError
 from .effect_sizes import _nct_cdf, d_interval, hedges_j, nct_ncp_interval
@@ -528,7 +529,8 @@ def plan_from_results(
     needed = {"region", "design", "term", "n", "effect_size"}
     missing = sorted(needed - set(results.columns))
     if missing:
-        raise DesignError(f"results: column(s) {', '.join(missing)} missing; expected a `roikit stats` results table")
+        raise DesignError(f"results: {noun(missing, 'column')} {', '.join(missing)} missing; expected a `roikit "
+                          "stats` results table")
     design = _pilot_design(results)
     if design not in T_DESIGNS:
         raise DesignError(f"results: design {design!r} has no closed-form plan by effect size; the t designs "

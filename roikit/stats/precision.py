@@ -18,6 +18,7 @@ import numpy as np
 import pandas as pd
 from scipy import stats as _st
 
+from .._options import noun, plural
 from ..errors import ConvergenceError, DesignError, DiagnosticWarning, UsageError
 from ._common import COLUMN_DESCRIPTIONS
 from ._registry import register
@@ -600,7 +601,8 @@ def precision_weighted(
     if bad.size:
         listed = ", ".join(f"{ids[i]} in {regions[j]} ({Vdf.iat[i, j]:g})" for i, j in bad[:5])
         raise DesignError(
-            f"precision-weighted: non-positive first-level variance(s) for {len(bad)} participant-region value(s): "
+            f"precision-weighted: non-positive first-level {noun(len(bad), 'variance')} for "
+            f"{plural(len(bad), 'participant-region value')}: "
             f"{listed}{' ...' if len(bad) > 5 else ''}; variances must be > 0; check the variance maps"
         )
     y = Y.to_numpy(float)
@@ -642,13 +644,13 @@ def precision_weighted(
     if np.any(rank < p):
         bad_r = [regions[j] for j in np.flatnonzero(rank < p)]
         raise DesignError(f"precision-weighted: the formula {formula_text!r} is not estimable (collinear or constant "
-                          f"predictors) in region(s) {', '.join(bad_r[:10])}; simplify the formula")
+                          f"predictors) in {noun(bad_r, 'region')} {', '.join(bad_r[:10])}; simplify the formula")
 
     fit = fit_precision_weighted(y, v, X, mask=mask, tau2_method=tau2, test=_TEST_NAMES[test], confidence=confidence)
     if not fit["converged"].all():
         bad_r = [regions[j] for j in np.flatnonzero(~fit["converged"])]
-        raise ConvergenceError(f"precision-weighted: Fisher scoring for tau2 ({tau2}) did not converge in region(s) "
-                               f"{', '.join(bad_r[:10])}; try tau2='dl' or tau2='pm'")
+        raise ConvergenceError(f"precision-weighted: Fisher scoring for tau2 ({tau2}) did not converge in "
+                               f"{noun(bad_r, 'region')} {', '.join(bad_r[:10])}; try tau2='dl' or tau2='pm'")
 
     resid = np.where(mask, (np.where(mask, y, 0) - X @ fit["b"].T) / np.sqrt(np.where(mask, v, 1) + fit["tau2"]),
                      np.nan)

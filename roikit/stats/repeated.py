@@ -21,6 +21,7 @@ from typing import Sequence
 import numpy as np
 import pandas as pd
 
+from .._options import noun, plural
 from ..errors import DesignError, MissingValueWarning, UsageError
 from ._common import (
     check_minimum_n,
@@ -59,7 +60,8 @@ def _plan_units(region_table, region_factors, regions):
         return {r: [(r, ())] for r in regions}
     if region_table is None:
         raise UsageError(
-            f"within factor(s) {', '.join(region_factors)} are not contrasts.tsv columns; a region factor needs "
+            f"within {noun(region_factors, 'factor')} {', '.join(region_factors)} not among the contrasts.tsv "
+            "columns; a region factor needs "
             "regions.tsv (--region-table FILE, region_table=...)"
         )
     table = region_table[region_table["region"].isin(regions)].copy()
@@ -152,7 +154,8 @@ def repeated_measures(
     if region_factors and (region_table is None or any(f not in region_table.columns for f in region_factors)):
         missing = [f for f in region_factors if region_table is None or f not in region_table.columns]
         raise UsageError(
-            f"within factor(s) {', '.join(missing)} found in neither contrasts.tsv nor regions.tsv; give the table "
+            f"within {noun(missing, 'factor')} {', '.join(missing)} found in neither contrasts.tsv nor regions.tsv; "
+            "give the table "
             "that holds them (--contrasts FILE / --region-table FILE; contrasts=..., region_table=...)"
         )
     if between is not None and between in factors:
@@ -195,7 +198,7 @@ def repeated_measures(
     names_all = contrast_factors + region_factors
     if any(k < 2 for k in levels_all):
         one = [n for n, k in zip(names_all, levels_all) if k < 2]
-        raise DesignError(f"within factor(s) {', '.join(one)} have fewer than two levels in the data")
+        raise DesignError(f"within {noun(one, 'factor')} {', '.join(one)}: fewer than two levels in the data")
 
     mats = {c: pivot_contrast(values, c) for c in dict.fromkeys(cell_of.values())}
     ids = list(dict.fromkeys(pid for m in mats.values() for pid in m.index))
@@ -205,7 +208,7 @@ def repeated_measures(
         labels = _group_labels(join_participants(ids, participants, [between])[between])
         group_levels = _levels_in_order(labels)
         if len(group_levels) < 2:
-            raise DesignError(f"between column {between!r} has {len(group_levels)} level(s); need at least two")
+            raise DesignError(f"between column {between!r} has {plural(len(group_levels), 'level')}; need at least two")
         groups = labels
 
     unit_names, arrays, kept, excluded = [], [], [], []
@@ -372,7 +375,8 @@ def region_difference(
     present = region_order(values)
     unknown = [r for r in names if r not in present]
     if unknown:
-        raise UsageError(f"region(s) {', '.join(unknown)} not in the values table; available: {', '.join(present)}")
+        raise UsageError(f"{noun(unknown, 'region')} {', '.join(unknown)} not in the values table; available: "
+                         f"{', '.join(present)}")
     y = pivot_contrast(values, contrast)
     if versus is not None:
         y = y - pivot_contrast(values, versus).reindex(index=y.index, columns=y.columns)

@@ -139,7 +139,7 @@ def test_participant_plot_errors(values):
         participant_plot(values, contrast="novel")
     with pytest.raises(UsageError, match="contrast is required"):
         participant_plot(values, region="left hippocampus")
-    with pytest.raises(UsageError, match="contrast\\(s\\) nonsense not found"):
+    with pytest.raises(UsageError, match="contrast nonsense not found"):
         participant_plot(values, region="left hippocampus", contrast="nonsense")
     with pytest.raises(UsageError, match="group column 'site'"):
         participant_plot(values, region="left hippocampus", contrast="novel", group="site")

@@ -202,7 +202,7 @@ def test_errors():
         run_design(values, "mixed", random="1")
     with pytest.raises(UsageError, match="left-hand side must be 'value'"):
         run_design(values, "mixed", formula="signal ~ contrast")
-    with pytest.raises(DesignError, match="contrast\\(s\\) town9 not found"):
+    with pytest.raises(DesignError, match="contrast town9 not found"):
         run_design(values, "mixed", formula="value ~ 1", contrast="town9")
     with pytest.raises(UsageError, match="needs participants.tsv"):
         run_design(values, "mixed", formula="value ~ contrast + age")

@@ -72,7 +72,7 @@ def test_centring_per_region_region_alone_equals_region_beside_others_with_missi
     opts = dict(formula="value ~ load + age", random="1", contrasts=contrasts, participants=participants)
     with pytest.warns(MissingValueWarning, match="left out entirely: sub-01, sub-02"):
         alone = run_design(values[values["region"] == "left hippocampus"], "mixed", **opts)
-    with pytest.warns(MissingValueWarning, match=r"observation\(s\) excluded"):
+    with pytest.warns(MissingValueWarning, match=r"observations excluded"):
         both = run_design(values, "mixed", **opts)
     both_lh = both[both["region"] == "left hippocampus"].reset_index(drop=True)
     for column in ("estimate", "se", "df", "p", "sd_participant", "sd_residual", "deviance", "effect_size"):
@@ -102,8 +102,8 @@ def test_exclusion_counts_observations_and_participants():
     values.loc[drop, "value"] = np.nan  # 8 observations, two participants left out entirely
     values.loc[(values["region"] == "b") & (values["participant_id"] == "sub-03")
                & (values["contrast"] == "load1"), "value"] = np.nan
-    with pytest.warns(MissingValueWarning, match=r"9 observation\(s\) excluded in 1 region.*b: sub-01, sub-02, "
-                                                 r"sub-03 \(9 observation\(s\) of 3 participant\(s\); 2 of them left "
+    with pytest.warns(MissingValueWarning, match=r"9 observations excluded in 1 region .*b: sub-01, sub-02, "
+                                                 r"sub-03 \(9 observations of 3 participants; 2 of them left "
                                                  r"out entirely: sub-01, sub-02\)"):
         res = run_design(values, "mixed", formula="value ~ load", contrasts=contrasts)
     by = res[res["term"] == "load"].set_index("region")
