@@ -667,7 +667,7 @@ def extract(
     n_regions, n_maps = len(names), len(tasks)
 
     values = np.full((n_maps, n_regions), np.nan)
-    n_valid = np.zeros((n_maps, n_regions), dtype=np.int64)
+    n_valid = np.zeros((n_maps, n_regions), dtype=np.int32)
     has_var = "variance_path" in maps.columns
     variances = np.full((n_maps, n_regions), np.nan) if has_var else None
     digests: list = [None] * n_maps
@@ -826,23 +826,28 @@ def assemble_values(maps: pd.DataFrame, names, n_voxels, values, n_valid, varian
     """The region values table from per-map arrays (maps x regions), in the maps' then the regions' order.
 
     Used by :func:`extract` and by callers that merge cached and fresh results (``roikit run``).
+
+    The table is lean in memory (about 29 bytes per row instead of about 260): ``participant_id``,
+    ``session_id``, ``contrast`` and ``region`` are categorical (their categories sorted as strings, so sorting
+    and grouping give the same order as plain strings would), ``n_voxels`` and ``n_valid`` are int32. ``value``
+    and ``variance`` stay float64: they are computed in float64 from the maps, and storing them as float32
+    would change every written digit and every statistic.
     """
     n_maps, n_regions = values.shape
     cols = {}
     for c in ("participant_id", "session_id", "contrast"):
         if c in maps.columns:
-            cols[c] = np.repeat(maps[c].to_numpy(dtype=object), n_regions)
-    cols["region"] = np.tile(np.array(names, dtype=object), n_maps)
-    cols["value"] = values.ravel()
-    cols["n_voxels"] = np.tile(np.asarray(n_voxels, dtype=np.int64), n_maps)
-    cols["n_valid"] = n_valid.ravel()
+            labels = pd.Categorical([None if v is None or (isinstance(v, float) and v != v) else str(v)
+                                     for v in maps[c].tolist()])
+            cols[c] = pd.Categorical.from_codes(np.repeat(labels.codes, n_regions), dtype=labels.dtype)
+    regions = pd.Categorical([str(n) for n in names])
+    cols["region"] = pd.Categorical.from_codes(np.tile(regions.codes, n_maps), dtype=regions.dtype)
+    cols["value"] = np.asarray(values, dtype=np.float64).ravel()
+    cols["n_voxels"] = np.tile(np.asarray(n_voxels, dtype=np.int32), n_maps)
+    cols["n_valid"] = np.asarray(n_valid, dtype=np.int32).ravel()
     if variances is not None:
-        cols["variance"] = variances.ravel()
-    table = pd.DataFrame(cols)
-    for c in ("participant_id", "session_id", "contrast", "region"):
-        if c in table.columns:
-            table[c] = table[c].astype(str)
-    return table
+        cols["variance"] = np.asarray(variances, dtype=np.float64).ravel()
+    return pd.DataFrame(cols)
 
 
 def _map_label(row) -> str:
