@@ -126,3 +126,41 @@ def test_a_file_that_is_not_parquet_is_refused_naming_it(tmp_path):
     bad.write_text("participant_id\tvalue\nsub-01\t1\n")
     with pytest.raises(InputFileError, match="values.parquet: not a readable Parquet table"):
         read_table(bad)
+
+
+def test_streamed_parquet_equals_the_whole_table_and_has_one_row_group_per_piece(tiny_study, tmp_path):
+    import pyarrow.parquet as papq
+
+    from roikit.extraction import extract_to_file
+
+    maps = find_maps(tiny_study["pattern"], variance=tiny_study["variance"])
+    regions = RegionSet([Atlas(tiny_study["atlas"], labels=tiny_study["labels"])])
+    whole = extract(maps, regions)
+    path, summary = extract_to_file(tmp_path / "out" / "values.parquet", maps, regions, chunk_maps=3)
+    assert summary == {"rows": 24, "missing": 0, "regions": 3, "maps": 8}
+    assert papq.ParquetFile(path).num_row_groups == 3  # 8 maps in pieces of 3, 3, 2
+    back = read_table(path)
+    pd.testing.assert_frame_equal(_normalised(back), _normalised(whole))
+    side = read_sidecar(path)
+    assert side["provenance"]["statistic"] == "mean" and len(side["provenance"]["inputs"]) == 8
+    assert set(side["columns"]) == set(whole.columns)
+    # the manifest records both files: a rerun replaces them without overwrite
+    extract_to_file(tmp_path / "out" / "values.parquet", maps, regions, chunk_maps=5)
+    assert papq.ParquetFile(path).num_row_groups == 2
+
+
+def test_a_failing_map_leaves_no_streamed_file_behind(tiny_study, tmp_path):
+    from roikit.errors import RoikitError
+    from roikit.extraction import extract_to_file
+
+    maps = find_maps(tiny_study["pattern"])
+    regions = RegionSet([Atlas(tiny_study["atlas"], labels=tiny_study["labels"])])
+    broken = maps.copy()
+    last = broken["path"].iloc[-1]
+    with open(last, "r+b") as fh:  # keep the header, cut the data: the map fails while extracting
+        fh.truncate(400)
+    out = tmp_path / "out"
+    with pytest.raises(RoikitError) as info:
+        extract_to_file(out / "values.parquet", broken, regions, chunk_maps=2)
+    assert getattr(info.value, "partial_values", "absent") is None
+    assert not (out / "values.parquet").exists() and not (out / "values.json").exists()
