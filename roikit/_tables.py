@@ -373,11 +373,22 @@ def arrow_table(data: pd.DataFrame):
         return pa.Table.from_pandas(fixed, preserve_index=False)
 
 
+def parquet_options(data: pd.DataFrame) -> dict:
+    """Writer options: dictionary encoding and min/max statistics for the label (text, categorical) columns only.
+
+    Numbers gain nothing from a dictionary and their statistics are rarely used to skip row groups; leaving both
+    out roughly doubles the writing speed (benchmarks/bench_tables.py), the file size is unchanged.
+    """
+    labels = [str(c) for c in data.columns
+              if isinstance(data[c].dtype, pd.CategoricalDtype) or pd.api.types.is_string_dtype(data[c].dtype)]
+    return {"use_dictionary": labels, "write_statistics": labels}
+
+
 def parquet_bytes(data: pd.DataFrame) -> bytes:
     """The table as the bytes of one Parquet file."""
     pa, pq = _pyarrow()
     sink = pa.BufferOutputStream()
-    pq.write_table(arrow_table(data), sink)
+    pq.write_table(arrow_table(data), sink, **parquet_options(data))
     return sink.getvalue().to_pybytes()
 
 

@@ -937,7 +937,7 @@ def extract_to_file(path: str | os.PathLike, maps: pd.DataFrame, regions: Region
     Returns the path written and a summary: ``rows``, ``missing`` (n/a values), ``regions``, ``maps``.
     """
     from ._outputs import write_files
-    from ._tables import _json_bytes, arrow_table, bids_sidecar, is_parquet, sidecar_path
+    from ._tables import _json_bytes, arrow_table, bids_sidecar, is_parquet, parquet_options, sidecar_path
 
     path = Path(path)
     if not is_parquet(path):
@@ -953,7 +953,7 @@ def extract_to_file(path: str | os.PathLike, maps: pd.DataFrame, regions: Region
         def sink(part: pd.DataFrame):
             table = arrow_table(part)
             if state["writer"] is None:
-                state["writer"] = pq.ParquetWriter(fh, table.schema)
+                state["writer"] = pq.ParquetWriter(fh, table.schema, **parquet_options(part))
             state["writer"].write_table(table)
             state["rows"] += len(part)
             state["missing"] += int(part["value"].isna().sum())
