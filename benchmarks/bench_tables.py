@@ -66,23 +66,28 @@ def bytes_per_row(table: pd.DataFrame) -> float:
     return float(table.memory_usage(deep=True).sum() / len(table))
 
 
-def peak_memory_mib(n_maps: int, folder: Path, n_regions: int, *, stream: bool) -> float:
+def peak_memory_mib(n_maps: int, folder: Path, n_regions: int, *, stream: bool, root: Path) -> tuple[float, float]:
+    """(ru_maxrss of the whole process, tracemalloc's peak during the extraction call), both in MiB."""
     out_path = Path(tempfile.mkdtemp(dir=RESULTS)) / "values.parquet"
     call = (f"ex.extract_to_file({str(out_path)!r}, maps, regions, progress=False)" if stream
             else "ex.extract(maps, regions, progress=False)")
     code = f"""
 import resource, sys
-sys.path.insert(0, {str(HERE.parent)!r})
+sys.path.insert(0, {str(root)!r})
+import tracemalloc
 import roikit.extraction as ex
 from roikit.regions import RegionSet, Atlas
 folder = {str(folder)!r}
 maps = ex.find_maps("sub-{{subject}}_contrast-{{contrast}}_effect.nii.gz", root=folder).iloc[:{n_maps}]
 regions = RegionSet([Atlas(folder + "/atlas-{n_regions}.nii.gz", folder + "/atlas-{n_regions}.tsv")])
+tracemalloc.start()
 v = {call}
-print(resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024)
+traced = tracemalloc.get_traced_memory()[1] / 2**20
+print(resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024, traced)
 """
     out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True)
-    return float(out.stdout.strip().splitlines()[-1])
+    rss, traced = out.stdout.strip().splitlines()[-1].split()
+    return float(rss), float(traced)
 
 
 def time_write(table: pd.DataFrame, suffix: str, repeats: int) -> float:
@@ -106,6 +111,9 @@ def main(argv=None) -> int:
     parser.add_argument("--tsv-repeats", type=int, default=1, help="TSV writing is slow: repeats for it")
     parser.add_argument("--skip-memory", action="store_true")
     parser.add_argument("--skip-write", action="store_true")
+    parser.add_argument("--root", type=Path, default=HERE.parent,
+                        help="roikit source tree for the memory runs (e.g. an export of an earlier commit)")
+    parser.add_argument("--no-stream", action="store_true", help="memory: only the in-memory table")
     args = parser.parse_args(argv)
     RESULTS.mkdir(parents=True, exist_ok=True)
     report: dict = {}
@@ -128,14 +136,14 @@ def main(argv=None) -> int:
         make_data(args.maps, args.regions, folder)
         print(f"data ready in {time.perf_counter() - t0:.1f} s", file=sys.stderr)
         mem = {}
-        for stream in (False, True):
+        for stream in ((False,) if args.no_stream else (False, True)):
             for n in (10, args.maps):
                 mem[f"{'parquet stream' if stream else 'in memory'}, {n} maps"] = peak_memory_mib(
-                    n, folder, args.regions, stream=stream)
-        report["peak_memory_mib"] = mem
-        print("peak memory (MiB, ru_maxrss):")
-        for k, v in mem.items():
-            print(f"  {k:42s} {v:7.1f}")
+                    n, folder, args.regions, stream=stream, root=args.root)
+        report["peak_memory_mib"] = {k: {"ru_maxrss": a, "tracemalloc_peak": b} for k, (a, b) in mem.items()}
+        print(f"peak memory (MiB; code in {args.root}): process ru_maxrss, tracemalloc peak during extraction")
+        for k, (a, b) in mem.items():
+            print(f"  {k:42s} {a:7.1f} {b:7.1f}")
 
     if not args.skip_write:
         n_regions, n_contrasts = args.regions, 5
