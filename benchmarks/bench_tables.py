@@ -66,7 +66,8 @@ def bytes_per_row(table: pd.DataFrame) -> float:
     return float(table.memory_usage(deep=True).sum() / len(table))
 
 
-def peak_memory_mib(n_maps: int, folder: Path, n_regions: int, *, stream: bool, root: Path) -> tuple[float, float]:
+def peak_memory_mib(n_maps: int, folder: Path, n_regions: int, *, stream: bool, root: Path,
+                    storage: str) -> tuple[float, float]:
     """(ru_maxrss of the whole process, tracemalloc's peak during the extraction call), both in MiB."""
     out_path = Path(tempfile.mkdtemp(dir=RESULTS)) / "values.parquet"
     call = (f"ex.extract_to_file({str(out_path)!r}, maps, regions, progress=False)" if stream
@@ -75,6 +76,8 @@ def peak_memory_mib(n_maps: int, folder: Path, n_regions: int, *, stream: bool, 
 import resource, sys
 sys.path.insert(0, {str(root)!r})
 import tracemalloc
+import pandas as pd
+pd.set_option("mode.string_storage", {storage!r})
 import roikit.extraction as ex
 from roikit.regions import RegionSet, Atlas
 folder = {str(folder)!r}
@@ -114,6 +117,8 @@ def main(argv=None) -> int:
     parser.add_argument("--root", type=Path, default=HERE.parent,
                         help="roikit source tree for the memory runs (e.g. an export of an earlier commit)")
     parser.add_argument("--no-stream", action="store_true", help="memory: only the in-memory table")
+    parser.add_argument("--string-storage", choices=("auto", "python", "pyarrow"), default="auto",
+                        help="pandas' storage of str columns in the memory runs (python: as without pyarrow)")
     args = parser.parse_args(argv)
     RESULTS.mkdir(parents=True, exist_ok=True)
     report: dict = {}
@@ -139,9 +144,10 @@ def main(argv=None) -> int:
         for stream in ((False,) if args.no_stream else (False, True)):
             for n in (10, args.maps):
                 mem[f"{'parquet stream' if stream else 'in memory'}, {n} maps"] = peak_memory_mib(
-                    n, folder, args.regions, stream=stream, root=args.root)
+                    n, folder, args.regions, stream=stream, root=args.root, storage=args.string_storage)
         report["peak_memory_mib"] = {k: {"ru_maxrss": a, "tracemalloc_peak": b} for k, (a, b) in mem.items()}
-        print(f"peak memory (MiB; code in {args.root}): process ru_maxrss, tracemalloc peak during extraction")
+        print(f"peak memory (MiB; code in {args.root}, str storage {args.string_storage}): process ru_maxrss, "
+              "tracemalloc peak during extraction")
         for k, (a, b) in mem.items():
             print(f"  {k:42s} {a:7.1f} {b:7.1f}")
 
