@@ -156,7 +156,7 @@ def main(argv=None) -> int:
         n_participants = max(1, args.rows // (n_regions * n_contrasts))
         big = synthetic_table(n_participants, n_contrasts, n_regions)
         t_pq = time_write(big, "parquet", args.repeats)
-        t_tsv = time_write(big, "tsv", args.tsv_repeats)
+        t_tsv = time_write(big, "tsv", args.tsv_repeats) if args.tsv_repeats else float("nan")
         report["write"] = {"rows": len(big), "parquet_s": t_pq, "tsv_s": t_tsv,
                            "parquet_rows_per_s": len(big) / t_pq, "tsv_rows_per_s": len(big) / t_tsv}
         print(f"writing {len(big):,} rows: Parquet {t_pq:.2f} s ({len(big) / t_pq / 1e6:.2f} M rows/s), "

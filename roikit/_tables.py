@@ -232,8 +232,8 @@ def write_table(
         recoverable after a crash (:mod:`roikit._outputs`).
     """
     path = Path(path)
-    if is_parquet(path):
-        files = {path.name: parquet_bytes(data)}
+    if is_parquet(path):  # written straight into the (staging or temporary) file: no copy of the whole file
+        files = {path.name: parquet_writer(data)}
     else:
         lines = ["\t".join(str(c) for c in data.columns)]
         columns = [data[c].tolist() for c in data.columns]
@@ -255,7 +255,10 @@ def write_table(
             current = path.parent / name
             fd, temps[name] = tempfile.mkstemp(prefix=f".{name}.", suffix=".tmp", dir=path.parent)
             with os.fdopen(fd, "wb") as fh:
-                fh.write(content)
+                if callable(content):
+                    content(fh)
+                else:
+                    fh.write(content)
             os.chmod(temps[name], 0o666 & ~_umask())
         for name, tmp in temps.items():
             current = path.parent / name
@@ -382,6 +385,17 @@ def parquet_options(data: pd.DataFrame) -> dict:
     labels = [str(c) for c in data.columns
               if isinstance(data[c].dtype, pd.CategoricalDtype) or pd.api.types.is_string_dtype(data[c].dtype)]
     return {"use_dictionary": labels, "write_statistics": labels}
+
+
+def parquet_writer(data: pd.DataFrame):
+    """A callable writing the table as Parquet into an open binary file (for :func:`write_files`)."""
+    _, pq = _pyarrow()
+    table, options = arrow_table(data), parquet_options(data)
+
+    def write(fh) -> None:
+        pq.write_table(table, fh, **options)
+
+    return write
 
 
 def parquet_bytes(data: pd.DataFrame) -> bytes:
