@@ -164,3 +164,15 @@ def test_a_failing_map_leaves_no_streamed_file_behind(tiny_study, tmp_path):
         extract_to_file(out / "values.parquet", broken, regions, chunk_maps=2)
     assert getattr(info.value, "partial_values", "absent") is None
     assert not (out / "values.parquet").exists() and not (out / "values.json").exists()
+
+
+def test_a_parquet_map_list_gives_the_same_values_as_the_tsv_one(tiny_study, tmp_path):
+    from roikit.extraction import read_map_list
+
+    maps = find_maps(tiny_study["pattern"], variance=tiny_study["variance"])
+    regions = RegionSet([Atlas(tiny_study["atlas"], labels=tiny_study["labels"])])
+    write_table(tmp_path / "maps.tsv", maps)
+    write_table(tmp_path / "maps.parquet", maps)
+    a = extract(read_map_list(tmp_path / "maps.tsv"), regions)
+    b = extract(read_map_list(tmp_path / "maps.parquet"), regions)
+    pd.testing.assert_frame_equal(a, b)
