@@ -862,7 +862,7 @@ def assemble_values(maps: pd.DataFrame, names, n_voxels, values, n_valid, varian
 
     Used by :func:`extract` and by callers that merge cached and fresh results (``roikit run``).
 
-    The table is lean in memory (about 29 bytes per row instead of about 260): ``participant_id``,
+    The table is lean in memory (28 bytes per row instead of 231, by memory_usage(deep=True)): ``participant_id``,
     ``session_id``, ``contrast`` and ``region`` are categorical (their categories sorted as strings, so sorting
     and grouping give the same order as plain strings would), ``n_voxels`` and ``n_valid`` are int32. ``value``
     and ``variance`` stay float64: they are computed in float64 from the maps, and storing them as float32
