@@ -603,8 +603,9 @@ def write_files(folder: os.PathLike | str, files: dict[str, bytes], *, writer: s
     Parameters
     ----------
     folder : path
-    files : dict of str to bytes
-        File name (inside ``folder``) -> content.
+    files : dict of str to bytes or callable
+        File name (inside ``folder``) -> content, or a callable writing the content into the open binary file
+        (streamed: called in order, before the switch, so a failure leaves the folder as it was).
     writer : str
         The command writing them (e.g. ``"roikit extract"``).
     overwrite : bool
@@ -623,8 +624,13 @@ def write_files(folder: os.PathLike | str, files: dict[str, bytes], *, writer: s
         try:
             for name, data in files.items():
                 with open(staging / name, "wb") as fh:
-                    fh.write(data)
+                    if callable(data):  # streamed: the callable writes the content into the open file
+                        data(fh)
+                    else:
+                        fh.write(data)
                 os.chmod(staging / name, 0o666 & ~_umask())
+        except RoikitError:  # raised by a streaming callable (e.g. a map that cannot be read): passed on as is
+            raise
         except OSError as exc:
             raise _os_error(exc, folder / next(iter(files))) from exc
         with folder_lock(folder, writer, wait=wait):

@@ -26,7 +26,8 @@ def add_parser(subparsers) -> None:
                         "[variance_path], [volume]")
     p.add_argument("--variance", metavar="PATTERN", help="path pattern of the matching variance maps")
     add_region_options(p)
-    p.add_argument("--out", required=True, metavar="VALUES.tsv", help="output table")
+    p.add_argument("--out", required=True, metavar="VALUES.tsv", help="output table (.tsv; .parquet for a Parquet file "
+                   "written as extraction goes, for large studies)")
     add_arguments(p, "extraction")  # --statistic, --keep-zeros, --jobs: the [extraction] keys of a study file
     p.add_argument("--scheduler", metavar="ADDRESS",
                    help="run on a Dask cluster whose scheduler listens at ADDRESS (e.g. tcp://10.0.0.5:8786); "
@@ -51,7 +52,7 @@ def _dask_client(address: str):
 def run(args: argparse.Namespace) -> int:
     from .._outputs import check_files
     from .._tables import sidecar_path
-    from ..extraction import VALUES_WRITER, extract, find_maps, read_map_list, write_values
+    from ..extraction import VALUES_WRITER, extract_to_file, find_maps, read_map_list
 
     options, problems = resolve(args, "extraction")
     if problems:
@@ -68,15 +69,15 @@ def run(args: argparse.Namespace) -> int:
             raise UsageError("--variance goes with --maps; with --map-list give a variance_path column")
         maps = read_map_list(args.map_list)
     options["progress"] = False if args.quiet else None
+    # a .parquet --out is written as extraction goes (row groups of 64 maps): memory stays flat
     if args.scheduler:
         with _dask_client(args.scheduler) as client:
-            values = extract(maps, regions, client=client, **options)
+            path, summary = extract_to_file(args.out, maps, regions, client=client, overwrite=args.overwrite,
+                                            **options)
     else:
-        values = extract(maps, regions, **options)
-    path = write_values(args.out, values, overwrite=args.overwrite)
+        path, summary = extract_to_file(args.out, maps, regions, overwrite=args.overwrite, **options)
     if not args.quiet:
-        n_missing = int(values["value"].isna().sum())
         sys.stderr.write(
-            f"roikit extract: {plural(len(maps), 'map')} x {plural(values['region'].nunique(), 'region')} -> {path} "
-            f"({len(values)} rows, {n_missing} n/a)\n")
+            f"roikit extract: {plural(len(maps), 'map')} x {plural(summary['regions'], 'region')} -> {path} "
+            f"({summary['rows']} rows, {summary['missing']} n/a)\n")
     return 0

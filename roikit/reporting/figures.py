@@ -462,7 +462,7 @@ def participant_plot(
     outliers = _flagged(rows, "outlier_ids")
     low = _flagged(rows, "low_coverage_ids") | _low_coverage(part, participant)
 
-    wide = part.groupby([participant, "_group", "contrast"], sort=False)["_value"].first().unstack("contrast")
+    wide = part.groupby([participant, "_group", "contrast"], sort=False, observed=True)["_value"].first().unstack("contrast")
     wide = wide.reindex(columns=conditions)
     who_all = [w for w, _ in wide.index]
     jit = _jitter(ordered_unique(who_all), 0.07 if len(groups) > 1 and len(conditions) > 1 else 0.09, seed)

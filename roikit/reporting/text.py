@@ -350,7 +350,7 @@ def _voxels(n: Any) -> str:
 def _region_sentences(prov: dict, values: pd.DataFrame | None, cite: Citations) -> list[str]:
     voxels: dict[str, int] = {}
     if values is not None and "n_voxels" in values.columns:
-        for region, part in values.groupby("region", sort=False):
+        for region, part in values.groupby("region", sort=False, observed=True):
             nv = pd.to_numeric(part["n_voxels"], errors="coerce").dropna()
             if len(nv):
                 voxels[str(region)] = int(nv.median())

@@ -236,7 +236,7 @@ def participant_order(values: pd.DataFrame) -> list[str]:
 
 def _single_session(values: pd.DataFrame, contrast: str) -> None:
     if "session_id" in values.columns and values["session_id"].nunique(dropna=True) > 1:
-        per = values.groupby(["participant_id", "region"])["session_id"].nunique()
+        per = values.groupby(["participant_id", "region"], observed=True)["session_id"].nunique()
         if (per > 1).any():
             raise DesignError(
                 f"contrast {contrast!r} has several sessions per participant "

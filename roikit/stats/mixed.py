@@ -1472,7 +1472,7 @@ def _warn_crossed_looks_nested(frame: pd.DataFrame, crossed: str, regions: Seque
     flagged = []
     for r in regions:
         sub = frame.loc[frame["region"] == r, ["participant_id", crossed, "value"]]
-        cells = sub.groupby(["participant_id", crossed], sort=False)["value"]
+        cells = sub.groupby(["participant_id", crossed], sort=False, observed=True)["value"]
         n_cell = cells.size()
         if n_cell.min() < 2 or sub["participant_id"].nunique() < 2 or sub[crossed].nunique() < 2:
             continue

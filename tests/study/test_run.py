@@ -258,6 +258,8 @@ def test_extract_study_uses_the_same_cache_as_run(study_dir, count_reads):
     # the run uses only the analysed contrast ('novel'), all from the cache
     assert count_reads == [] and run.reused == 8 and run.extracted == 0
     novel = values[values["contrast"] == "novel"].reset_index(drop=True)
+    for c in novel.select_dtypes("category"):  # a subset keeps the whole table's categories
+        novel[c] = novel[c].cat.remove_unused_categories()
     pd.testing.assert_frame_equal(run.values, novel)
     # the run kept the cached maps of the contrast it did not analyse
     again = extract_study(study_dir / "study.toml")
