@@ -110,6 +110,8 @@ DESIGN_NAMES = {
     "precision-weighted": "Precision-weighted random-effects model",
     "mixed": "Linear mixed-effects model",
     "fixed-effects": "Fixed-effects combination, these participants only",
+    "repeated-measures": "Repeated-measures ANOVA",
+    "region-difference": "Region difference",
 }
 
 

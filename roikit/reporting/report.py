@@ -613,7 +613,7 @@ def write_report(
                                              labels=names, correct=correct)
     result_paragraphs = results_parts(results, labels=names, participants=participants, correct=correct)
     references = reference_list(cited)
-    cited_all = list(dict.fromkeys(cited + [c["cites"] for c in found if c.get("cites")]))
+    cited_all = list(dict.fromkeys(cited + [k for c in found if c.get("cites") for k in c["cites"].split(",")]))
     md = ["# Methods", ""] + [render(p, "markdown") + "\n" for p in method_paragraphs]
     if drawn_regions is not None:
         md += ["## Regions", "", "| " + " | ".join(_REGION_HEAD) + " |", "|" + "---|" * len(_REGION_HEAD)]

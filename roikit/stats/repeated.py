@@ -91,6 +91,8 @@ def _plan_units(region_table, region_factors, regions):
     table = region_table[region_table["region"].isin(regions)].copy()
     for f in region_factors:
         table[f] = _labels(table[f])
+    # regions with n/a in a region factor (e.g. midline regions without a hemisphere) are not part of it
+    table = table.dropna(subset=list(region_factors))
     others = [c for c in table.columns if c not in ("region", *region_factors)]
     units: dict[str, list] = {}
     if others:
