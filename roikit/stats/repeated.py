@@ -15,6 +15,7 @@ Wagenmakers 2011).
 from __future__ import annotations
 
 import itertools
+import json
 import warnings
 from typing import Sequence
 
@@ -236,16 +237,17 @@ def repeated_measures(
             raise DesignError(f"between column {between!r} has {len(group_levels)} level(s); need at least two")
         groups = labels
 
-    unit_names, arrays, kept, excluded = [], [], [], []
+    unit_names, arrays, kept, excluded, cell_maps = [], [], [], [], []
     for name, members in units.items():
         by_level = {lv: r for r, lv in members}
-        cols = []
+        cols, cells = [], []
         for ccell in itertools.product(*c_levels) if c_levels else [()]:
             for rcell in itertools.product(*r_levels) if r_levels else [()]:
                 region = by_level.get(rcell)
                 if region is None:
                     cols = None
                     break
+                cells.append([cell_of[ccell], region, [*ccell, *rcell]])
                 m = mats[cell_of[ccell]]
                 cols.append(m[region].reindex(ids) if region in m.columns else pd.Series(np.nan, index=ids))
             if cols is None:
@@ -259,6 +261,7 @@ def repeated_measures(
         if groups is not None:
             complete &= groups.reindex(ids).notna().to_numpy()
         unit_names.append(name)
+        cell_maps.append(json.dumps(cells, ensure_ascii=False))
         arrays.append(frame.to_numpy(float))
         kept.append(complete.to_numpy())
         excluded.append([pid for pid, ok in zip(ids, complete) if not ok])
@@ -310,7 +313,7 @@ def repeated_measures(
             excluded_ids=[join_ids(e) for e in excluded], epsilon_gg=cols["epsilon_gg"],
             epsilon_hf=cols["epsilon_hf"], p_gg=cols["p_gg"], p_hf=cols["p_hf"], mauchly_w=cols["mauchly_w"],
             mauchly_p=cols["mauchly_p"], generalized_eta2=cols["generalized_eta2"], within=",".join(names_all),
-            contrast=",".join(dict.fromkeys(cell_of.values())),
+            contrast=",".join(dict.fromkeys(cell_of.values())), cells=cell_maps,
         ))  # fmt: skip
     if posthoc:
         frames.append(_posthoc(unit_names, arrays, kept, excluded, names_all, c_levels + r_levels, confidence,
