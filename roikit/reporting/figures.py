@@ -1149,7 +1149,7 @@ def interaction_plot(
         ax.set_xlabel(f"{factors[0] if factors else 'condition'} (n = {len(frame)})")
         ax.set_ylabel(_value_axis_label(value_label))
         title = unit + (f" · {group_level}" if group_level is not None else "")
-        ax.set_title(textwrap.fill(title, 34))
+        ax.set_title(textwrap.fill(title, 40))
         ax.yaxis.set_major_formatter(mpl.ticker.FuncFormatter(lambda v, _p: _minus(f"{v:g}")))
         if legend:
             _dedupe_legend(ax, owned)
