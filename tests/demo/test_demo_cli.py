@@ -157,7 +157,7 @@ def test_pipeline_is_deterministic_and_overwrites_only_a_demo(tmp_path):
     first = run_demo(tmp_path / "a", seed=5, n_per_group=3, progress=False, figures=False)
     hashes = {name: sha256_file(first.outputs[name]) for name in ("region_values", "group_results")}
     assert set(first.group_results["design"]) == {"one-sample", "paired", "two-group", "glm", "precision-weighted",
-                                                  "mixed"}
+                                                  "mixed", "repeated-measures", "region-difference"}
     assert first.outputs["report"].is_file() and first.report["html"] == first.outputs["report"]
     with pytest.raises(OutputExistsError, match="pass overwrite=True"):  # Python spelling in Python
         run_demo(tmp_path / "a", seed=5, n_per_group=3, progress=False)
