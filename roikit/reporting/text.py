@@ -305,9 +305,8 @@ def cautions(
                  f"as analyses {_ranges(tested)} do" if tested else "with the region-difference design")
         out.append({"kind": "region-comparison", "participant": "", "text": (
             f"{'Analysis ' + str(side_by_side[0]) + ' shows' if len(side_by_side) == 1 else 'Analyses ' + _ranges(side_by_side) + ' show'} "
-            "regions side by side: a result that is "
-            "significant in one region and not in another does not show that the regions differ (Gelman & Stern, "
-            f"2006; Nieuwenhuis et al., 2011); test the difference within participants, {where}."),
+            "regions side by side; significant in one, not in another, is not a difference (Gelman & Stern, 2006; "
+            f"Nieuwenhuis et al., 2011): test it {where}."),
             "cites": "gelman2006,nieuwenhuis2011"})
     details = caution_details(results)
     kinds = {"robust outlier": "outliers", "low coverage": "low-coverage", "missing value": "excluded"}
