@@ -752,6 +752,11 @@ def _estimate_sentence(key: dict, rows: pd.DataFrame) -> str:
             return (f"*M*_{{diff}} = difference of group means, {escape_markup(levels[0])} − "
                     f"{escape_markup(levels[1])} ({contrast}).")
         return "*M*_{diff} = difference of group means."
+    if design == "region-difference":
+        versus = key.get("versus", "")
+        what = f"({contrast} − {escape_markup(versus)})" if versus else contrast
+        return (f"*M*_{{diff}} = mean within-participant difference between the two regions (first − second) in "
+                f"the {what} values; a paired *t*-test of the differences.")
     if design == "precision-weighted":
         return ("Estimates are precision-weighted (inverse-variance) with a between-participant variance "
                 "*τ*^{2}; *I*^{2} = share of the total variance due to between-participant heterogeneity.")
