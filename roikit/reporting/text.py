@@ -561,8 +561,13 @@ def _design_sentence(number_: int, key: dict, rows: pd.DataFrame, labels: Labels
                    ordered_unique(rows["term"].map(text))]
         what = (f"the {escape_markup(join_words(compress_labels([labels.level('contrast', c) for c in contrasts])))} "
                 "values" if contrasts else "the values")
+        within = ordered_unique(f for v in col(rows, "within") for f in text(v).split(",") if f)
+        between = ordered_unique(text(v) for v in col(rows, "group_column") if text(v))
+        factors = (f" with {escape_markup(join_words([labels.variable(f) for f in within]))} within participants"
+                   + (f" and {escape_markup(labels.variable(between[0]))} between them" if between else "")
+                   if within else "")
         s = (f"{lead} tested {join_words(effects)} in a repeated-measures analysis of variance of {what} of each "
-             "region (participants as the random factor)")
+             f"region{factors} (participants as the random factor; complete cases only)")
         checks = []
         if has_values(rows, "mauchly_p"):
             checks.append(f"sphericity was checked with Mauchly's test ({cite.cite('mauchly1940')})")
