@@ -28,5 +28,5 @@ def test_run_on_the_demo_study_reproduces_the_demo(tmp_path):
     ours = read_table(out / "group_results.tsv")
     theirs = read_table(demo.results / "group_results.tsv")
     pd.testing.assert_frame_equal(ours, theirs)
-    assert len(theirs) > 0 and theirs["design"].nunique() == 6
+    assert len(theirs) > 0 and theirs["design"].nunique() == 8
     assert theirs["analysis"].tolist() == sorted(theirs["analysis"].tolist())
