@@ -463,7 +463,9 @@ NB04 = head("04 Repeated measures and stimuli", """
 Two ways to use more of the data. The precision-weighted design uses each participant's first-level variance, so
 noisy participants count less while the between-participant variance is still estimated. The mixed design models
 several observations per participant (here: the six towns, the stimuli) with participants *and* towns as random
-effects, so the conclusion generalises to new people and to new towns.
+effects, so the conclusion generalises to new people and to new towns. Then the factorial view most region papers
+report (route x hemisphere within participants, age group between them) and the test two regions need before
+anyone says they differ.
 """) + [
     code('''
 from roikit.stats import run_design
@@ -533,8 +535,65 @@ if mixed is not None:
 else:
     print("The study file has no mixed analysis.")
 '''),
+    md("""
+## Factors within participants: route x hemisphere
+
+Most region papers report a within-participant factorial ANOVA. Here the route (from `contrasts.tsv`) and the
+hemisphere (from `regions.tsv`) are within-participant factors and the age group is between participants; the
+left and right region of each structure are tested together (the result's `region` names the pair). F tests with
+more than one numerator df get Greenhouse-Geisser corrected df and p (`p_gg`); `generalized_eta2` is comparable
+across designs. The figure draws every participant's lines behind the condition means.
+"""),
+    drawing('''
+from roikit.reporting import interaction_pages
+
+repeated = analyses.get("repeated-measures")
+repeated_results, interaction_figs = None, []
+if repeated is not None:
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")  # participants without every cell are named in excluded_ids
+        repeated_results = run_design(values, "repeated-measures", participants=participants, **repeated)
+    display(repeated_results[["region", "term", "df1", "df", "statistic", "p", "epsilon_gg", "p_gg", "p_holm",
+                              "effect_size", "generalized_eta2"]].round(4))
+    interaction_figs = interaction_pages(values, repeated_results, participants=participants,
+                                         value_label=VALUE_LABEL)
+    for fig in interaction_figs:
+        display(fig)
+else:
+    print("The study file has no repeated-measures analysis.")
+'''),
+    md("""
+## Do two regions differ? Test the difference
+
+"Significant in the left hippocampus, not in the right" is not a difference between them (Gelman & Stern, 2006;
+Nieuwenhuis, Forstmann & Wagenmakers, 2011). The region-difference design tests each participant's difference
+between the two regions. A non-significant difference is not evidence that they respond equally either: for that,
+an equivalence test or a Bayes factor (the one-sample analysis of the demo carries both).
+"""),
+    code('''
+difference = analyses.get("region-difference")
+difference_results = None
+if difference is not None:
+    difference_results = run_design(values, "region-difference", participants=participants, **difference)
+    display(difference_results[["region", "n", "estimate", "ci_low", "ci_high", "statistic", "p", "effect_size"]]
+            .round(4))
+one = analyses.get("one-sample")
+if one is not None and ("equivalence" in one or "bayes_factor" in one):
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        evidence = run_design(values, "one-sample", participants=participants, **one)
+    display(evidence[["region", "estimate", "p", "effect_size", "p_equivalence", "bf10"]].round(4))
+'''),
     md("## Save where the report expects them"),
     code('''
+if repeated_results is not None:
+    print([p for t in results_tables(repeated_results, start=6) for p in t.write(TABLES, overwrite=OVERWRITE)])
+    for k, fig in enumerate(interaction_figs, start=1):
+        page = f"_page{k}" if len(interaction_figs) > 1 else ""
+        print(save_figure(fig, FIGURES / f"repeated_measures_interaction{page}", formats=FIGURE_FORMATS,
+                          overwrite=OVERWRITE))
+if difference_results is not None:
+    print([p for t in results_tables(difference_results, start=7) for p in t.write(TABLES, overwrite=OVERWRITE)])
 if precision_results is not None:
     print([p for t in results_tables(precision_results, start=4) for p in t.write(TABLES, overwrite=OVERWRITE)])
     for k, fig in enumerate(precision_figs, start=1):

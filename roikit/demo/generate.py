@@ -430,14 +430,24 @@ def _toml_value(value) -> str:
     raise TypeError(f"no TOML form for {value!r}")  # pragma: no cover - internal
 
 
+#: Equivalence bound (in d units) of the demo's one-sample analysis (DEMO_ANALYSES[0]).
+_EQUIVALENCE_BOUND = 0.5
+
 #: Analyses of the demo study file, in order (keys mirror the command-line options).
 DEMO_ANALYSES = (
-    {"design": "one-sample", "contrast": "novel-vs-familiar"},
+    # evidence for absence beside the test: the primary visual cortex has no novel-vs-familiar effect (0 in both
+    # groups), so equivalence within +-0.5 d and a Bayes factor below 1/3 are expected there
+    {"design": "one-sample", "contrast": "novel-vs-familiar", "equivalence": _EQUIVALENCE_BOUND, "bayes_factor": True},
     {"design": "paired", "contrast": "novel", "versus": "familiar"},
     {"design": "two-group", "contrast": "novel-vs-familiar", "group": "group", "levels": ["younger", "older"]},
     {"design": "glm", "contrast": "novel-vs-familiar", "formula": "value ~ route_accuracy + group"},
     {"design": "precision-weighted", "contrast": "novel-vs-familiar", "tau2": "reml"},
     {"design": "mixed", "contrast": list(TOWNS), "formula": "value ~ group", "random": "1", "crossed": "contrast"},
+    # route (contrasts.tsv) x hemisphere (regions.tsv) within participants, age group between: one test per
+    # left/right pair (hippocampus, parahippocampal gyrus, caudate)
+    {"design": "repeated-measures", "within": ["route", "hemisphere"], "between": "group"},
+    # the test a claim that the two hippocampi differ needs
+    {"design": "region-difference", "regions": list(_HIPPOCAMPI), "contrast": "novel-vs-familiar"},
 )
 
 
@@ -457,6 +467,8 @@ def study_toml(*, title: str = "Wayfinding study (invented demo data)") -> str:
         "[study]",
         f"title = {_toml_value(title)}",
         'participants = "participants.tsv"',
+        'contrasts = "contrasts.tsv"',
+        'regions = "regions.tsv"',
         "",
         "[maps]",
         'effect = "maps/sub-{subject}_contrast-{contrast}_effect.nii.gz"',
@@ -490,6 +502,35 @@ _PARTICIPANTS_SIDECAR = {
         "Units": "%",
     },
     "mean_fd": {"Description": "mean framewise displacement during the run (invented head motion)", "Units": "mm"},
+}
+
+def _side_tables() -> tuple[pd.DataFrame, pd.DataFrame]:
+    """contrasts.tsv (route of novel and familiar, town of town1..6) and regions.tsv (structure and hemisphere of
+    the paired left/right regions; n/a for the midline regions and the sphere, which are in no hemisphere factor)."""
+    contrasts = pd.DataFrame({
+        "contrast": list(CONTRASTS),
+        "route": [c if c in ("novel", "familiar") else None for c in CONTRASTS],
+        "town": [c if c in TOWNS else None for c in CONTRASTS],
+    })
+    names = list(REGION_NAMES) + [PRIOR_PEAK["name"]]
+    hemisphere = [n.split(" ", 1)[0] if n.split(" ", 1)[0] in ("left", "right") else None for n in names]
+    structure = [n.split(" ", 1)[1] if h else n for n, h in zip(names, hemisphere)]
+    regions = pd.DataFrame({"region": names, "structure": structure, "hemisphere": hemisphere})
+    return contrasts, regions
+
+
+_CONTRASTS_SIDECAR = {
+    "contrast": {"Description": "first-level contrast label, as in the map file names"},
+    "route": {"Description": "route condition of the contrast (n/a: not a single route condition)",
+              "Levels": {"novel": "routes learned in the scanner", "familiar": "routes trained before the scan"}},
+    "town": {"Description": "virtual town of the contrast (n/a: not a single town)"},
+}
+
+_REGIONS_SIDECAR = {
+    "region": {"Description": "region name, as in the atlas label table (or the prior-peak sphere)"},
+    "structure": {"Description": "anatomical structure, the same for the left and right region of a pair"},
+    "hemisphere": {"Description": "hemisphere (n/a: midline regions and the prior-peak sphere, in no hemisphere "
+                                  "factor)", "Levels": {"left": "left hemisphere", "right": "right hemisphere"}},
 }
 
 _VALUES_SIDECAR = {
@@ -667,6 +708,10 @@ def _write_all(tmp, geo, model, noise_rngs, recorded_seed, n_per_group, problems
     })
     write_table(tmp / "participants.tsv", participants, sidecar=_PARTICIPANTS_SIDECAR)
     files += [Path("participants.tsv"), Path("participants.json")]
+    contrasts_table, regions_table = _side_tables()
+    write_table(tmp / "contrasts.tsv", contrasts_table, sidecar=_CONTRASTS_SIDECAR)
+    write_table(tmp / "regions.tsv", regions_table, sidecar=_REGIONS_SIDECAR)
+    files += [Path("contrasts.tsv"), Path("contrasts.json"), Path("regions.tsv"), Path("regions.json")]
 
     # true regional values per participant x contrast (atlas regions), shape (n, contrast, region)
     novel, familiar, towns = model["novel"], model["familiar"], model["towns"]
@@ -753,6 +798,8 @@ written from memory, not taken from any atlas.
 - `atlas.nii.gz`, `atlas.tsv`: nine labelled regions and their label table.
 - `brain_mask.nii.gz`: the ellipsoidal synthetic brain (maps are zero outside it).
 - `participants.tsv`, `participants.json`: group, age, sex, handedness, route_accuracy, mean_fd.
+- `contrasts.tsv`, `contrasts.json`: route (novel/familiar) and town of each contrast (within factors).
+- `regions.tsv`, `regions.json`: structure and hemisphere of each region (hemisphere as a within factor).
 - `study.toml`: the study file (maps, regions, analyses) for `roikit run`.
 - `ground_truth.json`, `ground_truth_values.tsv`: the true values and the planted problems.
 """
@@ -901,5 +948,90 @@ def _ground_truth(geo, model, seed, n_per_group, problems, all_names, all_voxels
             for i, pid in enumerate(ids)
         },
         "planted_problems": problems_list,
+        "expected_patterns": _expected_patterns(model["cov"], n_per_group),
         "true_values": true_values,
+    }
+
+
+def _expected_patterns(cov: np.ndarray, n_per_group: int) -> dict:
+    """What the repeated-measures, region-difference and evidence analyses of the demo should find, derived from
+    the population means of ``_REGIONS`` and the deviation covariance (first-level noise ignored, so the
+    standardised sizes are upper bounds)."""
+    from scipy import stats as sps
+
+    names = list(REGION_NAMES)
+    n = 2 * n_per_group
+
+    def sd_of(weights: dict) -> float:
+        w = np.zeros(cov.shape[0])
+        for (region, condition), value in weights.items():
+            w[2 * names.index(region) + condition] = value
+        return float(np.sqrt(w @ cov @ w))
+
+    def mean_of(weights: dict, g: int) -> float:
+        return float(sum(v * (_REGIONS[names.index(r)].novel[g] if c == 0 else _REGIONS[names.index(r)].familiar[g])
+                         for (r, c), v in weights.items()))
+
+    rm = {}
+    for structure in ("hippocampus", "parahippocampal gyrus", "caudate"):
+        left, right = f"left {structure}", f"right {structure}"
+        within = {
+            "route": {(left, 0): .5, (right, 0): .5, (left, 1): -.5, (right, 1): -.5},
+            "hemisphere": {(right, 0): .5, (right, 1): .5, (left, 0): -.5, (left, 1): -.5},
+            "route:hemisphere": {(right, 0): 1, (right, 1): -1, (left, 0): -1, (left, 1): 1},
+        }
+        effects = {}
+        for term, w in within.items():
+            sd = sd_of(w)
+            mean = (mean_of(w, 0) + mean_of(w, 1)) / 2
+            diff = mean_of(w, 0) - mean_of(w, 1)
+            effects[term] = {"population_contrast": mean, "d_z": mean / sd,
+                             "absent": bool(abs(mean) < 1e-12)}
+            effects[f"{term}:group"] = {"younger_minus_older": diff, "d": diff / sd, "absent": bool(abs(diff) < 1e-12)}
+        avg = {(left, 0): .25, (right, 0): .25, (left, 1): .25, (right, 1): .25}
+        diff = mean_of(avg, 0) - mean_of(avg, 1)
+        effects["group"] = {"younger_minus_older": diff, "d": diff / sd_of(avg), "absent": bool(abs(diff) < 1e-12)}
+        rm[f"{structure} (left, right)"] = effects
+    left, right = _HIPPOCAMPI
+    w = {(left, 0): 1, (left, 1): -1, (right, 0): -1, (right, 1): 1}
+    hipp = (mean_of(w, 0) + mean_of(w, 1)) / 2
+    control = names.index(_CONTROL)
+    nvf = [_REGIONS[control].novel[g] - _REGIONS[control].familiar[g] for g in (0, 1)]
+    t_crit = sps.t.ppf(0.95, n - 1)
+    tost_power = float(max(0.0, 2 * sps.t.cdf(_EQUIVALENCE_BOUND * np.sqrt(n) - t_crit, n - 1) - 1))
+    def rounded(x):
+        if isinstance(x, dict):
+            return {k: rounded(v) for k, v in x.items()}
+        return round(x, 10) if isinstance(x, float) else x
+
+    rm = rounded(rm)
+    return {
+        "note": "population values from the generating model; standardised sizes ignore the first-level noise "
+                "(upper bounds); n = 2 x n_per_group",
+        "repeated_measures_route_x_hemisphere_x_group": {
+            "units": rm,
+            "expected": "a route effect in every pair (novel > familiar in the hippocampi and parahippocampal gyri, "
+                        "familiar > novel in the caudates: d_z 0.7 to 1.3); the route x hemisphere interaction is "
+                        "exactly 0 in the caudates and 0.04 (d_z about 0.13) in the hippocampi and parahippocampal "
+                        "gyri, so it is not expected to be detected with 32 participants (nor any hemisphere effect "
+                        "or hemisphere interaction: all below d = 0.13); the route x group interaction in the "
+                        "hippocampi (younger - older = 0.31, d about 1.0) is reduced by the planted outlier (an older "
+                        "participant whose novel values are raised by 6 SDs, 2.1 units, in the medial temporal "
+                        "regions: 0.13 on the older group's mean of 16), so it may go undetected",
+        },
+        "region_difference_hippocampi_novel_vs_familiar": {
+            "left_minus_right": round(hipp, 10), "d_z": round(hipp / sd_of(w), 10),
+            "expected": "a small difference (left - right = -0.04 in invented units): a non-significant test is "
+                        "expected, and it does not show that the hippocampi respond equally (that needs an "
+                        "equivalence test)",
+        },
+        "evidence_for_absence_primary_visual_cortex": {
+            "novel_vs_familiar": {"younger": nvf[0], "older": nvf[1]},
+            "equivalence_bound_d": _EQUIVALENCE_BOUND,
+            "tost_power_at_zero": tost_power,
+            "expected": f"no route effect in {_CONTROL} (novel - familiar = 0 in both groups): equivalence within "
+                        f"+-{_EQUIVALENCE_BOUND:g} d expected with probability about {tost_power:.2f} (two one-sided "
+                        f"tests at alpha = .05, n = {n}) and BF10 below 1 (evidence for no effect; typically below "
+                        "1/3, moderate)",
+        },
     }

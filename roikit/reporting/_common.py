@@ -15,7 +15,7 @@ REQUIRED_RESULTS = ("region", "design", "term", "n", "estimate", "statistic", "s
 REQUIRED_VALUES = ("participant_id", "contrast", "region", "value")
 
 #: Columns that together identify one analysis (one run of a design) inside a results table.
-ANALYSIS_KEYS = ("analysis", "design", "contrast", "versus", "group_column", "levels", "formula")
+ANALYSIS_KEYS = ("analysis", "design", "contrast", "versus", "group_column", "levels", "formula", "within")
 
 
 def check_columns(data: pd.DataFrame, required: Iterable[str], what: str) -> None:
@@ -112,6 +112,8 @@ DESIGN_NAMES = {
     "precision-weighted": "Precision-weighted random-effects model",
     "mixed": "Linear mixed-effects model",
     "fixed-effects": "Fixed-effects combination, these participants only",
+    "repeated-measures": "Repeated-measures ANOVA",
+    "region-difference": "Region difference",
 }
 
 
@@ -128,6 +130,11 @@ def analysis_title(key: dict, *, labels: "Labels | None" = None) -> str:
     if design == "two-group" and key.get("levels"):
         g = key.get("group_column", "")
         return f"{name}: {contrast}, " + " vs ".join(labels.level(g, lv) for lv in key["levels"].split(","))
+    if design == "repeated-measures" and key.get("within"):
+        factors = [labels.variable(f) for f in key["within"].split(",") if f]
+        if key.get("group_column"):
+            factors.append(labels.variable(key["group_column"]))
+        return f"{name}{f' of {contrast}' if contrast else ''}: {' × '.join(factors)}"
     if key.get("formula"):
         import re
 

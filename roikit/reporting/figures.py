@@ -75,6 +75,8 @@ __all__ = [
     "precision_plot",
     "stimulus_plot",
     "covariate_plot",
+    "interaction_plot",
+    "interaction_pages",
     "save_figure",
     "mean_ci",
     "fit_line",
@@ -1029,6 +1031,186 @@ def stimulus_plot(
         if legend:
             _dedupe_legend(ax, owned)
     return ax
+
+
+# --------------------------------------------------------------------------------------------- interactions
+def _interaction_cells(results: pd.DataFrame, unit: str | None) -> tuple[str, list[str], list, pd.Series]:
+    """(unit, within factor names, cells [contrast, region, levels], one results row) of a repeated-measures unit."""
+    import json
+
+    check_columns(results, REQUIRED_RESULTS, "results table")
+    rows = results[(results["design"].map(text) == "repeated-measures") & results.get(
+        "cells", pd.Series(np.nan, index=results.index)).map(lambda v: not is_missing(v))]
+    if not len(rows):
+        raise UsageError("no repeated-measures rows with a 'cells' column in the results; run the "
+                         "repeated-measures design (roikit stats --design repeated-measures) first")
+    units = ordered_unique(rows["region"].map(text))
+    if unit is None:
+        unit = units[0]
+    if unit not in units:
+        raise UsageError(f"unit {unit!r} is not in the repeated-measures results; found {', '.join(units)}")
+    row = rows[rows["region"].map(text) == unit].iloc[0]
+    try:
+        cells = json.loads(text(row["cells"]))
+    except ValueError:
+        raise UsageError(f"the 'cells' column of {unit!r} is not the JSON list the repeated-measures design "
+                         "writes") from None
+    factors = [f for f in text(row.get("within")).split(",") if f]
+    return unit, factors, cells, row
+
+
+def interaction_plot(
+    data: pd.DataFrame,
+    results: pd.DataFrame,
+    *,
+    unit: str | None = None,
+    participants: pd.DataFrame | None = None,
+    group_level: str | None = None,
+    participant: str = "participant_id",
+    confidence: float = 0.95,
+    width: Width = "single",
+    legend: bool = True,
+    value_label: str | None = None,
+    ax=None,
+    **_ignored,
+):
+    """Interaction plot of a repeated-measures unit: condition means with CIs over every participant's lines.
+
+    The x axis holds the levels of the first within factor; each combination of the other within factors is a
+    trace (Okabe-Ito colour and its own marker); behind each mean, every participant's values of that trace are
+    joined by a thin line, so individual patterns (and exceptions) stay visible. Means carry their *t*-based CI
+    (:func:`mean_ci`) across the participants drawn.
+
+    Parameters
+    ----------
+    data : DataFrame
+        Region values table.
+    results : DataFrame
+        Results with repeated-measures rows (their ``cells`` column maps each cell to its contrast and region).
+    unit : str, optional
+        The unit (the results' ``region``, e.g. ``"hippocampus (left, right)"``); default the first.
+    participants : DataFrame, optional
+        participants.tsv, for the between-participant column of the analysis.
+    group_level : str, optional
+        Draw only participants of this level of the between-participant column.
+
+    Returns
+    -------
+    matplotlib.axes.Axes
+    """
+    check_columns(data, REQUIRED_VALUES, "region values table")
+    unit, factors, cells, row = _interaction_cells(results, unit)
+    part = data.assign(_c=data["contrast"].map(text), _r=data["region"].map(text), _who=data[participant].map(text))
+    part["_value"] = pd.to_numeric(part["value"], errors="coerce")
+    between = text(row.get("group_column"))
+    if group_level is not None:
+        labels = group_of(part, participants, between) if between else None
+        if labels is None:
+            raise UsageError(f"group_level={group_level!r} needs the between column {between or '(none)'} in "
+                             "the values table or participants")
+        part = part[labels.to_numpy() == str(group_level)]
+    wide = {}
+    for contrast, region, levels in cells:
+        sel = part[(part["_c"] == contrast) & (part["_r"] == region)]
+        wide[tuple(levels)] = sel.groupby("_who")["_value"].mean()
+    frame = pd.DataFrame(wide)
+    excluded = set(ids(row.get("excluded_ids")))
+    frame = frame[~frame.index.isin(excluded)].dropna()  # complete cases, as the test used
+    x_levels = ordered_unique(lv[0] for lv in frame.columns) if len(frame.columns) else []
+    traces = ordered_unique(tuple(lv[1:]) for lv in frame.columns)
+    n_tr = max(1, len(traces))
+    offsets = (np.arange(n_tr) - (n_tr - 1) / 2) * (0.16 if n_tr > 1 else 0.0)
+    with style():
+        owned = ax is None
+        ax = _new_axes(ax, width, 72)
+        for t, trace in enumerate(traces):
+            color = GROUP_COLORS[t % len(GROUP_COLORS)]
+            marker = GROUP_MARKERS[t % len(GROUP_MARKERS)]
+            name = "; ".join(f"{f}: {lv}" for f, lv in zip(factors[1:], trace)) if trace else "mean"
+            columns = [(x, *trace) for x in x_levels]
+            y = frame[columns].to_numpy(float)  # participants x levels of the first factor
+            xs = np.arange(len(x_levels)) + offsets[t]
+            segments = [np.column_stack([xs, yi]) for yi in y]
+            ax.add_collection(LineCollection(segments, colors=color, alpha=0.28, linewidths=0.5, zorder=1.5,
+                                             label=f"participants ({name})" if trace else "participant"))
+            ax.scatter(np.repeat(xs[None, :], len(y), axis=0).ravel(), y.ravel(), s=3, color=color, alpha=0.35,
+                       linewidths=0, zorder=1.6)
+            stats_ = [mean_ci(y[:, j], confidence=confidence) for j in range(len(x_levels))]
+            m = np.array([s_[0] for s_ in stats_])
+            lo = np.array([s_[1] for s_ in stats_])
+            hi = np.array([s_[2] for s_ in stats_])
+            ax.plot(xs, m, color=color, lw=1.4, zorder=3)
+            ax.errorbar(xs, m, yerr=[m - lo, hi - m], fmt=marker, color=color, markeredgecolor="black",
+                        markeredgewidth=0.5, ms=5, elinewidth=1.1, capsize=2, zorder=4,
+                        label=f"{name}: mean and {confidence:.0%} CI" if trace else f"mean and {confidence:.0%} CI")
+        ax.axhline(0, **_ZERO_STYLE)
+        ax.set_xticks(range(len(x_levels)), x_levels)
+        ax.set_xlim(-0.5, len(x_levels) - 0.5)
+        ax.set_xlabel(f"{factors[0] if factors else 'condition'} (n = {len(frame)})")
+        ax.set_ylabel(_value_axis_label(value_label))
+        title = unit + (f" · {group_level}" if group_level is not None else "")
+        ax.set_title(textwrap.fill(title, 40))
+        ax.yaxis.set_major_formatter(mpl.ticker.FuncFormatter(lambda v, _p: _minus(f"{v:g}")))
+        if legend:
+            _dedupe_legend(ax, owned)
+    return ax
+
+
+def interaction_pages(
+    data: pd.DataFrame,
+    results: pd.DataFrame,
+    *,
+    participants: pd.DataFrame | None = None,
+    width: Width = "double",
+    panel_height_mm: float = 60.0,
+    **kwargs,
+) -> list[Figure]:
+    """Every repeated-measures unit of ``results`` as :func:`interaction_plot` panels: one row per unit, one
+    column per level of the between-participant column (one column without one); pages of at most 225 mm.
+
+    Returns
+    -------
+    list of matplotlib.figure.Figure
+    """
+    check_columns(data, REQUIRED_VALUES, "region values table")
+    _, _, _, first = _interaction_cells(results, None)
+    rows = results[(results["design"].map(text) == "repeated-measures") & results.get(
+        "cells", pd.Series(np.nan, index=results.index)).map(lambda v: not is_missing(v))]
+    units = ordered_unique(rows["region"].map(text))
+    between = text(first.get("group_column"))
+    levels: list = [None]
+    if between:
+        labels = group_of(data, participants, between)
+        if labels is not None:
+            wanted = [s for s in text(first.get("levels")).split(",") if s]
+            levels = wanted or [lv for lv in ordered_unique(labels) if lv != "n/a"]
+    rows_max = max(1, int((MAX_HEIGHT_MM - _LEGEND_HEIGHT_MM) // panel_height_mm))
+    pages = [units[i:i + rows_max] for i in range(0, len(units), rows_max)]
+    wmm = _width_mm(width)
+    figures = []
+    for k, names in enumerate(pages, start=1):
+        with style():
+            fig = Figure(figsize=(wmm * _MM, (panel_height_mm * len(names) + _LEGEND_HEIGHT_MM) * _MM),
+                         layout="constrained")
+            axes = fig.subplots(len(names), len(levels), squeeze=False, sharey="row")
+            handles: dict[str, Any] = {}
+            for r, unit in enumerate(names):
+                for c, level in enumerate(levels):
+                    ax = axes[r, c]
+                    interaction_plot(data, results, unit=unit, participants=participants, group_level=level,
+                                     ax=ax, legend=False, **kwargs)
+                    if c:
+                        ax.set_ylabel("")
+                    for h, lab in zip(*ax.get_legend_handles_labels()):
+                        if lab and not lab.startswith("_"):
+                            handles.setdefault(lab, h)
+            if len(pages) > 1:
+                fig.suptitle(f"page {k} of {len(pages)}", fontsize=7.5)
+            if handles:
+                fig.legend(list(handles.values()), list(handles.keys()), loc="outside lower center",
+                           ncols=min(len(handles), 2), handletextpad=0.4, columnspacing=1.2)
+        figures.append(fig)
+    return figures
 
 
 # --------------------------------------------------------------------------------------------- covariates

@@ -289,7 +289,7 @@ def estimate_symbol(design: Any, term: Any = None) -> str:
     term = "" if is_missing(term) else str(term)
     if design in ("one-sample", "fixed-effects") or (design == "precision-weighted" and term in ("mean", "")):
         return "*M*"
-    if design in ("paired", "two-group"):
+    if design in ("paired", "two-group", "region-difference"):
         return "*M*_{diff}"
     return "*b*"
 

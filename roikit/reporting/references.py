@@ -243,6 +243,54 @@ REFERENCES: dict[str, Reference] = {r.key: r for r in [
   volume = {15}, number = {6}, pages = {657--680}, year = {1987},
   doi = {10.1007/BF01068419}
 }"""),
+    _r("lakens2017", "Lakens, 2017",
+       "Lakens, D. (2017). Equivalence tests: A practical primer for *t* tests, correlations, and meta-analyses. "
+       "*Social Psychological and Personality Science, 8*(4), 355–362. https://doi.org/10.1177/1948550617697177",
+       """@article{lakens2017,
+  author = {Lakens, Dani{\\"e}l},
+  title = {Equivalence tests: A practical primer for t tests, correlations, and meta-analyses},
+  journal = {Social Psychological and Personality Science},
+  volume = {8}, number = {4}, pages = {355--362}, year = {2017},
+  doi = {10.1177/1948550617697177}
+}"""),
+    _r("jeffreys1961", "Jeffreys, 1961",
+       "Jeffreys, H. (1961). *Theory of probability* (3rd ed.). Oxford University Press.",
+       """@book{jeffreys1961,
+  author = {Jeffreys, Harold},
+  title = {Theory of Probability},
+  edition = {3}, publisher = {Oxford University Press}, address = {Oxford}, year = {1961}
+}"""),
+    _r("lee2013", "Lee & Wagenmakers, 2013",
+       "Lee, M. D., & Wagenmakers, E.-J. (2013). *Bayesian cognitive modeling: A practical course*. Cambridge "
+       "University Press. https://doi.org/10.1017/CBO9781139087759",
+       """@book{lee2013,
+  author = {Lee, Michael D. and Wagenmakers, Eric-Jan},
+  title = {Bayesian Cognitive Modeling: A Practical Course},
+  publisher = {Cambridge University Press}, address = {Cambridge}, year = {2013},
+  doi = {10.1017/CBO9781139087759}
+}"""),
+    _r("gelman2006", "Gelman & Stern, 2006",
+       "Gelman, A., & Stern, H. (2006). The difference between “significant” and “not significant” is not itself "
+       "statistically significant. *The American Statistician, 60*(4), 328–331. "
+       "https://doi.org/10.1198/000313006X152649",
+       """@article{gelman2006,
+  author = {Gelman, Andrew and Stern, Hal},
+  title = {The difference between ``significant'' and ``not significant'' is not itself statistically significant},
+  journal = {The American Statistician},
+  volume = {60}, number = {4}, pages = {328--331}, year = {2006},
+  doi = {10.1198/000313006X152649}
+}"""),
+    _r("nieuwenhuis2011", "Nieuwenhuis et al., 2011",
+       "Nieuwenhuis, S., Forstmann, B. U., & Wagenmakers, E.-J. (2011). Erroneous analyses of interactions in "
+       "neuroscience: A problem of significance. *Nature Neuroscience, 14*(9), 1105–1107. "
+       "https://doi.org/10.1038/nn.2886",
+       """@article{nieuwenhuis2011,
+  author = {Nieuwenhuis, Sander and Forstmann, Birte U. and Wagenmakers, Eric-Jan},
+  title = {Erroneous analyses of interactions in neuroscience: A problem of significance},
+  journal = {Nature Neuroscience},
+  volume = {14}, number = {9}, pages = {1105--1107}, year = {2011},
+  doi = {10.1038/nn.2886}
+}"""),
     _r("iglewicz1993", "Iglewicz & Hoaglin, 1993",
        "Iglewicz, B., & Hoaglin, D. C. (1993). *How to detect and handle outliers*. ASQC Quality Press.",
        """@book{iglewicz1993,

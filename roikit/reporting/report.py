@@ -46,6 +46,7 @@ from ._common import (
 from .figures import (
     covariate_plot,
     forest_pages,
+    interaction_pages,
     participant_pages,
     precision_plot,
     save_figure,
@@ -225,6 +226,18 @@ def _figure_plan(values: pd.DataFrame, results: pd.DataFrame, participants: pd.D
                     make=lambda s=stim, g=group, v=model_values: participant_pages(v, stimulus=s, group=g,
                                                                     participants=participants, plot=stimulus_plot,
                                                                     **opts)))
+        elif design == "repeated-measures" and has_values(rows, "cells"):
+            within = ordered_unique(t for v in col(rows, "within") for t in text(v).split(",") if t)
+            between = key.get("group_column") or ""
+            plan.append(dict(name=f"{prefix}_interaction", caption=(
+                f"{escape_markup(title)}: condition means with their 95% CIs (large markers, thick lines) over every "
+                f"participant's values (thin lines), by {escape_markup(within[0]) if within else 'condition'}"
+                + (f" and {escape_markup(' × '.join(within[1:]))} (colour and marker, Okabe–Ito palette)"
+                   if len(within) > 1 else "")
+                + (f"; one column per {escape_markup(between)}" if between else "")
+                + ". Only participants with every cell (as in the test) are drawn; the dashed line marks zero."),
+                make=lambda r=rows: interaction_pages(values, r, participants=participants,
+                                                      value_label=value_label)))
         # forest plots: one per term with an interval (intercepts of models left out)
         all_terms = ordered_unique(rows["term"].map(text))
         drawn_terms = [t for t in all_terms if not (is_intercept(t) and len(all_terms) > 1)]
@@ -238,6 +251,8 @@ def _figure_plan(values: pd.DataFrame, results: pd.DataFrame, participants: pd.D
                 continue
             if len(part) < 2:
                 continue
+            if design == "repeated-measures" and "F" in set(part["statistic_type"].map(text)):
+                continue  # F effects: the interaction figure shows the pattern, the table the tests
             label = term_label(term, key, labels, participants, all_terms)
             size = family_size(part)
             if primary == "none":
@@ -613,7 +628,7 @@ def write_report(
                                              labels=names, correct=correct)
     result_paragraphs = results_parts(results, labels=names, participants=participants, correct=correct)
     references = reference_list(cited)
-    cited_all = list(dict.fromkeys(cited + [c["cites"] for c in found if c.get("cites")]))
+    cited_all = list(dict.fromkeys(cited + [k for c in found if c.get("cites") for k in c["cites"].split(",")]))
     md = ["# Methods", ""] + [render(p, "markdown") + "\n" for p in method_paragraphs]
     if drawn_regions is not None:
         md += ["## Regions", "", "| " + " | ".join(_REGION_HEAD) + " |", "|" + "---|" * len(_REGION_HEAD)]

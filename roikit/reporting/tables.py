@@ -645,6 +645,16 @@ def write_latex_preamble(directory: os.PathLike | str, tables: Iterable["ReportT
 
 
 # ---------------------------------------------------------------------------------------------- results
+def _format_bf(value: Any) -> str:
+    """A Bayes factor: three decimals below .1, two below 100, one below 1,000, then whole numbers."""
+    bf = number(value)
+    if not np.isfinite(bf):
+        return MISSING
+    if bf >= 1000:
+        return f"{bf:,.0f}"
+    return format_number(bf, 3 if bf < 0.1 else 2 if bf < 100 else 1)
+
+
 def cell_formatters() -> dict[str, Any]:
     """Map from a results-table column key to the function formatting one row's cell (used by tests too).
 
@@ -671,6 +681,10 @@ def cell_formatters() -> dict[str, Any]:
         "effect_ci": lambda r: format_ci(r.get("effect_size_ci_low"), r.get("effect_size_ci_high"),
                                          leading_zero=not bounded(r)),
         "tau2": lambda r: format_number(r.get("tau2"), 3),
+        "p_equivalence": lambda r: format_p(r.get("p_equivalence")),
+        "bf10": lambda r: _format_bf(r.get("bf10")),
+        "epsilon_gg": lambda r: format_number(r.get("epsilon_gg"), leading_zero=False),
+        "generalized_eta2": lambda r: format_number(r.get("generalized_eta2"), leading_zero=False),
         "i2": lambda r: format_percent(r.get("i2")),
     }
 
@@ -738,6 +752,11 @@ def _estimate_sentence(key: dict, rows: pd.DataFrame) -> str:
             return (f"*M*_{{diff}} = difference of group means, {escape_markup(levels[0])} − "
                     f"{escape_markup(levels[1])} ({contrast}).")
         return "*M*_{diff} = difference of group means."
+    if design == "region-difference":
+        versus = key.get("versus", "")
+        what = f"({contrast} − {escape_markup(versus)})" if versus else contrast
+        return (f"*M*_{{diff}} = mean within-participant difference between the two regions (first − second) in "
+                f"the {what} values; a paired *t*-test of the differences.")
     if design == "precision-weighted":
         return ("Estimates are precision-weighted (inverse-variance) with a between-participant variance "
                 "*τ*^{2}; *I*^{2} = share of the total variance due to between-participant heterogeneity.")
@@ -823,8 +842,13 @@ def _build(key: dict, rows: pd.DataFrame, stat: str, number_: int, suffix: str =
     else:
         columns.append(Column("df1", "*df*_{1}"))
         columns.append(Column("df", "*df*_{2}"))
+    # repeated measures: F tests with a sphericity question get Greenhouse-Geisser corrected df and p
+    eps = pd.to_numeric(col(rows, "epsilon_gg"), errors="coerce") if stat == "F" else pd.Series(dtype=float)
+    corrected_df = bool(len(eps)) and bool(np.any(eps.to_numpy(float) < 1)) and has_values(rows, "p_gg")
+    if corrected_df:
+        columns.append(Column("epsilon_gg", "*ε*_{GG}"))
     columns.append(Column("statistic", statistic_symbol(stat)))
-    columns.append(Column("p", "*p*"))
+    columns.append(Column("p", "*p*_{GG}" if corrected_df else "*p*"))
     corrected = [m for m in ("holm", "fdr", "fwe", "bonferroni") if has_values(rows, f"p_{m}")]
     corrected = ([primary] if primary in corrected else []) + [m for m in corrected if m != primary]
     for m in corrected:
@@ -835,6 +859,12 @@ def _build(key: dict, rows: pd.DataFrame, stat: str, number_: int, suffix: str =
         columns.append(Column("effect_size", header))
         if has_values(rows, "effect_size_ci_low"):
             columns.append(Column("effect_ci", f"{level} CI", "c"))
+    if stat == "F" and has_values(rows, "generalized_eta2"):
+        columns.append(Column("generalized_eta2", "*η*^{2}_{G}"))
+    if has_values(rows, "p_equivalence"):
+        columns.append(Column("p_equivalence", "*p*_{TOST}"))
+    if has_values(rows, "bf10"):
+        columns.append(Column("bf10", "*BF*_{10}"))
     if has_values(rows, "tau2"):
         columns.append(Column("tau2", "τ^{2}"))
     if has_values(rows, "i2"):
@@ -846,6 +876,9 @@ def _build(key: dict, rows: pd.DataFrame, stat: str, number_: int, suffix: str =
     cells, row_ids = [], []
     for r in records:
         region = text(r["region"])
+        e = number(r.get("epsilon_gg"))
+        if corrected_df and np.isfinite(e) and np.isfinite(number(r.get("p_gg"))):
+            r = {**r, "df1": number(r["df1"]) * e, "df": number(r["df"]) * e, "p": number(r["p_gg"])}
         marks = []
         for kind, who in _flags(r):
             letter = letters.setdefault(kind, "abcdefghij"[len(letters)])
@@ -869,7 +902,25 @@ def _build(key: dict, rows: pd.DataFrame, stat: str, number_: int, suffix: str =
     note.append("*n* = participants in the test" + (f"; CI = confidence interval ({level})." if has_ci else "."))
     if stat != "F":
         note.append(_estimate_sentence(key, rows))
-    note.append("*p* values are two-sided.")
+    if stat != "F":
+        note.append("*p* values are two-sided.")
+    if corrected_df:
+        note.append("*df* and *p*_{GG} are Greenhouse–Geisser corrected (*df* × *ε*_{GG}; Greenhouse & Geisser, "
+                    "1959); effects with one numerator *df* need no correction (*ε*_{GG} = 1).")
+    if has_values(rows, "p_equivalence"):
+        bounds = ordered_unique(format_number(number(v), 2) for v in col(rows, "equivalence_bound")
+                                if np.isfinite(number(v)))
+        note.append(f"*p*_{{TOST}} = larger *p* of two one-sided tests against ±{' or ±'.join(bounds)} in units of "
+                    "the effect size (Schuirmann, 1987; Lakens, 2017); below .05, the effect lies within the bounds.")
+    if has_values(rows, "bf10"):
+        scales = ordered_unique(format_number(number(v), 3, leading_zero=False) for v in col(rows, "prior_scale")
+                                if np.isfinite(number(v)))
+        note.append(f"*BF*_{{10}} = JZS Bayes factor for an effect against none (Rouder et al., 2009; Cauchy prior "
+                    f"scale *r* = {' or '.join(scales) or '.707'}); below 1/3 moderate and below 1/10 strong evidence "
+                    "for no effect, above 3 and 10 for an effect (Jeffreys, 1961, as adapted by Lee & Wagenmakers, "
+                    "2013).")
+    if stat == "F" and has_values(rows, "generalized_eta2"):
+        note.append("*η*^{2}_{G} = generalized eta squared (Olejnik & Algina, 2003).")
     methods = ordered_unique(col(rows, "df_method"))
     if methods:
         note.append("Reference distribution: " + "; ".join(DF_METHOD_TEXT.get(text(m), escape_markup(text(m)))

@@ -47,12 +47,15 @@ from .format import (
     correction_name,
     escape_markup,
     format_df,
+    effect_symbol,
     format_number,
+    format_p,
     in_text,
     is_missing,
     render,
 )
 from .power import sensitivity_sentence
+from .tables import _format_bf
 from .references import Citations, reference_list
 
 __all__ = [
@@ -245,6 +248,8 @@ def cautions(
     One line per problem and participant (``sub-25: robust outlier (modified z > 3.5) in 6 regions, 5 analyses;
     kept in the tests``), one per analysis for model problems; :func:`caution_details` lists every region.
     Kinds: ``circular``, ``uncorrected`` (a family of several regions reported without correction),
+    ``region-comparison`` (t results of several regions shown side by side: a difference between regions needs
+    the region-difference test),
     ``fixed-effects`` (no population inference), ``non-convergence``, ``boundary``, ``outliers``,
     ``low-coverage``, ``excluded`` (missing values). Each dict also has ``participant`` (or ``""``).
     """
@@ -292,6 +297,19 @@ def cautions(
             out.append({"kind": "boundary", "participant": "", "text": (
                 f"{name}: {what} estimated at zero in {escape_markup(_who_regions(edge))}; a singular fit, so the "
                 "model reduces to a simpler one there.")})
+    side_by_side = [n for n, key, rows in numbered if key.get("design") != "region-difference"
+                    and "t" in set(rows["statistic_type"].map(text))
+                    and any(len(ordered_unique(part["region"].map(text))) > 1
+                            for _, part in rows.groupby(rows["term"].map(text), sort=False))]
+    if side_by_side:
+        tested = [n for n, key, _rows in numbered if key.get("design") == "region-difference"]
+        where = (f"as analysis {_ranges(tested)} does" if len(tested) == 1 else
+                 f"as analyses {_ranges(tested)} do" if tested else "with the region-difference design")
+        out.append({"kind": "region-comparison", "participant": "", "text": (
+            f"{'Analysis ' + str(side_by_side[0]) + ' shows' if len(side_by_side) == 1 else 'Analyses ' + _ranges(side_by_side) + ' show'} "
+            "regions side by side; significant in one, not in another, is not a difference (Gelman & Stern, 2006; "
+            f"Nieuwenhuis et al., 2011): test it {where}."),
+            "cites": "gelman2006,nieuwenhuis2011"})
     details = caution_details(results)
     kinds = {"robust outlier": "outliers", "low coverage": "low-coverage", "missing value": "excluded"}
     for (who, problem), part in details.groupby(["participant_id", "problem"], sort=False):
@@ -563,8 +581,13 @@ def _design_sentence(number_: int, key: dict, rows: pd.DataFrame, labels: Labels
                    ordered_unique(rows["term"].map(text))]
         what = (f"the {escape_markup(join_words(compress_labels([labels.level('contrast', c) for c in contrasts])))} "
                 "values" if contrasts else "the values")
+        within = ordered_unique(f for v in col(rows, "within") for f in text(v).split(",") if f)
+        between = ordered_unique(text(v) for v in col(rows, "group_column") if text(v))
+        factors = (f" with {escape_markup(join_words([labels.variable(f) for f in within]))} within participants"
+                   + (f" and {escape_markup(labels.variable(between[0]))} between them" if between else "")
+                   if within else "")
         s = (f"{lead} tested {join_words(effects)} in a repeated-measures analysis of variance of {what} of each "
-             "region (participants as the random factor)")
+             f"region{factors} (participants as the random factor; complete cases only)")
         checks = []
         if has_values(rows, "mauchly_p"):
             checks.append(f"sphericity was checked with Mauchly's test ({cite.cite('mauchly1940')})")
@@ -593,10 +616,11 @@ def _design_sentence(number_: int, key: dict, rows: pd.DataFrame, labels: Labels
     if has_values(rows, "bf10"):
         scale = ordered_unique(number(v) for v in col(rows, "prior_scale") if np.isfinite(number(v)))
         s += (f"; JZS Bayes factors *BF*_{{10}} ({cite.cite('rouder2009')}) used a Cauchy prior on the standardised "
-              f"effect with scale *r* = {format_number(scale[0], 3, leading_zero=False) if scale else '.707'}")
+              f"effect with scale *r* = {format_number(scale[0], 3, leading_zero=False) if scale else '.707'} and "
+              f"are classified on the scale of {cite.year('jeffreys1961')} as adapted by {cite.year('lee2013')}")
     if has_values(rows, "p_equivalence"):
         bound = ordered_unique(number(v) for v in col(rows, "equivalence_bound") if np.isfinite(number(v)))
-        s += (f"; equivalence was tested with two one-sided tests ({cite.cite('schuirmann1987')}) against "
+        s += (f"; equivalence was tested with two one-sided tests ({cite.cite('schuirmann1987', 'lakens2017')}) against "
               f"±{format_number(bound[0], 2) if bound else 'the bound'} in standardised effect-size units")
     if df and design in ("precision-weighted", "fixed-effects"):
         s += f"; the test used {df}"
@@ -874,6 +898,57 @@ def _family_lead(method: str, size: int, term: str | None) -> str:
     return f"{where} the {regions}, *p* values were adjusted {name} ({corrected_p_symbol(method)})."
 
 
+#: Classification of Bayes factors: Jeffreys (1961, Appendix B) as adapted by Lee & Wagenmakers (2013, Table 7.1).
+_BF_SCALE = ((100.0, "extreme"), (30.0, "very strong"), (10.0, "strong"), (3.0, "moderate"), (1.0, "anecdotal"))
+
+
+def bf_evidence(bf10: float, design: str = "") -> str:
+    """Words for a Bayes factor BF10 (``moderate evidence for no difference``) on Jeffreys' (1961) scale as adapted
+    by Lee & Wagenmakers (2013, Table 7.1): 1-3 anecdotal, 3-10 moderate, 10-30 strong, 30-100 very strong,
+    above 100 extreme, and the same for 1/BF10 in favour of the null.
+
+    >>> bf_evidence(0.21, "paired")
+    'moderate evidence for no difference'
+    >>> bf_evidence(12.0, "one-sample")
+    'strong evidence for an effect'
+    """
+    bf = float(bf10)
+    if not np.isfinite(bf) or bf <= 0:
+        return "no Bayes factor"
+    if bf == 1.0:
+        return "no evidence either way"
+    effect, null = (("a difference", "no difference") if design in ("paired", "two-group", "region-difference")
+                    else ("an effect", "no effect"))
+    ratio, side = (bf, effect) if bf > 1 else (1.0 / bf, null)
+    word = next(w for bound, w in _BF_SCALE if ratio > bound or bound == 1.0)
+    return f"{word} evidence for {side}"
+
+
+def _row_body(row: pd.Series, corr: str, alpha: float) -> str:
+    """One region's APA clause: the test (an F test with its Greenhouse-Geisser df and p when sphericity is in
+    question), then the Bayes factor and the equivalence test when the row carries them."""
+    row = row.copy()
+    gg = None
+    eps = number(row.get("epsilon_gg"))
+    if text(row.get("statistic_type")) == "F" and np.isfinite(eps) and eps < 1 and np.isfinite(number(row.get("p_gg"))):
+        gg = eps
+        row["df1"], row["df"], row["p"] = number(row["df1"]) * eps, number(row["df"]) * eps, number(row["p_gg"])
+    body = in_text(row, style="markup", estimate=True, correction=None if corr == "none" else corr)
+    if gg is not None:
+        body = body.replace("*p* ", "*p*_{GG} ", 1) + f", *ε*_{{GG}} = {format_number(gg, 2, leading_zero=False)}"
+    bf = number(row.get("bf10"))
+    if np.isfinite(bf):
+        body += f", *BF*_{{10}} = {_format_bf(bf)}, {bf_evidence(bf, text(row.get('design')))}"
+    p_eq = number(row.get("p_equivalence"))
+    bound = number(row.get("equivalence_bound"))
+    if np.isfinite(p_eq) and np.isfinite(bound):
+        what = f"±{format_number(bound, 2)} {effect_symbol(row.get('effect_size_type'))}"
+        verdict = (f"equivalent within {what}" if p_eq < alpha else f"equivalence within {what} not shown")
+        p_txt = format_p(p_eq)
+        body += f"; {verdict} (two one-sided tests, *p* {p_txt if p_txt[0] in '<>' else '= ' + p_txt})"
+    return body
+
+
 def results_parts(
     results: pd.DataFrame,
     *,
@@ -901,7 +976,7 @@ def results_parts(
                 row = r.copy()
                 if is_intercept(term) and not intercept_effect_sizes:
                     row["effect_size"] = np.nan
-                body = in_text(row, style="markup", estimate=True, correction=None if corr == "none" else corr)
+                body = _row_body(row, corr, alpha)
                 sentences.append(f"{_cap(escape_markup(text(r['region'])))}: {body}.")
             pcol = "p" if corr == "none" else f"p_{corr}"
             surv = [text(r["region"]) for _, r in part.iterrows() if number(r.get(pcol)) < alpha]

@@ -157,7 +157,8 @@ def run_design(
 
     Notes
     -----
-    Corrections treat the regions of one design and term as the family; regions whose p is n/a are not counted
+    Corrections treat the regions of one design and term as the family (repeated-measures rows correct the
+    Greenhouse-Geisser p, ``p_gg``, where there is one: the p the report gives for F tests); regions whose p is n/a are not counted
     in ``family_size``. Holm and Benjamini-Hochberg are checked against statsmodels' ``multipletests``.
     """
     func = get_design(design)
@@ -176,6 +177,10 @@ def run_design(
     evidence = {k: options.pop(k) for k in ("equivalence", "bayes_factor", "prior_scale") if k in options}
     _check_options(func, design, options)
     _gate_formulas(options)
+    if "posthoc_correction" in inspect.signature(func).parameters and "posthoc_correction" not in options:
+        # post-hoc pairs are corrected with the analysis' primary correction (fwe has no post-hoc form: Holm)
+        options["posthoc_correction"] = corrections[0] if corrections[0] in ("holm", "fdr", "bonferroni",
+                                                                             "none") else "holm"
 
     results = func(values, participants=participants, confidence=confidence, **options)
     results = results.reset_index(drop=True)
@@ -189,6 +194,9 @@ def run_design(
     results["family_size"] = 0
     for term, index in results.groupby("term", sort=False).groups.items():
         p = results.loc[index, "p"].to_numpy(float)
+        if "p_gg" in results.columns:  # repeated measures: correct the Greenhouse-Geisser p the report gives
+            p_gg = results.loc[index, "p_gg"].to_numpy(float)
+            p = np.where(np.isfinite(p_gg), p_gg, p)
         results.loc[index, "family_size"] = int(np.sum(~np.isnan(p)))
         results.loc[index, "p_holm"] = adjust(p, "holm")
         results.loc[index, "p_fdr"] = adjust(p, "fdr")

@@ -177,6 +177,25 @@ COLUMN_DESCRIPTIONS: dict[str, str] = {
     "n_second": "two-group: participants of the second level in this region's test",
     "permutation_exact": "all distinct permutations were enumerated (p_fwe exact)",
     "permutation_scheme": "permutation scheme: sign-flip, label or freedman-lane",
+    "epsilon_gg": "repeated-measures: Greenhouse-Geisser epsilon (1 for one-df effects)",
+    "epsilon_hf": "repeated-measures: Huynh-Feldt epsilon, capped at 1",
+    "p_gg": "repeated-measures: p with Greenhouse-Geisser corrected df (df1 x epsilon_gg, df x epsilon_gg); the "
+            "corrections across regions adjust this p",
+    "p_hf": "repeated-measures: p with Huynh-Feldt corrected df",
+    "mauchly_w": "repeated-measures: Mauchly's W (n/a for one-df effects)",
+    "mauchly_p": "repeated-measures: p of Mauchly's test of sphericity",
+    "generalized_eta2": "repeated-measures: generalised eta squared (Olejnik & Algina 2003; Bakeman 2005)",
+    "within": "repeated-measures: the within-participant factors, in order",
+    "cells": "repeated-measures: JSON list of [contrast, region, [within levels]], one per cell of the unit "
+             "(what the interaction figure draws)",
+    "p_posthoc": "repeated-measures post-hoc pair: p corrected across the pairs of one factor in one region",
+    "posthoc_correction": "repeated-measures post-hoc pair: the correction of p_posthoc (the primary one)",
+    "posthoc_family": "repeated-measures post-hoc pair: number of pairs of the factor",
+    "regions_compared": "region-difference: the two regions, A,B (the term is A - B)",
+    "p_equivalence": "equivalence: larger p of the two one-sided tests against -D and +D (TOST)",
+    "equivalence_bound": "equivalence: the bound D in the effect size's units",
+    "bf10": "JZS Bayes factor for an effect against none (Rouder et al. 2009)",
+    "prior_scale": "scale r of the Bayes factor's Cauchy prior on the standardised effect",
 }
 
 

@@ -15,6 +15,7 @@ Wagenmakers 2011).
 from __future__ import annotations
 
 import itertools
+import json
 import warnings
 from typing import Sequence
 
@@ -67,6 +68,8 @@ def _plan_units(region_table, region_factors, regions):
     table = region_table[region_table["region"].isin(regions)].copy()
     for f in region_factors:
         table[f] = _group_labels(table[f])
+    # regions with n/a in a region factor (e.g. midline regions without a hemisphere) are not part of it
+    table = table.dropna(subset=list(region_factors))
     others = [c for c in table.columns if c not in ("region", *region_factors)]
     units: dict[str, list] = {}
     if others:
@@ -211,16 +214,17 @@ def repeated_measures(
             raise DesignError(f"between column {between!r} has {plural(len(group_levels), 'level')}; need at least two")
         groups = labels
 
-    unit_names, arrays, kept, excluded = [], [], [], []
+    unit_names, arrays, kept, excluded, cell_maps = [], [], [], [], []
     for name, members in units.items():
         by_level = {lv: r for r, lv in members}
-        cols = []
+        cols, cells = [], []
         for ccell in itertools.product(*c_levels) if c_levels else [()]:
             for rcell in itertools.product(*r_levels) if r_levels else [()]:
                 region = by_level.get(rcell)
                 if region is None:
                     cols = None
                     break
+                cells.append([cell_of[ccell], region, [*ccell, *rcell]])
                 m = mats[cell_of[ccell]]
                 cols.append(m[region].reindex(ids) if region in m.columns else pd.Series(np.nan, index=ids))
             if cols is None:
@@ -234,6 +238,7 @@ def repeated_measures(
         if groups is not None:
             complete &= groups.reindex(ids).notna().to_numpy()
         unit_names.append(name)
+        cell_maps.append(json.dumps(cells, ensure_ascii=False))
         arrays.append(frame.to_numpy(float))
         kept.append(complete.to_numpy())
         excluded.append([pid for pid, ok in zip(ids, complete) if not ok])
@@ -285,7 +290,7 @@ def repeated_measures(
             excluded_ids=[join_ids(e) for e in excluded], epsilon_gg=cols["epsilon_gg"],
             epsilon_hf=cols["epsilon_hf"], p_gg=cols["p_gg"], p_hf=cols["p_hf"], mauchly_w=cols["mauchly_w"],
             mauchly_p=cols["mauchly_p"], generalized_eta2=cols["generalized_eta2"], within=",".join(names_all),
-            contrast=",".join(dict.fromkeys(cell_of.values())),
+            contrast=",".join(dict.fromkeys(cell_of.values())), cells=cell_maps,
         ))  # fmt: skip
     if posthoc:
         frames.append(_posthoc(unit_names, arrays, kept, excluded, names_all, c_levels + r_levels, confidence,

@@ -677,6 +677,11 @@ def _check_analyses(c: _Checker, raw: dict, *, contrasts, participants, columns,
 
         params = inspect.signature(DESIGNS[design]).parameters
         accepted = [n for n in _DESIGN_OPTIONS if option(n, "analysis").py in params]
+        from ..stats.evidence import EVIDENCE_DESIGNS
+
+        if design in EVIDENCE_DESIGNS:  # evidence for absence: run_design adds it to these designs' rows
+            accepted += [n for n in ("equivalence", "bayes_factor", "prior_scale") if n in _DESIGN_OPTIONS
+                         and n not in accepted]
         required = [n for n, p in params.items() if p.kind is inspect.Parameter.KEYWORD_ONLY
                     and p.default is inspect.Parameter.empty and n not in ("participants", "confidence")]
         required += [n for n in _NEEDS.get(design, ()) if n not in required]

@@ -109,7 +109,13 @@ def test_every_analysis_of_the_study_file_ran(full_demo, results):
     study = tomllib.loads((out / "study" / "study.toml").read_text())
     assert list(dict.fromkeys(group["design"])) == [a["design"] for a in study["analysis"]]
     for design, sub in group.groupby("design"):
-        assert set(sub["region"]) == set(REGION_NAMES) | {"prior peak"}, design
+        if design == "repeated-measures":  # one unit per left/right pair of regions.tsv
+            assert set(sub["region"]) == {"hippocampus (left, right)", "parahippocampal gyrus (left, right)",
+                                          "caudate (left, right)"}
+        elif design == "region-difference":
+            assert set(sub["region"]) == {"left hippocampus - right hippocampus"}
+        else:
+            assert set(sub["region"]) == set(REGION_NAMES) | {"prior peak"}, design
     # the planted problems reach roikit's own diagnostics: low coverage and robust outliers
     problems = {p["kind"]: p["participant_id"] for p in results["ground_truth"]["planted_problems"]}
     one = group[(group["design"] == "one-sample")].set_index("region")
@@ -151,7 +157,7 @@ def test_pipeline_is_deterministic_and_overwrites_only_a_demo(tmp_path):
     first = run_demo(tmp_path / "a", seed=5, n_per_group=3, progress=False, figures=False)
     hashes = {name: sha256_file(first.outputs[name]) for name in ("region_values", "group_results")}
     assert set(first.group_results["design"]) == {"one-sample", "paired", "two-group", "glm", "precision-weighted",
-                                                  "mixed"}
+                                                  "mixed", "repeated-measures", "region-difference"}
     assert first.outputs["report"].is_file() and first.report["html"] == first.outputs["report"]
     with pytest.raises(OutputExistsError, match="pass overwrite=True"):  # Python spelling in Python
         run_demo(tmp_path / "a", seed=5, n_per_group=3, progress=False)
@@ -163,3 +169,30 @@ def test_pipeline_is_deterministic_and_overwrites_only_a_demo(tmp_path):
     (tmp_path / "c" / "results").mkdir(parents=True)
     with pytest.raises(OutputExistsError, match="not an earlier demo's results"):
         run_demo(tmp_path / "c", n_per_group=3, overwrite=True, progress=False)
+
+
+@pytest.mark.slow
+def test_within_designs_find_the_expected_patterns(full_demo, results):
+    """The ground truth's expected patterns (derived from the generating model) against the demo's results."""
+    out = full_demo["out"]
+    group = read_table(out / "results" / "group_results.tsv")
+    expected = results["ground_truth"]["expected_patterns"]
+    rm = group[group["design"] == "repeated-measures"].set_index(["region", "term"])
+    units = expected["repeated_measures_route_x_hemisphere_x_group"]["units"]
+    for unit, effects in units.items():
+        # a route effect of d_z 0.7-1.3 in every pair is found after correction across the three pairs
+        assert abs(effects["route"]["d_z"]) > 0.7 and rm.loc[(unit, "route"), "p_holm"] < 0.05, unit
+        # the route x hemisphere interaction is 0 or tiny in the model and not found
+        assert abs(effects["route:hemisphere"]["d_z"]) < 0.15 and rm.loc[(unit, "route:hemisphere"), "p_holm"] > 0.05
+    assert units["caudate (left, right)"]["route:hemisphere"]["absent"]
+    one = group[group["design"] == "one-sample"].set_index("region")
+    truth = expected["evidence_for_absence_primary_visual_cortex"]
+    assert truth["novel_vs_familiar"] == {"younger": 0.0, "older": 0.0}
+    visual = one.loc["primary visual cortex"]
+    assert visual["bf10"] < 1 and visual["equivalence_bound"] == truth["equivalence_bound_d"]
+    # equivalence is expected with probability ~0.73; at the demo's default seed it is shown
+    assert visual["p_equivalence"] < 0.05
+    assert one.loc["left hippocampus", "bf10"] > 100  # a large route effect: extreme evidence for it
+    rd = group[group["design"] == "region-difference"].iloc[0]
+    assert rd["p"] > 0.05 and abs(expected["region_difference_hippocampi_novel_vs_familiar"]["d_z"]) < 0.2
+    assert any(p.name.startswith("a7-repeated-measures_interaction") for p in (out / "results" / "figures").iterdir())

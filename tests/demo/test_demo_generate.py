@@ -164,8 +164,22 @@ def test_study_file_follows_the_contract(small):
     designs = [a["design"] for a in study["analysis"]]
     # the contract's designs (CONTRACT.md, "Designs and their options")
     assert set(designs) <= {"one-sample", "paired", "two-group", "glm", "precision-weighted", "mixed",
-                            "fixed-effects"}
-    assert {"paired", "two-group", "glm", "precision-weighted", "mixed"} <= set(designs)
+                            "fixed-effects", "repeated-measures", "region-difference"}
+    assert {"paired", "two-group", "glm", "precision-weighted", "mixed", "repeated-measures",
+            "region-difference"} <= set(designs)
+    # the within factors come from the study's contrasts and regions tables
+    contrasts_table = read_table(small.path / study["study"]["contrasts"])
+    regions_table = read_table(small.path / study["study"]["regions"])
+    assert (small.path / "contrasts.json").is_file() and (small.path / "regions.json").is_file()
+    assert dict(zip(contrasts_table["contrast"], contrasts_table["route"].fillna("n/a"))) == {
+        "novel": "novel", "familiar": "familiar", "novel-vs-familiar": "n/a",
+        **{f"town{k}": "n/a" for k in range(1, 7)}}
+    assert list(contrasts_table["town"].dropna()) == [f"town{k}" for k in range(1, 7)]
+    paired = regions_table.dropna(subset=["hemisphere"])
+    assert sorted(paired.groupby("structure")["hemisphere"].apply(sorted).map(tuple).unique()) == [("left", "right")]
+    assert set(paired["structure"]) == {"hippocampus", "parahippocampal gyrus", "caudate"}
+    repeated = next(a for a in study["analysis"] if a["design"] == "repeated-measures")
+    assert repeated["within"] == ["route", "hemisphere"] and repeated["between"] == "group"
     participants = read_table(small.path / "participants.tsv")
     for analysis in study["analysis"]:
         for level in analysis.get("levels", []):

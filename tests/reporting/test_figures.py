@@ -26,6 +26,8 @@ from roikit.reporting.figures import (
     precision_plot,
     save_figure,
     stimulus_plot,
+    interaction_pages,
+    interaction_plot,
 )
 
 
@@ -283,9 +285,34 @@ def audit_saved_figure(fig, path):
     return float(width_mm), float(height_mm), min(sizes), overlaps, outside
 
 
+def _repeated(values, participants, within="route,hemisphere", between="group"):
+    """Repeated-measures results on the shared test values (route from a contrasts table, hemisphere from a
+    regions table; the midline region has no hemisphere and is in no unit)."""
+    from roikit.stats import run_design
+
+    contrasts = pd.DataFrame({"contrast": ["novel", "familiar", "town1", "town2", "town3"],
+                              "route": ["novel", "familiar", None, None, None],
+                              "town": [None, None, "town1", "town2", "town3"]})
+    regions = pd.DataFrame({"region": ["left hippocampus", "right hippocampus", "retrosplenial cortex"],
+                            "structure": ["hippocampus", "hippocampus", "retrosplenial cortex"],
+                            "hemisphere": ["left", "right", None]})
+    import warnings
+
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")  # the one participant without every cell is named in excluded_ids
+        return run_design(values, "repeated-measures", within=within, between=between, contrasts=contrasts,
+                          region_table=regions, participants=participants)
+
+
 def _figure_kinds(values, participants, results_by_design, results):
     towns = values[values.contrast.str.startswith("town")]
     return {
+        "interaction": lambda: interaction_pages(values, _repeated(values, participants), participants=participants,
+                                                 value_label="Parameter estimate (a.u.)")[0],
+        "interaction, three towns": lambda: interaction_pages(values, _repeated(values, participants,
+                                                                                "town,hemisphere", None))[0],
+        "interaction, single plot": lambda: interaction_plot(values, _repeated(values, participants, "route",
+                                                                               None)).figure,
         "one-sample": lambda: participant_figure(values, contrast="novel", results=results_by_design["one-sample"],
                                                  value_label="Parameter estimate (a.u.)"),
         "paired": lambda: participant_figure(values, contrast="novel", versus="familiar",
@@ -314,7 +341,7 @@ def _figure_kinds(values, participants, results_by_design, results):
     }
 
 
-KINDS = ["one-sample", "paired", "two-group", "within-between", "precision", "stimuli", "covariate",
+KINDS = ["interaction", "interaction, three towns", "interaction, single plot", "one-sample", "paired", "two-group", "within-between", "precision", "stimuli", "covariate",
          "forest effect sizes", "forest estimates", "single plot", "single stimulus plot", "paired, single column",
          "stimuli, single column", "covariate, 1.5 column", "forest, single column"]
 
@@ -620,3 +647,35 @@ def test_report_command_takes_a_value_label(values, results_by_design, participa
     assert any("_covariate-age" in p.name for p in (tmp_path / "r" / "figures").glob("*.png"))
     # the axis labels the figures were drawn with: the user's unit, and the sidecar's long name with its unit
     assert {"value_label": "% signal change", "covariate_label": "Age at scan (years)"} in seen
+
+
+def test_interaction_plot_draws_every_complete_participant_and_the_cell_means(values, participants):
+    """Each trace has one thin line per complete participant and its means are the cell means (numpy)."""
+    from matplotlib.collections import LineCollection
+
+    res = _repeated(values, participants, "route,hemisphere", None)
+    ax = interaction_plot(values, res, unit="hippocampus (left, right)")
+    lines = [c for c in ax.collections if isinstance(c, LineCollection) and c.get_label().startswith("participants")]
+    assert [c.get_label() for c in lines] == ["participants (hemisphere: left)", "participants (hemisphere: right)"]
+    n = int(res["n"].iloc[0])
+    assert all(len(c.get_segments()) == n for c in lines)
+    hipp = values[values["region"] == "left hippocampus"].pivot(index="participant_id", columns="contrast",
+                                                                   values="value")[["novel", "familiar"]]
+    excluded = set(str(res["excluded_ids"].iloc[0]).split(",")) if isinstance(res["excluded_ids"].iloc[0], str) else set()
+    hipp = hipp[~hipp.index.isin(excluded)].dropna()
+    means = [line for line in ax.lines if len(line.get_xdata()) == 2 and line.get_linewidth() > 1.2]
+    np.testing.assert_allclose(means[0].get_ydata(), hipp.mean().to_numpy(), rtol=1e-12)
+    assert ax.get_xlabel() == f"route (n = {n})"
+    assert [t.get_text() for t in ax.get_xticklabels()] == ["novel", "familiar"]
+
+
+def test_interaction_pages_one_column_per_group(values, participants):
+    fig = interaction_pages(values, _repeated(values, participants), participants=participants)[0]
+    titles = [ax.get_title().replace("\n", " ") for ax in fig.axes if ax.get_visible()]
+    assert titles == ["hippocampus (left, right) · younger", "hippocampus (left, right) · older"] or \
+        titles == ["hippocampus (left, right) · older", "hippocampus (left, right) · younger"]
+
+
+def test_interaction_plot_needs_repeated_measures_results(values, results_by_design):
+    with pytest.raises(UsageError, match="repeated-measures"):
+        interaction_plot(values, results_by_design["one-sample"])

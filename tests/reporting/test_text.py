@@ -139,7 +139,7 @@ def test_methods_sentences_for_round_two_columns(values, results_by_design, part
     text = text.replace("\u00a0", " ")
     # prior scale sqrt(2)/2 = .707 (bounded by nothing, but APA writes r without a leading zero)
     assert "JZS Bayes factors BF_10 (Rouder et al., 2009) used a Cauchy prior" in text and "r = .707" in text
-    assert "two one-sided tests (Schuirmann, 1987) against ±0.30" in text
+    assert "two one-sided tests (Schuirmann, 1987; Lakens, 2017) against ±0.30" in text
     assert "tested route × group in a repeated-measures analysis of variance of the novel and familiar values" in text
     assert "Mauchly's test (Mauchly, 1940)" in text and "Greenhouse–Geisser (Greenhouse & Geisser, 1959)" in text
     assert "BF_10 = Bayes factor" in text

@@ -216,3 +216,40 @@ def test_posthoc_pairs_are_paired_tests_of_marginal_means_with_holm():
         row = post.loc[f"Metric: {a} - {b}"]
         assert row["statistic"] == pytest.approx(r.statistic, rel=1e-10)
         assert row["p_posthoc"] == pytest.approx(ph, rel=1e-10)
+
+
+def test_posthoc_and_region_corrections_follow_the_primary_correction():
+    """run_design passes the primary correction to the post-hoc pairs, and corrects the GG p across regions."""
+    from statsmodels.stats.multitest import multipletests
+
+    df = pg.read_dataset("rm_anova2")
+    values = pd.concat([_long(df, "Performance", "Subject", ["Time", "Metric"], region=r, shift=s)
+                        for r, s in (("r1", 0.0), ("r2", 0.3))], ignore_index=True)
+    rng = np.random.default_rng(1)
+    values.loc[values["region"] == "r2", "value"] += rng.normal(0, 1.0, (values["region"] == "r2").sum())
+    res = run_design(values, "repeated-measures", within="Time,Metric", contrasts=_contrasts(df, ["Time", "Metric"]),
+                     posthoc=True, correct=["fdr", "holm"])
+    post = res[res["term"].str.startswith("Metric: ")]
+    assert (post["posthoc_correction"] == "fdr").all()
+    for region, part in post.groupby("region"):
+        # statsmodels multipletests(method="fdr_bh") over the three pairs of Metric in one region
+        np.testing.assert_allclose(part["p_posthoc"], multipletests(part["p"], method="fdr_bh")[1], rtol=1e-12)
+    metric = res[res["term"] == "Metric"]
+    assert (metric["p_gg"] != metric["p"]).all()
+    # Holm across the two regions acts on the Greenhouse-Geisser p (statsmodels multipletests, method="holm")
+    np.testing.assert_allclose(metric["p_holm"], multipletests(metric["p_gg"], method="holm")[1], rtol=1e-12)
+
+
+def test_regions_without_a_level_of_the_region_factor_are_left_out():
+    df = pg.read_dataset("rm_anova2")
+    values = pd.concat([_long(df, "Performance", "Subject", ["Time", "Metric"], region=r, shift=s)
+                        for r, s in (("left a", 0.0), ("right a", 0.5), ("midline", 1.0))], ignore_index=True)
+    regions = pd.DataFrame({"region": ["left a", "right a", "midline"], "structure": ["a", "a", "midline"],
+                            "hemisphere": ["left", "right", None]})
+    values["value"] += np.random.default_rng(2).normal(0, 1.0, len(values))  # no exactly constant difference
+    values = values[values["contrast"].str.endswith(df["Metric"].iloc[0])]
+    contrasts = _contrasts(df, ["Time", "Metric"])
+    contrasts = contrasts[contrasts["Metric"] == str(df["Metric"].iloc[0])]
+    res = run_design(values, "repeated-measures", within="Time,hemisphere", contrasts=contrasts, region_table=regions)
+    assert set(res["region"]) == {"a (left, right)"}
+    assert set(res["term"]) == {"Time", "hemisphere", "Time:hemisphere"}
