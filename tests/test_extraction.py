@@ -22,7 +22,7 @@ from roikit.errors import (
 )
 from roikit.extraction import extract, find_maps, maps_from_4d, read_map_list, read_participants, write_values
 from roikit.images import Grid
-from roikit.regions import Atlas, Mask, ProbabilityMap, RegionSet, Sphere
+from roikit.regions import Atlas, ProbabilityMap, RegionSet, Sphere
 
 from helpers import SMALL_AFFINE, SMALL_SHAPE, save_nifti
 
@@ -244,7 +244,6 @@ def test_write_values_is_atomic_reruns_and_refuses_foreign_files(tiny_study, tmp
     out = write_values(tmp_path / "values.tsv", values)
     back = pd.read_csv(out, sep="\t", dtype={"participant_id": str})
     np.testing.assert_array_equal(back["value"].to_numpy(), values["value"].to_numpy())  # exact round trip
-    import json
 
     raw = json.loads((tmp_path / "values.json").read_text())
     assert set(raw) == set(values.columns) | {"GeneratedBy"}

@@ -48,7 +48,6 @@ from ._common import (
     attach,
     check_columns,
     col,
-    flag,
     group_of,
     has_values,
     ids,

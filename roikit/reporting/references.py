@@ -309,7 +309,7 @@ REFERENCES: dict[str, Reference] = {r.key: r for r in [
   volume = {12}, number = {5}, pages = {535--540}, year = {2009},
   doi = {10.1038/nn.2303}
 }"""),
-    _r("roikit", f"roikit developers, 2026",
+    _r("roikit", "roikit developers, 2026",
        f"roikit developers. (2026). *roikit: Region-of-interest group analysis of first-level contrast maps* "
        f"(Version {__version__}) [Computer software].",
        f"""@software{{roikit,

@@ -48,7 +48,6 @@ from ._common import (
     text,
 )
 from .format import (
-    correction_name,
     BOUNDED_EFFECTS,
     MISSING,
     corrected_p_symbol,
@@ -62,8 +61,6 @@ from .format import (
     format_number,
     format_p,
     format_percent,
-    is_missing,
-    latex_escape,
     render,
     statistic_symbol,
 )

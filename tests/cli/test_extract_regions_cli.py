@@ -4,13 +4,11 @@ import json
 import subprocess
 import sys
 
-import numpy as np
 import pandas as pd
 import pytest
 
 from roikit.cli import main
 
-from helpers import save_nifti
 
 
 def _sources(study):

@@ -8,7 +8,6 @@ naming the columns.
 
 from __future__ import annotations
 
-import json
 
 import numpy as np
 import pandas as pd

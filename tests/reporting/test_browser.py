@@ -9,9 +9,7 @@ import re
 import shutil
 import subprocess
 import warnings
-from pathlib import Path
 
-import numpy as np
 import pandas as pd
 import pytest
 from matplotlib.image import imread

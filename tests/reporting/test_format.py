@@ -1,6 +1,5 @@
 """APA number formatting and in-text strings."""
 
-import math
 
 import numpy as np
 import pytest

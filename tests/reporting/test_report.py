@@ -2,11 +2,9 @@
 
 import json
 import os
-import re
 import warnings
 from html.parser import HTMLParser
 
-import numpy as np
 import pandas as pd
 import pytest
 from pathlib import Path
@@ -15,7 +13,7 @@ from roikit._tables import sha256_file, write_table
 from roikit.cli import main
 from roikit.errors import CautionWarning, OutputExistsError
 from roikit.reporting import write_report
-from roikit.reporting.format import format_df, format_number, format_percent
+from roikit.reporting.format import format_df, format_number
 from roikit.reporting.tables import cell_formatters
 
 

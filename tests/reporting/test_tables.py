@@ -2,11 +2,9 @@
 
 import docx
 import numpy as np
-import pandas as pd
 import pytest
 
 from roikit.errors import UsageError
-from roikit.reporting.format import format_p
 from roikit.reporting.tables import (
     cell_formatters,
     descriptives,

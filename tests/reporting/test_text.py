@@ -1,7 +1,6 @@
 """Methods, results and cautions text."""
 
 import pandas as pd
-import pytest
 
 from roikit.reporting.format import render
 from roikit.reporting.text import (

@@ -7,7 +7,6 @@ import warnings
 import numpy as np
 import pandas as pd
 import pytest
-import statsmodels.api as sm
 import statsmodels.formula.api as smf
 from scipy import stats
 

@@ -113,7 +113,6 @@ def test_missing_values_masked():
 
 
 # ----------------------------------------------------------------------------- the design through run_design
-import warnings  # noqa: E402
 
 import pandas as pd  # noqa: E402
 

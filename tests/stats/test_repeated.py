@@ -5,7 +5,6 @@ run on the data sets it ships (``rm_anova2``: 10 subjects x Time (2) x Metric (3
 two groups x Time (3)), and from statsmodels OLS for unequal groups.
 """
 
-import itertools
 
 import numpy as np
 import pandas as pd
