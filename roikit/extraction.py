@@ -75,6 +75,7 @@ VALUE_COLUMNS = {
     "participant_id": "Participant label, sub-<label> (BIDS).",
     "session_id": "Session label, ses-<label> (BIDS); only when maps have sessions.",
     "contrast": "First-level contrast label.",
+    "run_id": "Run label, run-<label> (BIDS); only when maps have runs ({run} placeholder or a run_id column).",
     "region": "Region name, in the region set's order.",
     "value": "Summary statistic of the map over the region's valid voxels; n/a when no voxel is valid.",
     "n_voxels": "Voxels of the region on the maps' grid.",
@@ -91,6 +92,7 @@ _PLACEHOLDERS = {
     # BIDS labels are alphanumeric; a contrast label may also hold '-' and '_' (e.g. novel-vs-familiar)
     "subject": r"[^/_]+",
     "session": r"[^/_]+",
+    "run": r"[^/_]+",
     "contrast": r"[^/]+?",
 }
 
@@ -109,7 +111,7 @@ def _pattern_regex(pattern: str, prefix: str = "") -> tuple[str, re.Pattern]:
             name = m.group(1)
             if name not in _PLACEHOLDERS:
                 raise UsageError(f"pattern {pattern!r}: unknown placeholder {{{name}}}; "
-                                 "use {subject}, {session} and {contrast}")
+                                 "use {subject}, {session}, {run} and {contrast}")
             glob_parts.append("*")
             rx_parts.append(f"(?P={name})" if name in seen else f"(?P<{name}>{_PLACEHOLDERS[name]})")
             seen.add(name)
@@ -144,7 +146,8 @@ def find_maps(
     ----------
     pattern : str
         Path with ``{subject}`` (required; the label after ``sub-``), optional ``{session}``
-        (the label after ``ses-``) and ``{contrast}`` placeholders, and ``*`` wildcards,
+        (the label after ``ses-``), ``{run}`` (the label after ``run-``: a ``run_id`` column) and ``{contrast}``
+        placeholders, and ``*`` wildcards,
         e.g. ``"maps/sub-{subject}_contrast-{contrast}_effect.nii.gz"``.
     variance : str, optional
         Pattern of the matching variance maps, with the same placeholders.
@@ -177,6 +180,8 @@ def find_maps(
         row = {"participant_id": f"sub-{g['subject']}"}
         if "session" in g:
             row["session_id"] = f"ses-{g['session']}"
+        if "run" in g:
+            row["run_id"] = f"run-{g['run']}"
         row["contrast"] = g.get("contrast", contrast)
         row["path"] = path
         if variance is not None:
@@ -223,7 +228,7 @@ def _validate_maps(maps: pd.DataFrame, *, source: str) -> pd.DataFrame:
     if missing:
         raise MapDiscoveryError(f"{source}: map list lacks {noun(missing, 'column')} {missing}; found {list(maps.columns)}")
     maps = maps.copy()
-    for c in ("participant_id", "session_id", "contrast", "path", "variance_path"):
+    for c in ("participant_id", "session_id", "run_id", "contrast", "path", "variance_path"):
         if c in maps.columns:
             if maps[c].isna().any():
                 rows = (np.flatnonzero(maps[c].isna().to_numpy()) + 1).tolist()
@@ -236,14 +241,18 @@ def _validate_maps(maps: pd.DataFrame, *, source: str) -> pd.DataFrame:
         bad = [s for s in maps["session_id"] if not s.startswith("ses-") or len(s) == 4]
         if bad:
             raise MapDiscoveryError(f"{source}: session_id must be ses-<label>, found {bad[:5]}")
-    keys = [c for c in ("participant_id", "session_id", "contrast") if c in maps.columns]
+    if "run_id" in maps.columns:
+        bad = [s for s in maps["run_id"] if not s.startswith("run-") or len(s) == 4]
+        if bad:
+            raise MapDiscoveryError(f"{source}: run_id must be run-<label>, found {bad[:5]}")
+    keys = [c for c in ("participant_id", "session_id", "contrast", "run_id") if c in maps.columns]
     dup = maps[maps.duplicated(keys, keep=False)]
     if len(dup):
         first = dup.iloc[0]
         same = dup[(dup[keys] == first[keys]).all(axis=1)]["path"].tolist()
         raise MapDiscoveryError(
             f"{source}: {len(dup)} maps share a ({', '.join(keys)}); e.g. "
-            f"{', '.join(str(first[k]) for k in keys)} from {same}; each participant, session and contrast needs one map"
+            f"{', '.join(str(first[k]) for k in keys)} from {same}; each participant, session, contrast (and run) needs one map"
         )
     vol = maps["volume"].astype(str) if "volume" in maps.columns else ""
     reused = maps[maps.assign(_v=vol).duplicated(["path", "_v"] if "volume" in maps.columns else ["path"],
@@ -277,7 +286,8 @@ def read_map_list(path: str | os.PathLike) -> pd.DataFrame:
 
     Relative paths are relative to the list's folder.
     """
-    table = read_table(path, label_columns=("participant_id", "session_id", "contrast", "path", "variance_path"))
+    table = read_table(path, label_columns=("participant_id", "session_id", "run_id", "contrast", "path",
+                                                "variance_path"))
     base = Path(path).parent
     for c in ("path", "variance_path"):
         if c in table.columns:
@@ -829,7 +839,7 @@ def assemble_values(maps: pd.DataFrame, names, n_voxels, values, n_valid, varian
     """
     n_maps, n_regions = values.shape
     cols = {}
-    for c in ("participant_id", "session_id", "contrast"):
+    for c in ("participant_id", "session_id", "contrast", "run_id"):
         if c in maps.columns:
             cols[c] = np.repeat(maps[c].to_numpy(dtype=object), n_regions)
     cols["region"] = np.tile(np.array(names, dtype=object), n_maps)
@@ -839,7 +849,7 @@ def assemble_values(maps: pd.DataFrame, names, n_voxels, values, n_valid, varian
     if variances is not None:
         cols["variance"] = variances.ravel()
     table = pd.DataFrame(cols)
-    for c in ("participant_id", "session_id", "contrast", "region"):
+    for c in ("participant_id", "session_id", "contrast", "run_id", "region"):
         if c in table.columns:
             table[c] = table[c].astype(str)
     return table
