@@ -39,14 +39,15 @@ from .extraction import STATISTICS, TRIM, _headers, _read_gathered, _validate_ma
 from .images import DEFAULT_ATOL
 from .regions import RealisedRegions
 
-__all__ = ["FunctionalRegion", "select_voxels", "check_circularity", "extract_functional", "FUNCTIONAL_COLUMNS"]
+__all__ = ["FunctionalRegion", "select_voxels", "check_circularity", "extract_functional", "fold_values",
+           "collapse_runs", "FUNCTIONAL_COLUMNS"]
 
 #: Extra columns of the region values table for functional regions (n/a for other regions).
 FUNCTIONAL_COLUMNS = {
     "n_search": "Functional regions only: valid voxels of the search space in the participant's localiser map "
                 "(with split = \"run\": the smallest over folds).",
     "selected_share": "Functional regions only: n_voxels / n_search, the share of the search space selected.",
-    "n_folds": "Functional regions only: folds averaged (held-out runs with split = \"run\"; else the tested "
+    "n_folds": "Folds or runs averaged: held-out runs of a functional region with split = \"run\" (else the tested "
                "contrast's runs, 1 without runs).",
 }
 
@@ -440,3 +441,28 @@ def extract_functional(
         "circular_regions": [f.name for f in functional if f.circular_ok and f.split != "run"],
     }
     return table
+
+
+def collapse_runs(values: pd.DataFrame) -> pd.DataFrame:
+    """One row per participant (session), contrast and region: the mean over runs of a values table with ``run_id``.
+
+    Rows without a run (functional regions, already averaged over folds) are kept as they are. For the other
+    rows: ``value`` is the mean of the runs' values (n/a when any run's is), ``variance`` the mean of the runs'
+    variances divided by the number of runs (the variance of a mean of independent runs), ``n_valid`` the smallest
+    over runs, ``n_folds`` the number of runs. Without a ``run_id`` column the table is returned unchanged.
+    """
+    if "run_id" not in values.columns:
+        return values
+    has_run = values["run_id"].notna() & (values["run_id"].astype(str) != "nan")
+    runs, rest = values[has_run], values[~has_run]
+    keys = [c for c in ("participant_id", "session_id", "contrast", "region") if c in values.columns]
+    agg = {"value": ("value", lambda v: v.mean() if v.notna().all() else np.nan),
+           "n_voxels": ("n_voxels", "first"), "n_valid": ("n_valid", "min"), "n_folds": ("value", "size")}
+    if "variance" in values.columns:
+        agg["variance"] = ("variance", lambda v: v.mean() / len(v) if v.notna().all() else np.nan)
+    merged = runs.groupby(keys, sort=False, dropna=False).agg(**agg).reset_index()
+    out = pd.concat([merged, rest.drop(columns=["run_id"])], ignore_index=True, sort=False)
+    out = out[[c for c in values.columns if c in out.columns and c != "run_id"]
+              + [c for c in out.columns if c not in values.columns]]
+    out.attrs = dict(values.attrs)
+    return out

@@ -245,6 +245,18 @@ def _extract_with_cache(study: Study, out: Path, *, progress: bool | None, analy
             findings=[{"problem": "no valid voxel: value n/a", "participant_id": rows[i]["participant_id"],
                        "region": names[r]} for i in reused_empty for r in np.flatnonzero(n_valid[i] == 0)]),
             stacklevel=3)
+    if study.functional:
+        # participant-specific regions: their rows follow the other regions' (not cached: computed each run)
+        from ..functional import extract_functional
+
+        froi = extract_functional(study.maps, realised, study.functional,
+                                  contrasts=list(pd.unique(maps["contrast"])), statistic=study.statistic,
+                                  keep_zeros=study.keep_zeros, entry="study")
+        base["functional"] = froi.attrs["roikit"]["functional"]
+        circular = list(dict.fromkeys(list(base.get("circular_regions", [])) + froi.attrs["roikit"]["circular_regions"]))
+        if circular:
+            base["circular_regions"] = circular
+        table = pd.concat([table, froi], ignore_index=True, sort=False)
     table.attrs["roikit"] = base
     store(list(range(len(rows))), base)
     return table, base["cache"]
