@@ -113,6 +113,23 @@ def test_split_study_runs_end_to_end(run_study_dir):
     prov = sidecar["GeneratedBy"][0]["provenance"]["functional"]
     assert prov["regions"][0]["split"] == "run" and len(prov["selections"]) == len(LABELS)
     assert "circular" not in run.summary()
+    methods = (run.out / "methods.md").read_text(encoding="utf-8")
+    assert ("The functional region novelty fROI was defined for each participant within right caudate" in methods
+            and "held-out run" in methods and "(range 16–16)" in methods)
+    # the values agree with a selection computed here by hand with nibabel (top 16 of run A, measured on run B)
+    import nibabel as nib
+
+    atlas = np.asarray(nib.load(run_study_dir / "atlas.nii.gz").dataobj).ravel(order="F")
+    space = np.flatnonzero(atlas == 1)
+
+    def voxels(run_, label):
+        img = nib.load(run_study_dir / "maps" / f"sub-{label}_run-{run_}_contrast-novel_effect.nii.gz")
+        return np.asarray(img.dataobj, dtype=float).ravel(order="F")[space]
+
+    for label in LABELS[:3]:
+        by_hand = np.mean([voxels(held, label)[np.argsort(-voxels(train, label), kind="stable")[:16]].mean()
+                           for held, train in ((1, 2), (2, 1))])
+        assert froi.set_index("participant_id").loc[f"sub-{label}", "value"] == pytest.approx(by_hand, rel=1e-6)
 
 
 def test_circular_ok_runs_with_a_caution_in_the_outputs(run_study_dir):
