@@ -199,7 +199,7 @@ OPTIONS: tuple[Option, ...] = (
     Option("threshold", "regions.functional", "float", "instead of top: the voxels whose localiser value is above "
            "this", flag="", example="3.1"),
     Option("split", "regions.functional", "str", "\"run\": leave one run out (select on the other runs' mean "
-           "localiser map, measure on the held-out run, average the folds); needs {run} in the map pattern",
+           "localiser map, precision-weighted with variance maps; measure on the held-out run, average the folds); needs {run} in the map pattern",
            flag="", choices=("run",), example='"run"'),
     Option("circular_ok", "regions.functional", "bool", "run even when the localiser shares data with a tested "
            "contrast (circular analysis; every output carries a caution)", default=False, flag="",

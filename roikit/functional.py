@@ -8,7 +8,8 @@ spaces' voxels are kept), selects, and summarises the tested contrast over the p
 Selecting and testing on the same data inflates the effect (circular analysis, "double dipping": Kriegeskorte,
 Simmons, Bellgowan & Baker 2009; Vul, Harris, Winkielman & Pashler 2009). :func:`check_circularity` refuses such a
 region before any map is read, unless ``circular_ok=True``; ``split="run"`` avoids it by leave-one-run-out: for each
-held-out run the voxels are selected on the mean of the other runs' localiser maps and the tested contrast is
+held-out run the voxels are selected on the mean of the other runs' localiser maps (precision-weighted when the
+maps have variance maps) and the tested contrast is
 measured on the held-out run; the participant's value is the mean over folds.
 
 Conventions (decided here, documented in the values table's sidecar):
@@ -230,14 +231,31 @@ def check_circularity(functional: Sequence[FunctionalRegion], tested: Sequence[s
     return cautions
 
 
+def _combine(runs: list) -> np.ndarray:
+    """One localiser map from several runs: the precision-weighted mean when every run has variances, else the mean."""
+    pairs = [r if isinstance(r, tuple) else (r, None) for r in runs]
+    if len(pairs) == 1:
+        return np.asarray(pairs[0][0], dtype=np.float64)
+    x = np.array([np.asarray(p[0], dtype=np.float64) for p in pairs])
+    if all(p[1] is not None for p in pairs):
+        v = np.array([np.asarray(p[1], dtype=np.float64) for p in pairs])
+        with np.errstate(divide="ignore", invalid="ignore"):
+            w = np.where(np.isfinite(v) & (v > 0), 1.0 / v, np.nan)
+            return (w * x).sum(axis=0) / w.sum(axis=0)
+    return x.mean(axis=0)
+
+
 def fold_values(localiser: dict, tested: dict, flat_index: np.ndarray, region: FunctionalRegion, *,
                 statistic: str = "mean", keep_zeros: bool = False) -> list[dict]:
     """One participant's folds: select on the localiser, summarise the tested contrast over the selection.
 
     Parameters
     ----------
-    localiser : dict of run to ndarray
-        The localiser's values at the search space's voxels, per run (key ``None`` without runs).
+    localiser : dict of run to ndarray or (ndarray, ndarray or None)
+        The localiser's values at the search space's voxels, per run (key ``None`` without runs); with a pair, the
+        second array holds the voxel variances and several runs are combined by their precision-weighted mean
+        (inverse-variance weights, voxel by voxel; a voxel with a missing or non-positive variance in any run is
+        missing), else by the plain mean.
     tested : dict of run to (ndarray, ndarray or None)
         The tested contrast's values (and voxel variances) at the same voxels, per run.
     flat_index : ndarray
@@ -258,7 +276,7 @@ def fold_values(localiser: dict, tested: dict, flat_index: np.ndarray, region: F
         train = [r for r in localiser if r != run] if f.split == "run" else list(localiser)
         if not train:
             continue
-        loc = localiser[train[0]] if len(train) == 1 else np.mean([localiser[r] for r in train], axis=0)
+        loc = _combine([localiser[r] for r in train])
         chosen, n_search = select_voxels(loc, flat_index, top=f.top, threshold=f.threshold, keep_zeros=keep_zeros)
         x, v = tested[run]
         xs = np.asarray(x, dtype=np.float64)[chosen]
@@ -377,7 +395,8 @@ def extract_functional(
                 test_runs = [r for (k, c, r) in data if k == key and c == contrast]
                 if not test_runs:
                     continue  # this participant has no map of the contrast (extraction lists missing maps)
-                loc = {r: data[(key, f.localiser, r)][0][pos_space] for r in loc_runs}
+                loc = {r: tuple(None if a is None else a[pos_space] for a in data[(key, f.localiser, r)])
+                       for r in loc_runs}
                 test = {r: tuple(None if a is None else a[pos_space] for a in data[(key, contrast, r)])
                         for r in test_runs}
                 folds = fold_values(loc, test, flat, f, statistic=statistic, keep_zeros=keep_zeros)
@@ -436,6 +455,8 @@ def extract_functional(
         "statistic": statistic,
         "keep_zeros": keep_zeros,
         "functional": {"regions": [f.describe() for f in functional], "cautions": cautions,
+                       "localiser_runs_combined_by": "precision-weighted mean (inverse voxel variances)" if has_var
+                       else "mean",
                        "ties": "larger localiser value first, then the smaller flat voxel index (Fortran order)",
                        "selections": records},
         "circular_regions": [f.name for f in functional if f.circular_ok and f.split != "run"],

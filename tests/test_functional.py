@@ -184,6 +184,20 @@ def test_leave_one_run_out_by_construction(tmp_path):
     assert table["value"].iloc[0] == pytest.approx(20.0)  # mean(10, 20, 30)
 
 
+def test_localiser_runs_are_combined_by_precision_when_variances_exist():
+    flat = np.arange(2)
+    region = FunctionalRegion("f", "search", "loc", top=1, split="run")
+    x1, v1 = np.array([2.0, 0.5]), np.array([1.0, 1.0])
+    x2, v2 = np.array([-1.0, 2.0]), np.array([4.0, 1.0])
+    tested = {"run-3": (np.array([10.0, 20.0]), None)}
+    # by hand: weights 1/v; voxel 0 (2 x 1 - 1 x 0.25) / 1.25 = 1.4, voxel 1 (0.5 + 2) / 2 = 1.25 -> voxel 0
+    weighted = fold_values({"run-1": (x1, v1), "run-2": (x2, v2), "run-3": (x1, v1)}, tested, flat, region)
+    assert weighted[0]["voxels"] == [0] and weighted[0]["value"] == 10.0
+    # plain mean without variances: voxel 0 (2 - 1) / 2 = 0.5, voxel 1 1.25 -> voxel 1
+    plain = fold_values({"run-1": x1, "run-2": x2, "run-3": x1}, tested, flat, region)
+    assert plain[0]["voxels"] == [1] and plain[0]["value"] == 20.0
+
+
 def test_find_maps_reads_runs_and_refuses_duplicate_runs(tmp_path):
     maps, _ = _run_maps(tmp_path, [np.ones(10)] * 2, [np.ones(10)] * 2)
     assert list(maps.columns[:3]) == ["participant_id", "run_id", "contrast"]

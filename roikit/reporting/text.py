@@ -441,7 +441,9 @@ def _functional_sentences(prov: dict, values: pd.DataFrame | None, cite: Citatio
                 s += (f"; the selections held {format_number(float(nv.median()), 0)} voxels at the median "
                       f"(range {int(nv.min())}–{int(nv.max())})")
         if rec.get("split") == "run":
-            s += (". Voxels were selected on the mean localiser map of all runs but one and the tested contrast was "
+            combined = "precision-weighted mean" if str(info.get("localiser_runs_combined_by", "")).startswith(
+                "precision") else "mean"
+            s += (f". Voxels were selected on the {combined} localiser map of all runs but one and the tested contrast was "
                   "measured on the held-out run; each participant's value was the mean over the held-out runs, so "
                   f"selection and measurement used independent data ({cite.cite('kriegeskorte2009')}).")
         else:
