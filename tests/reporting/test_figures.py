@@ -620,3 +620,23 @@ def test_report_command_takes_a_value_label(values, results_by_design, participa
     assert any("_covariate-age" in p.name for p in (tmp_path / "r" / "figures").glob("*.png"))
     # the axis labels the figures were drawn with: the user's unit, and the sidecar's long name with its unit
     assert {"value_label": "% signal change", "covariate_label": "Age at scan (years)"} in seen
+
+
+def test_functional_overlap_share_and_figure(small_regions, tmp_path):
+    """Share of participants per voxel, known by construction: voxel a in both participants' selections (1.0),
+    voxel b in one participant's first of two folds (1/4), the rest of the search space 0."""
+    from roikit.reporting.region_figure import functional_overlap, functional_overlap_figure
+
+    _, regions, _folder = small_regions
+    space = regions.voxels[regions.names.index("right caudate")]
+    a, b = int(space[0]), int(space[5])
+    functional = {"regions": [{"name": "fROI", "within": "right caudate"}], "selections": [
+        {"participant_id": "sub-01", "contrast": "novel", "region": "fROI",
+         "folds": [{"voxels": [a, b]}, {"voxels": [a]}]},
+        {"participant_id": "sub-02", "contrast": "novel", "region": "fROI", "folds": [{"voxels": [a]}]}]}
+    share = functional_overlap(regions, functional)["fROI"]
+    assert share[a] == pytest.approx(1.0) and share[b] == pytest.approx(0.25)
+    assert np.nansum(share) == pytest.approx(1.25) and np.isfinite(share).sum() == len(space)
+    fig = functional_overlap_figure(regions, functional)
+    width, height, smallest, overlaps, outside = audit_saved_figure(fig, tmp_path / "functional")
+    assert width == pytest.approx(180) and height <= 225 and smallest >= 7 and not overlaps and not outside

@@ -133,7 +133,10 @@ def test_split_study_runs_end_to_end(run_study_dir):
 
 
 def test_circular_ok_runs_with_a_caution_in_the_outputs(run_study_dir):
-    run = run_study(_write(run_study_dir, "circular_ok = true\n"), figures=False)
+    run = run_study(_write(run_study_dir, "circular_ok = true\n"), figure_formats=("png",))
     assert "caution: circular region definition: novelty fROI" in run.summary()
     report = (run.out / "report.html").read_text(encoding="utf-8")
     assert "Circular region definition" in report and "novelty fROI" in report
+    assert (run.out / "figures" / "functional_regions.png").is_file() and "share of participants" in report
+    methods = (run.out / "methods.md").read_text(encoding="utf-8")
+    assert "Selection and measurement used the same runs" in methods
