@@ -369,6 +369,7 @@ class _Index:
     count: sp.csr_matrix  # regions x uniq, ones
     weight: sp.csr_matrix | None  # regions x uniq, voxel weights (probability regions), else None
     n_voxels: np.ndarray
+    keep: np.ndarray | None = None  # positions in `uniq` whose voxel values are returned too (functional regions)
 
     @classmethod
     def build(cls, regions: RealisedRegions, *, weighted: bool) -> "_Index":
@@ -481,11 +482,12 @@ def _run_tasks(tasks: list[_Task], index: _Index, names: list[str], statistic: s
         try:
             x, digest = _read_gathered(t.header, t.volume, index.uniq)
             value, n_valid, valid = _summarise(x, index, statistic=statistic, keep_zeros=keep_zeros)
-            variance = vdigest = None
+            variance = vdigest = v = None
             if t.variance_header is not None:
                 v, vdigest = _read_gathered(t.variance_header, t.volume, index.uniq)
                 variance = _region_variance(v, valid, n_valid, index, path=t.variance_path, names=names)
-            out.append(("ok", value, n_valid, variance, digest, vdigest))
+            kept = () if index.keep is None else ((x[index.keep], None if v is None else v[index.keep]),)
+            out.append(("ok", value, n_valid, variance, digest, vdigest) + kept)
         except Exception as exc:  # noqa: BLE001 - returned to the caller with the path; raised there
             out.append(("error", _portable(exc, t.path)))
     return out
@@ -599,6 +601,7 @@ def extract(
     batch_size: int | None = None,
     progress: bool | None = None,
     atol: float = DEFAULT_ATOL,
+    _keep: tuple | None = None,
 ) -> pd.DataFrame:
     """Summarise every map over every region, reading each map once.
 
@@ -673,6 +676,10 @@ def extract(
     else:
         raise UsageError(f"regions must be a RegionSet or RealisedRegions, got {type(regions).__name__}")
     index = _Index.build(realised, weighted=statistic == "weighted-mean")
+    if _keep is not None:  # (flat voxels, sink): also return these voxels' values per map (a single read)
+        index.keep = np.searchsorted(index.uniq, np.asarray(_keep[0], dtype=np.int64))
+        if not np.array_equal(index.uniq[np.minimum(index.keep, len(index.uniq) - 1)], _keep[0]):
+            raise UsageError("voxels to keep must belong to the regions")  # pragma: no cover - internal use
     names = list(realised.names)
     n_regions, n_maps = len(names), len(tasks)
 
@@ -692,7 +699,9 @@ def extract(
             if res[0] == "error":
                 failures.append((i, res[1]))
                 continue
-            _, value, nv, var, dig, vdig = res
+            _, value, nv, var, dig, vdig, *kept = res
+            if kept and _keep is not None:
+                _keep[1][i] = kept[0]
             values[i], n_valid[i] = value, nv
             if has_var:
                 variances[i] = var

@@ -190,6 +190,14 @@ def _summary(x: np.ndarray, statistic: str) -> float:
     return float(x.mean())  # mean; weighted-mean equals the mean for a selection (binary weights)
 
 
+def search_voxels(regions: RealisedRegions, functional: Sequence[FunctionalRegion]) -> np.ndarray:
+    """Sorted flat voxel indices of every functional region's search space (the voxels a map is gathered at)."""
+    names = list(regions.names)
+    spaces = [np.asarray(regions.voxels[names.index(f.within)], dtype=np.int64) for f in functional
+              if f.within in names]
+    return np.unique(np.concatenate(spaces)) if spaces else np.empty(0, np.int64)
+
+
 def check_circularity(functional: Sequence[FunctionalRegion], tested: Sequence[str], *, has_runs: bool,
                       entry: str = "python") -> list[str]:
     """Refuse functional regions whose localiser shares data with a tested contrast; return caution texts.
@@ -302,6 +310,7 @@ def extract_functional(
     keep_zeros: bool = False,
     atol: float = DEFAULT_ATOL,
     entry: str = "python",
+    _gathered: dict | None = None,
 ) -> pd.DataFrame:
     """Values of the tested contrasts over each participant's own functional-region voxels.
 
@@ -367,18 +376,24 @@ def extract_functional(
     if not regions.grid.matches(grid, atol=atol):
         raise UsageError("regions were realised on another grid than the maps'; realise them on the maps' grid")
     spaces = {f.within: np.asarray(regions.voxels[names.index(f.within)], dtype=np.int64) for f in functional}
-    uniq = np.unique(np.concatenate(list(spaces.values()))) if spaces else np.empty(0, np.int64)
+    uniq = search_voxels(regions, functional)
     where = {w: np.searchsorted(uniq, v) for w, v in spaces.items()}
 
     # read every needed map once: only the search spaces' voxels are kept
     group_keys = [c for c in ("participant_id", "session_id") if c in maps.columns]
     data: dict = {}
+    n_read = 0
     for row, task in zip(maps.to_dict("records"), tasks):
-        x, _digest = _read_gathered(task.header, task.volume, uniq)
-        v = None
-        if task.variance_header is not None:
-            v, _ = _read_gathered(task.variance_header, task.volume, uniq)
-            v = np.asarray(v, dtype=np.float64)
+        given = (_gathered or {}).get((row["path"], task.volume))
+        if given is not None:  # already read by the region extraction of the same run
+            x, v = given
+        else:
+            n_read += 1
+            x, _digest = _read_gathered(task.header, task.volume, uniq)
+            v = None
+            if task.variance_header is not None:
+                v, _ = _read_gathered(task.variance_header, task.volume, uniq)
+        v = None if v is None else np.asarray(v, dtype=np.float64)
         key = tuple(row[k] for k in group_keys)
         run = row.get("run_id") if has_runs else None
         data[(key, row["contrast"], run)] = (np.asarray(x, dtype=np.float64), v)
@@ -455,6 +470,7 @@ def extract_functional(
         "statistic": statistic,
         "keep_zeros": keep_zeros,
         "functional": {"regions": [f.describe() for f in functional], "cautions": cautions,
+                       "maps_read": n_read, "maps_from_extraction": len(tasks) - n_read,
                        "localiser_runs_combined_by": "precision-weighted mean (inverse voxel variances)" if has_var
                        else "mean",
                        "ties": "larger localiser value first, then the smaller flat voxel index (Fortran order)",

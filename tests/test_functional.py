@@ -243,3 +243,24 @@ def test_pure_noise_split_is_unbiased_and_circular_is_inflated():
     # truncated-normal mean phi(1.2816)/0.1; common practice)
     assert circ_means.mean() == pytest.approx(1.755 / np.sqrt(2), abs=0.05)
     assert circ_means.min() > 0.9
+
+
+def test_voxels_kept_by_extraction_give_the_same_values_without_a_second_read(tmp_path):
+    import concurrent.futures as cf
+
+    from roikit.extraction import extract
+    from roikit.functional import search_voxels
+
+    rng = np.random.default_rng(3)
+    maps, realised = _run_maps(tmp_path, [rng.normal(size=10) for _ in range(3)], [rng.normal(size=10) for _ in range(3)])
+    froi = [FunctionalRegion("f", "search", "loc", top=4, split="run")]
+    direct = extract_functional(maps, realised, froi, contrasts=["task"])
+    sink: dict = {}
+    with cf.ThreadPoolExecutor(2) as pool:  # the batched path: results come back through the same collector
+        extract(maps, realised, executor=pool, batch_size=2, _keep=(search_voxels(realised, froi), sink))
+    assert sorted(sink) == list(range(len(maps)))
+    gathered = {(row.path, None): sink[i] for i, row in enumerate(maps.itertuples())}
+    reused = extract_functional(maps, realised, froi, contrasts=["task"], _gathered=gathered)
+    assert reused.attrs["roikit"]["functional"]["maps_read"] == 0
+    assert direct.attrs["roikit"]["functional"]["maps_read"] == len(maps)
+    np.testing.assert_array_equal(reused["value"].to_numpy(), direct["value"].to_numpy())

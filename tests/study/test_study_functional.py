@@ -112,6 +112,12 @@ def test_split_study_runs_end_to_end(run_study_dir):
     assert sidecar["run_id"]["Description"].startswith("Run label")
     prov = sidecar["GeneratedBy"][0]["provenance"]["functional"]
     assert prov["regions"][0]["split"] == "run" and len(prov["selections"]) == len(LABELS)
+    # a single read: the functional pass took its voxels from the region extraction's read of the same maps
+    assert prov["maps_read"] == 0 and prov["maps_from_extraction"] == len(LABELS) * 2
+    again = run_study(run_study_dir / "study.toml", figures=False)  # everything from the cache: read once, here
+    assert again.values.attrs["roikit"]["functional"]["maps_read"] == len(LABELS) * 2
+    assert again.extracted == 0
+    pd.testing.assert_frame_equal(again.values.reset_index(drop=True), run.values.reset_index(drop=True))
     assert "circular" not in run.summary()
     methods = (run.out / "methods.md").read_text(encoding="utf-8")
     assert ("The functional region novelty fROI was defined for each participant within right caudate" in methods
