@@ -479,6 +479,11 @@ def load_study(path: PathLike) -> Study:
 
         tested = analysed_contrasts(study) or list(pd.unique(maps["contrast"]))
         for i, f in enumerate(functional, start=1):
+            if f.split == "run" and "run_id" not in maps.columns:
+                c.add(f"regions.functional[{i}].split", "\"run\" needs maps with runs: add a {run} placeholder to "
+                      "maps.effect (e.g. maps/sub-{subject}_run-{run}_contrast-{contrast}_effect.nii.gz) or a "
+                      "run_id column to the map list")
+                continue
             try:
                 check_circularity([f], tested, has_runs="run_id" in maps.columns, entry="study")
             except UsageError as exc:

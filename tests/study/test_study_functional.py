@@ -146,3 +146,14 @@ def test_circular_ok_runs_with_a_caution_in_the_outputs(run_study_dir):
     assert (run.out / "figures" / "functional_regions.png").is_file() and "share of participants" in report
     methods = (run.out / "methods.md").read_text(encoding="utf-8")
     assert "Selection and measurement used the same runs" in methods
+
+
+def test_split_needs_runs(run_study_dir):
+    text = (BASE.replace("_run-{run}", "") + 'split = "run"\n' + ANALYSIS)
+    for f in (run_study_dir / "maps").glob("*_run-1_*"):
+        f.rename(f.with_name(f.name.replace("_run-1", "")))
+    for f in (run_study_dir / "maps").glob("*_run-2_*"):
+        f.unlink()
+    (run_study_dir / "study.toml").write_text(text, encoding="utf-8")
+    with pytest.raises(StudyError, match=r'regions.functional\[1\].split: "run" needs maps with runs'):
+        load_study(run_study_dir / "study.toml")
