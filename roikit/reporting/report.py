@@ -530,6 +530,14 @@ def write_report(
 
     # ---------------------------------------------------------------- tables
     tables = results_tables(results, correct=correct, labels=names, participants=participants)
+    from .text import circular_regions
+
+    circ_tested = [n for n in circular_regions(values_prov, circular) if n in set(results["region"].map(text))]
+    if circ_tested:  # the circularity caution travels with every results table (its note)
+        for t in tables:
+            t.note.append(f"Circular region definition: {escape_markup(', '.join(circ_tested))} "
+                          f"{'was' if len(circ_tested) == 1 else 'were'} defined from the same data that are tested; "
+                          "read these rows as descriptive (Kriegeskorte et al., 2009).")
     group_cols = [g for g in ordered_unique(text(v) for v in col(results, "group_column") if text(v))
                   if g in values.columns or (participants is not None and g in participants.columns)]
     desc = descriptives_table(values, participants=participants, group=group_cols[0] if group_cols else None,

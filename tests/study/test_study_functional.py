@@ -146,6 +146,8 @@ def test_circular_ok_runs_with_a_caution_in_the_outputs(run_study_dir):
     assert (run.out / "figures" / "functional_regions.png").is_file() and "share of participants" in report
     methods = (run.out / "methods.md").read_text(encoding="utf-8")
     assert "Selection and measurement used the same runs" in methods
+    table = (run.out / "tables" / "a1-one-sample.md").read_text(encoding="utf-8")
+    assert "Circular region definition: novelty fROI was defined from the same data" in table
 
 
 def test_split_needs_runs(run_study_dir):
