@@ -5,7 +5,7 @@ Layers, each importing only from those before it::
     errors, _tables, _typing  (shared base)
     images      -> loading NIfTI maps, grids, resampling
     regions     -> region sets from atlases, masks, spheres, probability maps
-    extraction  -> finding maps, streaming per-participant region summaries
+    extraction  -> finding maps, streaming per-participant region summaries, functional regions
     stats       -> group designs, effect sizes, corrections, mixed models
     reporting   -> tables, figures, text, HTML report
     study       -> study files and the whole pipeline (`roikit run`)

@@ -120,7 +120,7 @@ OPTIONS: tuple[Option, ...] = (
            example='"Parameter estimate (a.u.)"'),
     # [maps]
     Option("effect", "maps", "str", "path pattern of the first-level effect maps with {subject}, optional "
-           "{session}, and {contrast}", flag="--maps", metavar="PATTERN",
+           "{session}, {run} and {contrast}", flag="--maps", metavar="PATTERN",
            example='"maps/sub-{subject}_contrast-{contrast}_effect.nii.gz"'),
     Option("variance", "maps", "str", "path pattern of the matching variance maps (precision-weighted and "
            "fixed-effects designs need them)", metavar="PATTERN",
@@ -159,6 +159,8 @@ OPTIONS: tuple[Option, ...] = (
            "grid)", flag="", example='"MNI152NLin2009cAsym"'),
     Option("citation", "regions", "str", "a reference for the atlas, cited in the methods text", flag="",
            example='"Author et al., 2020"'),
+    Option("functional", "regions", "table", "participant-specific regions: [[regions.functional]] name, within "
+           "(search space), localiser (contrast), top or threshold, split, circular_ok, minimum", flag=""),
     Option("name", "regions.sphere", "str", "region name", flag="", example='"prior peak"'),
     Option("center", "regions.sphere", "coords", "three numbers [x, y, z] in world mm", flag="",
            example="[30.0, -20.0, -14.0]"),
@@ -185,6 +187,25 @@ OPTIONS: tuple[Option, ...] = (
            example='"MNI152NLin2009cAsym"'),
     Option("citation", "regions.probability", "str", "a reference for this region's definition, cited in the methods text",
            flag="", example='"Author et al., 2020"'),
+    Option("name", "regions.functional", "str", "name of the functional region (a row label of the values table)",
+           flag="", example='"novelty fROI"'),
+    Option("within", "regions.functional", "str", "the search space: any region of the set (after its operations)",
+           flag="", example='"left hippocampus"'),
+    Option("localiser", "regions.functional", "str", "the contrast whose maps pick each participant's voxels",
+           flag="", example='"novel"'),
+    Option("top", "regions.functional", "str", "the voxels with the largest localiser values: a count (20) or a "
+           "share of the search space's valid voxels (\"10%\": ceil(p x n)); ties go to the smaller voxel index; "
+           "give top or threshold", flag="", example='"10%"'),
+    Option("threshold", "regions.functional", "float", "instead of top: the voxels whose localiser value is above "
+           "this", flag="", example="3.1"),
+    Option("split", "regions.functional", "str", "\"run\": leave one run out (select on the other runs' mean "
+           "localiser map, precision-weighted with variance maps; measure on the held-out run, average the folds); needs {run} in the map pattern",
+           flag="", choices=("run",), example='"run"'),
+    Option("circular_ok", "regions.functional", "bool", "run even when the localiser shares data with a tested "
+           "contrast (circular analysis; every output carries a caution)", default=False, flag="",
+           example="false"),
+    Option("minimum", "regions.functional", "int", "selections with fewer voxels give a value n/a (the "
+           "participants are listed in a warning)", default=1, minimum=1, flag="", example="10"),
     # [extraction]
     Option("statistic", "extraction", "str", "summary over a region's valid voxels (trimmed-mean cuts 20% per "
            "end; weighted-mean weights probability regions by probability)", default="mean",

@@ -39,6 +39,7 @@ __all__ = [
     "summarise_warnings",
     "summarised",
     "WARNING_COLUMNS",
+    "CircularAnalysisError",
 ]
 
 
@@ -48,6 +49,10 @@ class RoikitError(Exception):
 
 class UsageError(RoikitError, ValueError):
     """A parameter or option has an invalid value (command line exit status 2)."""
+
+
+class CircularAnalysisError(UsageError):
+    """A functional region would be selected and tested on the same data (circular analysis)."""
 
 
 class InputFileError(RoikitError, FileNotFoundError):

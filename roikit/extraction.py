@@ -76,6 +76,7 @@ VALUE_COLUMNS = {
     "participant_id": "Participant label, sub-<label> (BIDS).",
     "session_id": "Session label, ses-<label> (BIDS); only when maps have sessions.",
     "contrast": "First-level contrast label.",
+    "run_id": "Run label, run-<label> (BIDS); only when maps have runs ({run} placeholder or a run_id column).",
     "region": "Region name, in the region set's order.",
     "value": "Summary statistic of the map over the region's valid voxels; n/a when no voxel is valid.",
     "n_voxels": "Voxels of the region on the maps' grid.",
@@ -92,6 +93,7 @@ _PLACEHOLDERS = {
     # BIDS labels are alphanumeric; a contrast label may also hold '-' and '_' (e.g. novel-vs-familiar)
     "subject": r"[^/_]+",
     "session": r"[^/_]+",
+    "run": r"[^/_]+",
     "contrast": r"[^/]+?",
 }
 
@@ -110,7 +112,7 @@ def _pattern_regex(pattern: str, prefix: str = "") -> tuple[str, re.Pattern]:
             name = m.group(1)
             if name not in _PLACEHOLDERS:
                 raise UsageError(f"pattern {pattern!r}: unknown placeholder {{{name}}}; "
-                                 "use {subject}, {session} and {contrast}")
+                                 "use {subject}, {session}, {run} and {contrast}")
             glob_parts.append("*")
             rx_parts.append(f"(?P={name})" if name in seen else f"(?P<{name}>{_PLACEHOLDERS[name]})")
             seen.add(name)
@@ -145,7 +147,8 @@ def find_maps(
     ----------
     pattern : str
         Path with ``{subject}`` (required; the label after ``sub-``), optional ``{session}``
-        (the label after ``ses-``) and ``{contrast}`` placeholders, and ``*`` wildcards,
+        (the label after ``ses-``), ``{run}`` (the label after ``run-``: a ``run_id`` column) and ``{contrast}``
+        placeholders, and ``*`` wildcards,
         e.g. ``"maps/sub-{subject}_contrast-{contrast}_effect.nii.gz"``.
     variance : str, optional
         Pattern of the matching variance maps, with the same placeholders.
@@ -178,6 +181,8 @@ def find_maps(
         row = {"participant_id": f"sub-{g['subject']}"}
         if "session" in g:
             row["session_id"] = f"ses-{g['session']}"
+        if "run" in g:
+            row["run_id"] = f"run-{g['run']}"
         row["contrast"] = g.get("contrast", contrast)
         row["path"] = path
         if variance is not None:
@@ -225,7 +230,7 @@ def _validate_maps(maps: pd.DataFrame, *, source: str) -> pd.DataFrame:
     if missing:
         raise MapDiscoveryError(f"{source}: map list lacks {noun(missing, 'column')} {missing}; found {list(maps.columns)}")
     maps = maps.copy()
-    for c in ("participant_id", "session_id", "contrast", "path", "variance_path"):
+    for c in ("participant_id", "session_id", "run_id", "contrast", "path", "variance_path"):
         if c in maps.columns:
             if maps[c].isna().any():
                 rows = (np.flatnonzero(maps[c].isna().to_numpy()) + 1).tolist()
@@ -238,14 +243,18 @@ def _validate_maps(maps: pd.DataFrame, *, source: str) -> pd.DataFrame:
         bad = [s for s in maps["session_id"] if not s.startswith("ses-") or len(s) == 4]
         if bad:
             raise MapDiscoveryError(f"{source}: session_id must be ses-<label>, found {bad[:5]}")
-    keys = [c for c in ("participant_id", "session_id", "contrast") if c in maps.columns]
+    if "run_id" in maps.columns:
+        bad = [s for s in maps["run_id"] if not s.startswith("run-") or len(s) == 4]
+        if bad:
+            raise MapDiscoveryError(f"{source}: run_id must be run-<label>, found {bad[:5]}")
+    keys = [c for c in ("participant_id", "session_id", "contrast", "run_id") if c in maps.columns]
     dup = maps[maps.duplicated(keys, keep=False)]
     if len(dup):
         first = dup.iloc[0]
         same = dup[(dup[keys] == first[keys]).all(axis=1)]["path"].tolist()
         raise MapDiscoveryError(
             f"{source}: {len(dup)} maps share a ({', '.join(keys)}); e.g. "
-            f"{', '.join(str(first[k]) for k in keys)} from {same}; each participant, session and contrast needs one map"
+            f"{', '.join(str(first[k]) for k in keys)} from {same}; each participant, session, contrast (and run) needs one map"
         )
     vol = maps["volume"].astype(str) if "volume" in maps.columns else ""
     reused = maps[maps.assign(_v=vol).duplicated(["path", "_v"] if "volume" in maps.columns else ["path"],
@@ -280,7 +289,8 @@ def read_map_list(path: str | os.PathLike) -> pd.DataFrame:
 
     Relative paths are relative to the list's folder.
     """
-    table = read_table(path, label_columns=("participant_id", "session_id", "contrast", "path", "variance_path"))
+    table = read_table(path, label_columns=("participant_id", "session_id", "run_id", "contrast", "path",
+                                                "variance_path"))
     base = Path(path).parent
     for c in ("path", "variance_path"):
         if c in table.columns:
@@ -362,6 +372,7 @@ class _Index:
     count: sp.csr_matrix  # regions x uniq, ones
     weight: sp.csr_matrix | None  # regions x uniq, voxel weights (probability regions), else None
     n_voxels: np.ndarray
+    keep: np.ndarray | None = None  # positions in `uniq` whose voxel values are returned too (functional regions)
 
     @classmethod
     def build(cls, regions: RealisedRegions, *, weighted: bool) -> "_Index":
@@ -474,11 +485,12 @@ def _run_tasks(tasks: list[_Task], index: _Index, names: list[str], statistic: s
         try:
             x, digest = _read_gathered(t.header, t.volume, index.uniq)
             value, n_valid, valid = _summarise(x, index, statistic=statistic, keep_zeros=keep_zeros)
-            variance = vdigest = None
+            variance = vdigest = v = None
             if t.variance_header is not None:
                 v, vdigest = _read_gathered(t.variance_header, t.volume, index.uniq)
                 variance = _region_variance(v, valid, n_valid, index, path=t.variance_path, names=names)
-            out.append(("ok", value, n_valid, variance, digest, vdigest))
+            kept = () if index.keep is None else ((x[index.keep], None if v is None else v[index.keep]),)
+            out.append(("ok", value, n_valid, variance, digest, vdigest) + kept)
         except Exception as exc:  # noqa: BLE001 - returned to the caller with the path; raised there
             out.append(("error", _portable(exc, t.path)))
     return out
@@ -594,6 +606,7 @@ def extract(
     atol: float = DEFAULT_ATOL,
     _sink=None,
     _chunk_maps: int = 64,
+    _keep: tuple | None = None,
 ) -> pd.DataFrame:
     """Summarise every map over every region, reading each map once.
 
@@ -668,6 +681,10 @@ def extract(
     else:
         raise UsageError(f"regions must be a RegionSet or RealisedRegions, got {type(regions).__name__}")
     index = _Index.build(realised, weighted=statistic == "weighted-mean")
+    if _keep is not None:  # (flat voxels, sink): also return these voxels' values per map (a single read)
+        index.keep = np.searchsorted(index.uniq, np.asarray(_keep[0], dtype=np.int64))
+        if not np.array_equal(index.uniq[np.minimum(index.keep, len(index.uniq) - 1)], _keep[0]):
+            raise UsageError("voxels to keep must belong to the regions")  # pragma: no cover - internal use
     names = list(realised.names)
     n_regions, n_maps = len(names), len(tasks)
 
@@ -710,7 +727,9 @@ def extract(
             if res[0] == "error":
                 failures.append((i, res[1]))
             else:
-                _, value, nv, var, dig, vdig = res
+                _, value, nv, var, dig, vdig, *kept = res
+                if kept and _keep is not None:
+                    _keep[1][i] = kept[0]
                 j = i - piece["start"]
                 values[j], n_valid[j] = value, nv
                 if has_var:
@@ -872,7 +891,7 @@ def assemble_values(maps: pd.DataFrame, names, n_voxels, values, n_valid, varian
     """
     n_maps, n_regions = values.shape
     cols = {}
-    for c in ("participant_id", "session_id", "contrast"):
+    for c in ("participant_id", "session_id", "contrast", "run_id"):
         if c in maps.columns:
             labels = pd.Categorical([None if v is None or (isinstance(v, float) and v != v) else str(v)
                                      for v in maps[c].tolist()])

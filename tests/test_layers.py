@@ -17,6 +17,8 @@ def _layer(module: str) -> str:
         return "base"
     if top == "__main__":
         return "cli"
+    if top == "functional":  # functional regions: selection and extraction over each participant's own voxels
+        return "extraction"
     return top
 
 

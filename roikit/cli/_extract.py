@@ -19,7 +19,7 @@ def add_parser(subparsers) -> None:
         description="Read each first-level map once and summarise it over every region. Writes the region values "
                     "table (TSV, n/a for missing) and a JSON sidecar with column descriptions and provenance.")
     p.add_argument("--maps", metavar="PATTERN",
-                   help="path pattern with {subject}, optional {session}, and {contrast}, e.g. "
+                   help="path pattern with {subject}, optional {session}, {run} and {contrast}, e.g. "
                         "'maps/sub-{subject}_contrast-{contrast}_effect.nii.gz'")
     p.add_argument("--map-list", metavar="TSV",
                    help="instead of --maps: a table of participant_id, contrast, [session_id], path, "

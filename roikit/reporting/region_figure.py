@@ -31,6 +31,7 @@ from ..regions import Atlas, Mask, ProbabilityMap, RealisedRegions, RegionSet, S
 from .figures import MAX_HEIGHT_MM, MIN_FONT_PT, Width, _MM, _minus, _width_mm, style
 
 __all__ = ["region_figure", "region_pages", "region_table", "mean_background", "regions_from_provenance",
+           "functional_overlap", "functional_overlap_figure",
            "REGION_COLORS"]
 
 #: One colour per region, cycling: the Okabe & Ito (2008) palette without black (the background is grey).
@@ -335,3 +336,110 @@ def region_pages(regions: RealisedRegions, *, names: Sequence[str] | None = None
     per_row, rows = _layout(width)
     n_pages = max(1, int(np.ceil(len(names) / (per_row * rows))))
     return [region_figure(regions, names=names, width=width, page=k, **kwargs) for k in range(1, n_pages + 1)]
+
+
+def functional_overlap(regions: RealisedRegions, functional: dict) -> dict[str, np.ndarray]:
+    """Share of participants whose selection holds each voxel, per functional region (flat arrays on the grid).
+
+    ``functional`` is the values' ``provenance["functional"]`` (:func:`roikit.functional.extract_functional`):
+    each participant x contrast record's folds list the flat voxels selected. A participant counts once per
+    contrast tested (the first tested contrast is used) and a fold counts 1 / (number of folds), so a voxel
+    selected in every fold of every participant has share 1. NaN outside the search space.
+    """
+    out: dict[str, np.ndarray] = {}
+    records = [r for r in functional.get("selections", []) or [] if isinstance(r, dict)]
+    for spec in functional.get("regions", []) or []:
+        name, within = str(spec.get("name")), str(spec.get("within"))
+        if within not in regions.names:
+            continue
+        mine = [r for r in records if str(r.get("region")) == name]
+        if not mine:
+            continue
+        first = str(mine[0].get("contrast"))
+        mine = [r for r in mine if str(r.get("contrast")) == first]
+        share = np.full(regions.grid.n_voxels, np.nan)
+        share[regions.voxels[regions.names.index(within)]] = 0.0
+        for rec in mine:
+            folds = [f for f in rec.get("folds", []) or [] if isinstance(f, dict)]
+            for fold in folds:
+                vox = np.asarray(fold.get("voxels", []), dtype=np.int64)
+                share[vox] += 1.0 / (len(folds) * len(mine))
+        out[name] = share
+    return out
+
+
+def functional_overlap_figure(regions: RealisedRegions, functional: dict, *, width: Width = "double") -> Figure:
+    """Where each participant's functional-region voxels fall: the share of participants per voxel, on slices.
+
+    One row per functional region: a sagittal, a coronal and an axial slice through the search space's voxel
+    nearest its centre; the search space in light grey, each voxel coloured by the share of participants (and
+    folds) whose selection holds it (viridis, a colour-blind-safe sequential map, 0 to 1).
+
+    Parameters
+    ----------
+    regions : RealisedRegions
+        The realised regions (the search spaces are among them).
+    functional : dict
+        ``provenance["functional"]`` of the region values.
+    """
+    from matplotlib import colormaps
+
+    shares = functional_overlap(regions, functional)
+    if not shares:
+        raise UsageError("no functional region with recorded selections to draw")
+    grid = regions.grid
+    ornt, affine = _ras(grid)
+    sizes = np.abs(np.diag(affine)[:3])
+    origin = affine[:3, 3]
+    wmm = _width_mm(width)
+    names = list(shares)
+    block = 40.0
+    cmap = colormaps["viridis"]
+
+    def world(axis: int, index) -> np.ndarray:
+        return origin[axis] + affine[axis, axis] * np.asarray(index, dtype=float)
+
+    with style():
+        fig = Figure(figsize=(wmm * _MM, (block * len(names) + _TOP_MM) * _MM), layout="constrained")
+        subfigs = np.atleast_1d(fig.subfigures(len(names), 1, squeeze=False)).ravel()
+        image = None
+        for sub, name in zip(subfigs, names):
+            vol = _to_ras(shares[name].reshape(grid.shape, order="F"), ornt)
+            space = np.isfinite(vol)
+            ijk = np.argwhere(space)
+            com = ijk.mean(axis=0)
+            centre = ijk[np.argmin(((ijk - com) ** 2).sum(axis=1))]
+            lo, hi = ijk.min(axis=0), ijk.max(axis=0)
+            axes = sub.subplots(1, 3)
+            for ax, axis, (a, b), label in zip(axes, (0, 1, 2), ((1, 2), (0, 2), (0, 1)), ("x", "y", "z")):
+                k = int(centre[axis])
+                sl = np.take(vol, k, axis=axis).T
+                ext = [min(world(a, 0), world(a, vol.shape[a] - 1)) - sizes[a] / 2,
+                       max(world(a, 0), world(a, vol.shape[a] - 1)) + sizes[a] / 2,
+                       min(world(b, 0), world(b, vol.shape[b] - 1)) - sizes[b] / 2,
+                       max(world(b, 0), world(b, vol.shape[b] - 1)) + sizes[b] / 2]
+                ax.imshow(np.where(np.isfinite(sl), 1.0, np.nan), cmap=ListedColormap(["#d9d9d9"]), vmin=0, vmax=1,
+                          origin="lower", extent=ext, interpolation="nearest")
+                image = ax.imshow(np.ma.masked_where(~(np.isfinite(sl) & (np.nan_to_num(sl) > 0)), sl), cmap=cmap,
+                                  vmin=0, vmax=1, origin="lower", extent=ext, interpolation="nearest")
+                for setter, ax_i in ((ax.set_xlim, a), (ax.set_ylim, b)):
+                    ends = sorted((world(ax_i, lo[ax_i]), world(ax_i, hi[ax_i])))
+                    setter(ends[0] - 2.5 * sizes[ax_i], ends[1] + 2.5 * sizes[ax_i])
+                ax.set_xticks([])
+                ax.set_yticks([])
+                for spine in ax.spines.values():
+                    spine.set_visible(False)
+                ax.set_xlabel(_minus(f"{label} = {world(axis, centre[axis]):.0f} mm"), fontsize=MIN_FONT_PT,
+                              labelpad=1.5)
+                if axis in (1, 2):
+                    ax.text(0.0, 1.0, "L", transform=ax.transAxes, va="top", ha="left", color="0.2",
+                            fontsize=MIN_FONT_PT)
+                    ax.text(1.0, 1.0, "R", transform=ax.transAxes, va="top", ha="right", color="0.2",
+                            fontsize=MIN_FONT_PT)
+            spec = next(s for s in functional.get("regions", []) if str(s.get("name")) == name)
+            sub.suptitle(textwrap.shorten(f"{name} (within {spec.get('within')})", 60, placeholder="…"),
+                         fontsize=7.5)
+            bar = sub.colorbar(image, ax=list(axes), shrink=0.8, pad=0.02)
+            bar.set_label("share of participants", fontsize=MIN_FONT_PT)
+            bar.ax.tick_params(labelsize=MIN_FONT_PT)
+    return fig

@@ -545,6 +545,14 @@ def write_report(
 
     # ---------------------------------------------------------------- tables
     tables = results_tables(results, correct=correct, labels=names, participants=participants)
+    from .text import circular_regions
+
+    circ_tested = [n for n in circular_regions(values_prov, circular) if n in set(results["region"].map(text))]
+    if circ_tested:  # the circularity caution travels with every results table (its note)
+        for t in tables:
+            t.note.append(f"Circular region definition: {escape_markup(', '.join(circ_tested))} "
+                          f"{'was' if len(circ_tested) == 1 else 'were'} defined from the same data that are tested; "
+                          "read these rows as descriptive (Kriegeskorte et al., 2009).")
     group_cols = [g for g in ordered_unique(text(v) for v in col(results, "group_column") if text(v))
                   if g in values.columns or (participants is not None and g in participants.columns)]
     desc = descriptives_table(values, participants=participants, group=group_cols[0] if group_cols else None,
@@ -605,6 +613,22 @@ def write_report(
                        + (f" (Page {k} of {len(pages)}.)" if len(pages) > 1 else ""))
             region_items.append(add_figure(fig, name, caption, f"Regions of interest on orthogonal slices, page {k} "
                                                                f"of {len(pages)}", "all"))
+        functional = values_prov.get("functional") if isinstance(values_prov.get("functional"), dict) else None
+        if functional and functional.get("selections"):
+            from .region_figure import functional_overlap_figure, regions_from_provenance
+
+            try:
+                fig = functional_overlap_figure(regions if regions is not None
+                                                else regions_from_provenance(values_prov), functional)
+            except (UsageError, OSError, ValueError, KeyError, TypeError) as exc:
+                figure_errors.append(f"functional regions: {exc}")
+            else:
+                caption = ("Each functional region's selected voxels: the share of participants whose selection "
+                           "(from their own localiser maps; averaged over folds with a leave-one-run-out split) holds "
+                           "each voxel of the search space (grey), on a sagittal, a coronal and an axial slice "
+                           "through the search space's centre (world coordinates in mm; L, left; R, right).")
+                region_items.append(add_figure(fig, "functional_regions", caption,
+                                               "Overlap of the participants' functional-region voxels", "all"))
     if figures:
         for item in _figure_plan(values, results, participants, correct=correct, labels=names,
                                  value_label=value_label, column_labels=column_labels):

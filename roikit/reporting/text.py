@@ -422,6 +422,7 @@ def _region_sentences(prov: dict, values: pd.DataFrame | None, cite: Citations) 
         else:
             out.append(f"{_cap(count(k, 'region', words=True))} were derived ({escape_markup(kind)}): "
                        f"{join_words(items)}.")
+    out += _functional_sentences(prov, values, cite)
     if not records and voxels:
         out.append("The regions had " + join_words(f"{escape_markup(r)} ({count(n, 'voxel')})"
                                                    for r, n in voxels.items())
@@ -434,6 +435,41 @@ def _region_sentences(prov: dict, values: pd.DataFrame | None, cite: Citations) 
             image = escape_markup(_file_name(rec.get("image", "")))
             out.append(f"The {what} image {image} was resampled onto the maps' grid by nearest-neighbour "
                        "interpolation.".replace("  ", " "))
+    return out
+
+
+def _functional_sentences(prov: dict, values: pd.DataFrame | None, cite: Citations) -> list[str]:
+    """Methods sentences for participant-specific functional regions (``provenance["functional"]``)."""
+    info = prov.get("functional") if isinstance(prov.get("functional"), dict) else {}
+    out = []
+    for rec in info.get("regions", []) or []:
+        if not isinstance(rec, dict):
+            continue
+        name = str(rec.get("name", ""))
+        within, localiser = escape_markup(str(rec.get("within", ""))), escape_markup(str(rec.get("localiser", "")))
+        if rec.get("threshold") is not None:
+            how = f"the voxels whose {localiser} value exceeded {escape_markup(str(rec['threshold']))}"
+        elif isinstance(rec.get("top"), str):
+            how = f"the {escape_markup(rec['top'].strip())} of its valid voxels with the largest {localiser} values"
+        else:
+            how = f"the {rec.get('top')} voxels with the largest {localiser} values"
+        s = (f"The functional region {escape_markup(name)} was defined for each participant within {within}, from "
+             f"that participant's own maps: {how} (ties went to the voxel with the smaller index)")
+        if values is not None and {"region", "n_voxels"} <= set(values.columns):
+            nv = pd.to_numeric(values.loc[values["region"].astype(str) == name, "n_voxels"], errors="coerce").dropna()
+            if len(nv):
+                s += (f"; the selections held {format_number(float(nv.median()), 0)} voxels at the median "
+                      f"(range {int(nv.min())}–{int(nv.max())})")
+        if rec.get("split") == "run":
+            combined = "precision-weighted mean" if str(info.get("localiser_runs_combined_by", "")).startswith(
+                "precision") else "mean"
+            s += (f". Voxels were selected on the {combined} localiser map of all runs but one and the tested contrast was "
+                  "measured on the held-out run; each participant's value was the mean over the held-out runs, so "
+                  f"selection and measurement used independent data ({cite.cite('kriegeskorte2009')}).")
+        else:
+            s += (". Selection and measurement used the same runs, so the values of this region are not independent "
+                  f"of its definition ({cite.cite('kriegeskorte2009')}).")
+        out.append(s)
     return out
 
 

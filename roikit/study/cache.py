@@ -151,6 +151,7 @@ def _extract_with_cache(study: Study, out: Path, *, progress: bool | None, analy
         entries = {k: e for k, e in entries.items() if k not in broken}
     hits = [entries.get(k) if k is not None else None for k in keyed]
     todo = [i for i, h in enumerate(hits) if h is None]
+    kept_voxels: dict = {}  # position in todo -> (effect, variance) at the functional search spaces' voxels
 
     values = np.full((len(rows), n_regions), np.nan)
     n_valid = np.zeros((len(rows), n_regions), dtype=np.int64)
@@ -190,9 +191,14 @@ def _extract_with_cache(study: Study, out: Path, *, progress: bool | None, analy
             header = read_header(rows[i]["path"])
             check_same_grid(realised.grid, header.grid, a_name="the regions' grid (the first map's)",
                             b_name=header.path)
+        keep = None
+        if study.functional:  # functional regions: the search spaces' voxels come back from the same read
+            from ..functional import search_voxels
+
+            keep = (search_voxels(realised, study.functional), kept_voxels)
         try:
             fresh = extract(maps.iloc[todo].reset_index(drop=True), realised, statistic=study.statistic,
-                            keep_zeros=study.keep_zeros, n_jobs=study.jobs, progress=progress)
+                            keep_zeros=study.keep_zeros, n_jobs=study.jobs, progress=progress, _keep=keep)
         except (KeyboardInterrupt, RoikitError) as exc:
             partial = getattr(exc, "partial_values", None)
             completed = getattr(exc, "completed", None)
@@ -245,6 +251,19 @@ def _extract_with_cache(study: Study, out: Path, *, progress: bool | None, analy
             findings=[{"problem": "no valid voxel: value n/a", "participant_id": rows[i]["participant_id"],
                        "region": names[r]} for i in reused_empty for r in np.flatnonzero(n_valid[i] == 0)]),
             stacklevel=3)
+    if study.functional:
+        # participant-specific regions: their rows follow the other regions' (not cached: computed each run)
+        from ..functional import extract_functional
+
+        gathered = {(rows[todo[j]]["path"], _volume(rows[todo[j]])): pair for j, pair in kept_voxels.items()}
+        froi = extract_functional(study.maps, realised, study.functional,
+                                  contrasts=list(pd.unique(maps["contrast"])), statistic=study.statistic,
+                                  keep_zeros=study.keep_zeros, entry="study", _gathered=gathered)
+        base["functional"] = froi.attrs["roikit"]["functional"]
+        circular = list(dict.fromkeys(list(base.get("circular_regions", [])) + froi.attrs["roikit"]["circular_regions"]))
+        if circular:
+            base["circular_regions"] = circular
+        table = pd.concat([table, froi], ignore_index=True, sort=False)
     table.attrs["roikit"] = base
     store(list(range(len(rows))), base)
     return table, base["cache"]

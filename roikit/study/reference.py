@@ -27,6 +27,10 @@ _SECTIONS = (
     ("regions.sphere", "[[regions.sphere]]", "One block per sphere."),
     ("regions.mask", "[[regions.mask]]", "One block per mask image."),
     ("regions.probability", "[[regions.probability]]", "One block per probability image."),
+    ("regions.functional", "[[regions.functional]]", "One block per functional region: each participant's own "
+                           "voxels of a search space, picked from their localiser maps. A localiser that shares "
+                           "data with a tested contrast is refused unless `split = \"run\"` or "
+                           "`circular_ok = true` (Kriegeskorte et al., 2009)."),
     ("extraction", "[extraction]", "How a map is summarised over a region."),
     ("analysis", "[[analysis]]", "One block per analysis; each runs on the same region values. The keys are "
                                  "the options of `roikit stats` (`design` is `--design`)."),

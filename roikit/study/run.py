@@ -18,6 +18,7 @@ from .._tables import sha256_file, sidecar_path, write_json, write_table
 from .._typing import PathLike
 from ..errors import WARNING_COLUMNS, RoikitError, RoikitWarning, summarise_warnings, summarised, warning_records
 from ..extraction import VALUE_COLUMNS
+from ..functional import FUNCTIONAL_COLUMNS
 from ..stats import COLUMN_DESCRIPTIONS
 from .cache import _extract_with_cache
 from .schema import OUTPUTS, Study, _listing, load_study
@@ -209,9 +210,12 @@ def run_study(
 
         t0 = time.perf_counter()
         per_analysis = []
+        from ..functional import collapse_runs
+
+        analysed = collapse_runs(values)  # maps with runs: one value per participant (the mean over runs)
         for analysis in study.analyses:
             try:
-                rows = analysis.run(values, study.participants)
+                rows = analysis.run(analysed, study.participants)
             except RoikitError as exc:
                 raise type(exc)(f"{analysis.label}: {exc}") from exc
             per_analysis.append(rows)
@@ -223,7 +227,8 @@ def run_study(
         tmp = tx.staging
         written = [
             write_table(tmp / "region_values.tsv", values,
-                        sidecar={"columns": {c: VALUE_COLUMNS.get(c, "") for c in values.columns},
+                        sidecar={"columns": {c: {**VALUE_COLUMNS, **FUNCTIONAL_COLUMNS}.get(c, "")
+                                             for c in values.columns},
                                  "provenance": values.attrs.get("roikit", {})}),
             write_table(tmp / "group_results.tsv", results,
                         sidecar=_results_sidecar(study, results, per_analysis)),
@@ -237,7 +242,7 @@ def run_study(
 
         so_far = warning_records([w for w in list(study.load_warnings) + list(caught)
                                   if issubclass(w.category, RoikitWarning)])
-        write_report(values, results, participants=study.participants, out=tmp, overwrite=True, _staged=True,
+        write_report(analysed, results, participants=study.participants, out=tmp, overwrite=True, _staged=True,
                      labels={**read_sidecar_labels(getattr(study, "contrasts_path", None)),
                              **read_sidecar_labels(study.participants_path)},
                      provenance={"inputs": inputs, "options": {"command": "roikit run", "out": os.fspath(out)},

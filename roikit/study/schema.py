@@ -15,6 +15,7 @@ from .._options import DESIGN_ALIASES, check_value, noun, option, options_in, st
 from .._typing import PathLike
 from ..errors import InputFileError, RoikitError, UsageError
 from ..extraction import STATISTICS, VALUE_COLUMNS, find_maps, read_map_list, read_participants
+from ..functional import FUNCTIONAL_COLUMNS, FunctionalRegion, check_circularity
 from ..images import read_grid
 from ..regions import Atlas, Mask, ProbabilityMap, RealisedRegions, RegionSet, Sphere, read_label_table
 from ..stats import available_designs, run_design
@@ -232,6 +233,9 @@ class Study:
     load_warnings : list
         Warnings raised while realising the regions (overlaps, resampling, label tables); ``run_study`` lists them
         in ``warnings.tsv``.
+    functional : list of FunctionalRegion
+        ``[[regions.functional]]``: participant-specific regions (their rows follow the other regions'); the ones
+        run with ``circular_ok`` are also in ``circular``.
     """
 
     path: Path
@@ -249,6 +253,7 @@ class Study:
     raw: dict = field(repr=False, default_factory=dict)
     value_label: str | None = None
     load_warnings: list = field(repr=False, default_factory=list)
+    functional: list = field(default_factory=list)
 
     @property
     def default_out(self) -> Path:
@@ -414,6 +419,7 @@ def load_study(path: PathLike) -> Study:
 
     # [regions]
     regions, static_names, circular = _check_regions(c, raw)
+    functional = _check_functional(c, raw, contrasts=contrasts)
 
     # [extraction]
     section = c.table(raw.get("extraction"), "extraction") or {}
@@ -427,7 +433,7 @@ def load_study(path: PathLike) -> Study:
     jobs = c.integer(section, "jobs", "extraction", 1, minimum=1) or 1
 
     # [[analysis]]
-    columns = list(VALUE_COLUMNS)
+    columns = list(VALUE_COLUMNS) + (list(FUNCTIONAL_COLUMNS) if functional else [])
     if participants is not None:
         columns += [str(col) for col in participants.columns if col not in columns]
     for _path, table in side_tables.values():
@@ -449,16 +455,90 @@ def load_study(path: PathLike) -> Study:
         except RoikitError as exc:
             c.add("regions", str(exc))
         else:
-            unknown = [n for n in circular if n not in realised.names]
+            for i, f in enumerate(functional, start=1):
+                if f.within not in realised.names:
+                    c.add(f"regions.functional[{i}].within", f"unknown region {f.within!r}; the search space must "
+                          f"be a region of the set: {_listing(realised.names, 20)}{_suggest(f.within, realised.names)}")
+                if f.name in realised.names:
+                    c.add(f"regions.functional[{i}].name", f"{f.name!r} is already a region of the set; give the "
+                                                           "functional region its own name")
+            names_all = list(realised.names) + [f.name for f in functional]
+            unknown = [n for n in circular if n not in names_all]
             if unknown:
                 c.add("regions.circular", f"unknown {noun(unknown, 'region')} {_listing(unknown)}; regions are "
                                           f"{_listing(realised.names, 20)}")
     if c.problems:
         raise StudyError(path, c.problems)
-    return Study(path=path, title=title, participants_path=participants_path, participants=participants, maps=maps,
-                 regions=regions, realised=realised, circular=circular, statistic=statistic, keep_zeros=keep_zeros,
-                 jobs=jobs, analyses=analyses, raw=raw, value_label=value_label,
-                 load_warnings=list(load_warnings))
+    study = Study(path=path, title=title, participants_path=participants_path, participants=participants, maps=maps,
+                  regions=regions, realised=realised, circular=circular, statistic=statistic, keep_zeros=keep_zeros,
+                  jobs=jobs, analyses=analyses, raw=raw, value_label=value_label,
+                  load_warnings=list(load_warnings), functional=functional)
+    if functional:
+        # the circularity guard: before any map is read
+        from .cache import analysed_contrasts
+
+        tested = analysed_contrasts(study) or list(pd.unique(maps["contrast"]))
+        for i, f in enumerate(functional, start=1):
+            if f.split == "run" and "run_id" not in maps.columns:
+                c.add(f"regions.functional[{i}].split", "\"run\" needs maps with runs: add a {run} placeholder to "
+                      "maps.effect (e.g. maps/sub-{subject}_run-{run}_contrast-{contrast}_effect.nii.gz) or a "
+                      "run_id column to the map list")
+                continue
+            try:
+                check_circularity([f], tested, has_runs="run_id" in maps.columns, entry="study")
+            except UsageError as exc:
+                c.add(f"regions.functional[{i}]", str(exc))
+            if f.circular_ok and f.split != "run" and f.name not in study.circular:
+                study.circular.append(f.name)
+        if c.problems:
+            raise StudyError(path, c.problems)
+    return study
+
+
+def _check_functional(c: "_Checker", raw: dict, *, contrasts: list | None) -> list[FunctionalRegion]:
+    """``[[regions.functional]]`` blocks: keys, types, the localiser among the maps' contrasts."""
+    section = raw.get("regions")
+    value = section.get("functional", []) if isinstance(section, dict) else []
+    if isinstance(value, dict):
+        value = [value]
+    if not isinstance(value, list) or not all(isinstance(v, dict) for v in value):
+        c.add("regions.functional", f"must be one or more [[regions.functional]] tables, found {_type_name(value)}")
+        return []
+    out, seen = [], set()
+    for i, block in enumerate(value, start=1):
+        key = f"regions.functional[{i}]"
+        c.keys(block, key, "regions.functional")
+        n_problems = len(c.problems)
+        name = c.string(block, "name", key, required=True)
+        within = c.string(block, "within", key, required=True)
+        localiser = c.string(block, "localiser", key, required=True)
+        for k in ("threshold", "split", "circular_ok", "minimum"):
+            if k in block:
+                problem = check_value(option(k, "regions.functional"), block[k])
+                if problem:
+                    c.add(f"{key}.{k}", problem)
+        top = block.get("top")
+        if top is not None and not ((isinstance(top, int) and not isinstance(top, bool) and top >= 1)
+                                    or (isinstance(top, str) and top.strip().endswith("%"))):
+            c.add(f"{key}.top", f"must be a voxel count (top = 20) or a share such as \"10%\", found {top!r}")
+        if ("top" in block) == ("threshold" in block):
+            c.add(key, "give top (a count such as 20, or a share such as \"10%\") or threshold, one of them")
+        if localiser is not None and contrasts is not None and localiser not in contrasts:
+            c.add(f"{key}.localiser", f"no maps of contrast {localiser!r}; contrasts found: "
+                                      f"{_listing(contrasts, 20)}{_suggest(localiser, contrasts)}")
+        if name is not None:
+            if name in seen:
+                c.add(f"{key}.name", f"{name!r} is used by another functional region; names must differ")
+            seen.add(name)
+        if len(c.problems) > n_problems:
+            continue
+        try:
+            out.append(FunctionalRegion(name, within, localiser, top=top, threshold=block.get("threshold"),
+                                        split=block.get("split"), circular_ok=block.get("circular_ok", False),
+                                        minimum=block.get("minimum", 1)))
+        except UsageError as exc:
+            c.add(key, str(exc))
+    return out
 
 
 def _check_maps(c: _Checker, raw: dict) -> pd.DataFrame | None:

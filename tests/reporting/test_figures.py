@@ -679,3 +679,23 @@ def test_interaction_pages_one_column_per_group(values, participants):
 def test_interaction_plot_needs_repeated_measures_results(values, results_by_design):
     with pytest.raises(UsageError, match="repeated-measures"):
         interaction_plot(values, results_by_design["one-sample"])
+
+
+def test_functional_overlap_share_and_figure(small_regions, tmp_path):
+    """Share of participants per voxel, known by construction: voxel a in both participants' selections (1.0),
+    voxel b in one participant's first of two folds (1/4), the rest of the search space 0."""
+    from roikit.reporting.region_figure import functional_overlap, functional_overlap_figure
+
+    _, regions, _folder = small_regions
+    space = regions.voxels[regions.names.index("right caudate")]
+    a, b = int(space[0]), int(space[5])
+    functional = {"regions": [{"name": "fROI", "within": "right caudate"}], "selections": [
+        {"participant_id": "sub-01", "contrast": "novel", "region": "fROI",
+         "folds": [{"voxels": [a, b]}, {"voxels": [a]}]},
+        {"participant_id": "sub-02", "contrast": "novel", "region": "fROI", "folds": [{"voxels": [a]}]}]}
+    share = functional_overlap(regions, functional)["fROI"]
+    assert share[a] == pytest.approx(1.0) and share[b] == pytest.approx(0.25)
+    assert np.nansum(share) == pytest.approx(1.25) and np.isfinite(share).sum() == len(space)
+    fig = functional_overlap_figure(regions, functional)
+    width, height, smallest, overlaps, outside = audit_saved_figure(fig, tmp_path / "functional")
+    assert width == pytest.approx(180) and height <= 225 and smallest >= 7 and not overlaps and not outside
