@@ -468,6 +468,7 @@ def study_toml(*, title: str = "Wayfinding study (invented demo data)") -> str:
         f"title = {_toml_value(title)}",
         'participants = "participants.tsv"',
         'contrasts = "contrasts.tsv"',
+        'value_label = "Parameter estimate (a.u.)"   # axis label of the region values in the figures',
         'regions = "regions.tsv"',
         "",
         "[maps]",
