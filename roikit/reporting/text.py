@@ -493,7 +493,11 @@ _TAU2_TEXT = {"reml": ("restricted maximum likelihood", "viechtbauer2005"),
 
 def _df_phrase(rows: pd.DataFrame, cite: Citations) -> str:
     parts = []
-    for m in ordered_unique(text(v).lower() for v in col(rows, "df_method") if text(v)):
+    tests = ordered_unique(text(v).lower() for v in col(rows, "test") if text(v))
+    methods = ordered_unique(text(v).lower() for v in col(rows, "df_method") if text(v))
+    if tests and all(m.startswith("kn") for m in methods):  # precision-weighted: the test column is more precise
+        methods = tests
+    for m in methods:
         phrase = _DF_TEXT.get(m, escape_markup(m))
         if m in ("welch",):
             phrase += f" ({cite.cite('welch1947', 'satterthwaite1946')})"
@@ -693,31 +697,55 @@ def _correction_phrase(method: str, rows: pd.DataFrame, cite: Citations) -> str:
 
 
 def _correction_sentences(numbered, cite: Citations, override: str | None) -> list[str]:
-    """One sentence per distinct correction setting (not one per analysis)."""
-    settings: dict[tuple, list[int]] = {}
+    """One sentence per correction method (not one per analysis); family sizes per analysis in brackets, and one
+    sentence for analyses whose families hold a single region (nothing to adjust)."""
+    settings: dict[tuple, list[tuple[int, tuple]]] = {}
     rows_of: dict[tuple, pd.DataFrame] = {}
     for number_, _key, rows in numbered:
         method = primary_correction(rows, override)
         sizes = tuple(sorted({family_size(rows[rows["term"].map(text) == t])
                               for t in ordered_unique(rows["term"].map(text))}))
         perms = tuple(ordered_unique(text(v) for v in col(rows, "permutations"))) if method == "fwe" else ()
-        k = (method, sizes, perms)
-        settings.setdefault(k, []).append(number_)
+        k = (method, perms)
+        settings.setdefault(k, []).append((number_, sizes))
         rows_of.setdefault(k, rows)
     total = len(numbered)
     out = []
     also = ordered_unique(m for _n, _k, rows in numbered for m in ("holm", "fdr", "bonferroni")
                           if has_values(rows, f"p_{m}") and m not in [k[0] for k in settings])
-    for (method, sizes, perms), numbers in settings.items():
-        where = _analyses_phrase(numbers, total)
-        fam = (count(sizes[0], "region") if len(sizes) == 1 else
-               f"{join_words(map(str, sizes), 'or')} regions")
-        lead = f"{where}, *p* values" if total > 1 else "The *p* values"
-        if method == "none":
-            out.append(f"{lead} were not corrected for multiple comparisons (uncorrected; each family held {fam}).")
+    single: list[int] = []
+    for (method, perms), items in settings.items():
+        multi = [(n, sz) for n, sz in items if sz != (1,)]
+        single += [n for n, sz in items if sz == (1,)]
+        if not multi:
+            continue
+        numbers = [n for n, _ in multi]
+        where = _analyses_phrase(numbers, total) if total > 1 else ""
+        lead = f"{where}, *p* values" if where else "The *p* values"
+        by_size: dict[tuple, list[int]] = {}
+        for n, sz in multi:
+            by_size.setdefault(sz, []).append(n)
+
+        def fam_of(sz: tuple) -> str:
+            return count(sz[0], "region") if len(sz) == 1 else f"{join_words(map(str, sz), 'or')} regions"
+
+        if len(by_size) == 1:
+            fam = f"the {fam_of(next(iter(by_size)))} tested for each term"
         else:
-            out.append(f"{lead} were adjusted across the {fam} tested for each term with "
-                       f"{_correction_phrase(method, rows_of[(method, sizes, perms)], cite)}.")
+            fam = "the regions tested for each term (" + "; ".join(
+                f"{fam_of(sz)} in {_analyses_phrase(ns, 0)[3:]}" for sz, ns in by_size.items()) + ")"
+        if method == "none":
+            held = (f"each family held {fam_of(next(iter(by_size)))}" if len(by_size) == 1 else "families held " +
+                    "; ".join(f"{fam_of(sz)} in {_analyses_phrase(ns, 0)[3:]}" for sz, ns in by_size.items()))
+            out.append(f"{lead} were not corrected for multiple comparisons (uncorrected; {held}).")
+        else:
+            out.append(f"{lead} were adjusted across {fam} with "
+                       f"{_correction_phrase(method, rows_of[(method, perms)], cite)}.")
+    if single:
+        numbers = sorted(set(single))
+        who = f"Analysis {numbers[0]}" if len(numbers) == 1 else f"Analyses {_ranges(numbers)}"
+        out.append(f"{who} tested one region (or one pair of regions) per term, so no adjustment across regions "
+                   "applied.")
     if also:
         out.append("The tables also give *p* values adjusted with "
                    + join_words(_correction_phrase(m, numbered[0][2], cite) for m in also) + ".")
