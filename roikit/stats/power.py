@@ -702,7 +702,7 @@ def simulate_precision_weighted(
     simulations: int = 2000,
     seed: Seed = None,
     tau2_method: str = "reml",
-    test: Literal["knapp-hartung", "z"] = "knapp-hartung",
+    test: Literal["knapp-hartung-truncated", "knapp-hartung", "z"] = "knapp-hartung-truncated",
     chunk: int = 1000,
     progress: bool | None = None,
 ) -> pd.DataFrame:
@@ -725,7 +725,9 @@ def simulate_precision_weighted(
     seed : int, numpy Generator or None
         Seed (recorded in the ``seed`` column; drawn and recorded when None).
     tau2_method, test
-        Passed to :func:`roikit.stats.precision.fit_precision_weighted`.
+        Passed to :func:`roikit.stats.precision.fit_precision_weighted`; the default test is the precision-weighted
+        design's default (Knapp-Hartung with its scaling factor truncated below at 1), so the plan simulates the
+        test that will be run.
     chunk : int
         Simulated studies fitted at once (one column each).
     progress : bool or None
