@@ -24,13 +24,14 @@ from .._tables import read_table
 from .._typing import Seed
 from ..errors import UsageError
 from ._common import (
+    resolve_seed as _resolve_seed,
     COLUMN_DESCRIPTIONS,
     check_confidence,
     check_values,
     order_columns,
 )
 from ._registry import DESIGNS, PERMUTATIONS, available_designs, get_design, register
-from .corrections import CORRECTIONS, adjust, parse_corrections
+from .corrections import adjust, parse_corrections
 from .evidence import add_evidence
 from . import designs  # noqa: F401 - registers one-sample, paired, two-group, glm
 from . import precision  # noqa: F401,E402 - registers precision-weighted
@@ -91,18 +92,6 @@ def _gate_formulas(options: dict) -> None:
         value = options.get(name)
         if value is not None and not isinstance(value, str):
             raise UsageError(f"{name}: expected a column name (a string), got {value!r}")
-
-
-def _resolve_seed(seed: Seed) -> tuple[object, np.random.Generator]:
-    """(recorded seed, generator). ``None`` draws fresh entropy and records it so the run can be repeated."""
-    if isinstance(seed, np.random.Generator):
-        return "generator", seed
-    if seed is None:
-        entropy = int(np.random.SeedSequence().entropy % (2**63))
-        return entropy, np.random.default_rng(entropy)
-    if isinstance(seed, (bool, np.bool_)) or not isinstance(seed, (int, np.integer)) or seed < 0:
-        raise UsageError(f"seed must be a non-negative integer, a numpy Generator or None, got {seed!r}")
-    return int(seed), np.random.default_rng(int(seed))
 
 
 def run_design(

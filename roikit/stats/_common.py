@@ -702,3 +702,15 @@ def warn_dropped_observations(
         MissingValueWarning,
         stacklevel=stacklevel,
     )
+
+
+def resolve_seed(seed) -> tuple[object, np.random.Generator]:
+    """(recorded seed, generator). ``None`` draws fresh entropy and records it so the run can be repeated."""
+    if isinstance(seed, np.random.Generator):
+        return "generator", seed
+    if seed is None:
+        entropy = int(np.random.SeedSequence().entropy % (2**63))
+        return entropy, np.random.default_rng(entropy)
+    if isinstance(seed, (bool, np.bool_)) or not isinstance(seed, (int, np.integer)) or seed < 0:
+        raise UsageError(f"seed must be a non-negative integer, a numpy Generator or None, got {seed!r}")
+    return int(seed), np.random.default_rng(int(seed))

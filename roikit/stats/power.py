@@ -81,24 +81,23 @@ _MAX_N = 10_000_000
 
 
 # ------------------------------------------------------------------------------------------------ checks
-def _check_alpha(alpha: float, name: str = "alpha") -> float:
+def _check_fraction(value, name: str, example: str, what: str = "a number") -> float:
+    """``value`` as a float strictly between 0 and 1, or a UsageError naming ``name``."""
     try:
-        a = float(alpha)
+        x = float(value)
     except (TypeError, ValueError):
-        raise UsageError(f"{name}: expected a number between 0 and 1 (e.g. 0.05), got {alpha!r}") from None
-    if not 0 < a < 1:
-        raise UsageError(f"{name}: expected a number between 0 and 1 (e.g. 0.05), got {alpha!r}")
-    return a
+        x = float("nan")
+    if not 0 < x < 1:
+        raise UsageError(f"{name}: expected {what} between 0 and 1 (e.g. {example}), got {value!r}")
+    return x
+
+
+def _check_alpha(alpha: float, name: str = "alpha") -> float:
+    return _check_fraction(alpha, name, "0.05")
 
 
 def _check_power(power: float) -> float:
-    try:
-        p = float(power)
-    except (TypeError, ValueError):
-        raise UsageError(f"power: expected a target between 0 and 1 (e.g. 0.8), got {power!r}") from None
-    if not 0 < p < 1:
-        raise UsageError(f"power: expected a target between 0 and 1 (e.g. 0.8), got {power!r}")
-    return p
+    return _check_fraction(power, "power", "0.8", what="a target")
 
 
 def _check_design(design: str) -> str:
@@ -666,14 +665,9 @@ def sensitivity(results: pd.DataFrame, *, power: float = 0.8, alpha: float = 0.0
 
 # ------------------------------------------------------------------------------------------------ simulation helpers
 def _rng(seed: Seed) -> tuple[object, np.random.Generator]:
-    if isinstance(seed, np.random.Generator):
-        return "generator", seed
-    if seed is None:
-        entropy = int(np.random.SeedSequence().entropy % (2**63))
-        return entropy, np.random.default_rng(entropy)
-    if isinstance(seed, (bool, np.bool_)) or not isinstance(seed, (int, np.integer)) or seed < 0:
-        raise UsageError(f"seed: expected a non-negative integer, a numpy Generator or None, got {seed!r}")
-    return int(seed), np.random.default_rng(int(seed))
+    from ._common import resolve_seed
+
+    return resolve_seed(seed)
 
 
 def _progress(total: int, desc: str, progress: bool | None):
