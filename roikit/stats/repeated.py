@@ -33,7 +33,7 @@ from ._common import (
     region_order,
     result_rows,
 )
-from ._common import side_table
+from ._common import side_table, spelled
 from ._registry import register
 from .anova import rm_anova
 from .designs import _group_labels
@@ -60,11 +60,9 @@ def _plan_units(region_table, region_factors, regions):
     if not region_factors:
         return {r: [(r, ())] for r in regions}
     if region_table is None:
-        raise UsageError(
-            f"within {noun(region_factors, 'factor')} {', '.join(region_factors)} not among the contrasts.tsv "
-            "columns; a region factor needs "
-            "regions.tsv (--region-table FILE, region_table=...)"
-        )
+        raise spelled("region_table=...", "--region-table FILE", UsageError,
+                      f"within {noun(region_factors, 'factor')} {', '.join(region_factors)} not among the "
+                      "contrasts.tsv columns; a region factor needs regions.tsv ({option})")
     table = region_table[region_table["region"].isin(regions)].copy()
     for f in region_factors:
         table[f] = _group_labels(table[f])
@@ -156,11 +154,9 @@ def repeated_measures(
     region_factors = [f for f in factors if f not in contrast_factors]
     if region_factors and (region_table is None or any(f not in region_table.columns for f in region_factors)):
         missing = [f for f in region_factors if region_table is None or f not in region_table.columns]
-        raise UsageError(
-            f"within {noun(missing, 'factor')} {', '.join(missing)} found in neither contrasts.tsv nor regions.tsv; "
-            "give the table "
-            "that holds them (--contrasts FILE / --region-table FILE; contrasts=..., region_table=...)"
-        )
+        raise spelled("contrasts=... or region_table=...", "--contrasts FILE or --region-table FILE", UsageError,
+                      f"within {noun(missing, 'factor')} {', '.join(missing)} found in neither contrasts.tsv nor "
+                      "regions.tsv; give the table that holds them ({option})")
     if between is not None and between in factors:
         raise UsageError(f"{between!r} is both a within and the between factor")
 

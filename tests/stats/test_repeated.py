@@ -170,8 +170,9 @@ def test_errors_name_the_problem():
     df = pg.read_dataset("rm_anova2")
     values = _long(df, "Performance", "Subject", ["Time", "Metric"])
     ct = _contrasts(df, ["Time", "Metric"])
-    with pytest.raises(UsageError, match="--region-table"):
+    with pytest.raises(UsageError, match="region_table=") as info:  # Python spelling in Python
         run_design(values, "repeated-measures", within="hemisphere", contrasts=ct)
+    assert "--region-table FILE" in info.value.cli_message  # command-line spelling on the command line
     with pytest.raises(DesignError, match="same levels of Time"):
         run_design(values, "repeated-measures", within="Time", contrasts=ct)
 
