@@ -127,6 +127,12 @@ OPTIONS: tuple[Option, ...] = (
            example='"maps/sub-{subject}_contrast-{contrast}_variance.nii.gz"'),
     Option("list", "maps", "path", "instead of a pattern: a table of participant_id, contrast, [session_id], "
            "path, [variance_path], [volume]", flag="--map-list", metavar="TSV", example='"maps.tsv"'),
+    Option("run_effect", "maps", "str", "path pattern of per-run effect maps ({run} required) for the functional "
+           "regions, when the maps of effect (or list) have no runs: functional regions select and measure on "
+           "these, every other region uses effect; a contrast may appear in both", flag="", metavar="PATTERN",
+           example='"maps/sub-{subject}_run-{run}_contrast-{contrast}_effect.nii.gz"'),
+    Option("run_variance", "maps", "str", "path pattern of the variance maps of run_effect's maps", flag="",
+           metavar="PATTERN", example='"maps/sub-{subject}_run-{run}_contrast-{contrast}_variance.nii.gz"'),
     # [regions]
     Option("atlas", "regions", "path", "labelled atlas image (integer labels, 0 = background)", metavar="IMAGE",
            example='"atlas.nii.gz"'),
@@ -199,7 +205,7 @@ OPTIONS: tuple[Option, ...] = (
     Option("threshold", "regions.functional", "float", "instead of top: the voxels whose localiser value is above "
            "this", flag="", example="3.1"),
     Option("split", "regions.functional", "str", "\"run\": leave one run out (select on the other runs' mean "
-           "localiser map, precision-weighted with variance maps; measure on the held-out run, average the folds); needs {run} in the map pattern",
+           "localiser map, precision-weighted with variance maps; measure on the held-out run, average the folds); needs {run} in maps.effect or maps.run_effect",
            flag="", choices=("run",), example='"run"'),
     Option("circular_ok", "regions.functional", "bool", "run even when the localiser shares data with a tested "
            "contrast (circular analysis; every output carries a caution)", default=False, flag="",

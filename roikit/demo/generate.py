@@ -140,6 +140,24 @@ _OUTLIER_REGIONS = _MTL + ("retrosplenial cortex",)  # ... in these regions (the
 _LARGE_VARIANCE_MULTIPLIER = 10.0
 _LARGE_VARIANCE_FD = 0.9
 
+# The focal novelty response (issue 16): within the right hippocampus, the voxels within _FOCAL_RADIUS mm of
+# _FOCAL_CENTER (the posterior hippocampus; 17 voxels, none in the prior-peak sphere) respond _FOCAL_BOOST more to
+# novel routes than the region's mean response; the region's other voxels outside the sphere respond
+# _FOCAL_BOOST * 17 / 33 less, and the sphere's voxels as the mean. The pattern sums to zero over the region (and
+# is zero in the sphere), so every atlas region's and the sphere's mean stay the model's values. It enters every
+# town map, hence novel and novel-vs-familiar (not familiar).
+_FOCAL_REGION = "right hippocampus"
+_FOCAL_CENTER = (28.0, -31.0, -12.0)
+_FOCAL_RADIUS = 6.0
+_FOCAL_BOOST = 2.0
+#: Contrasts written per run as well (two runs; maps/runs/): the localiser and tested contrast of the demo's
+#: functional region. Runs are drawn from their own generators, so the session maps do not change.
+RUN_CONTRASTS = ("novel-vs-familiar",)
+RUNS = ("1", "2")
+#: The demo's functional region ([[regions.functional]] of its study file).
+FUNCTIONAL_REGION = {"name": "novelty fROI", "within": _FOCAL_REGION, "localiser": "novel-vs-familiar",
+                     "top": "10%", "split": "run"}
+
 
 # --------------------------------------------------------------------------------------------------
 # Geometry
@@ -179,6 +197,8 @@ class _Geometry:
     sphere: np.ndarray  # bool, flat
     profile: np.ndarray  # relative variance per voxel, flat
     dropout: np.ndarray  # bool, flat
+    focal: np.ndarray  # float, flat: the focal novelty pattern (0 outside the right hippocampus)
+    focal_set: np.ndarray  # bool, flat: the voxels of the focal novelty response
     sigma: float  # noise kernel SD in voxels
     kernel: np.ndarray
     unit_scale: float  # divide filtered white noise by this to get unit variance
@@ -197,6 +217,13 @@ def _geometry() -> _Geometry:
     sphere = np.einsum("ij,ij->i", d, d) <= PRIOR_PEAK["radius"] ** 2
     sigma = FWHM_MM / np.sqrt(8.0 * np.log(2.0)) / abs(AFFINE[0, 0])
     kernel = _kernel_1d(sigma)
+    within = labels == REGION_NAMES.index(_FOCAL_REGION) + 1
+    d = xyz - np.asarray(_FOCAL_CENTER)
+    focal_set = within & (np.einsum("ij,ij->i", d, d) <= _FOCAL_RADIUS ** 2) & ~sphere
+    rest = within & ~focal_set & ~sphere
+    focal = np.zeros(len(xyz))
+    focal[focal_set] = _FOCAL_BOOST
+    focal[rest] = -_FOCAL_BOOST * focal_set.sum() / rest.sum()  # zero sum over the region
     return _Geometry(
         xyz=xyz,
         brain=brain,
@@ -205,6 +232,8 @@ def _geometry() -> _Geometry:
         sphere=sphere,
         profile=_variance_profile(xyz),
         dropout=brain & _inside_ellipsoid(xyz, _DROPOUT_CENTER, _DROPOUT_SEMI_AXES),
+        focal=focal,
+        focal_set=focal_set,
         sigma=sigma,
         kernel=kernel,
         unit_scale=float(np.sqrt(np.sum(kernel**2) ** 3)),
@@ -474,6 +503,9 @@ def study_toml(*, title: str = "Wayfinding study (invented demo data)") -> str:
         "[maps]",
         'effect = "maps/sub-{subject}_contrast-{contrast}_effect.nii.gz"',
         'variance = "maps/sub-{subject}_contrast-{contrast}_variance.nii.gz"',
+        "# the two runs of novel-vs-familiar, for the functional region (every other region uses the maps above)",
+        'run_effect = "maps/runs/sub-{subject}_run-{run}_contrast-{contrast}_effect.nii.gz"',
+        'run_variance = "maps/runs/sub-{subject}_run-{run}_contrast-{contrast}_variance.nii.gz"',
         "",
         "[regions]",
         'atlas = "atlas.nii.gz"',
@@ -483,7 +515,11 @@ def study_toml(*, title: str = "Wayfinding study (invented demo data)") -> str:
         f"name = {_toml_value(PRIOR_PEAK['name'])}",
         f"center = {_toml_value([float(c) for c in PRIOR_PEAK['center']])}",
         f"radius = {_toml_value(float(PRIOR_PEAK['radius']))}",
-    ]
+        "",
+        "# each participant's most novelty-responsive voxels of the right hippocampus, selected on one run and",
+        "# measured on the other (leave one run out: not circular); tested by every novel-vs-familiar analysis",
+        "[[regions.functional]]",
+    ] + [f"{k} = {_toml_value(v)}" for k, v in FUNCTIONAL_REGION.items()]
     for analysis in DEMO_ANALYSES:
         lines += ["", "[[analysis]]"] + [f"{k} = {_toml_value(v)}" for k, v in analysis.items()]
     return "\n".join(lines) + "\n"
@@ -653,11 +689,12 @@ def make_study(
     geo = _geometry()
     model = _draw_model(rng, n_per_group, problems)
     noise_rngs = rng.spawn(len(model["ids"]))
+    run_rngs = rng.spawn(len(model["ids"]))  # spawned after the noise generators: those stay as they were
 
     tmp = Path(tempfile.mkdtemp(prefix=f".{out.name}.tmp-", dir=out.parent))
     try:
         truth, ground_truth, files, participants = _write_all(tmp, geo, model, noise_rngs, recorded_seed,
-                                                              n_per_group, problems, progress)
+                                                              n_per_group, problems, progress, run_rngs)
         _replace_dir(tmp, out)
     except BaseException:
         shutil.rmtree(tmp, ignore_errors=True)
@@ -665,7 +702,7 @@ def make_study(
     return DemoStudy(path=out, ground_truth=ground_truth, truth=truth, participants=participants, files=files)
 
 
-def _write_all(tmp, geo, model, noise_rngs, recorded_seed, n_per_group, problems, progress):
+def _write_all(tmp, geo, model, noise_rngs, recorded_seed, n_per_group, problems, progress, run_rngs):
 
     files: list[Path] = []
 
@@ -723,6 +760,7 @@ def _write_all(tmp, geo, model, noise_rngs, recorded_seed, n_per_group, problems
     labels_b = geo.labels[brain_idx]
     profile_b = geo.profile[brain_idx]
     dropout_b = geo.dropout[brain_idx]
+    focal_b = geo.focal[brain_idx]
     n_vox = geo.labels.size
     planted = model["planted"]
     iterator = progress_bar(show=progress, iterable=range(len(ids)), desc="demo: writing maps", unit="participant",
@@ -735,6 +773,7 @@ def _write_all(tmp, geo, model, noise_rngs, recorded_seed, n_per_group, problems
         lut = np.zeros((len(CONTRASTS), n_regions + 1))
         lut[:, 1:] = true_atlas[i]
         signal = lut[:, labels_b]  # (contrast, brain voxel)
+        signal[3:] += focal_b  # the focal novelty response, in every town map (hence novel, novel-vs-familiar)
         fields = np.empty((len(TOWNS) + 1, brain_idx.size))
         for f in range(len(TOWNS) + 1):
             white = prng.standard_normal(SHAPE)
@@ -758,6 +797,27 @@ def _write_all(tmp, geo, model, noise_rngs, recorded_seed, n_per_group, problems
             stem = f"maps/{pid}_contrast-{contrast}"
             put(f"{stem}_effect.nii.gz", _nifti_gz(_volume(effect), np.float32))
             put(f"{stem}_variance.nii.gz", _nifti_gz(_volume(variance), np.float32))
+        # two runs of the run contrasts: run 1 = session + D, run 2 = session - D, with D smooth noise of the
+        # session map's voxel variance m_c v_i s(x), from this participant's own run generator. Then each run's
+        # noise has twice the session's variance, the two runs' noise is uncorrelated (Var N - Var D = 0, jointly
+        # normal: independent), and the mean of the runs is the session map.
+        for contrast in RUN_CONTRASTS:
+            white = run_rngs[i].standard_normal(SHAPE)
+            half = ndimage.gaussian_filter(white, geo.sigma, mode="reflect", truncate=4.0).ravel(order="F")[
+                brain_idx] / geo.unit_scale * np.sqrt(VARIANCE_MULTIPLIER[contrast]) * sd_b
+            variance = np.zeros(n_vox)
+            variance[brain_idx] = 2.0 * VARIANCE_MULTIPLIER[contrast] * v * profile_b
+            if drop:
+                variance[brain_idx[dropout_b]] = 0.0
+            variance_bytes = _nifti_gz(_volume(variance), np.float32)
+            for run, sign in zip(RUNS, (1.0, -1.0)):
+                effect = np.zeros(n_vox)
+                effect[brain_idx] = maps[contrast] + sign * half
+                if drop:
+                    effect[brain_idx[dropout_b]] = 0.0
+                stem = f"maps/runs/{pid}_run-{run}_contrast-{contrast}"
+                put(f"{stem}_effect.nii.gz", _nifti_gz(_volume(effect), np.float32))
+                put(f"{stem}_variance.nii.gz", variance_bytes)
 
     # tidy truth table
     multiplier = np.array([VARIANCE_MULTIPLIER[c] for c in CONTRASTS])
@@ -949,8 +1009,55 @@ def _ground_truth(geo, model, seed, n_per_group, problems, all_names, all_voxels
             for i, pid in enumerate(ids)
         },
         "planted_problems": problems_list,
+        "functional_region": _functional_truth(geo, model, true_all),
         "expected_patterns": _expected_patterns(model["cov"], n_per_group),
         "true_values": true_values,
+    }
+
+
+def _functional_truth(geo, model, true_all) -> dict:
+    """What the demo's functional region (leave one run out) should recover, from the generating model.
+
+    Derivation. Participant i's novel-vs-familiar map holds, at voxel x of the right hippocampus, the true
+    regional response t_i plus the focal pattern P(x) (P = _FOCAL_BOOST on the focal set, negative elsewhere in
+    the region outside the prior-peak sphere, 0 in the sphere) plus noise. Each fold selects the top 10% of the
+    region's voxels (8 of 80) on one run and averages the other run there. The two runs' noise is independent
+    (run 1 = session + D, run 2 = session - D, Var D = Var of the session noise), so the held-out run's noise
+    averages to 0 whatever was selected, and the fold's expected value is t_i + the mean of P over the selected
+    voxels. The focal set (17 voxels) is larger than the selection and P is constant on it, so a selection inside
+    it gives exactly t_i + _FOCAL_BOOST. Hence the unbiased (cross-validated) estimate recovers
+    mean(t) + _FOCAL_BOOST: population value (mu_novel - mu_familiar of the right hippocampus, per group) +
+    _FOCAL_BOOST. It is an upper bound: a voxel selected outside the focal set (noise beating the focal contrast
+    of _FOCAL_BOOST x 50/33 = 3.0 units over the rest of the region, _FOCAL_BOOST over the sphere's voxels, against
+    one run's voxel SD of about 0.7 for a typical participant) lowers it. The atlas region's mean is t_i alone (P sums to 0 over the region): the functional region finds what the
+    anatomical region averages away.
+    """
+    r = REGION_NAMES.index(_FOCAL_REGION)
+    k = CONTRASTS.index("novel-vs-familiar")
+    spec = _REGIONS[r]
+    population = {g: float(spec.novel[gi] - spec.familiar[gi] + _FOCAL_BOOST) for gi, g in enumerate(GROUPS)}
+    return {
+        **FUNCTIONAL_REGION,
+        "tested_contrast": "novel-vs-familiar",
+        "runs": list(RUNS),
+        "run_contrasts": list(RUN_CONTRASTS),
+        "focal_response": {"center_mm": list(_FOCAL_CENTER), "radius_mm": _FOCAL_RADIUS, "boost": _FOCAL_BOOST,
+                           "n_voxels": int(geo.focal_set.sum()),
+                           "rest_of_region_offset": float(geo.focal[geo.focal < 0][0]),
+                           "n_rest": int((geo.focal < 0).sum()),
+                           "contrasts": ["novel", "novel-vs-familiar", *TOWNS],
+                           "note": "pattern sums to 0 over the region and is 0 in the prior-peak sphere: atlas "
+                                   "regions' and the sphere's means are unchanged"},
+        "expected": {
+            "population": population,
+            "population_mean_of_groups": float(np.mean(list(population.values()))),
+            "sample_true_mean": float(true_all[:, k, r].mean() + _FOCAL_BOOST),
+            "atlas_region_sample_true_mean": float(true_all[:, k, r].mean()),
+            "note": "the cross-validated functional-region value of novel-vs-familiar should recover the region's "
+                    "true response plus the focal boost (an upper bound: voxels selected outside the focal set "
+                    "lower it); sample_true_mean includes this sample's participant deviations and the planted "
+                    "outlier, the population values do not",
+        },
     }
 
 

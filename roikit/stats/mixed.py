@@ -1299,7 +1299,7 @@ def mixed(
         else:
             frame[name] = col.astype(object).where(col.notna(), None).map(lambda x: x if x is None else str(x))
     complete = frame[used].notna().all(axis=1).to_numpy() & np.isfinite(frame["value"].to_numpy(float))
-    regions = region_order(values)
+    regions = region_order(data)  # the regions of the selected contrasts
     # exclusions per region: observations, participants with some / all of their observations left out
     region_codes = pd.Index(regions).get_indexer(data["region"])
     n_dropped = np.bincount(region_codes[~complete], minlength=len(regions))

@@ -14,6 +14,7 @@ import pandas as pd
 from .. import __version__
 from .._tables import sha256_file, write_json
 from .._typing import PathLike
+from .. import errors as _errors
 from ..errors import CoverageWarning, RoikitError, RoikitWarning
 from ..extraction import TRIM, assemble_values, extract
 from ..images import check_same_grid, read_header
@@ -168,6 +169,7 @@ def _extract_with_cache(study: Study, out: Path, *, progress: bool | None, analy
 
     base = cache.get("provenance") if cache else None
     done = [i for i, h in enumerate(hits) if h is not None]
+    functional_entry = {"entry": cache.get("functional") if cache else None}  # kept until recomputed
 
     def store(done_now: list[int], provenance: dict | None) -> None:
         kept = {}
@@ -181,10 +183,13 @@ def _extract_with_cache(study: Study, out: Path, *, progress: bool | None, analy
             kept[key] = {"value": values[i].tolist(), "n_valid": n_valid[i].tolist(),
                          "variance": variances[i].tolist() if has_var else None, "input": record}
         prov = {k: v for k, v in (provenance or {}).items() if k not in ("inputs", "cache")}
-        write_json(cache_path, {"format": _CACHE_FORMAT, "fingerprint": fingerprint, "roikit_version": __version__,
-                                "note": "roikit extraction cache, keyed by the SHA-256 of each map's bytes: safe "
-                                        "to delete (the next run re-extracts)",
-                                "provenance": prov, "maps": kept}, overwrite=True)
+        content = {"format": _CACHE_FORMAT, "fingerprint": fingerprint, "roikit_version": __version__,
+                   "note": "roikit extraction cache, keyed by the SHA-256 of each map's bytes: safe "
+                           "to delete (the next run re-extracts)",
+                   "provenance": prov, "maps": kept}
+        if functional_entry["entry"] is not None:
+            content["functional"] = functional_entry["entry"]
+        write_json(cache_path, content, overwrite=True)
 
     if todo:
         for i in todo:  # a clear message when a new map is on another grid than the regions
@@ -251,14 +256,15 @@ def _extract_with_cache(study: Study, out: Path, *, progress: bool | None, analy
             findings=[{"problem": "no valid voxel: value n/a", "participant_id": rows[i]["participant_id"],
                        "region": names[r]} for i in reused_empty for r in np.flatnonzero(n_valid[i] == 0)]),
             stacklevel=3)
-    if study.functional:
-        # participant-specific regions: their rows follow the other regions' (not cached: computed each run)
-        from ..functional import extract_functional
-
+    fmaps = study.functional_maps
+    tested = [c for c in pd.unique(maps["contrast"]) if c in set(fmaps["contrast"])]
+    if study.functional and tested:
+        # participant-specific regions: their rows follow the other regions'; cached under a key of every map
+        # they read (SHA-256) and their definitions, so a rerun reads no map
         gathered = {(rows[todo[j]]["path"], _volume(rows[todo[j]])): pair for j, pair in kept_voxels.items()}
-        froi = extract_functional(study.maps, realised, study.functional,
-                                  contrasts=list(pd.unique(maps["contrast"])), statistic=study.statistic,
-                                  keep_zeros=study.keep_zeros, entry="study", _gathered=gathered)
+        froi, functional_entry["entry"], reused = _functional_with_cache(study, tested, gathered,
+                                                                         functional_entry["entry"])
+        base["cache"]["functional"] = "from the cache" if reused else "computed"
         base["functional"] = froi.attrs["roikit"]["functional"]
         circular = list(dict.fromkeys(list(base.get("circular_regions", [])) + froi.attrs["roikit"]["circular_regions"]))
         if circular:
@@ -267,6 +273,82 @@ def _extract_with_cache(study: Study, out: Path, *, progress: bool | None, analy
     table.attrs["roikit"] = base
     store(list(range(len(rows))), base)
     return table, base["cache"]
+
+
+def _functional_key(study: Study, tested: list) -> str:
+    """SHA-256 of what the functional regions' rows depend on: their definitions, the search spaces' voxels, the
+    extraction choices, the tested contrasts, and the labels and SHA-256 of every localiser and tested map read."""
+    realised = study.realised
+    names = list(realised.names)
+    fmaps = study.functional_maps
+    needed = set(tested) | {f.localiser for f in study.functional}
+    h = hashlib.sha256()
+    header = {"roikit": __version__, "cache_format": _CACHE_FORMAT, "statistic": study.statistic,
+              "keep_zeros": bool(study.keep_zeros), "trim": TRIM, "tested": [str(t) for t in tested],
+              "regions": [f.describe() for f in study.functional], "shape": list(realised.grid.shape),
+              "affine": np.asarray(realised.grid.affine, dtype=np.float64).tolist()}
+    h.update(json.dumps(header, sort_keys=True, default=str).encode("utf-8"))
+    for f in study.functional:
+        h.update(np.ascontiguousarray(realised.voxels[names.index(f.within)], dtype=np.int64).tobytes() + b"#")
+    has_var = "variance_path" in fmaps.columns
+    for row in fmaps[fmaps["contrast"].isin(needed)].to_dict("records"):
+        labels = [str(row.get(k)) for k in ("participant_id", "session_id", "run_id", "contrast")]
+        h.update(json.dumps(labels + [_sha256(row["path"]), _volume(row),
+                                      _sha256(row.get("variance_path")) if has_var else None]).encode("utf-8"))
+    return h.hexdigest()
+
+
+_FUNCTIONAL_INTS = ("n_voxels", "n_valid", "n_search", "n_folds")
+_FUNCTIONAL_FLOATS = ("value", "variance", "selected_share")
+
+
+def _functional_with_cache(study: Study, tested: list, gathered: dict, entry) -> tuple[pd.DataFrame, dict, bool]:
+    """The functional regions' rows: from the cache entry when its key matches (no map is read, the warnings the
+    computation gave are given again), else computed (reading only maps the region extraction did not hand over).
+
+    Returns the rows, the cache entry to store and whether it was reused.
+    """
+    from ..functional import extract_functional
+
+    key = _functional_key(study, tested)
+    if isinstance(entry, dict) and entry.get("key") == key and isinstance(entry.get("columns"), list) \
+            and isinstance(entry.get("rows"), list) and isinstance(entry.get("provenance"), dict):
+        try:
+            table = pd.DataFrame(entry["rows"], columns=entry["columns"])
+            for c in _FUNCTIONAL_FLOATS:
+                if c in table.columns:
+                    table[c] = pd.to_numeric(table[c]).astype(np.float64)
+            for c in _FUNCTIONAL_INTS:
+                if c in table.columns:
+                    table[c] = table[c].astype(np.int64)
+            caught = [getattr(_errors, w["category"])(w["message"], findings=w.get("findings"))
+                      for w in entry.get("warnings", [])]
+        except (TypeError, ValueError, KeyError, AttributeError):
+            pass  # a damaged entry: computed again below
+        else:
+            for w in caught:
+                warnings.warn(w, stacklevel=4)
+            provenance = {**entry["provenance"], "maps_read": 0, "maps_from_extraction": 0,
+                          "from_cache": True}
+            table.attrs["roikit"] = {"functional": provenance,
+                                     "circular_regions": list(entry.get("circular_regions", []))}
+            return table, entry, True
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
+        table = extract_functional(study.functional_maps, study.realised, study.functional, contrasts=tested,
+                                   statistic=study.statistic, keep_zeros=study.keep_zeros, entry="study",
+                                   _gathered=gathered)
+    for w in caught:
+        warnings.warn_explicit(w.message, w.category, w.filename, w.lineno)
+    stored = [{"category": w.category.__name__, "message": str(w.message),
+               "findings": list(getattr(w.message, "findings", []) or [])}
+              for w in caught if getattr(_errors, w.category.__name__, None) is w.category]
+    rows = [[None if isinstance(x, float) and np.isnan(x) else (x.item() if isinstance(x, np.generic) else x)
+             for x in record] for record in table.itertuples(index=False, name=None)]
+    entry = {"key": key, "columns": [str(c) for c in table.columns], "rows": rows,
+             "provenance": table.attrs["roikit"]["functional"],
+             "circular_regions": list(table.attrs["roikit"]["circular_regions"]), "warnings": stored}
+    return table, entry, False
 
 
 def _input_of(row: dict) -> dict:

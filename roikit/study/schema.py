@@ -236,6 +236,8 @@ class Study:
     functional : list of FunctionalRegion
         ``[[regions.functional]]``: participant-specific regions (their rows follow the other regions'); the ones
         run with ``circular_ok`` are also in ``circular``.
+    run_maps : DataFrame or None
+        ``[maps] run_effect``: per-run maps (with ``run_id``) that the functional regions use instead of ``maps``.
     """
 
     path: Path
@@ -254,6 +256,12 @@ class Study:
     value_label: str | None = None
     load_warnings: list = field(repr=False, default_factory=list)
     functional: list = field(default_factory=list)
+    run_maps: pd.DataFrame | None = None
+
+    @property
+    def functional_maps(self) -> pd.DataFrame:
+        """The maps the functional regions select and measure on: ``run_maps`` when given, else ``maps``."""
+        return self.run_maps if self.run_maps is not None else self.maps
 
     @property
     def default_out(self) -> Path:
@@ -415,11 +423,14 @@ def load_study(path: PathLike) -> Study:
     # [maps]
     maps = _check_maps(c, raw)
     contrasts = sorted(set(maps["contrast"])) if maps is not None else None
+    run_maps = _check_run_maps(c, raw, maps)
+    functional_maps = run_maps if run_maps is not None else maps
     has_variance = maps is not None and "variance_path" in maps.columns
 
     # [regions]
     regions, static_names, circular = _check_regions(c, raw)
-    functional = _check_functional(c, raw, contrasts=contrasts)
+    functional = _check_functional(c, raw, contrasts=sorted(set(functional_maps["contrast"]))
+                                   if functional_maps is not None else None)
 
     # [extraction]
     section = c.table(raw.get("extraction"), "extraction") or {}
@@ -472,12 +483,15 @@ def load_study(path: PathLike) -> Study:
     study = Study(path=path, title=title, participants_path=participants_path, participants=participants, maps=maps,
                   regions=regions, realised=realised, circular=circular, statistic=statistic, keep_zeros=keep_zeros,
                   jobs=jobs, analyses=analyses, raw=raw, value_label=value_label,
-                  load_warnings=list(load_warnings), functional=functional)
+                  load_warnings=list(load_warnings), functional=functional, run_maps=run_maps)
     if functional:
         # the circularity guard: before any map is read
         from .cache import analysed_contrasts
 
         tested = analysed_contrasts(study) or list(pd.unique(maps["contrast"]))
+        if run_maps is not None:  # functional regions are measured on the contrasts with per-run maps
+            tested = [t for t in tested if t in set(run_maps["contrast"])]
+        maps = functional_maps
         for i, f in enumerate(functional, start=1):
             if f.split == "run" and "run_id" not in maps.columns:
                 c.add(f"regions.functional[{i}].split", "\"run\" needs maps with runs: add a {run} placeholder to "
@@ -539,6 +553,32 @@ def _check_functional(c: "_Checker", raw: dict, *, contrasts: list | None) -> li
         except UsageError as exc:
             c.add(key, str(exc))
     return out
+
+
+def _check_run_maps(c: _Checker, raw: dict, maps: pd.DataFrame | None) -> pd.DataFrame | None:
+    """``[maps] run_effect`` (and ``run_variance``): per-run maps for the functional regions, or None."""
+    section = raw.get("maps")
+    if not isinstance(section, dict) or ("run_effect" not in section and "run_variance" not in section):
+        return None
+    effect = c.string(section, "run_effect", "maps")
+    variance = c.string(section, "run_variance", "maps")
+    if effect is None:
+        if "run_effect" not in section:
+            c.add("maps.run_variance", "needs maps.run_effect, the pattern of the per-run effect maps")
+        return None
+    if "{run}" not in effect:
+        c.add("maps.run_effect", f"needs a {{run}} placeholder (per-run maps), found {effect!r}; e.g. "
+                                 "\"maps/sub-{subject}_run-{run}_contrast-{contrast}_effect.nii.gz\"")
+        return None
+    if maps is not None and "run_id" in maps.columns:
+        c.add("maps.run_effect", "the maps of maps.effect (or maps.list) already have runs, and the functional "
+                                 "regions use them; remove maps.run_effect")
+        return None
+    try:
+        return find_maps(effect, variance=variance, root=c.root)
+    except RoikitError as exc:
+        c.add("maps.run_effect", str(exc))
+    return None
 
 
 def _check_maps(c: _Checker, raw: dict) -> pd.DataFrame | None:

@@ -114,8 +114,9 @@ def test_split_study_runs_end_to_end(run_study_dir):
     assert prov["regions"][0]["split"] == "run" and len(prov["selections"]) == len(LABELS)
     # a single read: the functional pass took its voxels from the region extraction's read of the same maps
     assert prov["maps_read"] == 0 and prov["maps_from_extraction"] == len(LABELS) * 2
-    again = run_study(run_study_dir / "study.toml", figures=False)  # everything from the cache: read once, here
-    assert again.values.attrs["roikit"]["functional"]["maps_read"] == len(LABELS) * 2
+    again = run_study(run_study_dir / "study.toml", figures=False)  # everything from the cache: nothing read
+    assert again.values.attrs["roikit"]["functional"]["maps_read"] == 0
+    assert again.values.attrs["roikit"]["functional"]["from_cache"] is True
     assert again.extracted == 0
     pd.testing.assert_frame_equal(again.values.reset_index(drop=True), run.values.reset_index(drop=True))
     assert "circular" not in run.summary()
