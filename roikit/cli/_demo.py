@@ -18,8 +18,9 @@ def add_parser(subparsers) -> None:
     p = subparsers.add_parser(
         "demo", help=HELP,
         description="Generate the invented wayfinding study (32 adults, younger and older; first-level effect and "
-                    "variance maps for novel, familiar, novel-vs-familiar and town1..town6; an atlas of nine "
-                    "regions and a prior-peak sphere; participants.tsv; a study file; the ground truth) in "
+                    "variance maps for novel, familiar, novel-vs-familiar and town1..town6, and two runs of "
+                    "novel-vs-familiar; an atlas of nine regions, a prior-peak sphere and a functional region "
+                    "selected leave-one-run-out; participants.tsv; a study file; the ground truth) in "
                     "DIR/study, then run the pipeline on it into DIR/results. All data are invented.")
     p.add_argument("--out", required=True, metavar="DIR", help="demo folder (study/ and results/ are written in it)")
     p.add_argument("--seed", type=int, default=DEFAULT_SEED, metavar="S",

@@ -855,7 +855,8 @@ from the two-level model described in roikit's `demo/README.md`; no real partici
 measurement stands behind any value. The region coordinates are approximate MNI-like positions
 written from memory, not taken from any atlas.
 
-- `maps/`: per participant and contrast, an effect map and a variance map (3 mm grid, float32).
+- `maps/`: per participant and contrast, an effect map and a variance map (3 mm grid, float32);
+  `maps/runs/`: the two runs of novel-vs-familiar (the localiser and tested contrast of the functional region).
 - `atlas.nii.gz`, `atlas.tsv`: nine labelled regions and their label table.
 - `brain_mask.nii.gz`: the ellipsoidal synthetic brain (maps are zero outside it).
 - `participants.tsv`, `participants.json`: group, age, sex, handedness, route_accuracy, mean_fd.

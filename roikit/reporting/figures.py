@@ -690,6 +690,12 @@ def participant_pages(
         One figure per page (one when the regions fit).
     """
     check_columns(data, REQUIRED_VALUES, "region values table")
+    wanted = {text(c) for c in (kwargs.get("contrast"), kwargs.get("versus")) if c is not None}
+    if regions is None and wanted:  # only the regions with values of every contrast drawn (a functional region
+        # measured on some contrasts only has no panel for the others)
+        shown = data[data["contrast"].map(text).isin(wanted)]
+        have = shown.groupby(shown["region"].map(text), sort=False)["contrast"].agg(lambda c: set(c.map(text)))
+        regions = [r for r in ordered_unique(data["region"].map(text)) if have.get(r, set()) >= wanted] or None
     pages, _ = _region_pages(data, regions, width=width, ncols=ncols, panel_height_mm=panel_height_mm,
                              plot=plot or participant_plot)
     return [participant_figure(data, regions=[r for p in pages for r in p], ncols=ncols, width=width,

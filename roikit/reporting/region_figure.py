@@ -371,8 +371,9 @@ def functional_overlap(regions: RealisedRegions, functional: dict) -> dict[str, 
 def functional_overlap_figure(regions: RealisedRegions, functional: dict, *, width: Width = "double") -> Figure:
     """Where each participant's functional-region voxels fall: the share of participants per voxel, on slices.
 
-    One row per functional region: a sagittal, a coronal and an axial slice through the search space's voxel
-    nearest its centre; the search space in light grey, each voxel coloured by the share of participants (and
+    One row per functional region: a sagittal, a coronal and an axial slice through the voxel selected most often
+    (among ties, the one nearest the share-weighted centre; the search space's voxel nearest its centre when
+    nothing was selected); the search space in light grey, each voxel coloured by the share of participants (and
     folds) whose selection holds it (viridis, a colour-blind-safe sequential map, 0 to 1).
 
     Parameters
@@ -409,6 +410,11 @@ def functional_overlap_figure(regions: RealisedRegions, functional: dict, *, wid
             ijk = np.argwhere(space)
             com = ijk.mean(axis=0)
             centre = ijk[np.argmin(((ijk - com) ** 2).sum(axis=1))]
+            share = np.nan_to_num(vol)
+            if share.max() > 0:  # through the voxel selected most often (the selections, not the space's middle)
+                top = np.argwhere(share == share.max())
+                weighted = (ijk * share[space][:, None]).sum(axis=0) / share[space].sum()
+                centre = top[np.argmin(((top - weighted) ** 2).sum(axis=1))]
             lo, hi = ijk.min(axis=0), ijk.max(axis=0)
             axes = sub.subplots(1, 3)
             for ax, axis, (a, b), label in zip(axes, (0, 1, 2), ((1, 2), (0, 2), (0, 1)), ("x", "y", "z")):

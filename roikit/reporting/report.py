@@ -626,7 +626,7 @@ def write_report(
                 caption = ("Each functional region's selected voxels: the share of participants whose selection "
                            "(from their own localiser maps; averaged over folds with a leave-one-run-out split) holds "
                            "each voxel of the search space (grey), on a sagittal, a coronal and an axial slice "
-                           "through the search space's centre (world coordinates in mm; L, left; R, right).")
+                           "through the voxel selected most often (world coordinates in mm; L, left; R, right).")
                 region_items.append(add_figure(fig, "functional_regions", caption,
                                                "Overlap of the participants' functional-region voxels", "all"))
     if figures:

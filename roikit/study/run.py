@@ -65,7 +65,7 @@ class StudyRun:
         lines = [
             f"roikit run: {study.title}",
             f"  {n_part} participants, {self.extracted + self.reused} maps ({self.extracted} extracted, "
-            f"{self.reused} from the cache{_skipped(study, self.extracted + self.reused)}), "
+            f"{self.reused} from the cache{_skipped(study, self.extracted + self.reused)}{_run_maps(self)}), "
             f"{plural(n_regions, 'region')} x {plural(len(study.analyses), 'analysis', 'analyses')}",
         ]
         for analysis, rows in zip(study.analyses, self.per_analysis):
@@ -92,6 +92,15 @@ def _primary_of(correct) -> str:
     from ..stats.corrections import primary_correction
 
     return primary_correction(correct)
+
+
+def _run_maps(run) -> str:
+    """'; 64 per-run maps for the functional regions, read' when the study has [maps] run_effect."""
+    if run.study.run_maps is None:
+        return ""
+    info = (run.values.attrs.get("roikit") or {}).get("functional") or {}
+    return (f"; {len(run.study.run_maps)} per-run maps for the functional regions, "
+            f"{'from the cache' if info.get('from_cache') else 'read'}")
 
 
 def _skipped(study: Study, used: int) -> str:

@@ -37,8 +37,10 @@ def test_demo_runs_end_to_end(full_demo):
     assert any((out / "results" / "figures").glob("*.png"))
     assert any((out / "results" / "tables").glob("*.tsv"))
     assert sorted(p.name for p in out.iterdir()) == ["results", "study"]  # no temporary folders left
-    maps = sorted((out / "study" / "maps").iterdir())
+    maps = sorted((out / "study" / "maps").glob("*.nii.gz"))
     assert len(maps) == 32 * len(CONTRASTS) * 2
+    # issue 16: two runs of novel-vs-familiar (effect and variance) for the functional region
+    assert len(list((out / "study" / "maps" / "runs").glob("*.nii.gz"))) == 32 * 2 * 2
     # issue 3: the study stays under 120 MB
     size = sum(p.stat().st_size for p in (out / "study").rglob("*") if p.is_file())
     assert size < 120e6
@@ -114,6 +116,8 @@ def test_every_analysis_of_the_study_file_ran(full_demo, results):
                                           "caudate (left, right)"}
         elif design == "region-difference":
             assert set(sub["region"]) == {"left hippocampus - right hippocampus"}
+        elif (sub["contrast"] == "novel-vs-familiar").all():  # the functional region is measured on its runs
+            assert set(sub["region"]) == set(REGION_NAMES) | {"prior peak", "novelty fROI"}, design
         else:
             assert set(sub["region"]) == set(REGION_NAMES) | {"prior peak"}, design
     # the planted problems reach roikit's own diagnostics: low coverage and robust outliers
@@ -196,3 +200,49 @@ def test_within_designs_find_the_expected_patterns(full_demo, results):
     rd = group[group["design"] == "region-difference"].iloc[0]
     assert rd["p"] > 0.05 and abs(expected["region_difference_hippocampi_novel_vs_familiar"]["d_z"]) < 0.2
     assert any(p.name.startswith("a7-repeated-measures_interaction") for p in (out / "results" / "figures").iterdir())
+
+
+@pytest.mark.slow
+def test_the_functional_region_recovers_its_ground_truth(full_demo, results):
+    """Issue 16: the leave-one-run-out functional region finds the focal novelty response the generator planted."""
+    import json
+
+    import nibabel as nib
+
+    out = full_demo["out"]
+    truth = results["ground_truth"]["functional_region"]
+    assert truth["split"] == "run" and truth["localiser"] == truth["tested_contrast"] == "novel-vs-familiar"
+    group = read_table(out / "results" / "group_results.tsv")
+    one = group[group["design"] == "one-sample"].set_index("region")
+    froi, region = one.loc[truth["name"]], one.loc[truth["within"]]
+    expected = truth["expected"]
+    # the cross-validated estimate's 95% CI holds the model's value (generate._functional_truth derives it: the
+    # region's true response plus the focal boost) and this sample's true mean
+    assert froi["ci_low"] < expected["population_mean_of_groups"] < froi["ci_high"]
+    assert froi["ci_low"] < expected["sample_true_mean"] < froi["ci_high"]
+    # what the anatomical region averages away: its whole CI lies below the functional region's
+    assert region["ci_high"] < froi["ci_low"]
+    # within participants, functional region - anatomical region recovers the boost alone (the participants' true
+    # responses cancel): within 3 standard errors of the mean difference
+    values = results["values"]
+    nvf = values[values["contrast"] == "novel-vs-familiar"].pivot(index="participant_id", columns="region",
+                                                                   values="value")
+    diff = nvf[truth["name"]] - nvf[truth["within"]]
+    se = diff.std(ddof=1) / np.sqrt(len(diff))
+    assert abs(diff.mean() - truth["focal_response"]["boost"]) < 3 * se
+    # the selections fall in the focal set (17 voxels of the right hippocampus around its centre, outside the
+    # prior-peak sphere), recomputed here from the atlas with nibabel
+    img = nib.load(out / "study" / "atlas.nii.gz")
+    labels = np.asarray(img.dataobj).ravel(order="F")
+    ijk = np.indices(img.shape).reshape(3, -1, order="F")
+    xyz = (img.affine[:3, :3] @ ijk + img.affine[:3, 3:]).T
+    sphere = results["ground_truth"]["regions"][-1]
+    focal = ((labels == REGION_NAMES.index(truth["within"]) + 1)
+             & (np.linalg.norm(xyz - truth["focal_response"]["center_mm"], axis=1)
+                <= truth["focal_response"]["radius_mm"])
+             & (np.linalg.norm(xyz - sphere["center_mm"], axis=1) > sphere["radius_mm"]))
+    assert focal.sum() == truth["focal_response"]["n_voxels"]
+    sidecar = json.loads((out / "results" / "region_values.json").read_text())
+    selections = sidecar["GeneratedBy"][0]["provenance"]["functional"]["selections"]
+    chosen = [v for record in selections for fold in record["folds"] for v in fold["voxels"]]
+    assert len(selections) == 32 and focal[chosen].mean() > 0.9

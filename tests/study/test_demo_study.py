@@ -21,7 +21,8 @@ def test_run_on_the_demo_study_reproduces_the_demo(tmp_path):
     with contextlib.redirect_stdout(stdout):
         status = main(["run", str(demo.study.path / "study.toml"), "--out", str(out), "--no-figures"])
     assert status == 0
-    assert "32 participants, 288 maps (288 extracted, 0 from the cache), 10 regions x 8 analyses" in stdout.getvalue()
+    assert ("32 participants, 288 maps (288 extracted, 0 from the cache; 64 per-run maps for the functional regions, "
+            "read), 11 regions x 8 analyses") in stdout.getvalue()
     # the region values: the same bytes
     assert (out / "region_values.tsv").read_bytes() == (demo.results / "region_values.tsv").read_bytes()
     # the group results: the same table, row for row (the demo runs the study file through run_study too)
