@@ -431,6 +431,9 @@ def load_study(path: PathLike) -> Study:
     regions, static_names, circular = _check_regions(c, raw)
     functional = _check_functional(c, raw, contrasts=sorted(set(functional_maps["contrast"]))
                                    if functional_maps is not None else None)
+    if run_maps is not None and not (isinstance(raw.get("regions"), dict) and "functional" in raw["regions"]):
+        c.add("maps.run_effect", "per-run maps serve only functional regions, and the study has no "
+                                 "[[regions.functional]]; add one or remove maps.run_effect")
 
     # [extraction]
     section = c.table(raw.get("extraction"), "extraction") or {}

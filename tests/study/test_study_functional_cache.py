@@ -228,3 +228,7 @@ def test_run_effect_problems_have_key_paths(session_and_runs):
     path.write_text(RUN_EFFECT.replace('localiser = "novel"', 'localiser = "familiar"'), encoding="utf-8")
     with pytest.raises(StudyError, match=r"regions.functional\[1\].localiser: no maps of contrast 'familiar'"):
         load_study(path)
+    text = RUN_EFFECT.split("[[regions.functional]]")[0] + RUN_EFFECT.split('split = "run"\n')[1]
+    path.write_text(text, encoding="utf-8")
+    with pytest.raises(StudyError, match=r"maps.run_effect: per-run maps serve only functional regions"):
+        load_study(path)
