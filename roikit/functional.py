@@ -229,7 +229,8 @@ def check_circularity(functional: Sequence[FunctionalRegion], tested: Sequence[s
             raise CircularAnalysisError(
                 f"functional region {f.name!r}: its localiser {f.localiser!r} and the tested contrast "
                 f"{shared[0]!r} come from the same data, so selecting and testing on them is circular (the effect "
-                f"is inflated); add {split_key} (maps with a {{run}} placeholder) or use a localiser from "
+                f"is inflated); add {split_key} (maps with a {{run}} placeholder"
+                f"{', or maps.run_effect' if entry == 'study' else ''}) or use a localiser from "
                 f"independent runs ({ok_key} runs it anyway, with a caution)")
         others = [c for c in tested if c != f.localiser]
         if others:
