@@ -34,7 +34,7 @@ from typing import Sequence
 import numpy as np
 import pandas as pd
 
-from ._options import noun
+from ._options import _ENTRY, noun
 from .errors import CautionWarning, CircularAnalysisError, CoverageWarning, UsageError
 from .extraction import STATISTICS, TRIM, _headers, _read_gathered, _validate_maps
 from .images import DEFAULT_ATOL
@@ -199,7 +199,7 @@ def search_voxels(regions: RealisedRegions, functional: Sequence[FunctionalRegio
 
 
 def check_circularity(functional: Sequence[FunctionalRegion], tested: Sequence[str], *, has_runs: bool,
-                      entry: str = "python") -> list[str]:
+                      entry: str | None = None) -> list[str]:
     """Refuse functional regions whose localiser shares data with a tested contrast; return caution texts.
 
     Refused (:class:`~roikit.errors.CircularAnalysisError`) unless ``circular_ok``: the localiser is itself a tested
@@ -214,8 +214,9 @@ def check_circularity(functional: Sequence[FunctionalRegion], tested: Sequence[s
         of the same data.
     """
     cautions = []
-    ok_key = "circular_ok = true" if entry == "study" else "circular_ok=True"
-    split_key = 'split = "run"' if entry == "study" else 'split="run"'
+    entry = entry or ("cli" if _ENTRY.get() == "cli" else "python")  # the spelling of the fixes: where the user is
+    ok_key = {"study": "circular_ok = true", "cli": "circular_ok in --functional"}.get(entry, "circular_ok=True")
+    split_key = {"study": 'split = "run"', "cli": "split=run to --functional"}.get(entry, 'split="run"')
     for f in functional:
         if f.split == "run":
             continue
@@ -229,7 +230,8 @@ def check_circularity(functional: Sequence[FunctionalRegion], tested: Sequence[s
             raise CircularAnalysisError(
                 f"functional region {f.name!r}: its localiser {f.localiser!r} and the tested contrast "
                 f"{shared[0]!r} come from the same data, so selecting and testing on them is circular (the effect "
-                f"is inflated); add {split_key} (maps with a {{run}} placeholder) or use a localiser from "
+                f"is inflated); add {split_key} (maps with a {{run}} placeholder{' in --maps' if entry == 'cli' else ''}) "
+                f"or use a localiser from "
                 f"independent runs ({ok_key} runs it anyway, with a caution)")
         others = [c for c in tested if c != f.localiser]
         if others:
@@ -300,6 +302,46 @@ def fold_values(localiser: dict, tested: dict, flat_index: np.ndarray, region: F
     return folds
 
 
+def _check_definitions(maps: pd.DataFrame, functional: Sequence[FunctionalRegion], *,
+                       contrasts: Sequence[str] | None, region_names: Sequence[str] | None,
+                       entry: str | None = None) -> tuple[list[str], list[str]]:
+    """Check functional regions against a (validated) maps table before any map is read.
+
+    Names unique, the search space a region of the set (when ``region_names`` is given), the localiser and the
+    tested contrasts among the maps', ``split`` only with runs, and the circularity guard. Returns the tested
+    contrasts and the cautions of :func:`check_circularity`.
+    """
+    cli = (entry or _ENTRY.get()) == "cli"
+    has_runs = "run_id" in maps.columns
+    all_contrasts = list(pd.unique(maps["contrast"]))
+    tested = list(contrasts) if contrasts is not None else all_contrasts
+    names = list(region_names) if region_names is not None else None
+    seen = set()
+    for f in functional:
+        if not isinstance(f, FunctionalRegion):
+            raise UsageError(f"functional regions must be FunctionalRegion, got {type(f).__name__}")
+        if f.name in seen or (names is not None and f.name in names):
+            raise UsageError(f"functional region {f.name!r}: the name is already used by another region; "
+                             "give it its own name")
+        seen.add(f.name)
+        if names is not None and f.within not in names:
+            raise UsageError(f"functional region {f.name!r}: search space within={f.within!r} is not a region of "
+                             f"the set ({', '.join(names[:8])}{' ...' if len(names) > 8 else ''})")
+        if f.localiser not in all_contrasts:
+            raise UsageError(f"functional region {f.name!r}: localiser {f.localiser!r} has no maps (contrasts "
+                             f"found: {', '.join(all_contrasts)})")
+        if f.split == "run" and not has_runs:
+            raise UsageError(f"functional region {f.name!r}: split=" + ("run" if cli else "\"run\"") + " needs maps "
+                             "with runs (a {run} placeholder in " + ("--maps" if cli else "the map pattern") + ", "
+                             "or a run_id column in the map list)")
+    missing = [c for c in tested if c not in all_contrasts]
+    if missing:
+        what = "--functional-contrasts" if cli else "tested contrasts"
+        raise UsageError(f"{what} {missing} have no maps (found: {', '.join(all_contrasts)})")
+    cautions = check_circularity(functional, tested, has_runs=has_runs, entry=entry)
+    return tested, cautions
+
+
 def extract_functional(
     maps: pd.DataFrame,
     regions: RealisedRegions,
@@ -309,7 +351,7 @@ def extract_functional(
     statistic: str = "mean",
     keep_zeros: bool = False,
     atol: float = DEFAULT_ATOL,
-    entry: str = "python",
+    entry: str | None = None,
     _gathered: dict | None = None,
 ) -> pd.DataFrame:
     """Values of the tested contrasts over each participant's own functional-region voxels.
@@ -345,30 +387,9 @@ def extract_functional(
         raise UsageError(f"statistic must be one of {', '.join(STATISTICS)}; got {statistic!r}")
     maps = _validate_maps(maps, source="maps table")
     has_runs = "run_id" in maps.columns
-    all_contrasts = list(pd.unique(maps["contrast"]))
-    tested = list(contrasts) if contrasts is not None else all_contrasts
+    tested, cautions = _check_definitions(maps, functional, contrasts=contrasts, region_names=list(regions.names),
+                                          entry=entry)
     names = list(regions.names)
-    seen = set()
-    for f in functional:
-        if not isinstance(f, FunctionalRegion):
-            raise UsageError(f"functional regions must be FunctionalRegion, got {type(f).__name__}")
-        if f.name in seen or f.name in names:
-            raise UsageError(f"functional region {f.name!r}: the name is already used by another region; "
-                             "give it its own name")
-        seen.add(f.name)
-        if f.within not in names:
-            raise UsageError(f"functional region {f.name!r}: search space within={f.within!r} is not a region of "
-                             f"the set ({', '.join(names[:8])}{' ...' if len(names) > 8 else ''})")
-        if f.localiser not in all_contrasts:
-            raise UsageError(f"functional region {f.name!r}: localiser {f.localiser!r} has no maps (contrasts "
-                             f"found: {', '.join(all_contrasts)})")
-        if f.split == "run" and not has_runs:
-            raise UsageError(f"functional region {f.name!r}: split=\"run\" needs maps with runs (a {{run}} "
-                             "placeholder in the map pattern, or a run_id column in the map list)")
-    missing = [c for c in tested if c not in all_contrasts]
-    if missing:
-        raise UsageError(f"tested contrasts {missing} have no maps (found: {', '.join(all_contrasts)})")
-    cautions = check_circularity(functional, tested, has_runs=has_runs, entry=entry)
 
     needed = set(tested) | {f.localiser for f in functional}
     maps = maps[maps["contrast"].isin(needed)].reset_index(drop=True)
