@@ -511,16 +511,22 @@ def collapse_runs(values: pd.DataFrame) -> pd.DataFrame:
     """
     if "run_id" not in values.columns:
         return values
+    attrs = values.attrs
+    values = pd.DataFrame(values)  # without attrs: pandas copies them into every intermediate (slow when large)
     has_run = values["run_id"].notna() & (values["run_id"].astype(str) != "nan")
     runs, rest = values[has_run], values[~has_run]
     keys = [c for c in ("participant_id", "session_id", "contrast", "region") if c in values.columns]
-    agg = {"value": ("value", lambda v: v.mean() if v.notna().all() else np.nan),
-           "n_voxels": ("n_voxels", "first"), "n_valid": ("n_valid", "min"), "n_folds": ("value", "size")}
+    # vectorised: a mean is n/a when any run's value is (count < size); observed=True: only combinations present
+    groups = runs.groupby(keys, sort=False, dropna=False, observed=True)
+    size = groups["value"].size()
+    complete = groups["value"].count() == size
+    agg = {"value": groups["value"].mean().where(complete), "n_voxels": groups["n_voxels"].first(),
+           "n_valid": groups["n_valid"].min(), "n_folds": size}
     if "variance" in values.columns:
-        agg["variance"] = ("variance", lambda v: v.mean() / len(v) if v.notna().all() else np.nan)
-    merged = runs.groupby(keys, sort=False, dropna=False).agg(**agg).reset_index()
+        agg["variance"] = (groups["variance"].mean() / size).where(groups["variance"].count() == size)
+    merged = pd.DataFrame(agg).reset_index()
     out = pd.concat([merged, rest.drop(columns=["run_id"])], ignore_index=True, sort=False)
     out = out[[c for c in values.columns if c in out.columns and c != "run_id"]
               + [c for c in out.columns if c not in values.columns]]
-    out.attrs = dict(values.attrs)
+    out.attrs = dict(attrs)
     return out

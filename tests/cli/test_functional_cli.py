@@ -252,7 +252,7 @@ def test_extract_with_functional_equals_extract_functional_and_reads_once(runs_d
     np.testing.assert_array_equal(table["value"].to_numpy()[len(alone):], direct["value"].to_numpy())
     np.testing.assert_array_equal(table["value"].to_numpy()[:len(alone)], alone["value"].to_numpy())
     assert table.attrs["roikit"]["functional"]["maps_read"] == 0
-    with pytest.raises(UsageError, match='add split="run" \(maps'):  # Python spelling outside the command line
+    with pytest.raises(UsageError, match=r'add split="run" \(maps'):  # Python spelling outside the command line
         extract(maps, regions, functional=[FunctionalRegion("f", "right caudate", "novel", top=3)])
 
 
