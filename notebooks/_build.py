@@ -882,7 +882,7 @@ with style():  # roikit's print style: 7-pt text, fonts embedded
     right.axhline(ALPHA, color="0.3", ls="--", lw=0.8, zorder=3)
     right.set_xticks(range(len(definitions)), ["circular", "cross-\\nvalidated"])
     right.set_ylim(0, 1)
-    right.set_ylabel(f"share with p < {ALPHA:g}".replace("0.", "."))
+    right.set_ylabel(f"share with $p$ < {ALPHA:g}".replace("0.", "."))
     right.set_title("false positives (dashed: 5%)")
 circular_fig
 '''),
