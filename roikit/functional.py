@@ -479,9 +479,10 @@ def extract_functional(
             f"voxels in the search space): {', '.join(short[:12])}" + (" ..." if len(short) > 12 else ""),
             findings=[{"problem": "functional region smaller than top", "participant_id": s.split("/")[0]}
                       for s in short]), stacklevel=2)
-    for text in cautions:
-        warnings.warn(CautionWarning(text, findings=[{"problem": "functional region selected on shared data"}]),
-                      stacklevel=2)
+    for text in cautions:  # each caution names its region first (check_circularity): one line per problem on stderr
+        region = next((f.name for f in functional if text.startswith(f"functional region {f.name!r}")), None)
+        warnings.warn(CautionWarning(text, findings=[{"problem": "functional region selected on shared data",
+                                                      **({"region": region} if region else {})}]), stacklevel=2)
     table = pd.DataFrame(rows)
     for c in ("n_voxels", "n_valid", "n_search", "n_folds"):
         if c in table.columns:
