@@ -24,7 +24,7 @@ def add_parser(subparsers) -> None:
                    help="path pattern with {subject}, optional {session}, {run} and {contrast}, e.g. "
                         "'maps/sub-{subject}_contrast-{contrast}_effect.nii.gz'")
     p.add_argument("--map-list", metavar="TSV",
-                   help="instead of --maps: a table of participant_id, contrast, [session_id], path, "
+                   help="instead of --maps: a table of participant_id, contrast, [session_id], [run_id], path, "
                         "[variance_path], [volume]")
     p.add_argument("--variance", metavar="PATTERN", help="path pattern of the matching variance maps")
     add_region_options(p)
