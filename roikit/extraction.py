@@ -837,8 +837,6 @@ def extract(
         if froi.attrs["roikit"]["circular_regions"]:
             provenance["circular_regions"] = froi.attrs["roikit"]["circular_regions"]
         table = pd.concat([table, froi], ignore_index=True, sort=False)
-        for column in ("n_search", "n_folds"):  # counts stay whole numbers beside the other regions' n/a
-            table[column] = table[column].astype("Int64")
         table.attrs["roikit"] = provenance
     return table
 

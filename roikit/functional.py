@@ -485,8 +485,8 @@ def extract_functional(
                                                       **({"region": region} if region else {})}]), stacklevel=2)
     table = pd.DataFrame(rows)
     for c in ("n_voxels", "n_valid", "n_search", "n_folds"):
-        if c in table.columns:
-            table[c] = table[c].astype(np.int64)
+        if c in table.columns:  # nullable integers: beside other regions' rows (n/a) they stay whole numbers
+            table[c] = table[c].astype(np.int64 if c in ("n_voxels", "n_valid") else "Int64")
     table.attrs["roikit"] = {
         "kind": "functional region values",
         "statistic": statistic,
