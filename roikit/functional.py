@@ -229,7 +229,7 @@ def check_circularity(functional: Sequence[FunctionalRegion], tested: Sequence[s
                 continue
             raise CircularAnalysisError(
                 f"functional region {f.name!r}: its localiser {f.localiser!r} and the tested contrast "
-                f"{shared[0]!r} come from the same data, so selecting and testing on them is circular (the effect "
+                f"{f.localiser if f.localiser in shared else shared[0]!r} come from the same data, so selecting and testing on them is circular (the effect "
                 f"is inflated); add {split_key} (maps with a {{run}} placeholder{' in --maps' if entry == 'cli' else ''}) "
                 f"or use a localiser from "
                 f"independent runs ({ok_key} runs it anyway, with a caution)")

@@ -172,7 +172,7 @@ def test_the_guard_refuses_before_any_map_is_read_in_command_line_language(runs_
     assert main(_extract_argv(runs_dir, out, "--functional", circular)) == 2
     err = capsys.readouterr().err
     assert err.count("\n") == 1 and err.startswith("roikit extract: error: functional region 'novelty fROI'")
-    for part in ("localiser 'novel'", "tested contrast", "split=run to --functional", "--maps",
+    for part in ("localiser 'novel'", "tested contrast 'novel'", "split=run to --functional", "--maps",
                  "independent runs", "circular_ok in --functional"):
         assert part in err
     assert "=True" not in err and 'split = "run"' not in err  # no Python or study-file spelling
