@@ -2,7 +2,7 @@
 
 The notebooks are generated, never edited by hand, so that a review reads this file. Run::
 
-    python notebooks/_build.py          # rewrites the five notebooks, outputs stripped
+    python notebooks/_build.py          # rewrites the six notebooks, outputs stripped
 
 Each notebook starts with a parameters cell (tagged ``parameters``) that points at a study file; with
 ``STUDY = None`` it uses the invented demo study (roikit.demo), written once into a shared folder
@@ -756,12 +756,174 @@ for name, fig in (("simulation_false_positives", false_positive_fig), ("simulati
 '''),
 ]
 
+# --------------------------------------------------------------------------------------------------------------
+# 06 circular analysis and functional regions
+# --------------------------------------------------------------------------------------------------------------
+
+NB06 = head("06 Circular analysis and functional regions", """
+For newcomers to the lab. A functional region picks each participant's own voxels: within a search space, the
+voxels that respond most to a localiser contrast. If the same data then measure the effect, the selection alone
+makes an effect appear, even where there is none: circular analysis, or "double dipping" (Kriegeskorte, Simmons,
+Bellgowan & Baker, 2009; Vul, Harris, Winkielman & Pashler, 2009). This notebook shows it on pure noise, next to the
+honest alternative roikit offers: select on some runs, measure on a held-out run (`split = "run"`).
+""") + [
+    md("""
+## Pure noise, many search spaces
+
+We write tiny NIfTI maps to a temporary folder: for every participant, two runs of one contrast whose every voxel
+is random noise (mean 0, SD 1). There is **no effect anywhere**. The grid is cut into many small search spaces
+(an atlas with one label per search space), so each one is an independent little experiment, and roikit
+extracts them all in one pass, exactly as it would real maps.
+"""),
+    code('''
+# Simulation settings (small, so the notebook runs in seconds)
+SPACES = 200  # search spaces, each an independent experiment
+VOXELS = 50  # voxels per search space
+N = 16  # participants
+TOP = "10%"  # each participant's functional region: the top 10% of the search space's voxels (5 voxels)
+SEED = 2009
+ALPHA = 0.05
+
+import tempfile
+
+import nibabel as nib
+
+from roikit.errors import CircularAnalysisError
+from roikit.extraction import extract, find_maps
+from roikit.functional import FunctionalRegion, collapse_runs
+from roikit.regions import Atlas, RegionSet
+from roikit.stats import run_design
+
+rng = np.random.default_rng(SEED)
+folder = Path(tempfile.mkdtemp(prefix="roikit-circular-"))
+shape, affine = (SPACES, VOXELS, 1), np.diag([2.0, 2.0, 2.0, 1.0])  # one search space per row of voxels
+labels = np.repeat(np.arange(1, SPACES + 1), VOXELS).reshape(shape)
+nib.save(nib.Nifti1Image(labels.astype(np.int16), affine), folder / "spaces.nii")
+space_names = [f"space {k:03d}" for k in range(1, SPACES + 1)]
+pd.DataFrame({"index": range(1, SPACES + 1), "name": space_names}).to_csv(folder / "spaces.tsv", sep="\\t",
+                                                                           index=False)
+for i in range(1, N + 1):
+    for run in (1, 2):
+        noise = rng.standard_normal(shape).astype(np.float32)  # no effect anywhere
+        nib.save(nib.Nifti1Image(noise, affine), folder / f"sub-{i:02d}_run-{run}_contrast-task.nii")
+noise_maps = find_maps("sub-{subject}_run-{run}_contrast-{contrast}.nii", root=folder)
+search_spaces = RegionSet([Atlas(folder / "spaces.nii", folder / "spaces.tsv")])
+print(f"{len(noise_maps)} noise maps ({N} participants x 2 runs), {SPACES} search spaces of {VOXELS} voxels")
+'''),
+    md("""
+## Two ways to define the same functional region
+
+In every search space, each participant's region is the top 10% of voxels by the contrast `task`, and the region's
+value is the same contrast measured over those voxels.
+
+- **Circular**: select on both runs, measure on both runs. roikit refuses this (the guard below) unless you insist
+  with `circular_ok=True`, and then every output carries a caution.
+- **Cross-validated** (`split="run"`): select on run 2, measure on run 1; select on run 1, measure on run 2; the
+  participant's value is the mean of the two folds. Selection and measurement never see the same noise.
+"""),
+    code('''
+try:  # the guard: refused before any map is read, with the fixes in the message
+    extract(noise_maps, search_spaces, functional=[FunctionalRegion("fROI", "space 001", "task", top=TOP)])
+except CircularAnalysisError as refusal:
+    print("refused:", refusal)
+
+circular = [FunctionalRegion(f"{n} circular", n, "task", top=TOP, circular_ok=True) for n in space_names]
+held_out = [FunctionalRegion(f"{n} cross-validated", n, "task", top=TOP, split="run") for n in space_names]
+with warnings.catch_warnings(record=True) as cautions:
+    warnings.simplefilter("always")
+    noise_values = extract(noise_maps, search_spaces, functional=circular + held_out, progress=False)
+print(f"{len(cautions)} cautions, one per circular region, e.g.: {cautions[0].message}")
+
+# one value per participant (the mean over runs, as roikit run does), then a one-sample t-test per region
+per_participant = collapse_runs(noise_values)
+with warnings.catch_warnings():
+    warnings.simplefilter("ignore")  # outlier and normality notes on pure noise are beside the point here
+    tests = run_design(per_participant, "one-sample", contrast="task", correct=None)
+functional_tests = tests[tests["region"].str.endswith(("circular", "cross-validated"))].copy()
+functional_tests["definition"] = np.where(functional_tests["region"].str.endswith("circular"), "circular",
+                                          "cross-validated (split by run)")
+selected = noise_values.loc[noise_values["n_search"].notna(), "n_voxels"]
+print(f"voxels selected per participant and search space: {selected.min()} to {selected.max()}")
+'''),
+    md("""
+## Side by side
+
+Left: the group's mean effect in each of the search spaces (one dot per search space). Right: the share of search
+spaces where the one-sample *t*-test declares an effect (p < .05), with a 95% Monte Carlo interval (1.96 standard
+errors); an honest test stays near the dashed 5% line, because there is nothing to find.
+"""),
+    drawing('''
+summary = functional_tests.groupby("definition").agg(
+    search_spaces=("estimate", "size"), mean_estimate=("estimate", "mean"), sd_estimate=("estimate", "std"),
+    rejection_rate=("p", lambda p: float((p < ALPHA).mean()))).reset_index()
+summary["rejection_mc_se"] = np.sqrt(summary["rejection_rate"] * (1 - summary["rejection_rate"])
+                                     / summary["search_spaces"])
+display(summary.round(3))
+
+definitions = ["circular", "cross-validated (split by run)"]
+colors = {"circular": GROUP_COLORS[1], "cross-validated (split by run)": GROUP_COLORS[0]}
+with style():  # roikit's print style: 7-pt text, fonts embedded
+    circular_fig = Figure(figsize=(180 * MM, 70 * MM), layout="constrained")
+    left, right = circular_fig.subplots(1, 2, width_ratios=(2, 1))
+    jitter = np.random.default_rng(0)
+    for k, name in enumerate(definitions):
+        estimates = functional_tests.loc[functional_tests["definition"] == name, "estimate"]
+        left.scatter(estimates, k + jitter.uniform(-0.25, 0.25, len(estimates)), s=6, alpha=0.6,
+                     color=colors[name], marker=GROUP_MARKERS[k], linewidths=0)
+        left.plot([estimates.mean()] * 2, [k - 0.35, k + 0.35], color="black", lw=1.2)
+    left.axvline(0, color="0.3", ls="--", lw=0.8)  # the truth: no effect
+    left.set_yticks(range(len(definitions)), definitions)
+    left.set_ylim(len(definitions) - 0.5, -0.5)
+    left.set_xlabel(f"group mean effect per search space (a.u.; {N} participants)")
+    left.set_title(f"{SPACES} search spaces of pure noise (line: mean)")
+    rates = summary.set_index("definition").loc[definitions]
+    right.bar(range(len(definitions)), rates["rejection_rate"], yerr=1.96 * rates["rejection_mc_se"],
+              color=[colors[d] for d in definitions], capsize=3)
+    right.axhline(ALPHA, color="0.3", ls="--", lw=0.8, zorder=3)
+    right.set_xticks(range(len(definitions)), ["circular", "cross-\\nvalidated"])
+    right.set_ylim(0, 1)
+    right.set_ylabel(f"share with $p$ < {ALPHA:g}".replace("0.", "."))
+    right.set_title("false positives (dashed: 5%)")
+circular_fig
+'''),
+    md("""
+**What happened.** On data with no effect at all, the circular region reports a large, consistent "effect" in every
+search space, and the *t*-test is fooled every time: choosing the voxels where the noise happened to be high, then
+measuring that same noise, guarantees a high value. (The expected size is the mean of the top 10% of a normal
+sample, about 1.7 SD, times the SD of the two runs' mean, 1/sqrt(2): roughly 1.2.) The cross-validated region
+selects on one run and measures the other, whose noise is independent of the selection: its estimates centre on
+zero, and it declares an effect in about 5% of the search spaces, as a test at the 5% level should (with 200
+search spaces, anything from about 2% to 8% is consistent with 5%).
+
+**In your own study.** Define functional regions with `split = "run"` in the study file (maps with a `{run}`
+placeholder), or with a localiser from runs the tested contrasts do not use. roikit refuses a circular definition
+before any work starts; `circular_ok = true` runs it anyway and puts a caution in every table, figure note,
+methods text and report, and its results describe these data only. A different contrast from the same runs is not
+refused but cautioned: whether it is independent of the localiser is your argument to make (Kriegeskorte et al.,
+2009).
+
+**References.** Kriegeskorte, N., Simmons, W. K., Bellgowan, P. S. F., & Baker, C. I. (2009). Circular analysis in
+systems neuroscience: The dangers of double dipping. *Nature Neuroscience, 12*(5), 535-540.
+Vul, E., Harris, C., Winkielman, P., & Pashler, H. (2009). Puzzlingly high correlations in fMRI studies of emotion,
+personality, and social cognition. *Perspectives on Psychological Science, 4*(3), 274-290.
+"""),
+    md("## Save where the report expects them"),
+    code('''
+print(write_table(TABLES / "simulation_circular.tsv", summary, overwrite=OVERWRITE, sidecar={
+    "description": f"{SPACES} search spaces of pure noise ({N} participants, 2 runs, top {TOP} of {VOXELS} voxels): "
+                   f"group mean effect and share with p < {ALPHA} (one-sample t) for a circular and a "
+                   "cross-validated (split by run) functional region"}))
+print(save_figure(circular_fig, FIGURES / "simulation_circular", formats=FIGURE_FORMATS, overwrite=OVERWRITE))
+'''),
+]
+
 NOTEBOOKS = {
     "01_from_maps_to_a_region_table.ipynb": NB01,
     "02_is_there_an_effect.ipynb": NB02,
     "03_two_groups_and_covariates.ipynb": NB03,
     "04_repeated_measures_and_stimuli.ipynb": NB04,
     "05_why_participants_are_random_effects.ipynb": NB05,
+    "06_circular_analysis_and_functional_regions.ipynb": NB06,
 }
 
 

@@ -166,7 +166,9 @@ OPTIONS: tuple[Option, ...] = (
     Option("citation", "regions", "str", "a reference for the atlas, cited in the methods text", flag="",
            example='"Author et al., 2020"'),
     Option("functional", "regions", "table", "participant-specific regions: [[regions.functional]] name, within "
-           "(search space), localiser (contrast), top or threshold, split, circular_ok, minimum", flag=""),
+           "(search space), localiser (contrast), top or threshold, split, circular_ok, minimum (command line of "
+           "roikit extract: NAME:within=REGION,localiser=CONTRAST,top=10%,split=run, the same keys, repeatable)",
+           metavar="NAME:KEY=VALUE,..."),
     Option("name", "regions.sphere", "str", "region name", flag="", example='"prior peak"'),
     Option("center", "regions.sphere", "coords", "three numbers [x, y, z] in world mm", flag="",
            example="[30.0, -20.0, -14.0]"),
@@ -288,6 +290,9 @@ OPTIONS: tuple[Option, ...] = (
     Option("confidence", "analysis", "float", "confidence level of the intervals", default=0.95, minimum=0,
            maximum=1, exclusive=True, metavar="LEVEL", example="0.95"),
     # command line only
+    Option("functional_contrasts", "", "names", "roikit extract with --functional: the contrasts measured over "
+           "the functional regions (default every contrast of the maps; a study file measures the analysed ones)",
+           metavar="A,B"),
     Option("overwrite", "", "bool", "replace existing output files", default=False),
     Option("quiet", "", "bool", "no progress bar, no warnings on stderr (they stay in the output files)",
            default=False),
@@ -457,16 +462,19 @@ def _range_text(o: Option) -> str:
 
 
 def add_arguments(parser, section: str, *, group_title: str | None = None, skip: Iterable[str] = (),
-                  only_design: bool | None = None, designs_text: dict | None = None) -> None:
+                  only_design: bool | None = None, designs_text: dict | None = None,
+                  only: Iterable[str] | None = None) -> None:
     """Add the command-line options of one section to an argparse parser (or argument group).
 
     Values keep their study-file types (``names`` stay comma-separated strings; the design parses them), and a
-    flag not given stays ``None`` (so the design's own default applies, as in a study file).
+    flag not given stays ``None`` (so the design's own default applies, as in a study file). ``table`` options
+    are repeatable (a list of the texts given). ``only`` adds just these options of the section.
     """
     target = parser.add_argument_group(group_title) if group_title else parser
     skip = set(skip)
+    only = None if only is None else set(only)
     for o in options_in(section):
-        if not o.cli or o.name in skip or o.py in skip:
+        if not o.cli or o.name in skip or o.py in skip or (only is not None and o.name not in only):
             continue
         if only_design is not None and o.design_option != only_design:
             continue
@@ -483,6 +491,8 @@ def add_arguments(parser, section: str, *, group_title: str | None = None, skip:
             kwargs.update(action="store_false" if o.cli.startswith("--no-") else "store_true", default=None)
         else:
             kwargs.update(metavar=o.metavar or o.name.upper(), default=None)
+            if o.type == "table":
+                kwargs["action"] = "append"
             if o.type == "int":
                 kwargs["type"] = int
             elif o.type == "float":

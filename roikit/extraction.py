@@ -604,6 +604,8 @@ def extract(
     batch_size: int | None = None,
     progress: bool | None = None,
     atol: float = DEFAULT_ATOL,
+    functional: Sequence = (),
+    functional_contrasts: Sequence[str] | None = None,
     _sink=None,
     _chunk_maps: int = 64,
     _keep: tuple | None = None,
@@ -637,14 +639,21 @@ def extract(
         Show a progress bar (default: only for 20 maps or more).
     atol : float
         Tolerance (mm) when comparing affines.
+    functional : sequence of FunctionalRegion, optional
+        Participant-specific regions (:class:`roikit.functional.FunctionalRegion`); their rows
+        (:func:`roikit.functional.extract_functional`) follow the other regions', with the columns of
+        ``FUNCTIONAL_COLUMNS``. The circularity guard runs before any map is read; the search spaces' voxels
+        come from the same read as the regions' (no map is read twice).
+    functional_contrasts : sequence of str, optional
+        The contrasts measured over the functional regions (default: every contrast of ``maps``).
 
     Returns
     -------
     DataFrame
         The region values table: ``participant_id``, ``session_id`` (when the maps have sessions),
-        ``contrast``, ``region``, ``value``, ``n_voxels``, ``n_valid``, ``variance`` (with variance
-        maps). One row per map x region, maps sorted by participant, session and contrast, regions in the
-        region set's order. Provenance is in
+        ``run_id`` (when they have runs), ``contrast``, ``region``, ``value``, ``n_voxels``, ``n_valid``,
+        ``variance`` (with variance maps). One row per map x region, maps sorted by participant, session and
+        contrast, regions in the region set's order; then the functional regions' rows. Provenance is in
         ``.attrs["roikit"]`` (JSON-able dict).
 
     Raises
@@ -669,6 +678,13 @@ def extract(
     if not isinstance(n_jobs, (int, np.integer)) or n_jobs < 1:
         raise UsageError(f"n_jobs must be a positive integer, got {n_jobs!r}")
     maps = _validate_maps(maps, source="maps table")
+    functional = list(functional or ())
+    if functional:  # the circularity guard and the definitions' checks: before any map is read
+        from .functional import _check_definitions
+
+        if _sink is not None or _keep is not None:
+            raise UsageError("functional regions are not written as extraction goes; extract, then write_values")
+        _check_definitions(maps, functional, contrasts=functional_contrasts, region_names=None)
     tasks, grid = _headers(maps, atol=atol)
     if isinstance(regions, RegionSet):
         region_sources = regions.describe()
@@ -680,6 +696,11 @@ def extract(
             raise UsageError("regions were realised on another grid than the maps'; pass the RegionSet instead")
     else:
         raise UsageError(f"regions must be a RegionSet or RealisedRegions, got {type(regions).__name__}")
+    if functional:
+        from .functional import _check_definitions, search_voxels
+
+        _check_definitions(maps, functional, contrasts=functional_contrasts, region_names=list(realised.names))
+        _keep = (search_voxels(realised, functional), {})
     index = _Index.build(realised, weighted=statistic == "weighted-mean")
     if _keep is not None:  # (flat voxels, sink): also return these voxels' values per map (a single read)
         index.keep = np.searchsorted(index.uniq, np.asarray(_keep[0], dtype=np.int64))
@@ -804,6 +825,19 @@ def extract(
         **realised.provenance(),
         "inputs": _input_records(maps, tasks, digests, vdigests),
     }
+    if functional:
+        from .functional import extract_functional
+
+        gathered = {(row["path"], task.volume): _keep[1][i]
+                    for i, (row, task) in enumerate(zip(maps.to_dict("records"), tasks)) if i in _keep[1]}
+        froi = extract_functional(maps, realised, functional, contrasts=functional_contrasts, statistic=statistic,
+                                  keep_zeros=keep_zeros, atol=atol, _gathered=gathered)
+        provenance = table.attrs["roikit"]
+        provenance["functional"] = froi.attrs["roikit"]["functional"]
+        if froi.attrs["roikit"]["circular_regions"]:
+            provenance["circular_regions"] = froi.attrs["roikit"]["circular_regions"]
+        table = pd.concat([table, froi], ignore_index=True, sort=False)
+        table.attrs["roikit"] = provenance
     return table
 
 
@@ -961,7 +995,7 @@ def extract_to_file(path: str | os.PathLike, maps: pd.DataFrame, regions: Region
     from ._tables import _json_bytes, arrow_table, bids_sidecar, is_parquet, parquet_options, sidecar_path
 
     path = Path(path)
-    if not is_parquet(path):
+    if not is_parquet(path) or options.get("functional"):  # functional rows come after every map: a whole table
         values = extract(maps, regions, **options)
         written = write_values(path, values, overwrite=overwrite)
         return written, {"rows": len(values), "missing": int(values["value"].isna().sum()),
@@ -1006,6 +1040,8 @@ def write_values(path: str | os.PathLike, values: pd.DataFrame, *, overwrite: bo
     again (a rerun) needs no ``overwrite``; replacing files roikit did not write (or that changed since) does.
     Returns the path written.
     """
-    columns = {c: VALUE_COLUMNS.get(c, "") for c in values.columns}
+    from .functional import FUNCTIONAL_COLUMNS
+
+    columns = {c: {**VALUE_COLUMNS, **FUNCTIONAL_COLUMNS}.get(c, "") for c in values.columns}
     sidecar = {"columns": columns, "provenance": values.attrs.get("roikit", {})}
     return write_table(path, values, sidecar=sidecar, overwrite=overwrite, writer=VALUES_WRITER)

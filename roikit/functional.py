@@ -34,7 +34,7 @@ from typing import Sequence
 import numpy as np
 import pandas as pd
 
-from ._options import noun
+from ._options import _ENTRY, noun
 from .errors import CautionWarning, CircularAnalysisError, CoverageWarning, UsageError
 from .extraction import STATISTICS, TRIM, _headers, _read_gathered, _validate_maps
 from .images import DEFAULT_ATOL
@@ -199,7 +199,7 @@ def search_voxels(regions: RealisedRegions, functional: Sequence[FunctionalRegio
 
 
 def check_circularity(functional: Sequence[FunctionalRegion], tested: Sequence[str], *, has_runs: bool,
-                      entry: str = "python") -> list[str]:
+                      entry: str | None = None) -> list[str]:
     """Refuse functional regions whose localiser shares data with a tested contrast; return caution texts.
 
     Refused (:class:`~roikit.errors.CircularAnalysisError`) unless ``circular_ok``: the localiser is itself a tested
@@ -214,8 +214,9 @@ def check_circularity(functional: Sequence[FunctionalRegion], tested: Sequence[s
         of the same data.
     """
     cautions = []
-    ok_key = "circular_ok = true" if entry == "study" else "circular_ok=True"
-    split_key = 'split = "run"' if entry == "study" else 'split="run"'
+    entry = entry or ("cli" if _ENTRY.get() == "cli" else "python")  # the spelling of the fixes: where the user is
+    ok_key = {"study": "circular_ok = true", "cli": "circular_ok in --functional"}.get(entry, "circular_ok=True")
+    split_key = {"study": 'split = "run"', "cli": "split=run to --functional"}.get(entry, 'split="run"')
     for f in functional:
         if f.split == "run":
             continue
@@ -228,9 +229,10 @@ def check_circularity(functional: Sequence[FunctionalRegion], tested: Sequence[s
                 continue
             raise CircularAnalysisError(
                 f"functional region {f.name!r}: its localiser {f.localiser!r} and the tested contrast "
-                f"{shared[0]!r} come from the same data, so selecting and testing on them is circular (the effect "
-                f"is inflated); add {split_key} (maps with a {{run}} placeholder"
-                f"{', or maps.run_effect' if entry == 'study' else ''}) or use a localiser from "
+                f"{f.localiser if f.localiser in shared else shared[0]!r} come from the same data, so selecting and "
+                f"testing on them is circular (the effect is inflated); add {split_key} (maps with a {{run}} placeholder"
+                f"{' in --maps' if entry == 'cli' else ''}{', or maps.run_effect' if entry == 'study' else ''}) "
+                f"or use a localiser from "
                 f"independent runs ({ok_key} runs it anyway, with a caution)")
         others = [c for c in tested if c != f.localiser]
         if others:
@@ -301,6 +303,46 @@ def fold_values(localiser: dict, tested: dict, flat_index: np.ndarray, region: F
     return folds
 
 
+def _check_definitions(maps: pd.DataFrame, functional: Sequence[FunctionalRegion], *,
+                       contrasts: Sequence[str] | None, region_names: Sequence[str] | None,
+                       entry: str | None = None) -> tuple[list[str], list[str]]:
+    """Check functional regions against a (validated) maps table before any map is read.
+
+    Names unique, the search space a region of the set (when ``region_names`` is given), the localiser and the
+    tested contrasts among the maps', ``split`` only with runs, and the circularity guard. Returns the tested
+    contrasts and the cautions of :func:`check_circularity`.
+    """
+    cli = (entry or _ENTRY.get()) == "cli"
+    has_runs = "run_id" in maps.columns
+    all_contrasts = list(pd.unique(maps["contrast"]))
+    tested = list(contrasts) if contrasts is not None else all_contrasts
+    names = list(region_names) if region_names is not None else None
+    seen = set()
+    for f in functional:
+        if not isinstance(f, FunctionalRegion):
+            raise UsageError(f"functional regions must be FunctionalRegion, got {type(f).__name__}")
+        if f.name in seen or (names is not None and f.name in names):
+            raise UsageError(f"functional region {f.name!r}: the name is already used by another region; "
+                             "give it its own name")
+        seen.add(f.name)
+        if names is not None and f.within not in names:
+            raise UsageError(f"functional region {f.name!r}: search space within={f.within!r} is not a region of "
+                             f"the set ({', '.join(names[:8])}{' ...' if len(names) > 8 else ''})")
+        if f.localiser not in all_contrasts:
+            raise UsageError(f"functional region {f.name!r}: localiser {f.localiser!r} has no maps (contrasts "
+                             f"found: {', '.join(all_contrasts)})")
+        if f.split == "run" and not has_runs:
+            raise UsageError(f"functional region {f.name!r}: split=" + ("run" if cli else "\"run\"") + " needs maps "
+                             "with runs (a {run} placeholder in " + ("--maps" if cli else "the map pattern") + ", "
+                             "or a run_id column in the map list)")
+    missing = [c for c in tested if c not in all_contrasts]
+    if missing:
+        what = "--functional-contrasts" if cli else "tested contrasts"
+        raise UsageError(f"{what} {missing} have no maps (found: {', '.join(all_contrasts)})")
+    cautions = check_circularity(functional, tested, has_runs=has_runs, entry=entry)
+    return tested, cautions
+
+
 def extract_functional(
     maps: pd.DataFrame,
     regions: RealisedRegions,
@@ -310,7 +352,7 @@ def extract_functional(
     statistic: str = "mean",
     keep_zeros: bool = False,
     atol: float = DEFAULT_ATOL,
-    entry: str = "python",
+    entry: str | None = None,
     _gathered: dict | None = None,
 ) -> pd.DataFrame:
     """Values of the tested contrasts over each participant's own functional-region voxels.
@@ -346,30 +388,9 @@ def extract_functional(
         raise UsageError(f"statistic must be one of {', '.join(STATISTICS)}; got {statistic!r}")
     maps = _validate_maps(maps, source="maps table")
     has_runs = "run_id" in maps.columns
-    all_contrasts = list(pd.unique(maps["contrast"]))
-    tested = list(contrasts) if contrasts is not None else all_contrasts
+    tested, cautions = _check_definitions(maps, functional, contrasts=contrasts, region_names=list(regions.names),
+                                          entry=entry)
     names = list(regions.names)
-    seen = set()
-    for f in functional:
-        if not isinstance(f, FunctionalRegion):
-            raise UsageError(f"functional regions must be FunctionalRegion, got {type(f).__name__}")
-        if f.name in seen or f.name in names:
-            raise UsageError(f"functional region {f.name!r}: the name is already used by another region; "
-                             "give it its own name")
-        seen.add(f.name)
-        if f.within not in names:
-            raise UsageError(f"functional region {f.name!r}: search space within={f.within!r} is not a region of "
-                             f"the set ({', '.join(names[:8])}{' ...' if len(names) > 8 else ''})")
-        if f.localiser not in all_contrasts:
-            raise UsageError(f"functional region {f.name!r}: localiser {f.localiser!r} has no maps (contrasts "
-                             f"found: {', '.join(all_contrasts)})")
-        if f.split == "run" and not has_runs:
-            raise UsageError(f"functional region {f.name!r}: split=\"run\" needs maps with runs (a {{run}} "
-                             "placeholder in the map pattern, or a run_id column in the map list)")
-    missing = [c for c in tested if c not in all_contrasts]
-    if missing:
-        raise UsageError(f"tested contrasts {missing} have no maps (found: {', '.join(all_contrasts)})")
-    cautions = check_circularity(functional, tested, has_runs=has_runs, entry=entry)
 
     needed = set(tested) | {f.localiser for f in functional}
     maps = maps[maps["contrast"].isin(needed)].reset_index(drop=True)
@@ -459,13 +480,14 @@ def extract_functional(
             f"voxels in the search space): {', '.join(short[:12])}" + (" ..." if len(short) > 12 else ""),
             findings=[{"problem": "functional region smaller than top", "participant_id": s.split("/")[0]}
                       for s in short]), stacklevel=2)
-    for text in cautions:
-        warnings.warn(CautionWarning(text, findings=[{"problem": "functional region selected on shared data"}]),
-                      stacklevel=2)
+    for text in cautions:  # each caution names its region first (check_circularity): one line per problem on stderr
+        region = next((f.name for f in functional if text.startswith(f"functional region {f.name!r}")), None)
+        warnings.warn(CautionWarning(text, findings=[{"problem": "functional region selected on shared data",
+                                                      **({"region": region} if region else {})}]), stacklevel=2)
     table = pd.DataFrame(rows)
     for c in ("n_voxels", "n_valid", "n_search", "n_folds"):
-        if c in table.columns:
-            table[c] = table[c].astype(np.int64)
+        if c in table.columns:  # nullable integers: beside other regions' rows (n/a) they stay whole numbers
+            table[c] = table[c].astype(np.int64 if c in ("n_voxels", "n_valid") else "Int64")
     table.attrs["roikit"] = {
         "kind": "functional region values",
         "statistic": statistic,
@@ -491,16 +513,22 @@ def collapse_runs(values: pd.DataFrame) -> pd.DataFrame:
     """
     if "run_id" not in values.columns:
         return values
+    attrs = values.attrs
+    values = pd.DataFrame(values)  # without attrs: pandas copies them into every intermediate (slow when large)
     has_run = values["run_id"].notna() & (values["run_id"].astype(str) != "nan")
     runs, rest = values[has_run], values[~has_run]
     keys = [c for c in ("participant_id", "session_id", "contrast", "region") if c in values.columns]
-    agg = {"value": ("value", lambda v: v.mean() if v.notna().all() else np.nan),
-           "n_voxels": ("n_voxels", "first"), "n_valid": ("n_valid", "min"), "n_folds": ("value", "size")}
+    # vectorised: a mean is n/a when any run's value is (count < size); observed=True: only combinations present
+    groups = runs.groupby(keys, sort=False, dropna=False, observed=True)
+    size = groups["value"].size()
+    complete = groups["value"].count() == size
+    agg = {"value": groups["value"].mean().where(complete), "n_voxels": groups["n_voxels"].first(),
+           "n_valid": groups["n_valid"].min(), "n_folds": size}
     if "variance" in values.columns:
-        agg["variance"] = ("variance", lambda v: v.mean() / len(v) if v.notna().all() else np.nan)
-    merged = runs.groupby(keys, sort=False, dropna=False).agg(**agg).reset_index()
+        agg["variance"] = (groups["variance"].mean() / size).where(groups["variance"].count() == size)
+    merged = pd.DataFrame(agg).reset_index()
     out = pd.concat([merged, rest.drop(columns=["run_id"])], ignore_index=True, sort=False)
     out = out[[c for c in values.columns if c in out.columns and c != "run_id"]
               + [c for c in out.columns if c not in values.columns]]
-    out.attrs = dict(values.attrs)
+    out.attrs = dict(attrs)
     return out

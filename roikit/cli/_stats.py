@@ -72,6 +72,18 @@ def run(args: argparse.Namespace) -> int:
         raise UsageError(f"--correct {shared.get('correct')}: fwe (max-statistic permutation family-wise p) needs "
                          "--permutations N, e.g. --permutations 5000")
     values = read_table(args.values)
+    runs = None
+    if "run_id" in values.columns:  # per-run values: one value per participant, as roikit run analyses them
+        from ..functional import collapse_runs
+
+        n_in = len(values)
+        n_runs = int(values["run_id"].dropna().nunique())
+        values = collapse_runs(values)
+        runs = {"averaged_over_runs": True, "runs": n_runs, "rows_read": n_in, "rows_analysed": len(values),
+                "note": "The values table has runs (run_id): each participant's value per contrast and region is "
+                        "the mean over runs, its variance the mean of the runs' variances divided by the number of "
+                        "runs (independent runs), as roikit run analyses them (roikit.functional.collapse_runs); "
+                        "functional regions' rows are already means over their folds."}
     participants = (
         read_table(args.participants, label_columns=("participant_id",)) if args.participants else None
     )
@@ -124,6 +136,7 @@ def run(args: argparse.Namespace) -> int:
             "confidence": confidence,
         },
         "inputs": inputs,
+        **({"runs": runs} if runs else {}),
         "software": {"roikit": __version__},
         "note": "p_holm and p_fdr adjust across the regions of the same design and term (family_size). "
         "For research group analysis, not for clinical decisions.",
@@ -131,5 +144,7 @@ def run(args: argparse.Namespace) -> int:
     path = write_table(out, results, sidecar=sidecar, overwrite=args.overwrite, writer=_WRITER)
     if not args.quiet:
         sys.stderr.write(f"roikit stats: {args.design}, {plural(results['region'].nunique(), 'region')} x "
-                         f"{plural(results['term'].nunique(), 'term')} -> {path}\n")
+                         f"{plural(results['term'].nunique(), 'term')} -> {path}"
+                         + (f" (values averaged over {plural(runs['runs'], 'run')} per participant, contrast and "
+                            "region, as roikit run does)" if runs else "") + "\n")
     return 0

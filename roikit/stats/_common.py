@@ -217,7 +217,9 @@ def check_values(values: pd.DataFrame, *, variance: bool = False) -> pd.DataFram
             f"{', '.join(map(str, values.columns))}; "
             f"expected {', '.join(required)} (as written by roikit extract)"
         )
-    values = values.copy(deep=False)
+    # a new frame over the same data, without attrs: designs need no provenance, and pandas deep-copies attrs into
+    # every intermediate table (slow with a large provenance, e.g. functional regions' selections)
+    values = pd.DataFrame(values).copy(deep=False)
     for column in ("participant_id", "session_id", "contrast", "region"):
         if column in values.columns and not pd.api.types.is_string_dtype(values[column]):
             col = values[column]
