@@ -13,10 +13,12 @@ Two readers share one contract:
   of a 4D file) and returns a 3D float array and its grid;
 * :func:`read_flat` is the fast path used by extraction: it parses the header
   with nibabel, reads the file's bytes, decompresses gzip in one call with the
-  exact output size (through ISA-L when the optional ``isal`` package is
-  installed, else zlib; both give identical bytes), and views the voxels
-  through the header's offset, data type and scaling. Uncompressed ``.nii``
-  files are memory-mapped.
+  exact output size (through libdeflate, the ``deflate`` package, a regular
+  dependency; zlib when it cannot be imported or declines a file; both give
+  identical bytes), and views the voxels through the header's offset, data
+  type and scaling. Uncompressed ``.nii`` files are memory-mapped. One volume
+  of a 4D ``.nii.gz`` is streamed (ISA-L's gzip reader when the optional
+  ``isal`` package is installed, else Python's).
 """
 
 from __future__ import annotations
@@ -34,11 +36,15 @@ import numpy as np
 
 from .errors import GridMismatchError, ImageFormatError, InputFileError, RoikitError, UsageError
 
-try:  # optional accelerated gzip (the `fast` extra); identical output to zlib
+try:  # libdeflate: whole-buffer gzip decompression, about twice as fast as zlib here (benchmarks/bench_extract.py)
+    import deflate as _deflate
+except ImportError:  # pragma: no cover - a regular dependency; zlib (identical bytes) when it is missing
+    _deflate = None
+
+try:  # optional streaming gzip reader (the `fast` extra) for 4D files and verify_data; identical output to zlib
     from isal import igzip as _fast_gzip
-    from isal import isal_zlib as _fast_zlib
 except ImportError:  # pragma: no cover - depends on the environment
-    _fast_gzip = _fast_zlib = None
+    _fast_gzip = None
 
 __all__ = [
     "Grid",
@@ -521,20 +527,30 @@ def load_map(path, *, volume: int | None = None) -> tuple[np.ndarray, Grid]:
 # --------------------------------------------------------------------------------------------------
 
 
-def _gunzip(raw: bytes, path, needed: int) -> bytes:
+def _gunzip(raw: bytes, path, needed: int) -> bytes | bytearray:
     """Decompress a gzip file's bytes in one call with the exact output size.
 
     ISIZE, the last 4 bytes of a gzip file, is the uncompressed size modulo 2**32 (RFC 1952,
-    section 2.3.1); it sizes the output buffer so the decompressor allocates once. A one-shot
-    decompression reads only the first gzip member; when that gives fewer than the ``needed``
-    bytes (a file of several concatenated members), the member-aware decompressor is used.
-    ISA-L (optional ``isal`` package) and zlib give identical bytes.
+    section 2.3.1); it sizes the output buffer so the decompressor allocates once, and it is not
+    trusted beyond what gzip can hold (:data:`GZIP_MAX_RATIO`). libdeflate (the ``deflate``
+    package) decompresses the first gzip member into exactly ISIZE bytes and checks the member's
+    CRC-32 and length. Whenever it cannot be used or declines (no ``deflate``; ISIZE smaller than
+    the bytes needed: a file above 4 GiB whose ISIZE wrapped around, or several concatenated
+    members; corrupt or truncated data), zlib decides: one call, then the member-aware
+    decompressor when the first member holds fewer than the ``needed`` bytes, and its message
+    for a corrupt file. Both give identical bytes (tests/test_images.py).
     """
     hint = struct.unpack("<I", raw[-4:])[0] if len(raw) >= 18 else 0
     hint = min(hint, len(raw) * GZIP_MAX_RATIO + 65536)  # ISIZE is not trusted beyond what gzip can hold
-    lib = _fast_zlib if _fast_zlib is not None else zlib
+    if _deflate is not None and needed <= hint <= 2 * needed + 65536:
+        try:
+            out = _deflate.gzip_decompress(raw, hint)
+        except Exception:  # noqa: BLE001 - DeflateError or ValueError: zlib below decides and words the error
+            out = None
+        if out is not None and len(out) >= needed:
+            return out
     try:
-        out = lib.decompress(raw, 31, max(hint, needed, 1))
+        out = zlib.decompress(raw, 31, max(hint, needed, 1))
         if len(out) < needed:
             out = (_fast_gzip or gzip).decompress(raw)
     except Exception as exc:  # zlib.error, EOFError, OSError, or isal's own IsalError
