@@ -373,6 +373,8 @@ class _Index:
     weight: sp.csr_matrix | None  # regions x uniq, voxel weights (probability regions), else None
     n_voxels: np.ndarray
     keep: np.ndarray | None = None  # positions in `uniq` whose voxel values are returned too (functional regions)
+    region_of: np.ndarray | None = None  # region of each position in `uniq` when no voxel is in two regions
+    entries: np.ndarray | None = None  # membership entries per region (row sums of `count`), int64
 
     @classmethod
     def build(cls, regions: RealisedRegions, *, weighted: bool) -> "_Index":
@@ -389,26 +391,56 @@ class _Index:
         if weighted and any(w is not None for w in regions.weights):
             w = np.concatenate([np.ones(len(v)) if wt is None else wt for v, wt in zip(vox, regions.weights)])
             weight = sp.csr_matrix((w, (seg, member)), shape=(n_regions, len(uniq)))
-        return cls(uniq.astype(np.int64), member.astype(np.int64), offsets, seg, count, weight, lengths)
+        region_of = None
+        if len(uniq) == len(allv):  # every voxel in one region only (an atlas): counts need no matrix product
+            region_of = np.empty(len(uniq), dtype=np.intp)
+            region_of[member] = seg
+        entries = np.rint(np.asarray(count.sum(axis=1)).ravel()).astype(np.int64)
+        return cls(uniq.astype(np.int64), member.astype(np.int64), offsets, seg, count, weight, lengths,
+                   region_of=region_of, entries=entries)
+
+    def invalid_counts(self, bad: np.ndarray) -> np.ndarray:
+        """Membership entries per region at the positions ``bad`` (indices into `uniq`), exact integers."""
+        if len(bad) == 0:
+            return np.zeros(len(self.entries), dtype=np.int64)
+        if self.region_of is not None:
+            return np.bincount(self.region_of[bad], minlength=len(self.entries)).astype(np.int64)
+        flags = np.zeros(self.count.shape[1])
+        flags[bad] = 1.0
+        return np.rint(self.count @ flags).astype(np.int64)
 
 
-def _summarise(x: np.ndarray, index: _Index, *, statistic: str, keep_zeros: bool):
-    """Region values and valid counts for one map's gathered voxels ``x`` (aligned with index.uniq)."""
+def _summarise(x: np.ndarray, index: _Index, *, statistic: str, keep_zeros: bool, want_valid: bool = True):
+    """Region values and valid counts for one map's gathered voxels ``x`` (aligned with index.uniq).
+
+    Valid counts are the region's entries minus those at invalid positions (exact integers; no product over
+    every voxel when few are invalid). Sums are ``index.count @ x``: a sequential sum per region in the matrix's
+    order, so every value keeps its last bit whatever else changes here. ``valid`` (a boolean per position) is
+    returned when ``want_valid`` or when a statistic other than the mean needs it, else None.
+    """
     x = np.asarray(x, dtype=np.float64)
+    valid = None
     if np.isfinite(x.sum()):  # the common case, checked once: no NaN or infinity among the region voxels
-        valid = np.ones(len(x), dtype=bool) if keep_zeros else x != 0
+        if keep_zeros:
+            bad = np.empty(0, dtype=np.intp)
+        else:
+            bad = np.flatnonzero(x == 0)
         xz = x  # zeros add nothing to the sums
+        if want_valid or statistic != "mean":
+            valid = np.ones(len(x), dtype=bool)
+            valid[bad] = False
     else:
         valid = np.isfinite(x)
         if not keep_zeros:
             valid &= x != 0
         xz = np.where(valid, x, 0.0)
-    validf = valid.astype(np.float64)
-    n_valid = np.rint(index.count @ validf).astype(np.int64)
+        bad = np.flatnonzero(~valid)
+    n_valid = index.entries - index.invalid_counts(bad)
     with np.errstate(invalid="ignore", divide="ignore"):
         if statistic == "mean" or (statistic == "weighted-mean" and index.weight is None):
             value = (index.count @ xz) / n_valid
         elif statistic == "weighted-mean":
+            validf = valid.astype(np.float64)
             value = (index.weight @ xz) / (index.weight @ validf)
         else:
             # order statistics: sort each region's values, invalid ones (+inf) last
@@ -463,31 +495,62 @@ class _Task:
     variance_header: MapHeader | None
 
 
-def _read_gathered(header: MapHeader, volume, uniq) -> tuple[np.ndarray, str]:
-    """Read one map, return its in-region voxels and the SHA-256 of the file's bytes."""
+#: Hash each map on this thread while a helper thread decompresses it, when the process has a core to spare
+#: (benchmarks/bench_extract.py measures both ways; False: everything on one thread).
+_HASH_ALONGSIDE = True
+
+
+def _helper_thread(n_processes: int):
+    """A one-thread executor for :func:`_read_gathered`, or None when this process should use one core only."""
+    try:
+        cores = len(os.sched_getaffinity(0))
+    except (AttributeError, OSError):  # pragma: no cover - not Linux
+        cores = os.cpu_count() or 1
+    if not _HASH_ALONGSIDE or cores <= n_processes:
+        return None
+    return cf.ThreadPoolExecutor(1, thread_name_prefix="roikit-decompress")
+
+
+def _read_gathered(header: MapHeader, volume, uniq, *, helper: cf.Executor | None = None) -> tuple[np.ndarray, str]:
+    """Read one map, return its in-region voxels and the SHA-256 of the file's bytes.
+
+    With ``helper`` (a one-thread executor), a whole compressed map is decompressed there while this thread
+    hashes its bytes: libdeflate holds the interpreter lock, SHA-256 releases it, so the two run side by side
+    on two cores and the hash (about a third of the decompression's time) costs no wall time. Same results.
+    """
     try:
         with open(header.path, "rb") as fh:
             raw = fh.read()
     except OSError as exc:
         raise InputFileError(f"{header.path}: cannot read the map ({exc.strerror or exc}); check that the file "
                              "exists and is readable (permissions)") from None
-    digest = hashlib.sha256(raw).hexdigest()
-    if header.n_volumes > 1 or not header.compressed:
-        raw = None  # 4D: stream one volume; .nii: memory-map
-    flat = read_flat(header, volume=volume, raw=raw)
-    return flat[uniq], digest
+    if header.n_volumes > 1 or not header.compressed:  # 4D: stream one volume; .nii: memory-map
+        digest = hashlib.sha256(raw).hexdigest()
+        return read_flat(header, volume=volume)[uniq], digest
+    if helper is None:
+        digest = hashlib.sha256(raw).hexdigest()
+        return read_flat(header, volume=volume, raw=raw)[uniq], digest
+    future = helper.submit(_gather, header, volume, raw, uniq)
+    digest = hashlib.sha256(raw).hexdigest()  # releases the interpreter lock: the helper starts decompressing
+    return future.result(), digest
 
 
-def _run_tasks(tasks: list[_Task], index: _Index, names: list[str], statistic: str, keep_zeros: bool) -> list:
+def _gather(header: MapHeader, volume, raw: bytes, uniq) -> np.ndarray:
+    return read_flat(header, volume=volume, raw=raw)[uniq]
+
+
+def _run_tasks(tasks: list[_Task], index: _Index, names: list[str], statistic: str, keep_zeros: bool, *,
+               helper: cf.Executor | None = None) -> list:
     """Worker entry point: summarise a batch of maps; returns per-map results (or the error, with its path)."""
     out = []
     for t in tasks:
         try:
-            x, digest = _read_gathered(t.header, t.volume, index.uniq)
-            value, n_valid, valid = _summarise(x, index, statistic=statistic, keep_zeros=keep_zeros)
+            x, digest = _read_gathered(t.header, t.volume, index.uniq, helper=helper)
+            value, n_valid, valid = _summarise(x, index, statistic=statistic, keep_zeros=keep_zeros,
+                                               want_valid=t.variance_header is not None)
             variance = vdigest = v = None
             if t.variance_header is not None:
-                v, vdigest = _read_gathered(t.variance_header, t.volume, index.uniq)
+                v, vdigest = _read_gathered(t.variance_header, t.volume, index.uniq, helper=helper)
                 variance = _region_variance(v, valid, n_valid, index, path=t.variance_path, names=names)
             kept = () if index.keep is None else ((x[index.keep], None if v is None else v[index.keep]),)
             out.append(("ok", value, n_valid, variance, digest, vdigest) + kept)
@@ -510,9 +573,10 @@ def _portable(exc: Exception, path: str) -> Exception:
 _WORKER_STATE: dict = {}
 
 
-def _init_worker(index, names, statistic, keep_zeros, parent=None):
+def _init_worker(index, names, statistic, keep_zeros, parent=None, n_processes=None):
     _watch_parent(parent)
-    _WORKER_STATE.update(index=index, names=names, statistic=statistic, keep_zeros=keep_zeros)
+    _WORKER_STATE.update(index=index, names=names, statistic=statistic, keep_zeros=keep_zeros,
+                         helper=None if n_processes is None else _helper_thread(n_processes))
 
 
 def _watch_parent(parent: int | None, *, every: float = 0.5) -> None:
@@ -552,7 +616,7 @@ def _watch_parent(parent: int | None, *, every: float = 0.5) -> None:
 
 def _run_tasks_in_worker(tasks):
     s = _WORKER_STATE
-    return _run_tasks(tasks, s["index"], s["names"], s["statistic"], s["keep_zeros"])
+    return _run_tasks(tasks, s["index"], s["names"], s["statistic"], s["keep_zeros"], helper=s.get("helper"))
 
 
 # --------------------------------------------------------------------------------------------------
@@ -750,16 +814,21 @@ def extract(
                                                 pure=False),
                     batches, collect, bar, max_in_flight=2 * max(1, len(client.scheduler_info()["workers"])))
         elif executor is None and n_jobs == 1:
-            for i, task in enumerate(tasks):
-                collect(i, _run_tasks([task], index, names, statistic, keep_zeros))
-                bar.update(1)
+            helper = _helper_thread(1)
+            try:
+                for i, task in enumerate(tasks):
+                    collect(i, _run_tasks([task], index, names, statistic, keep_zeros, helper=helper))
+                    bar.update(1)
+            finally:
+                if helper is not None:
+                    helper.shutdown(wait=False, cancel_futures=True)
         else:
             size = batch_size or _batch_size(n_maps, n_jobs if executor is None else
                                              getattr(executor, "_max_workers", 2))
             batches = [(s, tasks[s:s + size]) for s in range(0, n_maps, size)]
             if executor is None:
                 with cf.ProcessPoolExecutor(n_jobs, initializer=_init_worker,
-                                            initargs=(index, names, statistic, keep_zeros, os.getpid())) as pool:
+                                            initargs=(index, names, statistic, keep_zeros, os.getpid(), n_jobs)) as pool:
                     try:
                         _stream(lambda batch: pool.submit(_run_tasks_in_worker, batch), batches, collect, bar,
                                 max_in_flight=2 * n_jobs)
