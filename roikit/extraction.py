@@ -420,7 +420,11 @@ def _summarise(x: np.ndarray, index: _Index, *, statistic: str, keep_zeros: bool
     """
     x = np.asarray(x, dtype=np.float64)
     valid = None
-    if np.isfinite(x.sum()):  # the common case, checked once: no NaN or infinity among the region voxels
+    # the plain mean's sums first: all finite exactly when no region voxel is NaN or infinite (float32 voxels
+    # cannot overflow a float64 sum; a float64 overflow only sends the map down the general path, same result)
+    plain = statistic == "mean" or (statistic == "weighted-mean" and index.weight is None)
+    sums = index.count @ x if plain else None
+    if np.isfinite(x.sum() if sums is None else sums).all():  # the common case, checked once
         if keep_zeros:
             bad = np.empty(0, dtype=np.intp)
         else:
@@ -435,10 +439,11 @@ def _summarise(x: np.ndarray, index: _Index, *, statistic: str, keep_zeros: bool
             valid &= x != 0
         xz = np.where(valid, x, 0.0)
         bad = np.flatnonzero(~valid)
+        sums = None
     n_valid = index.entries - index.invalid_counts(bad)
     with np.errstate(invalid="ignore", divide="ignore"):
         if statistic == "mean" or (statistic == "weighted-mean" and index.weight is None):
-            value = (index.count @ xz) / n_valid
+            value = (index.count @ xz if sums is None else sums) / n_valid
         elif statistic == "weighted-mean":
             validf = valid.astype(np.float64)
             value = (index.weight @ xz) / (index.weight @ validf)
