@@ -23,10 +23,12 @@ Two readers share one contract:
 
 from __future__ import annotations
 
+import ctypes
 import gzip
 import io
 import os
 import struct
+import threading
 import zlib
 from dataclasses import dataclass
 from pathlib import Path
@@ -527,6 +529,64 @@ def load_map(path, *, volume: int | None = None) -> tuple[np.ndarray, Grid]:
 # --------------------------------------------------------------------------------------------------
 
 
+class _LibdeflateCalls:
+    """libdeflate's own C functions, called through ctypes, which lets other threads run meanwhile.
+
+    The ``deflate`` package links libdeflate into its extension module and exports its C API; its Python
+    functions hold the interpreter lock while they decompress. Called through ctypes, the same code releases
+    the lock, so extraction's helper thread decompresses one map while the main thread hashes and summarises
+    another. One decompressor per thread (libdeflate's are not shared between threads). ``None`` from
+    :meth:`load` (symbols not exported, another platform): the package's Python function is used instead.
+    """
+
+    def __init__(self, lib):
+        self.alloc = lib.libdeflate_alloc_decompressor
+        self.alloc.restype, self.alloc.argtypes = ctypes.c_void_p, []
+        self.gunzip = lib.libdeflate_gzip_decompress_ex
+        self.gunzip.restype = ctypes.c_int
+        self.gunzip.argtypes = [ctypes.c_void_p, ctypes.c_char_p, ctypes.c_size_t, ctypes.c_void_p, ctypes.c_size_t,
+                                ctypes.POINTER(ctypes.c_size_t), ctypes.POINTER(ctypes.c_size_t)]
+        self.local = threading.local()
+
+    @classmethod
+    def load(cls):
+        try:
+            return cls(ctypes.CDLL(_deflate._deflate.__file__))
+        except Exception:  # noqa: BLE001 - AttributeError (a symbol or module missing), OSError
+            return None
+
+    def __call__(self, raw, size: int):
+        """The first gzip member of ``raw`` decompressed into a new buffer of ``size`` bytes, or None."""
+        d = getattr(self.local, "decompressor", None)
+        if d is None:
+            d = self.local.decompressor = self.alloc()
+            if not d:
+                return None
+        out = np.empty(size, dtype=np.uint8)
+        got_in, got_out = ctypes.c_size_t(0), ctypes.c_size_t(0)
+        if not isinstance(raw, bytes):
+            raw = bytes(raw)
+        result = self.gunzip(d, raw, len(raw), out.ctypes.data, size, ctypes.byref(got_in), ctypes.byref(got_out))
+        if result != 0:  # 1 bad data, 2 short output, 3 insufficient space: zlib decides
+            return None
+        return memoryview(out)[: got_out.value]
+
+
+_libdeflate_calls = _LibdeflateCalls.load() if _deflate is not None else None
+
+
+def _libdeflate(raw, size: int):
+    """libdeflate's answer for a gzip buffer (first member, at most ``size`` bytes), or None when it declines."""
+    if _deflate is None:
+        return None
+    if _libdeflate_calls is not None:
+        return _libdeflate_calls(raw, size)
+    try:
+        return _deflate.gzip_decompress(raw, size)
+    except Exception:  # noqa: BLE001 - DeflateError or ValueError: zlib decides and words the error
+        return None
+
+
 def _gunzip(raw: bytes, path, needed: int) -> bytes | bytearray:
     """Decompress a gzip file's bytes in one call with the exact output size.
 
@@ -542,11 +602,8 @@ def _gunzip(raw: bytes, path, needed: int) -> bytes | bytearray:
     """
     hint = struct.unpack("<I", raw[-4:])[0] if len(raw) >= 18 else 0
     hint = min(hint, len(raw) * GZIP_MAX_RATIO + 65536)  # ISIZE is not trusted beyond what gzip can hold
-    if _deflate is not None and needed <= hint <= 2 * needed + 65536:
-        try:
-            out = _deflate.gzip_decompress(raw, hint)
-        except Exception:  # noqa: BLE001 - DeflateError or ValueError: zlib below decides and words the error
-            out = None
+    if needed <= hint <= 2 * needed + 65536:
+        out = _libdeflate(raw, hint)
         if out is not None and len(out) >= needed:
             return out
     try:

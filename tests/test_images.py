@@ -152,7 +152,10 @@ def test_header_pairs_and_fast_header_agree_with_nibabel(tmp_path):
 
 
 class _Spy:
-    """Stands in for the `deflate` module: records each gzip_decompress call (bytes given, or "declined")."""
+    """Stands in for the `deflate` module: records each gzip_decompress call (bytes given, or "declined").
+
+    libdeflate's C functions (called through ctypes) are set aside, so the package's Python function is used.
+    """
 
     def __init__(self, images, monkeypatch):
         import deflate
@@ -170,6 +173,7 @@ class _Spy:
 
         self.gzip_decompress = gzip_decompress
         monkeypatch.setattr(images, "_deflate", self)
+        monkeypatch.setattr(images, "_libdeflate_calls", None)
 
 
 def test_libdeflate_and_zlib_give_identical_voxels(tmp_path, monkeypatch):
@@ -180,12 +184,30 @@ def test_libdeflate_and_zlib_give_identical_voxels(tmp_path, monkeypatch):
     data[:5] = 0
     path = save_nifti(tmp_path / "m.nii.gz", data)
     header = read_header(path)
+    assert images._libdeflate_calls is not None, "the deflate package exports libdeflate's C functions"
+    direct = read_flat(header).copy()  # libdeflate's C functions through ctypes (the default)
     spy = _Spy(images, monkeypatch)
-    fast = read_flat(header).copy()
-    assert spy.calls == [header.offset + data.nbytes], "the default path decompresses through libdeflate"
+    binding = read_flat(header).copy()  # the deflate package's Python function
+    assert spy.calls == [header.offset + data.nbytes], "libdeflate decompresses whole maps"
     monkeypatch.setattr(images, "_deflate", None)  # the fallback: no `deflate` package
     plain = read_flat(header)
-    assert fast.tobytes() == plain.tobytes() == data.tobytes(order="F")
+    assert direct.tobytes() == binding.tobytes() == plain.tobytes() == data.tobytes(order="F")
+
+
+def test_libdeflate_through_ctypes_declines_what_it_cannot_decide(tmp_path):
+    import roikit.images as images
+
+    data = np.arange(6 * 7 * 8, dtype=np.float32).reshape(6, 7, 8)
+    good = save_nifti(tmp_path / "plain.nii.gz", data).read_bytes()
+    size = len(gzip.decompress(good))
+    calls = images._libdeflate_calls
+    assert bytes(calls(good, size)) == gzip.decompress(good)
+    assert bytes(calls(bytearray(good), size + 10)) == gzip.decompress(good)  # room to spare; any buffer type
+    assert calls(good, size - 1) is None  # too small a buffer
+    assert calls(good[:300] + bytes(300) + good[600:], size) is None  # corrupt
+    assert calls(good[:-100], size) is None  # truncated
+    # several members: the first one only (too few bytes for the voxels, so read_flat hands over to zlib)
+    assert bytes(calls(gzip.compress(b"ab" * 50) + good, size)) == b"ab" * 50
 
 
 def test_libdeflate_declines_and_zlib_decides_for_unusual_gzip(tmp_path, monkeypatch):
