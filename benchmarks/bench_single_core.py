@@ -7,7 +7,8 @@ round the decompressors and roikit run back to back, so the ratios compare like 
 - libdeflate / zlib: read each file from disk (page cache) and decompress it whole, one thread, ms per map
   (zlib is told the output size from the gzip trailer, as roikit's fallback is);
 - roikit marginal: (t(N + 10 maps) - t(10 maps)) / N for ``extract`` in this process (N = ``--maps``, 600), ms per
-  map: the default (each map's SHA-256 computed while a helper thread decompresses it, when a core is spare) and
+  map: the default (a helper thread reads and decompresses the next map while this one is hashed and summarised,
+  when a core is spare) and
   everything on one thread;
 - workers: ``extract(..., n_jobs=k)`` on N maps for k = 1, 2 worker processes (each process on one thread), and
   the speed-up.
@@ -75,22 +76,22 @@ def main(argv=None) -> int:
             zlib.decompress(raw, 31, struct.unpack("<I", raw[-4:])[0])
 
     def marginal(alongside: bool) -> tuple[float, float]:
-        extraction._HASH_ALONGSIDE = alongside
+        extraction._READ_AHEAD = alongside
         try:
             few_wall, few_cpu = _ms_per_map(lambda _: extract(few, regions, progress=False), [None])
             many_wall, many_cpu = _ms_per_map(lambda _: extract(many, regions, progress=False), [None])
         finally:
-            extraction._HASH_ALONGSIDE = True
+            extraction._READ_AHEAD = True
         return (many_wall - few_wall) / args.maps, (many_cpu - few_cpu) / args.maps
 
     def workers(k: int) -> float:
-        extraction._HASH_ALONGSIDE = False  # one thread per worker process
+        extraction._READ_AHEAD = False  # one thread per worker process
         try:
             t = time.perf_counter()
             extract(maps.iloc[10: args.maps + 10], regions, progress=False, n_jobs=k)
             return time.perf_counter() - t
         finally:
-            extraction._HASH_ALONGSIDE = True
+            extraction._READ_AHEAD = True
 
     libdeflate_alone(work)  # warm the page cache and the allocator
     extract(few, regions, progress=False)

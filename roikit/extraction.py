@@ -500,29 +500,24 @@ class _Task:
     variance_header: MapHeader | None
 
 
-#: Hash each map on this thread while a helper thread decompresses it, when the process has a core to spare
-#: (benchmarks/bench_extract.py measures both ways; False: everything on one thread).
-_HASH_ALONGSIDE = True
+#: With a core to spare, a helper thread reads, decompresses and gathers the next map while this thread hashes
+#: and summarises the current one (benchmarks/bench_single_core.py measures both ways; False: one thread).
+_READ_AHEAD = True
 
 
 def _helper_thread(n_processes: int):
-    """A one-thread executor for :func:`_read_gathered`, or None when this process should use one core only."""
+    """A one-thread executor for :func:`_iter_tasks`, or None when this process should use one core only."""
     try:
         cores = len(os.sched_getaffinity(0))
     except (AttributeError, OSError):  # pragma: no cover - not Linux
         cores = os.cpu_count() or 1
-    if not _HASH_ALONGSIDE or cores <= n_processes:
+    if not _READ_AHEAD or cores <= n_processes:
         return None
-    return cf.ThreadPoolExecutor(1, thread_name_prefix="roikit-decompress")
+    return cf.ThreadPoolExecutor(1, thread_name_prefix="roikit-read-ahead")
 
 
-def _read_gathered(header: MapHeader, volume, uniq, *, helper: cf.Executor | None = None) -> tuple[np.ndarray, str]:
-    """Read one map, return its in-region voxels and the SHA-256 of the file's bytes.
-
-    With ``helper`` (a one-thread executor), a whole compressed map is decompressed there while this thread
-    hashes its bytes: libdeflate holds the interpreter lock, SHA-256 releases it, so the two run side by side
-    on two cores and the hash (about a third of the decompression's time) costs no wall time. Same results.
-    """
+def _fetch(header: MapHeader, volume, uniq) -> tuple[np.ndarray, bytes | str]:
+    """One map's in-region voxels, and its bytes (a whole compressed map: the caller hashes them) or their SHA-256."""
     try:
         with open(header.path, "rb") as fh:
             raw = fh.read()
@@ -530,38 +525,63 @@ def _read_gathered(header: MapHeader, volume, uniq, *, helper: cf.Executor | Non
         raise InputFileError(f"{header.path}: cannot read the map ({exc.strerror or exc}); check that the file "
                              "exists and is readable (permissions)") from None
     if header.n_volumes > 1 or not header.compressed:  # 4D: stream one volume; .nii: memory-map
-        digest = hashlib.sha256(raw).hexdigest()
-        return read_flat(header, volume=volume)[uniq], digest
-    if helper is None:
-        digest = hashlib.sha256(raw).hexdigest()
-        return read_flat(header, volume=volume, raw=raw)[uniq], digest
-    future = helper.submit(_gather, header, volume, raw, uniq)
-    digest = hashlib.sha256(raw).hexdigest()  # releases the interpreter lock: the helper starts decompressing
-    return future.result(), digest
+        return read_flat(header, volume=volume)[uniq], hashlib.sha256(raw).hexdigest()
+    return read_flat(header, volume=volume, raw=raw)[uniq], raw
 
 
-def _gather(header: MapHeader, volume, raw: bytes, uniq) -> np.ndarray:
-    return read_flat(header, volume=volume, raw=raw)[uniq]
+def _digest(bytes_or_digest: bytes | str) -> str:
+    if isinstance(bytes_or_digest, str):
+        return bytes_or_digest
+    return hashlib.sha256(bytes_or_digest).hexdigest()
+
+
+def _read_gathered(header: MapHeader, volume, uniq) -> tuple[np.ndarray, str]:
+    """Read one map, return its in-region voxels and the SHA-256 of the file's bytes."""
+    x, got = _fetch(header, volume, uniq)
+    return x, _digest(got)
+
+
+def _iter_tasks(tasks: list[_Task], index: _Index, names: list[str], statistic: str, keep_zeros: bool, *,
+                helper: cf.Executor | None = None):
+    """Summarise maps in order, yielding each map's result (or the error, with its path).
+
+    With ``helper`` (a one-thread executor), map k + 1 is read, decompressed and gathered there while this thread
+    hashes map k's bytes and summarises it: libdeflate (called through ctypes) and SHA-256 both let the other
+    thread run, so on two cores the hash and the summaries cost little wall time. Same results either way.
+    """
+    ahead = None
+    for k, t in enumerate(tasks):
+        try:
+            if helper is None:
+                x, got = _fetch(t.header, t.volume, index.uniq)
+            else:
+                future = ahead if ahead is not None else helper.submit(_fetch, t.header, t.volume, index.uniq)
+                ahead = None
+                try:
+                    x, got = future.result()
+                finally:
+                    if k + 1 < len(tasks):
+                        nxt = tasks[k + 1]
+                        ahead = helper.submit(_fetch, nxt.header, nxt.volume, index.uniq)
+            digest = _digest(got)
+            del got
+            value, n_valid, valid = _summarise(x, index, statistic=statistic, keep_zeros=keep_zeros,
+                                               want_valid=t.variance_header is not None)
+            variance = vdigest = v = None
+            if t.variance_header is not None:
+                v, vdigest = _read_gathered(t.variance_header, t.volume, index.uniq)
+                variance = _region_variance(v, valid, n_valid, index, path=t.variance_path, names=names)
+            kept = () if index.keep is None else ((x[index.keep], None if v is None else v[index.keep]),)
+            result = ("ok", value, n_valid, variance, digest, vdigest) + kept
+        except Exception as exc:  # noqa: BLE001 - returned to the caller with the path; raised there
+            result = ("error", _portable(exc, t.path))
+        yield result
 
 
 def _run_tasks(tasks: list[_Task], index: _Index, names: list[str], statistic: str, keep_zeros: bool, *,
                helper: cf.Executor | None = None) -> list:
     """Worker entry point: summarise a batch of maps; returns per-map results (or the error, with its path)."""
-    out = []
-    for t in tasks:
-        try:
-            x, digest = _read_gathered(t.header, t.volume, index.uniq, helper=helper)
-            value, n_valid, valid = _summarise(x, index, statistic=statistic, keep_zeros=keep_zeros,
-                                               want_valid=t.variance_header is not None)
-            variance = vdigest = v = None
-            if t.variance_header is not None:
-                v, vdigest = _read_gathered(t.variance_header, t.volume, index.uniq, helper=helper)
-                variance = _region_variance(v, valid, n_valid, index, path=t.variance_path, names=names)
-            kept = () if index.keep is None else ((x[index.keep], None if v is None else v[index.keep]),)
-            out.append(("ok", value, n_valid, variance, digest, vdigest) + kept)
-        except Exception as exc:  # noqa: BLE001 - returned to the caller with the path; raised there
-            out.append(("error", _portable(exc, t.path)))
-    return out
+    return list(_iter_tasks(tasks, index, names, statistic, keep_zeros, helper=helper))
 
 
 def _portable(exc: Exception, path: str) -> Exception:
@@ -821,8 +841,8 @@ def extract(
         elif executor is None and n_jobs == 1:
             helper = _helper_thread(1)
             try:
-                for i, task in enumerate(tasks):
-                    collect(i, _run_tasks([task], index, names, statistic, keep_zeros, helper=helper))
+                for i, result in enumerate(_iter_tasks(tasks, index, names, statistic, keep_zeros, helper=helper)):
+                    collect(i, [result])
                     bar.update(1)
             finally:
                 if helper is not None:
