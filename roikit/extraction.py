@@ -516,8 +516,8 @@ def _helper_thread(n_processes: int):
     return cf.ThreadPoolExecutor(1, thread_name_prefix="roikit-read-ahead")
 
 
-def _fetch(header: MapHeader, volume, uniq) -> tuple[np.ndarray, bytes | str]:
-    """One map's in-region voxels, and its bytes (a whole compressed map: the caller hashes them) or their SHA-256."""
+def _fetch_flat(header: MapHeader, volume) -> tuple[np.ndarray, bytes | str]:
+    """One map's voxels, and its bytes (a whole compressed map: the caller hashes them) or their SHA-256."""
     try:
         with open(header.path, "rb") as fh:
             raw = fh.read()
@@ -525,8 +525,14 @@ def _fetch(header: MapHeader, volume, uniq) -> tuple[np.ndarray, bytes | str]:
         raise InputFileError(f"{header.path}: cannot read the map ({exc.strerror or exc}); check that the file "
                              "exists and is readable (permissions)") from None
     if header.n_volumes > 1 or not header.compressed:  # 4D: stream one volume; .nii: memory-map
-        return read_flat(header, volume=volume)[uniq], hashlib.sha256(raw).hexdigest()
-    return read_flat(header, volume=volume, raw=raw)[uniq], raw
+        return read_flat(header, volume=volume), hashlib.sha256(raw).hexdigest()
+    return read_flat(header, volume=volume, raw=raw), raw
+
+
+def _fetch(header: MapHeader, volume, uniq) -> tuple[np.ndarray, bytes | str]:
+    """One map's in-region voxels, and its bytes or their SHA-256 (:func:`_fetch_flat`)."""
+    flat, got = _fetch_flat(header, volume)
+    return flat[uniq], got
 
 
 def _digest(bytes_or_digest: bytes | str) -> str:
@@ -545,9 +551,10 @@ def _iter_tasks(tasks: list[_Task], index: _Index, names: list[str], statistic: 
                 helper: cf.Executor | None = None):
     """Summarise maps in order, yielding each map's result (or the error, with its path).
 
-    With ``helper`` (a one-thread executor), map k + 1 is read, decompressed and gathered there while this thread
-    hashes map k's bytes and summarises it: libdeflate (called through ctypes) and SHA-256 both let the other
-    thread run, so on two cores the hash and the summaries cost little wall time. Same results either way.
+    With ``helper`` (a one-thread executor), map k + 1 is read and decompressed there while this thread hashes
+    map k's bytes, gathers its region voxels and summarises them: libdeflate (called through ctypes), SHA-256, the
+    gather and the sparse product all let the other thread run, so on two cores everything but the decompression
+    costs little wall time. Same results either way.
     """
     ahead = None
     for k, t in enumerate(tasks):
@@ -555,14 +562,16 @@ def _iter_tasks(tasks: list[_Task], index: _Index, names: list[str], statistic: 
             if helper is None:
                 x, got = _fetch(t.header, t.volume, index.uniq)
             else:
-                future = ahead if ahead is not None else helper.submit(_fetch, t.header, t.volume, index.uniq)
+                future = ahead if ahead is not None else helper.submit(_fetch_flat, t.header, t.volume)
                 ahead = None
                 try:
-                    x, got = future.result()
+                    flat, got = future.result()
                 finally:
                     if k + 1 < len(tasks):
                         nxt = tasks[k + 1]
-                        ahead = helper.submit(_fetch, nxt.header, nxt.volume, index.uniq)
+                        ahead = helper.submit(_fetch_flat, nxt.header, nxt.volume)
+                x = flat[index.uniq]
+                del flat
             digest = _digest(got)
             del got
             value, n_valid, valid = _summarise(x, index, statistic=statistic, keep_zeros=keep_zeros,
@@ -846,7 +855,7 @@ def extract(
                     bar.update(1)
             finally:
                 if helper is not None:
-                    helper.shutdown(wait=False, cancel_futures=True)
+                    helper.shutdown(wait=True, cancel_futures=True)  # at most the one map read ahead
         else:
             size = batch_size or _batch_size(n_maps, n_jobs if executor is None else
                                              getattr(executor, "_max_workers", 2))
