@@ -442,7 +442,7 @@ def _summarise(x: np.ndarray, index: _Index, *, statistic: str, keep_zeros: bool
         sums = None
     n_valid = index.entries - index.invalid_counts(bad)
     with np.errstate(invalid="ignore", divide="ignore"):
-        if statistic == "mean" or (statistic == "weighted-mean" and index.weight is None):
+        if plain:
             value = (index.count @ xz if sums is None else sums) / n_valid
         elif statistic == "weighted-mean":
             validf = valid.astype(np.float64)
@@ -500,7 +500,7 @@ class _Task:
     variance_header: MapHeader | None
 
 
-#: With a core to spare, a helper thread reads, decompresses and gathers the next map while this thread hashes
+#: With a core to spare, a helper thread reads and decompresses the next map while this thread hashes, gathers
 #: and summarises the current one (benchmarks/bench_single_core.py measures both ways; False: one thread).
 _READ_AHEAD = True
 

@@ -38,7 +38,7 @@ import numpy as np
 
 from .errors import GridMismatchError, ImageFormatError, InputFileError, RoikitError, UsageError
 
-try:  # libdeflate: whole-buffer gzip decompression, about twice as fast as zlib here (benchmarks/bench_extract.py)
+try:  # libdeflate: whole-buffer gzip decompression, 2-3x faster than zlib here (benchmarks/bench_single_core.py)
     import deflate as _deflate
 except ImportError:  # pragma: no cover - a regular dependency; zlib (identical bytes) when it is missing
     _deflate = None
@@ -542,6 +542,8 @@ class _LibdeflateCalls:
     def __init__(self, lib):
         self.alloc = lib.libdeflate_alloc_decompressor
         self.alloc.restype, self.alloc.argtypes = ctypes.c_void_p, []
+        self.free = lib.libdeflate_free_decompressor
+        self.free.restype, self.free.argtypes = None, [ctypes.c_void_p]
         self.gunzip = lib.libdeflate_gzip_decompress_ex
         self.gunzip.restype = ctypes.c_int
         self.gunzip.argtypes = [ctypes.c_void_p, ctypes.c_char_p, ctypes.c_size_t, ctypes.c_void_p, ctypes.c_size_t,
@@ -557,11 +559,12 @@ class _LibdeflateCalls:
 
     def __call__(self, raw, size: int):
         """The first gzip member of ``raw`` decompressed into a new buffer of ``size`` bytes, or None."""
-        d = getattr(self.local, "decompressor", None)
-        if d is None:
-            d = self.local.decompressor = self.alloc()
-            if not d:
-                return None
+        holder = getattr(self.local, "decompressor", None)
+        if holder is None:
+            holder = self.local.decompressor = _Decompressor(self)
+        d = holder.pointer
+        if not d:
+            return None
         out = np.empty(size, dtype=np.uint8)
         got_in, got_out = ctypes.c_size_t(0), ctypes.c_size_t(0)
         if not isinstance(raw, bytes):
@@ -570,6 +573,19 @@ class _LibdeflateCalls:
         if result != 0:  # 1 bad data, 2 short output, 3 insufficient space: zlib decides
             return None
         return memoryview(out)[: got_out.value]
+
+
+class _Decompressor:
+    """One thread's libdeflate decompressor, freed with the thread's local data."""
+
+    def __init__(self, calls: _LibdeflateCalls):
+        self.free = calls.free
+        self.pointer = calls.alloc()
+
+    def __del__(self):
+        if self.pointer:
+            self.free(self.pointer)
+            self.pointer = None
 
 
 _libdeflate_calls = _LibdeflateCalls.load() if _deflate is not None else None
@@ -587,7 +603,7 @@ def _libdeflate(raw, size: int):
         return None
 
 
-def _gunzip(raw: bytes, path, needed: int) -> bytes | bytearray:
+def _gunzip(raw: bytes, path, needed: int) -> bytes | bytearray | memoryview:
     """Decompress a gzip file's bytes in one call with the exact output size.
 
     ISIZE, the last 4 bytes of a gzip file, is the uncompressed size modulo 2**32 (RFC 1952,
