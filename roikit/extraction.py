@@ -558,32 +558,40 @@ def _iter_tasks(tasks: list[_Task], index: _Index, names: list[str], statistic: 
     """
     ahead = None
     for k, t in enumerate(tasks):
+        # every map file is read through _fetch_flat, effect then variance map, in the maps' order (with a helper,
+        # map k + 1's read starts after map k's variance map was read): a read that fails or is interrupted
+        # affects that map only, and the maps before it are complete
+        error = flat = got = v = vdigest = None
         try:
             if helper is None:
-                x, got = _fetch(t.header, t.volume, index.uniq)
+                flat, got = _fetch_flat(t.header, t.volume)
             else:
                 future = ahead if ahead is not None else helper.submit(_fetch_flat, t.header, t.volume)
                 ahead = None
-                try:
-                    flat, got = future.result()
-                finally:
-                    if k + 1 < len(tasks):
-                        nxt = tasks[k + 1]
-                        ahead = helper.submit(_fetch_flat, nxt.header, nxt.volume)
-                x = flat[index.uniq]
-                del flat
-            digest = _digest(got)
-            del got
-            value, n_valid, valid = _summarise(x, index, statistic=statistic, keep_zeros=keep_zeros,
-                                               want_valid=t.variance_header is not None)
-            variance = vdigest = v = None
+                flat, got = future.result()
             if t.variance_header is not None:
                 v, vdigest = _read_gathered(t.variance_header, t.volume, index.uniq)
-                variance = _region_variance(v, valid, n_valid, index, path=t.variance_path, names=names)
-            kept = () if index.keep is None else ((x[index.keep], None if v is None else v[index.keep]),)
-            result = ("ok", value, n_valid, variance, digest, vdigest) + kept
         except Exception as exc:  # noqa: BLE001 - returned to the caller with the path; raised there
-            result = ("error", _portable(exc, t.path))
+            error = exc
+        if helper is not None and k + 1 < len(tasks):
+            ahead = helper.submit(_fetch_flat, tasks[k + 1].header, tasks[k + 1].volume)
+        if error is None:
+            try:
+                x = flat[index.uniq]
+                del flat
+                digest = _digest(got)
+                del got
+                value, n_valid, valid = _summarise(x, index, statistic=statistic, keep_zeros=keep_zeros,
+                                                   want_valid=t.variance_header is not None)
+                variance = None
+                if t.variance_header is not None:
+                    variance = _region_variance(v, valid, n_valid, index, path=t.variance_path, names=names)
+                kept = () if index.keep is None else ((x[index.keep], None if v is None else v[index.keep]),)
+                result = ("ok", value, n_valid, variance, digest, vdigest) + kept
+            except Exception as exc:  # noqa: BLE001 - returned to the caller with the path; raised there
+                error = exc
+        if error is not None:
+            result = ("error", _portable(error, t.path))
         yield result
 
 
@@ -650,7 +658,9 @@ def _watch_parent(parent: int | None, *, every: float = 0.5) -> None:
 
 def _run_tasks_in_worker(tasks):
     s = _WORKER_STATE
-    return _run_tasks(tasks, s["index"], s["names"], s["statistic"], s["keep_zeros"], helper=s.get("helper"))
+    args = (tasks, s["index"], s["names"], s["statistic"], s["keep_zeros"])
+    helper = s.get("helper")
+    return _run_tasks(*args) if helper is None else _run_tasks(*args, helper=helper)
 
 
 # --------------------------------------------------------------------------------------------------
