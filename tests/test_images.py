@@ -2,6 +2,7 @@
 
 import gzip
 import os
+import sys
 
 import nibabel as nib
 import numpy as np
@@ -184,7 +185,8 @@ def test_libdeflate_and_zlib_give_identical_voxels(tmp_path, monkeypatch):
     data[:5] = 0
     path = save_nifti(tmp_path / "m.nii.gz", data)
     header = read_header(path)
-    assert images._libdeflate_calls is not None, "the deflate package exports libdeflate's C functions"
+    if sys.platform.startswith("linux"):  # elsewhere the package's Python function is used (tested below)
+        assert images._libdeflate_calls is not None, "the deflate package exports libdeflate's C functions"
     direct = read_flat(header).copy()  # libdeflate's C functions through ctypes (the default)
     spy = _Spy(images, monkeypatch)
     binding = read_flat(header).copy()  # the deflate package's Python function
@@ -196,6 +198,9 @@ def test_libdeflate_and_zlib_give_identical_voxels(tmp_path, monkeypatch):
 
 def test_libdeflate_through_ctypes_declines_what_it_cannot_decide(tmp_path):
     import roikit.images as images
+
+    if images._libdeflate_calls is None and not sys.platform.startswith("linux"):
+        pytest.skip("the deflate package does not export libdeflate's C functions on this platform")
 
     data = np.arange(6 * 7 * 8, dtype=np.float32).reshape(6, 7, 8)
     good = save_nifti(tmp_path / "plain.nii.gz", data).read_bytes()
