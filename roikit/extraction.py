@@ -373,6 +373,8 @@ class _Index:
     weight: sp.csr_matrix | None  # regions x uniq, voxel weights (probability regions), else None
     n_voxels: np.ndarray
     keep: np.ndarray | None = None  # positions in `uniq` whose voxel values are returned too (functional regions)
+    region_of: np.ndarray | None = None  # region of each position in `uniq` when no voxel is in two regions
+    entries: np.ndarray | None = None  # membership entries per region (row sums of `count`), int64
 
     @classmethod
     def build(cls, regions: RealisedRegions, *, weighted: bool) -> "_Index":
@@ -389,26 +391,61 @@ class _Index:
         if weighted and any(w is not None for w in regions.weights):
             w = np.concatenate([np.ones(len(v)) if wt is None else wt for v, wt in zip(vox, regions.weights)])
             weight = sp.csr_matrix((w, (seg, member)), shape=(n_regions, len(uniq)))
-        return cls(uniq.astype(np.int64), member.astype(np.int64), offsets, seg, count, weight, lengths)
+        region_of = None
+        if len(uniq) == len(allv):  # every voxel in one region only (an atlas): counts need no matrix product
+            region_of = np.empty(len(uniq), dtype=np.intp)
+            region_of[member] = seg
+        entries = np.rint(np.asarray(count.sum(axis=1)).ravel()).astype(np.int64)
+        return cls(uniq.astype(np.int64), member.astype(np.int64), offsets, seg, count, weight, lengths,
+                   region_of=region_of, entries=entries)
+
+    def invalid_counts(self, bad: np.ndarray) -> np.ndarray:
+        """Membership entries per region at the positions ``bad`` (indices into `uniq`), exact integers."""
+        if len(bad) == 0:
+            return np.zeros(len(self.entries), dtype=np.int64)
+        if self.region_of is not None:
+            return np.bincount(self.region_of[bad], minlength=len(self.entries)).astype(np.int64)
+        flags = np.zeros(self.count.shape[1])
+        flags[bad] = 1.0
+        return np.rint(self.count @ flags).astype(np.int64)
 
 
-def _summarise(x: np.ndarray, index: _Index, *, statistic: str, keep_zeros: bool):
-    """Region values and valid counts for one map's gathered voxels ``x`` (aligned with index.uniq)."""
+def _summarise(x: np.ndarray, index: _Index, *, statistic: str, keep_zeros: bool, want_valid: bool = True):
+    """Region values and valid counts for one map's gathered voxels ``x`` (aligned with index.uniq).
+
+    Valid counts are the region's entries minus those at invalid positions (exact integers; no product over
+    every voxel when few are invalid). Sums are ``index.count @ x``: a sequential sum per region in the matrix's
+    order, so every value keeps its last bit whatever else changes here. ``valid`` (a boolean per position) is
+    returned when ``want_valid`` or when a statistic other than the mean needs it, else None.
+    """
     x = np.asarray(x, dtype=np.float64)
-    if np.isfinite(x.sum()):  # the common case, checked once: no NaN or infinity among the region voxels
-        valid = np.ones(len(x), dtype=bool) if keep_zeros else x != 0
+    valid = None
+    # the plain mean's sums first: all finite exactly when no region voxel is NaN or infinite (float32 voxels
+    # cannot overflow a float64 sum; a float64 overflow only sends the map down the general path, same result)
+    plain = statistic == "mean" or (statistic == "weighted-mean" and index.weight is None)
+    sums = index.count @ x if plain else None
+    if np.isfinite(x.sum() if sums is None else sums).all():  # the common case, checked once
+        if keep_zeros:
+            bad = np.empty(0, dtype=np.intp)
+        else:
+            bad = np.flatnonzero(x == 0)
         xz = x  # zeros add nothing to the sums
+        if want_valid or statistic != "mean":
+            valid = np.ones(len(x), dtype=bool)
+            valid[bad] = False
     else:
         valid = np.isfinite(x)
         if not keep_zeros:
             valid &= x != 0
         xz = np.where(valid, x, 0.0)
-    validf = valid.astype(np.float64)
-    n_valid = np.rint(index.count @ validf).astype(np.int64)
+        bad = np.flatnonzero(~valid)
+        sums = None
+    n_valid = index.entries - index.invalid_counts(bad)
     with np.errstate(invalid="ignore", divide="ignore"):
-        if statistic == "mean" or (statistic == "weighted-mean" and index.weight is None):
-            value = (index.count @ xz) / n_valid
+        if plain:
+            value = (index.count @ xz if sums is None else sums) / n_valid
         elif statistic == "weighted-mean":
+            validf = valid.astype(np.float64)
             value = (index.weight @ xz) / (index.weight @ validf)
         else:
             # order statistics: sort each region's values, invalid ones (+inf) last
@@ -463,37 +500,105 @@ class _Task:
     variance_header: MapHeader | None
 
 
-def _read_gathered(header: MapHeader, volume, uniq) -> tuple[np.ndarray, str]:
-    """Read one map, return its in-region voxels and the SHA-256 of the file's bytes."""
+#: With a core to spare, a helper thread reads and decompresses the next map while this thread hashes, gathers
+#: and summarises the current one (benchmarks/bench_single_core.py measures both ways; False: one thread).
+_READ_AHEAD = True
+
+
+def _helper_thread(n_processes: int):
+    """A one-thread executor for :func:`_iter_tasks`, or None when this process should use one core only."""
+    try:
+        cores = len(os.sched_getaffinity(0))
+    except (AttributeError, OSError):  # pragma: no cover - not Linux
+        cores = os.cpu_count() or 1
+    if not _READ_AHEAD or cores <= n_processes:
+        return None
+    return cf.ThreadPoolExecutor(1, thread_name_prefix="roikit-read-ahead")
+
+
+def _fetch_flat(header: MapHeader, volume) -> tuple[np.ndarray, bytes | str]:
+    """One map's voxels, and its bytes (a whole compressed map: the caller hashes them) or their SHA-256."""
     try:
         with open(header.path, "rb") as fh:
             raw = fh.read()
     except OSError as exc:
         raise InputFileError(f"{header.path}: cannot read the map ({exc.strerror or exc}); check that the file "
                              "exists and is readable (permissions)") from None
-    digest = hashlib.sha256(raw).hexdigest()
-    if header.n_volumes > 1 or not header.compressed:
-        raw = None  # 4D: stream one volume; .nii: memory-map
-    flat = read_flat(header, volume=volume, raw=raw)
-    return flat[uniq], digest
+    if header.n_volumes > 1 or not header.compressed:  # 4D: stream one volume; .nii: memory-map
+        return read_flat(header, volume=volume), hashlib.sha256(raw).hexdigest()
+    return read_flat(header, volume=volume, raw=raw), raw
 
 
-def _run_tasks(tasks: list[_Task], index: _Index, names: list[str], statistic: str, keep_zeros: bool) -> list:
-    """Worker entry point: summarise a batch of maps; returns per-map results (or the error, with its path)."""
-    out = []
-    for t in tasks:
+def _fetch(header: MapHeader, volume, uniq) -> tuple[np.ndarray, bytes | str]:
+    """One map's in-region voxels, and its bytes or their SHA-256 (:func:`_fetch_flat`)."""
+    flat, got = _fetch_flat(header, volume)
+    return flat[uniq], got
+
+
+def _digest(bytes_or_digest: bytes | str) -> str:
+    if isinstance(bytes_or_digest, str):
+        return bytes_or_digest
+    return hashlib.sha256(bytes_or_digest).hexdigest()
+
+
+def _read_gathered(header: MapHeader, volume, uniq) -> tuple[np.ndarray, str]:
+    """Read one map, return its in-region voxels and the SHA-256 of the file's bytes."""
+    x, got = _fetch(header, volume, uniq)
+    return x, _digest(got)
+
+
+def _iter_tasks(tasks: list[_Task], index: _Index, names: list[str], statistic: str, keep_zeros: bool, *,
+                helper: cf.Executor | None = None):
+    """Summarise maps in order, yielding each map's result (or the error, with its path).
+
+    With ``helper`` (a one-thread executor), map k + 1 is read and decompressed there while this thread hashes
+    map k's bytes, gathers its region voxels and summarises them: libdeflate (called through ctypes), SHA-256, the
+    gather and the sparse product all let the other thread run, so on two cores everything but the decompression
+    costs little wall time. Same results either way.
+    """
+    ahead = None
+    for k, t in enumerate(tasks):
+        # every map file is read through _fetch_flat, effect then variance map, in the maps' order (with a helper,
+        # map k + 1's read starts after map k's variance map was read): a read that fails or is interrupted
+        # affects that map only, and the maps before it are complete
+        error = flat = got = v = vdigest = None
         try:
-            x, digest = _read_gathered(t.header, t.volume, index.uniq)
-            value, n_valid, valid = _summarise(x, index, statistic=statistic, keep_zeros=keep_zeros)
-            variance = vdigest = v = None
+            if helper is None:
+                flat, got = _fetch_flat(t.header, t.volume)
+            else:
+                future = ahead if ahead is not None else helper.submit(_fetch_flat, t.header, t.volume)
+                ahead = None
+                flat, got = future.result()
             if t.variance_header is not None:
                 v, vdigest = _read_gathered(t.variance_header, t.volume, index.uniq)
-                variance = _region_variance(v, valid, n_valid, index, path=t.variance_path, names=names)
-            kept = () if index.keep is None else ((x[index.keep], None if v is None else v[index.keep]),)
-            out.append(("ok", value, n_valid, variance, digest, vdigest) + kept)
         except Exception as exc:  # noqa: BLE001 - returned to the caller with the path; raised there
-            out.append(("error", _portable(exc, t.path)))
-    return out
+            error = exc
+        if helper is not None and k + 1 < len(tasks):
+            ahead = helper.submit(_fetch_flat, tasks[k + 1].header, tasks[k + 1].volume)
+        if error is None:
+            try:
+                x = flat[index.uniq]
+                del flat
+                digest = _digest(got)
+                del got
+                value, n_valid, valid = _summarise(x, index, statistic=statistic, keep_zeros=keep_zeros,
+                                                   want_valid=t.variance_header is not None)
+                variance = None
+                if t.variance_header is not None:
+                    variance = _region_variance(v, valid, n_valid, index, path=t.variance_path, names=names)
+                kept = () if index.keep is None else ((x[index.keep], None if v is None else v[index.keep]),)
+                result = ("ok", value, n_valid, variance, digest, vdigest) + kept
+            except Exception as exc:  # noqa: BLE001 - returned to the caller with the path; raised there
+                error = exc
+        if error is not None:
+            result = ("error", _portable(error, t.path))
+        yield result
+
+
+def _run_tasks(tasks: list[_Task], index: _Index, names: list[str], statistic: str, keep_zeros: bool, *,
+               helper: cf.Executor | None = None) -> list:
+    """Worker entry point: summarise a batch of maps; returns per-map results (or the error, with its path)."""
+    return list(_iter_tasks(tasks, index, names, statistic, keep_zeros, helper=helper))
 
 
 def _portable(exc: Exception, path: str) -> Exception:
@@ -510,9 +615,10 @@ def _portable(exc: Exception, path: str) -> Exception:
 _WORKER_STATE: dict = {}
 
 
-def _init_worker(index, names, statistic, keep_zeros, parent=None):
+def _init_worker(index, names, statistic, keep_zeros, parent=None, n_processes=None):
     _watch_parent(parent)
-    _WORKER_STATE.update(index=index, names=names, statistic=statistic, keep_zeros=keep_zeros)
+    _WORKER_STATE.update(index=index, names=names, statistic=statistic, keep_zeros=keep_zeros,
+                         helper=None if n_processes is None else _helper_thread(n_processes))
 
 
 def _watch_parent(parent: int | None, *, every: float = 0.5) -> None:
@@ -552,7 +658,9 @@ def _watch_parent(parent: int | None, *, every: float = 0.5) -> None:
 
 def _run_tasks_in_worker(tasks):
     s = _WORKER_STATE
-    return _run_tasks(tasks, s["index"], s["names"], s["statistic"], s["keep_zeros"])
+    args = (tasks, s["index"], s["names"], s["statistic"], s["keep_zeros"])
+    helper = s.get("helper")
+    return _run_tasks(*args) if helper is None else _run_tasks(*args, helper=helper)
 
 
 # --------------------------------------------------------------------------------------------------
@@ -771,16 +879,21 @@ def extract(
                                                 pure=False),
                     batches, collect, bar, max_in_flight=2 * max(1, len(client.scheduler_info()["workers"])))
         elif executor is None and n_jobs == 1:
-            for i, task in enumerate(tasks):
-                collect(i, _run_tasks([task], index, names, statistic, keep_zeros))
-                bar.update(1)
+            helper = _helper_thread(1)
+            try:
+                for i, result in enumerate(_iter_tasks(tasks, index, names, statistic, keep_zeros, helper=helper)):
+                    collect(i, [result])
+                    bar.update(1)
+            finally:
+                if helper is not None:
+                    helper.shutdown(wait=True, cancel_futures=True)  # at most the one map read ahead
         else:
             size = batch_size or _batch_size(n_maps, n_jobs if executor is None else
                                              getattr(executor, "_max_workers", 2))
             batches = [(s, tasks[s:s + size]) for s in range(0, n_maps, size)]
             if executor is None:
                 with cf.ProcessPoolExecutor(n_jobs, initializer=_init_worker,
-                                            initargs=(index, names, statistic, keep_zeros, os.getpid())) as pool:
+                                            initargs=(index, names, statistic, keep_zeros, os.getpid(), n_jobs)) as pool:
                     try:
                         _stream(lambda batch: pool.submit(_run_tasks_in_worker, batch), batches, collect, bar,
                                 max_in_flight=2 * n_jobs)

@@ -13,18 +13,22 @@ Two readers share one contract:
   of a 4D file) and returns a 3D float array and its grid;
 * :func:`read_flat` is the fast path used by extraction: it parses the header
   with nibabel, reads the file's bytes, decompresses gzip in one call with the
-  exact output size (through ISA-L when the optional ``isal`` package is
-  installed, else zlib; both give identical bytes), and views the voxels
-  through the header's offset, data type and scaling. Uncompressed ``.nii``
-  files are memory-mapped.
+  exact output size (through libdeflate, the ``deflate`` package, a regular
+  dependency; zlib when it cannot be imported or declines a file; both give
+  identical bytes), and views the voxels through the header's offset, data
+  type and scaling. Uncompressed ``.nii`` files are memory-mapped. One volume
+  of a 4D ``.nii.gz`` is streamed (ISA-L's gzip reader when the optional
+  ``isal`` package is installed, else Python's).
 """
 
 from __future__ import annotations
 
+import ctypes
 import gzip
 import io
 import os
 import struct
+import threading
 import zlib
 from dataclasses import dataclass
 from pathlib import Path
@@ -34,11 +38,15 @@ import numpy as np
 
 from .errors import GridMismatchError, ImageFormatError, InputFileError, RoikitError, UsageError
 
-try:  # optional accelerated gzip (the `fast` extra); identical output to zlib
+try:  # libdeflate: whole-buffer gzip decompression, 2-3x faster than zlib here (benchmarks/bench_single_core.py)
+    import deflate as _deflate
+except ImportError:  # pragma: no cover - a regular dependency; zlib (identical bytes) when it is missing
+    _deflate = None
+
+try:  # optional streaming gzip reader (the `fast` extra) for 4D files and verify_data; identical output to zlib
     from isal import igzip as _fast_gzip
-    from isal import isal_zlib as _fast_zlib
 except ImportError:  # pragma: no cover - depends on the environment
-    _fast_gzip = _fast_zlib = None
+    _fast_gzip = None
 
 __all__ = [
     "Grid",
@@ -521,20 +529,101 @@ def load_map(path, *, volume: int | None = None) -> tuple[np.ndarray, Grid]:
 # --------------------------------------------------------------------------------------------------
 
 
-def _gunzip(raw: bytes, path, needed: int) -> bytes:
+class _LibdeflateCalls:
+    """libdeflate's own C functions, called through ctypes, which lets other threads run meanwhile.
+
+    The ``deflate`` package links libdeflate into its extension module and exports its C API; its Python
+    functions hold the interpreter lock while they decompress. Called through ctypes, the same code releases
+    the lock, so extraction's helper thread decompresses one map while the main thread hashes and summarises
+    another. One decompressor per thread (libdeflate's are not shared between threads). ``None`` from
+    :meth:`load` (symbols not exported, another platform): the package's Python function is used instead.
+    """
+
+    def __init__(self, lib):
+        self.alloc = lib.libdeflate_alloc_decompressor
+        self.alloc.restype, self.alloc.argtypes = ctypes.c_void_p, []
+        self.free = lib.libdeflate_free_decompressor
+        self.free.restype, self.free.argtypes = None, [ctypes.c_void_p]
+        self.gunzip = lib.libdeflate_gzip_decompress_ex
+        self.gunzip.restype = ctypes.c_int
+        self.gunzip.argtypes = [ctypes.c_void_p, ctypes.c_char_p, ctypes.c_size_t, ctypes.c_void_p, ctypes.c_size_t,
+                                ctypes.POINTER(ctypes.c_size_t), ctypes.POINTER(ctypes.c_size_t)]
+        self.local = threading.local()
+
+    @classmethod
+    def load(cls):
+        try:
+            return cls(ctypes.CDLL(_deflate._deflate.__file__))
+        except Exception:  # noqa: BLE001 - AttributeError (a symbol or module missing), OSError
+            return None
+
+    def __call__(self, raw, size: int):
+        """The first gzip member of ``raw`` decompressed into a new buffer of ``size`` bytes, or None."""
+        holder = getattr(self.local, "decompressor", None)
+        if holder is None:
+            holder = self.local.decompressor = _Decompressor(self)
+        d = holder.pointer
+        if not d:
+            return None
+        out = np.empty(size, dtype=np.uint8)
+        got_in, got_out = ctypes.c_size_t(0), ctypes.c_size_t(0)
+        if not isinstance(raw, bytes):
+            raw = bytes(raw)
+        result = self.gunzip(d, raw, len(raw), out.ctypes.data, size, ctypes.byref(got_in), ctypes.byref(got_out))
+        if result != 0:  # 1 bad data, 2 short output, 3 insufficient space: zlib decides
+            return None
+        return memoryview(out)[: got_out.value]
+
+
+class _Decompressor:
+    """One thread's libdeflate decompressor, freed with the thread's local data."""
+
+    def __init__(self, calls: _LibdeflateCalls):
+        self.free = calls.free
+        self.pointer = calls.alloc()
+
+    def __del__(self):
+        if self.pointer:
+            self.free(self.pointer)
+            self.pointer = None
+
+
+_libdeflate_calls = _LibdeflateCalls.load() if _deflate is not None else None
+
+
+def _libdeflate(raw, size: int):
+    """libdeflate's answer for a gzip buffer (first member, at most ``size`` bytes), or None when it declines."""
+    if _deflate is None:
+        return None
+    if _libdeflate_calls is not None:
+        return _libdeflate_calls(raw, size)
+    try:
+        return _deflate.gzip_decompress(raw, size)
+    except Exception:  # noqa: BLE001 - DeflateError or ValueError: zlib decides and words the error
+        return None
+
+
+def _gunzip(raw: bytes, path, needed: int) -> bytes | bytearray | memoryview:
     """Decompress a gzip file's bytes in one call with the exact output size.
 
     ISIZE, the last 4 bytes of a gzip file, is the uncompressed size modulo 2**32 (RFC 1952,
-    section 2.3.1); it sizes the output buffer so the decompressor allocates once. A one-shot
-    decompression reads only the first gzip member; when that gives fewer than the ``needed``
-    bytes (a file of several concatenated members), the member-aware decompressor is used.
-    ISA-L (optional ``isal`` package) and zlib give identical bytes.
+    section 2.3.1); it sizes the output buffer so the decompressor allocates once, and it is not
+    trusted beyond what gzip can hold (:data:`GZIP_MAX_RATIO`). libdeflate (the ``deflate``
+    package) decompresses the first gzip member into exactly ISIZE bytes and checks the member's
+    CRC-32 and length. Whenever it cannot be used or declines (no ``deflate``; ISIZE smaller than
+    the bytes needed: a file above 4 GiB whose ISIZE wrapped around, or several concatenated
+    members; corrupt or truncated data), zlib decides: one call, then the member-aware
+    decompressor when the first member holds fewer than the ``needed`` bytes, and its message
+    for a corrupt file. Both give identical bytes (tests/test_images.py).
     """
     hint = struct.unpack("<I", raw[-4:])[0] if len(raw) >= 18 else 0
     hint = min(hint, len(raw) * GZIP_MAX_RATIO + 65536)  # ISIZE is not trusted beyond what gzip can hold
-    lib = _fast_zlib if _fast_zlib is not None else zlib
+    if needed <= hint <= 2 * needed + 65536:
+        out = _libdeflate(raw, hint)
+        if out is not None and len(out) >= needed:
+            return out
     try:
-        out = lib.decompress(raw, 31, max(hint, needed, 1))
+        out = zlib.decompress(raw, 31, max(hint, needed, 1))
         if len(out) < needed:
             out = (_fast_gzip or gzip).decompress(raw)
     except Exception as exc:  # zlib.error, EOFError, OSError, or isal's own IsalError

@@ -323,3 +323,47 @@ def test_dask_local_cluster_gives_identical_results(tiny_study):
         with distributed.Client(cluster) as client:
             remote = extract(maps, regions, client=client, batch_size=3)
     pd.testing.assert_frame_equal(serial, remote)
+
+
+@pytest.mark.parametrize("statistic", ["mean", "median"])
+def test_read_ahead_thread_gives_the_same_table_provenance_and_failures(tiny_study, tmp_path, monkeypatch, statistic):
+    import roikit.extraction as ex
+    from roikit.errors import ExtractionError
+
+    maps = find_maps(tiny_study["pattern"], variance=tiny_study["variance"])
+    regions = RegionSet([Atlas(tiny_study["atlas"], tiny_study["labels"]), Sphere("s", (0, 0, 0), 6)])
+    runs = {}
+    for ahead in (False, True):
+        # the helper thread is used whenever this process has a core to spare; here it is forced on and off
+        monkeypatch.setattr(ex, "_helper_thread",
+                            lambda n, ahead=ahead: cf.ThreadPoolExecutor(1) if ahead else None)
+        table = extract(maps, regions, statistic=statistic)
+        runs[ahead] = table
+        assert table.attrs["roikit"]["inputs"][3]["sha256"] == __import__("hashlib").sha256(
+            open(maps["path"][3], "rb").read()).hexdigest()
+    pd.testing.assert_frame_equal(runs[False], runs[True])
+    assert runs[False].attrs["roikit"]["inputs"] == runs[True].attrs["roikit"]["inputs"]
+    # a truncated map in the middle and a missing one at the end: their own errors, the other maps extracted
+    raw = tiny_study["maps"][("sub-02", "novel")][0].read_bytes()
+    (tmp_path / "cut.nii.gz").write_bytes(raw[:-300])
+    broken = maps.copy()
+    broken.loc[3, "path"] = str(tmp_path / "cut.nii.gz")
+    (tmp_path / "gone.nii.gz").write_bytes(raw)
+    broken.loc[7, "path"] = str(tmp_path / "gone.nii.gz")
+    real_headers = ex._headers
+
+    def headers_then_remove(*args, **kwargs):
+        out = real_headers(*args, **kwargs)
+        (tmp_path / "gone.nii.gz").unlink()  # after the header was read: fails when the voxels are read
+        return out
+
+    monkeypatch.setattr(ex, "_headers", headers_then_remove)
+    with pytest.raises(ExtractionError, match="2 of 8 maps failed") as info:
+        extract(broken, regions, statistic=statistic)
+    failed = [p for p, _ in info.value.failures]
+    assert failed == [str(tmp_path / "cut.nii.gz"), str(tmp_path / "gone.nii.gz")]
+    assert "truncated" in str(info.value.failures[0][1]) and "gone.nii.gz" in str(info.value.failures[1][1])
+    partial = info.value.partial_values
+    n_regions = runs[True]["region"].nunique()
+    good = ~partial.index.isin(list(range(3 * n_regions, 4 * n_regions)) + list(range(7 * n_regions, 8 * n_regions)))
+    pd.testing.assert_series_equal(partial["value"][good], runs[True]["value"][good])

@@ -2,6 +2,7 @@
 
 import gzip
 import os
+import sys
 
 import nibabel as nib
 import numpy as np
@@ -151,16 +152,100 @@ def test_header_pairs_and_fast_header_agree_with_nibabel(tmp_path):
         assert h.grid.shape == img.shape[:3] and h.dtype == img.get_data_dtype()
 
 
-def test_accelerated_and_plain_gzip_give_identical_voxels(tmp_path, monkeypatch):
+class _Spy:
+    """Stands in for the `deflate` module: records each gzip_decompress call (bytes given, or "declined").
+
+    libdeflate's C functions (called through ctypes) are set aside, so the package's Python function is used.
+    """
+
+    def __init__(self, images, monkeypatch):
+        import deflate
+
+        self.calls = []
+
+        def gzip_decompress(data, size=0):
+            try:
+                out = deflate.gzip_decompress(data, size)
+            except Exception:
+                self.calls.append("declined")
+                raise
+            self.calls.append(len(out))
+            return out
+
+        self.gzip_decompress = gzip_decompress
+        monkeypatch.setattr(images, "_deflate", self)
+        monkeypatch.setattr(images, "_libdeflate_calls", None)
+
+
+def test_libdeflate_and_zlib_give_identical_voxels(tmp_path, monkeypatch):
     import roikit.images as images
 
-    assert images._fast_zlib is not None, "the test install includes the `fast` extra (isal)"
+    assert images._deflate is not None, "libdeflate (the `deflate` package) is a regular dependency"
     data = np.random.default_rng(5).normal(size=(20, 24, 18)).astype(np.float32)
     data[:5] = 0
     path = save_nifti(tmp_path / "m.nii.gz", data)
     header = read_header(path)
-    fast = read_flat(header).copy()
-    monkeypatch.setattr(images, "_fast_zlib", None)
-    monkeypatch.setattr(images, "_fast_gzip", None)
+    if sys.platform.startswith("linux"):  # elsewhere the package's Python function is used (tested below)
+        assert images._libdeflate_calls is not None, "the deflate package exports libdeflate's C functions"
+    direct = read_flat(header).copy()  # libdeflate's C functions through ctypes (the default)
+    spy = _Spy(images, monkeypatch)
+    binding = read_flat(header).copy()  # the deflate package's Python function
+    assert spy.calls == [header.offset + data.nbytes], "libdeflate decompresses whole maps"
+    monkeypatch.setattr(images, "_deflate", None)  # the fallback: no `deflate` package
     plain = read_flat(header)
-    assert fast.tobytes() == plain.tobytes() == data.tobytes(order="F")
+    assert direct.tobytes() == binding.tobytes() == plain.tobytes() == data.tobytes(order="F")
+
+
+def test_libdeflate_through_ctypes_declines_what_it_cannot_decide(tmp_path):
+    import roikit.images as images
+
+    if images._libdeflate_calls is None and not sys.platform.startswith("linux"):
+        pytest.skip("the deflate package does not export libdeflate's C functions on this platform")
+
+    data = np.arange(6 * 7 * 8, dtype=np.float32).reshape(6, 7, 8)
+    good = save_nifti(tmp_path / "plain.nii.gz", data).read_bytes()
+    size = len(gzip.decompress(good))
+    calls = images._libdeflate_calls
+    assert bytes(calls(good, size)) == gzip.decompress(good)
+    assert bytes(calls(bytearray(good), size + 10)) == gzip.decompress(good)  # room to spare; any buffer type
+    assert calls(good, size - 1) is None  # too small a buffer
+    assert calls(good[:300] + bytes(300) + good[600:], size) is None  # corrupt
+    assert calls(good[:-100], size) is None  # truncated
+    # several members: the first one only (too few bytes for the voxels, so read_flat hands over to zlib)
+    assert bytes(calls(gzip.compress(b"ab" * 50) + good, size)) == b"ab" * 50
+
+
+def test_libdeflate_declines_and_zlib_decides_for_unusual_gzip(tmp_path, monkeypatch):
+    import roikit.images as images
+
+    data = np.arange(6 * 7 * 8, dtype=np.float32).reshape(6, 7, 8)
+    plain = save_nifti(tmp_path / "plain.nii.gz", data)
+    raw = gzip.decompress(plain.read_bytes())
+    spy = _Spy(images, monkeypatch)
+    # several members whose last ISIZE (40 bytes) is below the bytes needed: the same branch as a file above
+    # 4 GiB whose ISIZE wrapped around; libdeflate is not asked, zlib reads the members
+    short_last = tmp_path / "short_last.nii.gz"
+    short_last.write_bytes(gzip.compress(raw[:-40]) + gzip.compress(raw[-40:]))
+    assert read_flat(read_header(short_last)).tobytes() == data.tobytes(order="F")
+    assert spy.calls == []
+    # a short first member and a last one (bytes after the voxels) whose ISIZE covers the bytes needed:
+    # libdeflate gives the first member only (too few bytes) and the member-aware reader takes over
+    short_first = tmp_path / "short_first.nii.gz"
+    short_first.write_bytes(gzip.compress(raw[:100]) + gzip.compress(raw[100:]) + gzip.compress(bytes(len(raw))))
+    assert read_flat(read_header(short_first)).tobytes() == data.tobytes(order="F")
+    assert spy.calls == [100]
+    # corrupt and truncated data (the header intact): libdeflate declines, zlib's error is one ImageFormatError line
+    good = plain.read_bytes()
+    header = read_header(plain)
+    for name, content, word in [("corrupt.nii.gz", good[:300] + bytes(300) + good[600:], "corrupt|truncated"),
+                                ("truncated.nii.gz", good[:-100], "truncated")]:
+        bad = tmp_path / name
+        bad.write_bytes(content)
+        for use_libdeflate in (True, False):
+            if not use_libdeflate:
+                monkeypatch.setattr(images, "_deflate", None)
+            with pytest.raises(ImageFormatError, match=word) as err:
+                read_flat(header, raw=content)
+            assert str(plain) in str(err.value) and "\n" not in str(err.value)
+            monkeypatch.setattr(images, "_deflate", spy)
+    assert "declined" in spy.calls

@@ -29,13 +29,13 @@ from conftest import write_participant
 def count_reads(monkeypatch):
     """Count the maps extraction reads (effect and variance files), by path."""
     read: list[str] = []
-    original = extraction._read_gathered
+    original = extraction._fetch_flat  # every map file extraction reads goes through it
 
-    def counting(header, volume, uniq):
+    def counting(header, volume):
         read.append(os.fspath(header.path))
-        return original(header, volume, uniq)
+        return original(header, volume)
 
-    monkeypatch.setattr(extraction, "_read_gathered", counting)
+    monkeypatch.setattr(extraction, "_fetch_flat", counting)
     return read
 
 

@@ -145,16 +145,16 @@ def test_malformed_cache_entries_are_discarded_with_a_warning(study_dir):
 
 
 def _interrupt_after(monkeypatch, n_files: int):
-    original = extraction._read_gathered
+    original = extraction._fetch_flat  # every map file extraction reads goes through it, in order
     count = [0]
 
-    def reader(header, volume, uniq):
+    def reader(header, volume):
         if count[0] == n_files:
             raise KeyboardInterrupt
         count[0] += 1
-        return original(header, volume, uniq)
+        return original(header, volume)
 
-    monkeypatch.setattr(extraction, "_read_gathered", reader)
+    monkeypatch.setattr(extraction, "_fetch_flat", reader)
 
 
 def test_an_interrupted_extraction_keeps_the_finished_maps(study_dir, monkeypatch):
