@@ -16,6 +16,8 @@ columns agreed in the interfaces (defaults where a design has nothing to say). T
 
 from __future__ import annotations
 
+import contextvars
+import functools
 import warnings
 from typing import Iterable, Sequence
 
@@ -50,6 +52,27 @@ __all__ = [
     "spelled",
     "order_columns",
 ]
+
+#: While the regions are fitted in chunks (:mod:`roikit.stats._chunks`), the warning helpers marked
+#: :func:`mergeable` record their call here instead of warning; the calls of all chunks are then merged into one
+#: call over every region, so the warning reads as if all regions had been fitted at once.
+_DEFERRED: contextvars.ContextVar[list | None] = contextvars.ContextVar("roikit_deferred_warnings", default=None)
+
+
+def mergeable(func):
+    """Mark a warning helper whose positional arguments are aligned with the regions (lists, one entry per region,
+    or a results table): while chunks are fitted, its calls are recorded and merged across chunks."""
+
+    @functools.wraps(func)
+    def wrapper(*args, **kwargs):
+        log = _DEFERRED.get()
+        if log is None:
+            return func(*args, **kwargs)
+        log.append(("call", func.__module__, func.__name__, args, kwargs))
+        return None
+
+    return wrapper
+
 
 #: Required columns of the region values table.
 VALUES_COLUMNS = ("participant_id", "contrast", "region", "value", "n_voxels", "n_valid")
@@ -378,6 +401,7 @@ def missing_by_region(matrix: pd.DataFrame) -> list[list[str]]:
     return [list(ids[mask[:, j]]) for j in range(mask.shape[1])]
 
 
+@mergeable
 def warn_exclusions(
     regions: Sequence[str],
     excluded: Sequence[Sequence[str]],
@@ -436,6 +460,7 @@ def low_coverage(
     return [by_region.get(r, []) for r in regions]
 
 
+@mergeable
 def warn_low_coverage(
     regions: Sequence[str], flagged: Sequence[Sequence[str]], *, context: str, stacklevel: int = 3
 ) -> None:
@@ -668,6 +693,7 @@ def attach_columns(
     return data, sources
 
 
+@mergeable
 def warn_dropped_observations(
     regions: Sequence[str],
     n_observations: Sequence[int],
