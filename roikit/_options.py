@@ -282,6 +282,9 @@ OPTIONS: tuple[Option, ...] = (
     Option("confidence", "analysis", "float", "confidence level of the intervals", default=0.95, minimum=0,
            maximum=1, exclusive=True, metavar="LEVEL", example="0.95"),
     # command line only
+    Option("scheduler", "", "str", "run on a Dask cluster whose scheduler listens at ADDRESS (e.g. "
+           "tcp://10.0.0.5:8786; needs the distributed extra: pip install 'roikit[distributed]'); results are "
+           "identical to a run on this machine", metavar="ADDRESS", key="", python="client"),
     Option("overwrite", "", "bool", "replace existing output files", default=False),
     Option("quiet", "", "bool", "no progress bar, no warnings on stderr (they stay in the output files)",
            default=False),

@@ -180,12 +180,15 @@ def fit_regions(func: Callable, design: str, values: pd.DataFrame, *, participan
                 for part in parts]
     else:
         remote = remote_options(options)
-        shared = client.scatter(participants, broadcast=True) if participants is not None else None
+        # hash=False: a fresh key each time (the same table scattered by the next analysis must not meet this one's
+        # key while it is being released)
+        shared = client.scatter(participants, broadcast=True, hash=False) if participants is not None else None
         futures = [client.submit(_task, func, part, shared, confidence, remote, pure=False) for part in parts]
         try:
             outs = [future.result() for future in futures]
-        finally:
+        except BaseException:
             client.cancel(futures)
+            raise
     results = _join([frame for frame, _ in outs], regions)
     for name, text in (results.attrs.get("column_descriptions") or {}).items():
         COLUMN_DESCRIPTIONS.setdefault(name, text)  # as a design run here registers its dynamic columns
