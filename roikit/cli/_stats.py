@@ -39,7 +39,7 @@ def add_parser(subparsers) -> None:
                    "earlier output is replaced without it)")
     p.add_argument("--quiet", action="store_true", help="no summary and no warnings on stderr (the results keep "
                    "their diagnostic columns)")
-    add_scheduler_option(p, does="fit the regions (in chunks of 64) and the permutations on the cluster's workers")
+    add_scheduler_option(p, does="fit the regions (in chunks of 16) and the permutations on the cluster's workers")
     p.set_defaults(func=run)
 
 

@@ -137,7 +137,7 @@ def run_design(
         Fit the regions on a Dask cluster (optional ``distributed`` extra): one task per chunk of regions, gathered
         in region order; permutations run as one task. Results are identical to a run without it.
     chunk_regions : int, optional
-        Regions per chunk (default 64). Designs that test each region on its own rows (all but repeated-measures
+        Regions per chunk (default 16). Designs that test each region on its own rows (all but repeated-measures
         and region-difference) are fitted chunk by chunk, here or on the cluster alike, so both give the same
         numbers; corrections across regions are applied afterwards, on the whole family.
     **options

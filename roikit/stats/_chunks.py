@@ -40,7 +40,7 @@ __all__ = ["REGIONWISE", "CHUNK_REGIONS", "fit_regions", "run_captured", "submit
 REGIONWISE = frozenset({"one-sample", "paired", "two-group", "glm", "precision-weighted", "mixed", "fixed-effects"})
 
 #: Regions per chunk (per task on a cluster). Fixed, so that a local run and a cluster run fit the same chunks.
-CHUNK_REGIONS = 64
+CHUNK_REGIONS = 16
 
 #: Options that choose where the work runs, not what is computed (dropped or set to 1 on a worker).
 _PLACEMENT = ("executor",)
