@@ -241,6 +241,9 @@ def check_values(values: pd.DataFrame, *, variance: bool = False) -> pd.DataFram
             f"expected {', '.join(required)} (as written by roikit extract)"
         )
     values = values.copy(deep=False)
+    # the extraction's provenance (one record per map) is not needed here, and pandas deep-copies attrs with every
+    # operation on the table: with 10,000 maps that made a one-sample test 16x slower (benchmarks/bench_cluster.py)
+    values.attrs = {}
     for column in ("participant_id", "session_id", "contrast", "region"):
         if column in values.columns and not pd.api.types.is_string_dtype(values[column]):
             col = values[column]
