@@ -170,7 +170,7 @@ def run_design(
         raise UsageError(
             "correction 'fwe' (max-statistic permutation family-wise p) needs permutations: pass permutations=N "
             "(--permutations N, e.g. 5000), or choose holm, fdr, bonferroni or none")
-    values = check_values(values)
+    given, values = values, check_values(values)
     participants = _participants_table(participants)
     options = {k: v for k, v in options.items() if v is not None}
     evidence = {k: options.pop(k) for k in ("equivalence", "bayes_factor", "prior_scale") if k in options}
@@ -182,7 +182,7 @@ def run_design(
                                                                              "none") else "holm"
 
     results = fit_regions(func, design, values, participants=participants, confidence=confidence,
-                          options=options, client=client, chunk_regions=chunk_regions)
+                          options=options, client=client, chunk_regions=chunk_regions, given=given)
     results = results.reset_index(drop=True)
     if evidence:
         results = add_evidence(results, design=design, **evidence)
@@ -219,9 +219,9 @@ def run_design(
         if client is None:
             out = permute(values, participants=participants, permutations=permutations, rng=rng, **options)
         else:  # one task: the maximum statistic spans every region (the same generator state, the same draws)
-            from ._chunks import remote_options, replay, submit_captured
+            from ._chunks import remote_options, replay, submit_captured, validated
 
-            out, stream = submit_captured(client, permute, values, participants=participants,
+            out, stream = submit_captured(client, validated, permute, given, participants=participants,
                                           permutations=permutations, rng=rng, **remote_options(options)).result()
             replay([stream])
         results["p_fwe"] = np.nan

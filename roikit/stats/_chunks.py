@@ -31,9 +31,9 @@ from typing import Callable, Sequence
 import numpy as np
 import pandas as pd
 
-from ._common import COLUMN_DESCRIPTIONS, _DEFERRED, region_order
+from ._common import COLUMN_DESCRIPTIONS, _DEFERRED, check_values, region_order
 
-__all__ = ["REGIONWISE", "CHUNK_REGIONS", "fit_regions", "run_captured", "submit_captured", "replay"]
+__all__ = ["REGIONWISE", "CHUNK_REGIONS", "fit_regions", "run_captured", "submit_captured", "replay", "validated"]
 
 #: Designs whose every test uses one region's rows only: fitted in chunks of regions. (repeated-measures may take
 #: regions as a within factor and region-difference compares regions: they always see every region at once.)
@@ -153,11 +153,15 @@ def _join(frames: list[pd.DataFrame], regions: list) -> pd.DataFrame:
 
 
 def fit_regions(func: Callable, design: str, values: pd.DataFrame, *, participants, confidence: float,
-                options: dict, client=None, chunk_regions: int | None = None) -> pd.DataFrame:
+                options: dict, client=None, chunk_regions: int | None = None,
+                given: pd.DataFrame | None = None) -> pd.DataFrame:
     """Run a design on every region, in chunks (see the module docstring); the rows of one call over all regions.
 
-    ``client`` (a ``distributed.Client``) fits the chunks on its workers, at most one task per chunk, and
-    gathers them in order; the first failing chunk's error is raised (the other tasks are cancelled).
+    ``values`` is the validated table (:func:`check_values`); ``given`` the table as the caller gave it (lean:
+    categorical labels): chunks are cut from it and validated where they are fitted, so what travels to a worker is
+    the lean form, and every chunk is validated the same way here and there. ``client`` (a ``distributed.Client``)
+    fits the chunks on its workers, one task per chunk, and gathers them in order; the first failing chunk's error
+    is raised (the other tasks are cancelled).
     """
     if chunk_regions is not None and (isinstance(chunk_regions, (bool, np.bool_))
                                       or not isinstance(chunk_regions, (int, np.integer)) or chunk_regions < 1):
@@ -169,15 +173,20 @@ def fit_regions(func: Callable, design: str, values: pd.DataFrame, *, participan
     chunks = _chunks(design, regions, max(1, size))
     if client is None and len(chunks) == 1:
         return func(values, participants=participants, confidence=confidence, **options)
+    source = values if given is None else given
     if len(chunks) == 1:
-        parts = [values]
+        parts = [source]
     else:
-        codes = pd.Index(regions).get_indexer(values["region"])
+        column = source["region"]
+        if isinstance(column.dtype, pd.CategoricalDtype):  # codes of the categories, not one string per row
+            where = pd.Index(regions).get_indexer(column.cat.categories.astype(str))
+            codes = np.where(column.cat.codes.to_numpy() >= 0, where[column.cat.codes.to_numpy()], -1)
+        else:
+            codes = pd.Index(regions).get_indexer(column.astype(str) if column.dtype != object else column)
         bounds = np.cumsum([0] + [len(c) for c in chunks])
-        parts = [values[(codes >= lo) & (codes < hi)] for lo, hi in zip(bounds[:-1], bounds[1:])]
+        parts = [source[(codes >= lo) & (codes < hi)] for lo, hi in zip(bounds[:-1], bounds[1:])]
     if client is None:
-        outs = [run_captured(func, part, participants=participants, confidence=confidence, **options)
-                for part in parts]
+        outs = [_task(func, part, participants, confidence, options) for part in parts]
     else:
         remote = remote_options(options)
         # hash=False: a fresh key each time (the same table scattered by the next analysis must not meet this one's
@@ -197,8 +206,13 @@ def fit_regions(func: Callable, design: str, values: pd.DataFrame, *, participan
 
 
 def _task(func: Callable, values: pd.DataFrame, participants, confidence: float, options: dict):
-    """One chunk on a worker."""
-    return run_captured(func, values, participants=participants, confidence=confidence, **options)
+    """One chunk (on a worker, or here): validated as ``run_design`` validates the whole table, then fitted."""
+    return run_captured(func, check_values(values), participants=participants, confidence=confidence, **options)
+
+
+def validated(func: Callable, values: pd.DataFrame, **kwargs):
+    """``func(check_values(values), **kwargs)``: a lean table travels, the validated one is used."""
+    return func(check_values(values), **kwargs)
 
 
 def _call(func: Callable, args: tuple, kwargs: dict):

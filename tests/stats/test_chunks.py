@@ -84,6 +84,22 @@ def test_chunks_give_the_rows_and_warnings_of_one_call(case):
         assert whole["p_fwe"].equals(chunked["p_fwe"])
 
 
+@pytest.mark.parametrize("case", ["glm", "mixed"])
+def test_lean_tables_are_cut_by_category_codes(case):
+    """Values as extraction returns them (categorical labels, categories sorted as strings, regions listed in
+    another order): chunks follow the regions' order of appearance, as for plain strings."""
+    values, participants = _values(n_regions=12)
+    order = [f"region {r}" for r in range(12)]  # appearance order; sorted as strings 'region 10' comes first
+    lean = values.astype({"participant_id": "category", "contrast": "category", "region": "category"})
+    assert list(lean["region"].cat.categories) != order
+    design, options = CASES[case]
+    plain, told = _run(values, participants, design, options, chunk_regions=5)
+    cut, told_lean = _run(lean, participants, design, options, chunk_regions=5)
+    _assert_same_table(plain, cut, exact=True)
+    assert list(pd.unique(cut["region"])) == order
+    assert told_lean == told
+
+
 def test_designs_across_regions_are_never_cut():
     values, participants = _values(n_regions=4)
     whole, _ = _run(values, participants, "region-difference", dict(regions=["region 0", "region 1", "region 2"],
