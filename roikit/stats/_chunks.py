@@ -45,7 +45,7 @@ CHUNK_REGIONS = 16
 #: Options that choose where the work runs, not what is computed (dropped or set to 1 on a worker).
 _PLACEMENT = ("executor",)
 
-_LOCK = threading.Lock()
+_LOCK = threading.RLock()  # re-entrant: a design that runs another design in a chunk does not wait on itself
 
 
 def run_captured(func: Callable, *args, **kwargs) -> tuple[object, list]:
