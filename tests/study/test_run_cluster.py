@@ -16,6 +16,8 @@ from roikit.cli import main
 from roikit.stats import _chunks
 
 from conftest import STUDY_TOML
+from test_study_functional import _write as _write_functional
+from test_study_functional import run_study_dir  # noqa: F401 - a fixture, used below
 
 #: More analyses than the tiny study's: seeded permutations (max-statistic fwe, sign-flip), precision weights,
 #: a covariate, a mixed model over both contrasts.
@@ -123,3 +125,19 @@ def test_without_dask_the_scheduler_option_is_a_usage_error_with_the_install_com
     err = capsys.readouterr().err.strip().splitlines()
     assert status == 2
     assert len(err) == 1 and "pip install 'roikit[distributed]'" in err[0]
+
+
+def test_functional_regions_on_a_cluster_match_the_local_run(run_study_dir, tmp_path, cluster):
+    """Functional regions take their search spaces' voxels from the extraction's own read: on the workers too."""
+    import distributed
+
+    from roikit.study import run_study
+
+    study = _write_functional(run_study_dir, 'split = "run"\n')
+    local = run_study(study, out=tmp_path / "local", figures=False)
+    with distributed.Client(cluster) as client:
+        remote = run_study(study, out=tmp_path / "remote", figures=False, client=client)
+    for name in ("region_values.tsv", "group_results.tsv"):
+        assert (tmp_path / "local" / name).read_bytes() == (tmp_path / "remote" / name).read_bytes(), name
+    assert remote.extracted == local.extracted > 0
+    assert "novelty fROI" in set(remote.values["region"].astype(str))
