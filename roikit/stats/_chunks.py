@@ -6,7 +6,8 @@ call of the design on the rows of its regions, on a worker when a ``distributed.
 process otherwise. The chunks are the same in both cases (they depend on the number of regions only, never on
 the workers), so a cluster computes exactly what a local run computes, number for number: the batched fits of
 the mixed design, for example, pad their arrays to the largest region of a batch, and a region's last bits
-could depend on its neighbours if the chunks differed. With at most :data:`CHUNK_REGIONS` regions (and no
+could depend on its neighbours if the chunks differed. (Bit-for-bit equality also needs the same numpy, scipy and
+BLAS on the workers as here; a cluster of other machines may differ in the last digit where their libraries do.) With at most :data:`CHUNK_REGIONS` regions (and no
 client) the design is called once, as it always was.
 
 Results are gathered in chunk order and put back in the design's row order (term by term, or region by region).
