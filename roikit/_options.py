@@ -293,6 +293,10 @@ OPTIONS: tuple[Option, ...] = (
     Option("functional_contrasts", "", "names", "roikit extract with --functional: the contrasts measured over "
            "the functional regions (default every contrast of the maps; a study file measures the analysed ones)",
            metavar="A,B"),
+    Option("scheduler", "", "str", "run on a Dask cluster whose scheduler listens at ADDRESS (e.g. "
+           "tcp://10.0.0.5:8786; needs the distributed extra: pip install 'roikit[distributed]'); results are "
+           "identical to a run on this machine when the workers have the same numpy and scipy", metavar="ADDRESS",
+           key="", python="client"),
     Option("overwrite", "", "bool", "replace existing output files", default=False),
     Option("quiet", "", "bool", "no progress bar, no warnings on stderr (they stay in the output files)",
            default=False),

@@ -20,6 +20,7 @@ __all__ = [
     "RegionError",
     "MapDiscoveryError",
     "ExtractionError",
+    "ClusterError",
     "OutputExistsError",
     "OutputLockedError",
     "OutputWriteError",
@@ -77,6 +78,10 @@ class MapDiscoveryError(RoikitError, ValueError):
 
 class ExtractionError(RoikitError, RuntimeError):
     """Several maps (or a batch of them on a worker) failed during extraction; see ``failures``."""
+
+
+class ClusterError(RoikitError, ConnectionError):
+    """A Dask scheduler (``--scheduler ADDRESS``, ``client=``) cannot be reached."""
 
 
 class OutputExistsError(RoikitError, FileExistsError):

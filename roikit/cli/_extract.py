@@ -3,12 +3,12 @@
 from __future__ import annotations
 
 import argparse
+import re
 import sys
 
-import re
-
 from .._options import add_arguments, check_value, option, options_in, plural, resolve, suggest
-from ..errors import ExtractionError, UsageError
+from ..errors import UsageError
+from ._cluster import add_scheduler_option, dask_client
 from ._sources import add_region_options, region_set_from_args
 
 
@@ -35,24 +35,11 @@ def add_parser(subparsers) -> None:
     p.add_argument("--out", required=True, metavar="VALUES.tsv", help="output table (.tsv; .parquet for a Parquet file "
                    "written as extraction goes, for large studies)")
     add_arguments(p, "extraction")  # --statistic, --keep-zeros, --jobs: the [extraction] keys of a study file
-    p.add_argument("--scheduler", metavar="ADDRESS",
-                   help="run on a Dask cluster whose scheduler listens at ADDRESS (e.g. tcp://10.0.0.5:8786); "
-                        "needs the `distributed` extra")
+    add_scheduler_option(p, does="extract the maps on the cluster's workers")
     p.add_argument("--quiet", action="store_true", help="no progress bar, summary or warnings on stderr")
     p.add_argument("--overwrite", action="store_true", help="replace files roikit extract did not write (its own earlier "
                    "output is replaced without it)")
     p.set_defaults(func=run)
-
-
-def _dask_client(address: str):
-    try:
-        from distributed import Client
-    except ImportError as exc:
-        raise UsageError("--scheduler needs Dask: pip install 'roikit[distributed]'") from exc
-    try:
-        return Client(address, timeout="10s")
-    except (OSError, TimeoutError) as exc:
-        raise ExtractionError(f"--scheduler {address}: cannot reach a Dask scheduler there ({exc})") from exc
 
 
 #: The keys of --functional after the name: those of a [[regions.functional]] block.
@@ -155,12 +142,8 @@ def run(args: argparse.Namespace) -> int:
                                  "--functional-contrasts novel,familiar")
             options["functional_contrasts"] = chosen
     # a .parquet --out is written as extraction goes (row groups of 64 maps): memory stays flat
-    if args.scheduler:
-        with _dask_client(args.scheduler) as client:
-            path, summary = extract_to_file(args.out, maps, regions, client=client, overwrite=args.overwrite,
-                                            **options)
-    else:
-        path, summary = extract_to_file(args.out, maps, regions, overwrite=args.overwrite, **options)
+    with dask_client(args.scheduler) as client:
+        path, summary = extract_to_file(args.out, maps, regions, client=client, overwrite=args.overwrite, **options)
     if not args.quiet:
         sys.stderr.write(
             f"roikit extract: {plural(len(maps), 'map')} x {plural(summary['regions'], 'region')} -> {path} "

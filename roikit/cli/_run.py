@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import argparse
 
+from ._cluster import add_scheduler_option, dask_client
 
 
 HELP = "run a study file: extraction, every analysis and the report"
@@ -35,6 +36,8 @@ def add_parser(subparsers) -> None:
     p.add_argument("--value-label", metavar="TEXT",
                    help='axis label of the region values with their unit, e.g. "%% signal change" (overrides the '
                         "study file's [study] value_label)")
+    add_scheduler_option(p, does="extract the maps and fit the analyses' regions on the cluster's workers (the "
+                         "report is drawn here)")
     p.set_defaults(func=run)
 
 
@@ -44,8 +47,9 @@ def run(args: argparse.Namespace) -> int:
     study = load_study(args.study)
     if args.value_label:
         study.value_label = args.value_label
-    result = run_study(study, out=args.out, overwrite=args.overwrite, progress=False if args.quiet else None,
-                        figures=not args.no_figures)
+    with dask_client(args.scheduler) as client:
+        result = run_study(study, out=args.out, overwrite=args.overwrite, progress=False if args.quiet else None,
+                           figures=not args.no_figures, client=client)
     args.warnings_file = result.out / "warnings.tsv"
     print(result.out if args.quiet else result.summary())
     return 0

@@ -8,6 +8,7 @@ from pathlib import Path
 
 from .._options import add_arguments, plural, resolve, suggest, DESIGN_ALIASES
 from ..errors import UsageError
+from ._cluster import add_scheduler_option, dask_client
 
 HELP = "group statistics (one-sample, paired, two-group, glm, ...) for every region"
 
@@ -38,6 +39,7 @@ def add_parser(subparsers) -> None:
                    "earlier output is replaced without it)")
     p.add_argument("--quiet", action="store_true", help="no summary and no warnings on stderr (the results keep "
                    "their diagnostic columns)")
+    add_scheduler_option(p, does="fit the regions (in chunks of 16) and the permutations on the cluster's workers")
     p.set_defaults(func=run)
 
 
@@ -97,16 +99,18 @@ def run(args: argparse.Namespace) -> int:
     correct, permutations, seed, confidence = (shared.get(k) for k in ("correct", "permutations", "seed",
                                                                         "confidence"))
     try:
-        results = run_design(
-            values,
-            args.design,
-            participants=participants,
-            correct=correct,
-            permutations=permutations,
-            seed=seed,
-            confidence=confidence,
-            **options,
-        )
+        with dask_client(args.scheduler) as client:
+            results = run_design(
+                values,
+                args.design,
+                participants=participants,
+                correct=correct,
+                permutations=permutations,
+                seed=seed,
+                confidence=confidence,
+                client=client,
+                **options,
+            )
     except RoikitError as exc:  # speak command-line language where the design left its spelling for us
         if getattr(exc, "cli_message", None):
             raise type(exc)(exc.cli_message) from None

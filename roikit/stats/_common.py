@@ -16,6 +16,8 @@ columns agreed in the interfaces (defaults where a design has nothing to say). T
 
 from __future__ import annotations
 
+import contextvars
+import functools
 import warnings
 from typing import Iterable, Sequence
 
@@ -50,6 +52,27 @@ __all__ = [
     "spelled",
     "order_columns",
 ]
+
+#: While the regions are fitted in chunks (:mod:`roikit.stats._chunks`), the warning helpers marked
+#: :func:`mergeable` record their call here instead of warning; the calls of all chunks are then merged into one
+#: call over every region, so the warning reads as if all regions had been fitted at once.
+_DEFERRED: contextvars.ContextVar[list | None] = contextvars.ContextVar("roikit_deferred_warnings", default=None)
+
+
+def mergeable(func):
+    """Mark a warning helper whose positional arguments are aligned with the regions (lists, one entry per region,
+    or a results table): while chunks are fitted, its calls are recorded and merged across chunks."""
+
+    @functools.wraps(func)
+    def wrapper(*args, **kwargs):
+        log = _DEFERRED.get()
+        if log is None:
+            return func(*args, **kwargs)
+        log.append(("call", func.__module__, func.__name__, args, kwargs))
+        return None
+
+    return wrapper
+
 
 #: Required columns of the region values table.
 VALUES_COLUMNS = ("participant_id", "contrast", "region", "value", "n_voxels", "n_valid")
@@ -217,9 +240,11 @@ def check_values(values: pd.DataFrame, *, variance: bool = False) -> pd.DataFram
             f"{', '.join(map(str, values.columns))}; "
             f"expected {', '.join(required)} (as written by roikit extract)"
         )
-    # a new frame over the same data, without attrs: designs need no provenance, and pandas deep-copies attrs into
-    # every intermediate table (slow with a large provenance, e.g. functional regions' selections)
     values = pd.DataFrame(values).copy(deep=False)
+    # the extraction's provenance (one record per map, every fold's selected voxels) is not needed here, and pandas
+    # deep-copies attrs with every operation on the table: with 10,000 maps that made a one-sample test 16x slower
+    # (benchmarks/bench_cluster.py)
+    values.attrs = {}
     for column in ("participant_id", "session_id", "contrast", "region"):
         if column in values.columns and not pd.api.types.is_string_dtype(values[column]):
             col = values[column]
@@ -380,6 +405,7 @@ def missing_by_region(matrix: pd.DataFrame) -> list[list[str]]:
     return [list(ids[mask[:, j]]) for j in range(mask.shape[1])]
 
 
+@mergeable
 def warn_exclusions(
     regions: Sequence[str],
     excluded: Sequence[Sequence[str]],
@@ -438,6 +464,7 @@ def low_coverage(
     return [by_region.get(r, []) for r in regions]
 
 
+@mergeable
 def warn_low_coverage(
     regions: Sequence[str], flagged: Sequence[Sequence[str]], *, context: str, stacklevel: int = 3
 ) -> None:
@@ -670,6 +697,7 @@ def attach_columns(
     return data, sources
 
 
+@mergeable
 def warn_dropped_observations(
     regions: Sequence[str],
     n_observations: Sequence[int],

@@ -14,7 +14,7 @@ from scipy import stats
 
 from .._options import plural, spell
 from ..errors import DiagnosticWarning
-from ._common import join_ids
+from ._common import join_ids, mergeable
 
 __all__ = [
     "modified_z",
@@ -121,6 +121,7 @@ def residual_diagnostics(residuals: np.ndarray | pd.DataFrame, ids: Sequence[str
     return {"n_outliers": counts, "outlier_ids": names, "shapiro_w": w, "shapiro_p": p}
 
 
+@mergeable
 def warn_diagnostics(results: pd.DataFrame, *, context: str, alpha: float = 0.05, stacklevel: int = 3) -> None:
     """One :class:`DiagnosticWarning` summarising the diagnostic columns of a results table (nothing if clean)."""
     parts = []

@@ -16,7 +16,7 @@ from scipy import stats as _st
 
 from .._options import noun, plural
 from ..errors import CautionWarning, DesignError
-from ._common import COLUMN_DESCRIPTIONS
+from ._common import COLUMN_DESCRIPTIONS, mergeable
 from ._registry import register
 
 __all__ = ["fit_fixed_effects", "fixed_effects", "CAUTION"]
@@ -153,6 +153,11 @@ def fixed_effects(
         excluded_ids=[join_ids(e) for e in excluded], n_low_coverage=[len(c) for c in coverage],
         low_coverage_ids=[join_ids(c) for c in coverage], fixed_effects_only=True, caution=CAUTION,
     )
-    warnings.warn(f"{CAUTION} (contrast {contrast!r}, {len(ids)} participants, {plural(len(regions), 'region')})",
-                  CautionWarning, stacklevel=3)
+    _warn_caution(list(regions), contrast=contrast, n_participants=len(ids))
     return out
+
+
+@mergeable
+def _warn_caution(regions, *, contrast, n_participants: int) -> None:
+    warnings.warn(f"{CAUTION} (contrast {contrast!r}, {n_participants} participants, {plural(len(regions), 'region')})",
+                  CautionWarning, stacklevel=4)

@@ -22,7 +22,7 @@ from scipy import stats as _st
 
 from .._options import noun, plural, progress_bar, spell
 from ..errors import ConvergenceError, DesignError, DiagnosticWarning, UsageError
-from ._common import COLUMN_DESCRIPTIONS
+from ._common import COLUMN_DESCRIPTIONS, mergeable
 from ._registry import register
 from .precision import _design_matrix, _formula_rhs, _required_variables
 
@@ -1419,7 +1419,15 @@ def mixed(
     out.attrs["column_descriptions"] = _describe_dynamic(out.columns)
     for name, text in out.attrs["column_descriptions"].items():
         COLUMN_DESCRIPTIONS.setdefault(name, text)
-    flagged = [(r, bt) for r, res, bt in zip(regions, results, boundary_terms) if res["fit"].boundary or bt]
+    _warn_singular(list(regions), [bt if res["fit"].boundary or bt else None
+                                   for res, bt in zip(results, boundary_terms)], context=context)
+    return out
+
+
+@mergeable
+def _warn_singular(regions, terms, *, context: str) -> None:
+    """terms: per region, the boundary terms of a singular fit (None where the fit is not singular)."""
+    flagged = [(r, bt) for r, bt in zip(regions, terms) if bt is not None]
     if flagged:
         warnings.warn(DiagnosticWarning(
             f"{context}: a random-effect variance is at its boundary (SD < {BOUNDARY_TOL:g} x residual SD, or a "
@@ -1428,8 +1436,7 @@ def mixed(
             + "; the model is singular there (columns 'boundary', 'boundary_terms'); consider a simpler random "
             "structure", context=context,
             findings=[{"problem": "random-effect variance at its boundary (singular fit; columns boundary, "
-                       "boundary_terms)", "region": r} for r, _bt in flagged]), stacklevel=3)
-    return out
+                       "boundary_terms)", "region": r} for r, _bt in flagged]), stacklevel=4)
 
 
 def _check_distinguishable(data: pd.DataFrame, used: Sequence[str], present: Sequence[str]) -> None:
@@ -1493,6 +1500,12 @@ def _warn_crossed_looks_nested(frame: pd.DataFrame, crossed: str, regions: Seque
         f_int = hm * ms_int / ms_e if ms_e > 0 else np.inf
         if _st.f.sf(f_int, (a - 1) * (b - 1), df_e) < 0.01 and ms_lev <= ms_int:
             flagged.append(r)
+    _warn_looks_nested(list(regions), [r in flagged for r in regions], crossed=crossed)
+
+
+@mergeable
+def _warn_looks_nested(regions, looks_nested, *, crossed: str) -> None:
+    flagged = [r for r, f in zip(regions, looks_nested) if f]
     if flagged:
         warnings.warn(
             f"mixed: the crossed column {crossed!r} looks nested within participant in "

@@ -20,7 +20,7 @@ from scipy import stats as _st
 
 from .._options import noun, plural
 from ..errors import ConvergenceError, DesignError, DiagnosticWarning, UsageError
-from ._common import COLUMN_DESCRIPTIONS
+from ._common import COLUMN_DESCRIPTIONS, mergeable
 from ._registry import register
 
 __all__ = ["fit_precision_weighted", "precision_weighted", "sign_flip_precision", "TAU2_METHODS"]
@@ -676,13 +676,18 @@ def precision_weighted(
             boundary=fit["boundary"], converged=fit["converged"], centered=",".join(centred) if centred else None,
         ))
     out = pd.concat(frames, ignore_index=True)
-    if fit["boundary"].any():
-        n_b = int(fit["boundary"].sum())
-        warnings.warn(DiagnosticWarning(
-            f"{context}: the between-participant variance tau2 is estimated at 0 (boundary) in "
-            f"{n_b} region{'s' if n_b != 1 else ''}: {', '.join(r for r, b in zip(regions, fit['boundary']) if b)}; "
-            "the test then weights participants by their first-level precision only", context=context,
-            findings=[{"problem": "tau2 estimated at 0 (boundary): precision weights only", "region": r}
-                      for r, b in zip(regions, fit["boundary"]) if b]), stacklevel=3)
+    _warn_tau2_boundary(list(regions), [bool(b) for b in fit["boundary"]], context=context)
     warn_diagnostics(out, context=context)
     return out
+
+
+@mergeable
+def _warn_tau2_boundary(regions, boundary, *, context: str) -> None:
+    if any(boundary):
+        n_b = int(sum(boundary))
+        warnings.warn(DiagnosticWarning(
+            f"{context}: the between-participant variance tau2 is estimated at 0 (boundary) in "
+            f"{n_b} region{'s' if n_b != 1 else ''}: {', '.join(r for r, b in zip(regions, boundary) if b)}; "
+            "the test then weights participants by their first-level precision only", context=context,
+            findings=[{"problem": "tau2 estimated at 0 (boundary): precision weights only", "region": r}
+                      for r, b in zip(regions, boundary) if b]), stacklevel=4)

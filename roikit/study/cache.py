@@ -121,15 +121,16 @@ def _analysed_maps(study: Study) -> pd.DataFrame:
     return study.maps[study.maps["contrast"].isin(contrasts)].reset_index(drop=True)
 
 
-def _extract_with_cache(study: Study, out: Path, *, progress: bool | None, analysed_only: bool = True
-                        ) -> tuple[pd.DataFrame, dict]:
+def _extract_with_cache(study: Study, out: Path, *, progress: bool | None, analysed_only: bool = True,
+                        client=None) -> tuple[pd.DataFrame, dict]:
     """Extract the maps of the analysed contrasts, reading only maps whose bytes the cache has not seen.
 
     The cache is keyed by content: the SHA-256 of each map's bytes (and of its variance map's), computed by
     reading the file (no decompression), so a file replaced by another of the same size and modification time
     is read again, and a renamed or copied file is not. Freshly extracted maps are stored under the digest of
     the bytes extraction actually read. When extraction stops early (an interrupt, or maps that failed), the
-    maps finished so far are stored before the exception goes on.
+    maps finished so far are stored before the exception goes on. ``client`` (a ``distributed.Client``) extracts
+    the maps the cache lacks on a Dask cluster (:func:`roikit.extraction.extract`).
     """
     realised = study.realised
     names = list(realised.names)
@@ -203,7 +204,8 @@ def _extract_with_cache(study: Study, out: Path, *, progress: bool | None, analy
             keep = (search_voxels(realised, study.functional), kept_voxels)
         try:
             fresh = extract(maps.iloc[todo].reset_index(drop=True), realised, statistic=study.statistic,
-                            keep_zeros=study.keep_zeros, n_jobs=study.jobs, progress=progress, _keep=keep)
+                            keep_zeros=study.keep_zeros, n_jobs=study.jobs, progress=progress, _keep=keep,
+                            client=client)
         except (KeyboardInterrupt, RoikitError) as exc:
             partial = getattr(exc, "partial_values", None)
             completed = getattr(exc, "completed", None)

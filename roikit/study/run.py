@@ -154,6 +154,7 @@ def run_study(
     progress: bool | None = None,
     figures: bool = True,
     figure_formats: Sequence[str] = ("pdf", "svg", "png"),
+    client=None,
 ) -> StudyRun:
     """Run a study file: extraction (with a cache), every analysis, the report, provenance.
 
@@ -176,6 +177,9 @@ def run_study(
         Draw the report's figures (False: tables and text only, much faster).
     figure_formats : sequence of {"pdf", "svg", "png"}
         Files written per figure (the HTML report embeds the PNG, drawn in any case).
+    client : distributed.Client, optional
+        Run extraction (the maps the cache lacks) and every analysis's per-region fits on a Dask cluster (optional
+        ``distributed`` extra); the outputs are the same bytes as without it. The report is drawn here.
 
     Returns
     -------
@@ -214,7 +218,7 @@ def run_study(
                           overwrite=overwrite, what=f"study file {study.path}") as tx:
         warnings.simplefilter("always")
         t0 = time.perf_counter()
-        values, cache_info = _extract_with_cache(study, out, progress=progress)
+        values, cache_info = _extract_with_cache(study, out, progress=progress, client=client)
         seconds["extraction"] = time.perf_counter() - t0
 
         t0 = time.perf_counter()
@@ -224,7 +228,7 @@ def run_study(
         analysed = collapse_runs(values)  # maps with runs: one value per participant (the mean over runs)
         for analysis in study.analyses:
             try:
-                rows = analysis.run(analysed, study.participants)
+                rows = analysis.run(analysed, study.participants, client=client)
             except RoikitError as exc:
                 raise type(exc)(f"{analysis.label}: {exc}") from exc
             per_analysis.append(rows)

@@ -196,11 +196,11 @@ class Analysis:
         what += f" ({formula})" if formula else ""
         return f"analysis[{self.number}] {self.design}{what}"
 
-    def run(self, values: pd.DataFrame, participants: pd.DataFrame | None) -> pd.DataFrame:
-        """Run this analysis with :func:`roikit.stats.run_design`."""
+    def run(self, values: pd.DataFrame, participants: pd.DataFrame | None, *, client=None) -> pd.DataFrame:
+        """Run this analysis with :func:`roikit.stats.run_design` (``client``: on a Dask cluster)."""
         return run_design(values, self.design, participants=participants, correct=self.correct,
                           permutations=self.permutations, seed=self.seed, confidence=self.confidence,
-                          **self.options)
+                          client=client, **self.options)
 
 
 @dataclass

@@ -21,8 +21,16 @@ def _modules_after(args: list[str]) -> set[str]:
 def test_help_and_version_import_no_numerical_library():
     for args in (["--version"], ["--help"], []):
         loaded = _modules_after(args)
-        heavy = {m for m in loaded if m.split(".")[0] in ("numpy", "pandas", "scipy", "nibabel", "matplotlib")}
+        heavy = {m for m in loaded if m.split(".")[0] in ("numpy", "pandas", "scipy", "nibabel", "matplotlib",
+                                                          "dask", "distributed")}
         assert not heavy, (args, sorted(heavy)[:5])
+
+
+def test_commands_that_take_a_scheduler_import_dask_only_when_one_is_given():
+    for args in (["extract", "--help"], ["stats", "--help"], ["run", "--help"]):
+        loaded = _modules_after(args)
+        dask = {m for m in loaded if m.split(".")[0] in ("dask", "distributed")}
+        assert not dask, (args, sorted(dask)[:5])
 
 
 def test_command_help_still_lists_the_designs(capsys):
