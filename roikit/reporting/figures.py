@@ -163,6 +163,7 @@ def style():
         "pdf.fonttype": 42,
         "ps.fonttype": 42,
         "svg.fonttype": "path",
+        "svg.hashsalt": "roikit",  # the same ids in every run (default: random ones, so no two files are identical)
         "savefig.dpi": 300,
         "figure.dpi": 100,
         "legend.frameon": False,

@@ -218,6 +218,7 @@ def check_values(values: pd.DataFrame, *, variance: bool = False) -> pd.DataFram
             f"expected {', '.join(required)} (as written by roikit extract)"
         )
     values = values.copy(deep=False)
+    values.attrs = {}  # the extraction provenance is not needed here; pandas would deep-copy it on every operation
     for column in ("participant_id", "session_id", "contrast", "region"):
         if column in values.columns and not pd.api.types.is_string_dtype(values[column]):
             col = values[column]
