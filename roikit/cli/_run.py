@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import argparse
 
+from .._options import option
 
 
 HELP = "run a study file: extraction, every analysis and the report"
@@ -35,6 +36,10 @@ def add_parser(subparsers) -> None:
     p.add_argument("--value-label", metavar="TEXT",
                    help='axis label of the region values with their unit, e.g. "%% signal change" (overrides the '
                         "study file's [study] value_label)")
+    table_format = option("table_format", "study")  # the options table: flag, choices and help
+    p.add_argument(table_format.cli, choices=table_format.choices, default=None, metavar=table_format.metavar,
+                   help=f"{table_format.help}; overrides the study file's [study] table_format (default "
+                        f"{table_format.default})")
     p.set_defaults(func=run)
 
 
@@ -45,7 +50,7 @@ def run(args: argparse.Namespace) -> int:
     if args.value_label:
         study.value_label = args.value_label
     result = run_study(study, out=args.out, overwrite=args.overwrite, progress=False if args.quiet else None,
-                        figures=not args.no_figures)
+                        figures=not args.no_figures, table_format=args.table_format)
     args.warnings_file = result.out / "warnings.tsv"
     print(result.out if args.quiet else result.summary())
     return 0
