@@ -185,8 +185,9 @@ class OrderedTasks:
     def _stop(self) -> None:
         pool, self._pool = self._pool, None
         if pool is not None:
+            processes = list((getattr(pool, "_processes", None) or {}).values())  # shutdown() forgets them
             pool.shutdown(wait=False, cancel_futures=True)
-            for proc in list((getattr(pool, "_processes", None) or {}).values()):
+            for proc in processes:
                 with contextlib.suppress(Exception):
                     proc.terminate()
         self._forget()
