@@ -35,12 +35,15 @@ def _size(folder: Path) -> int:
 def _report(demo: Path, out: Path, n_jobs) -> None:
     import warnings
 
+    from roikit._tables import read_sidecar, read_table
     from roikit.reporting import write_report
 
     results = demo / "results"
+    values = read_table(results / "region_values.tsv")
+    values.attrs["roikit"] = read_sidecar(results / "region_values.tsv").get("provenance", {})  # draws the regions
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
-        write_report(results / "region_values.tsv", results / "group_results.tsv",
+        write_report(values, read_table(results / "group_results.tsv"),
                      participants=demo / "study" / "participants.tsv", out=out, figure_formats=("png",),
                      value_label="Parameter estimate (a.u.)", n_jobs=n_jobs)
 
