@@ -26,6 +26,7 @@ from __future__ import annotations
 
 import concurrent.futures as cf
 import contextlib
+import gc
 import multiprocessing as mp
 import os
 import sys
@@ -154,6 +155,11 @@ class OrderedTasks:
         parent = None if self.method == "forkserver" else os.getpid()
         self._pool = cf.ProcessPoolExecutor(self.n_jobs, mp_context=context, initializer=_init_worker,
                                             initargs=(parent, settings, _ENTRY.get(), _CLI.get()))
+        # fork: this process's objects go to the collector's permanent generation while the workers start, so
+        # the workers' collections do not touch (and copy) the pages they share with it (about 3% of their time)
+        freeze = self.method == "fork" and gc.get_freeze_count() == 0
+        if freeze:
+            gc.freeze()
         try:
             if self.method == "fork":
                 self._futures = [self._pool.submit(_run_inherited, self._key, i) for i in range(len(self.tasks))]
@@ -162,6 +168,9 @@ class OrderedTasks:
         except BaseException:
             self._stop()
             raise
+        finally:
+            if freeze:
+                gc.unfreeze()
         return self
 
     def results(self) -> Iterator[Any]:
