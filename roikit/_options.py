@@ -118,6 +118,9 @@ OPTIONS: tuple[Option, ...] = (
     Option("value_label", "study", "str", "axis label of the region values with their unit in the figures, e.g. "
            "\"% signal change\" (roikit run and roikit report: --value-label)", flag="",
            example='"Parameter estimate (a.u.)"'),
+    Option("table_format", "study", "str", "file format of the data tables roikit run writes (region values, group "
+           "results): tsv, or parquet (columnar, through pyarrow, with the same JSON sidecar; roikit report and roikit "
+           "stats read either)", default="tsv", choices=("tsv", "parquet"), metavar="FORMAT", example='"parquet"'),
     # [maps]
     Option("effect", "maps", "str", "path pattern of the first-level effect maps with {subject}, optional "
            "{session}, {run} and {contrast}", flag="--maps", metavar="PATTERN",

@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import argparse
 
+from .._options import option
 from ._cluster import add_scheduler_option, dask_client
 
 
@@ -38,6 +39,10 @@ def add_parser(subparsers) -> None:
                         "study file's [study] value_label)")
     add_scheduler_option(p, does="extract the maps and fit the analyses' regions on the cluster's workers (the "
                          "report is drawn here)")
+    table_format = option("table_format", "study")  # the options table: flag, choices and help
+    p.add_argument(table_format.cli, choices=table_format.choices, default=None, metavar=table_format.metavar,
+                   help=f"{table_format.help}; overrides the study file's [study] table_format (default "
+                        f"{table_format.default})")
     p.set_defaults(func=run)
 
 
@@ -49,7 +54,7 @@ def run(args: argparse.Namespace) -> int:
         study.value_label = args.value_label
     with dask_client(args.scheduler) as client:
         result = run_study(study, out=args.out, overwrite=args.overwrite, progress=False if args.quiet else None,
-                           figures=not args.no_figures, client=client)
+                           figures=not args.no_figures, client=client, table_format=args.table_format)
     args.warnings_file = result.out / "warnings.tsv"
     print(result.out if args.quiet else result.summary())
     return 0

@@ -163,6 +163,7 @@ def style():
         "pdf.fonttype": 42,
         "ps.fonttype": 42,
         "svg.fonttype": "path",
+        "svg.hashsalt": "roikit",  # the same ids in every run (default: random ones, so no two files are identical)
         "savefig.dpi": 300,
         "figure.dpi": 100,
         "legend.frameon": False,
@@ -1306,6 +1307,26 @@ def covariate_plot(
 
 
 # --------------------------------------------------------------------------------------------- export
+def _png_layout(fig: Figure, engine, dpi: float) -> None:
+    """The layout ``savefig(format="png", dpi=dpi)`` computes, without its second pass over every artist.
+
+    With a layout engine, ``savefig`` draws the whole figure once with drawing switched off (the engine runs at
+    the start of that pass) and then again for real; the first pass is needed only for the engine. Running the
+    engine with the renderer that pass would use (Agg at ``dpi``) gives the same layout, so the PNG has the same
+    bytes, for about a sixth less time per figure.
+    """
+    from matplotlib.backends.backend_agg import FigureCanvasAgg
+
+    if not isinstance(fig.canvas, FigureCanvasAgg):
+        FigureCanvasAgg(fig)
+    original = fig.dpi
+    fig.dpi = dpi
+    try:
+        engine.execute(fig)
+    finally:
+        fig.dpi = original
+
+
 def save_figure(
     fig: Figure,
     path: os.PathLike | str,
@@ -1364,6 +1385,9 @@ def save_figure(
                     meta = {"Creator": "roikit", "Date": None}
                 elif ext == "pdf":
                     meta = {"Creator": "roikit", "CreationDate": None}
+                if k == 0 and engine is not None and ext == "png":
+                    _png_layout(fig, engine, dpi)
+                    fig.set_layout_engine("none")
                 fig.savefig(buf, format=ext, dpi=dpi, metadata=meta, facecolor="white")
                 if k == 0 and engine is not None:
                     # the layout depends on the size in inches, not on the format: compute it once, then keep it

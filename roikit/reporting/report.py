@@ -10,10 +10,13 @@ from __future__ import annotations
 import datetime as _dt
 import html as _html
 import os
+import pickle
 import re
 import warnings
+from dataclasses import dataclass
+from functools import partial
 from pathlib import Path
-from typing import Any, Iterable
+from typing import Any, Callable, Iterable
 
 import numpy as np
 import pandas as pd
@@ -53,6 +56,7 @@ from .figures import (
     stimulus_plot,
 )
 from .format import correction_name, corrected_p_symbol, escape_markup, format_percent, render
+from ._parallel import OrderedTasks
 from .html import ReportFigure, Section, figure_html, report_html
 from .tables import ReportTable, descriptives_table, results_tables, word_document, write_latex_preamble
 from .references import bibtex, reference_list
@@ -92,6 +96,15 @@ def _as_table(obj, what: str, required) -> pd.DataFrame | None:
     if isinstance(obj, pd.DataFrame):
         return obj
     raise UsageError(f"{what} must be a DataFrame or a path, got {type(obj).__name__}")
+
+
+def _without_attrs(table: pd.DataFrame | None) -> pd.DataFrame | None:
+    """The table without ``attrs`` (a shallow copy; the caller's table keeps its own)."""
+    if table is None or not table.attrs:
+        return table
+    table = table.copy(deep=False)
+    table.attrs = {}
+    return table
 
 
 def _formula_columns(formula: str) -> list[str]:
@@ -148,7 +161,8 @@ def labels_from_sidecar(participants_tsv: str | os.PathLike | None) -> dict[str,
 def _figure_plan(values: pd.DataFrame, results: pd.DataFrame, participants: pd.DataFrame | None,
                  correct: str | None = None, labels: Labels | None = None, value_label: str | None = None,
                  column_labels: dict[str, str] | None = None) -> list[dict]:
-    """What to draw for each analysis: dicts with name, analysis, make (callable -> Figure), caption, width."""
+    """What to draw for each analysis: dicts with name, analysis, make (a picklable callable -> Figure or pages),
+    caption."""
     plan: list[dict] = []
     labels = labels or Labels()
     contrasts_all = ordered_unique(values["contrast"].map(text))
@@ -168,29 +182,28 @@ def _figure_plan(values: pd.DataFrame, results: pd.DataFrame, participants: pd.D
             note = (" The fixed-effects estimate describes only these participants and does not generalise to the "
                     "population." if design == "fixed-effects" else "")
             plan.append(dict(name=f"{prefix}_participants", caption=f"{escape_markup(title)}. {_POINTS}{flags}{note}",
-                             make=lambda c=contrast, d=design: participant_pages(values, contrast=c, design=d,
-                                                                                  **opts)))
+                             make=partial(participant_pages, values, contrast=contrast, design=design, **opts)))
         elif design == "paired" and contrast and key.get("versus") in contrasts_all:
             plan.append(dict(name=f"{prefix}_participants", caption=(
                 f"{escape_markup(title)}. Grey lines connect each participant's values; open points to the right are "
                 f"the within-participant differences with their mean and CI (diamond). {_POINTS}{flags}"),
-                make=lambda c=contrast, v=key["versus"]: participant_pages(values, contrast=c, versus=v, **opts)))
+                make=partial(participant_pages, values, contrast=contrast, versus=key["versus"], **opts)))
         elif design == "two-group" and contrast and key.get("group_column"):
             levels = [s for s in key.get("levels", "").split(",") if s] or None
             plan.append(dict(name=f"{prefix}_participants", caption=(
                 f"{escape_markup(title)}. Groups differ in colour and marker (Okabe–Ito palette); the diamond is the "
                 f"difference between the group means with its CI. {_POINTS}{flags}"),
-                make=lambda c=contrast, g=key["group_column"], lv=levels: participant_pages(
-                    values, contrast=c, group=g, levels=lv, participants=participants, **opts)))
+                make=partial(participant_pages, values, contrast=contrast, group=key["group_column"], levels=levels,
+                             participants=participants, **opts)))
         elif design == "precision-weighted" and contrast:
             if "variance" in values.columns:
                 plan.append(dict(name=f"{prefix}_precision", caption=(
                     f"{escape_markup(title)}. Point area is proportional to each participant's weight 1/(*v*_{{i}} + "
                     f"τ^{{2}}); the black marker is the precision-weighted estimate with its CI. {flags.strip()}"),
-                    make=lambda c=contrast: participant_pages(values, contrast=c, plot=precision_plot, **opts)))
+                    make=partial(participant_pages, values, contrast=contrast, plot=precision_plot, **opts)))
             else:
                 plan.append(dict(name=f"{prefix}_participants", caption=f"{escape_markup(title)}. {_POINTS}",
-                                 make=lambda c=contrast: participant_pages(values, contrast=c, **opts)))
+                                 make=partial(participant_pages, values, contrast=contrast, **opts)))
         elif design == "glm" and contrast:
             drawn = False
             for term in _formula_columns(key.get("formula", "")):
@@ -201,13 +214,14 @@ def _figure_plan(values: pd.DataFrame, results: pd.DataFrame, participants: pd.D
                         f"{escape_markup(title)}: region values against {escape_markup(labels.variable(term))}. The line is the simple "
                         "least-squares fit with its 95% confidence band; each panel's title quotes the model's "
                         "coefficient b, which is adjusted for the other terms."),
-                        make=lambda t=term, c=contrast, g=group: participant_pages(
-                            values, contrast=c, covariate=t, group=g, participants=participants, plot=covariate_plot,
-                            covariate_label=(column_labels or {}).get(t) or labels.variable(t), **opts)))
+                        make=partial(participant_pages, values, contrast=contrast, covariate=term, group=group,
+                                     participants=participants, plot=covariate_plot,
+                                     covariate_label=(column_labels or {}).get(term) or labels.variable(term),
+                                     **opts)))
                     drawn = True
             if not drawn:
                 plan.append(dict(name=f"{prefix}_participants", caption=f"{escape_markup(title)}. {_POINTS}",
-                                 make=lambda c=contrast: participant_pages(values, contrast=c, **opts)))
+                                 make=partial(participant_pages, values, contrast=contrast, **opts)))
         elif design == "mixed":
             crossed = [c[3:] for c in rows.columns if c.startswith("sd_") and c not in ("sd_participant", "sd_residual")
                        and has_values(rows, c) and c[3:] in values.columns]
@@ -223,9 +237,8 @@ def _figure_plan(values: pd.DataFrame, results: pd.DataFrame, participants: pd.D
                     f"{escape_markup(title)}: per-{escape_markup(labels.variable(stim))} estimates (mean and 95% CI across participants, "
                     "black) with every participant's value behind them; the dotted line is the mean of the "
                     "per-stimulus means, the dashed line zero."),
-                    make=lambda s=stim, g=group, v=model_values: participant_pages(v, stimulus=s, group=g,
-                                                                    participants=participants, plot=stimulus_plot,
-                                                                    **opts)))
+                    make=partial(participant_pages, model_values, stimulus=stim, group=group,
+                                 participants=participants, plot=stimulus_plot, **opts)))
         elif design == "repeated-measures" and has_values(rows, "cells"):
             within = ordered_unique(t for v in col(rows, "within") for t in text(v).split(",") if t)
             between = key.get("group_column") or ""
@@ -236,8 +249,7 @@ def _figure_plan(values: pd.DataFrame, results: pd.DataFrame, participants: pd.D
                    if len(within) > 1 else "")
                 + (f"; one column per {escape_markup(between)}" if between else "")
                 + ". Only participants with every cell (as in the test) are drawn; the dashed line marks zero."),
-                make=lambda r=rows: interaction_pages(values, r, participants=participants,
-                                                      value_label=value_label)))
+                make=partial(interaction_pages, values, rows, participants=participants, value_label=value_label)))
         # forest plots: one per term with an interval (intercepts of models left out)
         all_terms = ordered_unique(rows["term"].map(text))
         drawn_terms = [t for t in all_terms if not (is_intercept(t) and len(all_terms) > 1)]
@@ -267,11 +279,71 @@ def _figure_plan(values: pd.DataFrame, results: pd.DataFrame, participants: pd.D
             plan.append(dict(name=name, caption=(
                 f"{escape_markup(title)}, {escape_markup(label)}: estimates with their 95% CIs across regions. "
                 f"{marks} The dashed line marks zero."),
-                make=lambda pt=part, c=primary, u=in_value_units: forest_pages(
-                    pt, correction=c, value_label=value_label if u else None)))
+                make=partial(forest_pages, part, correction=primary,
+                             value_label=value_label if in_value_units else None)))
         for item in plan[start:]:
             item["analysis"] = n_analysis
     return plan
+
+
+@dataclass(frozen=True)
+class _FigureTask:
+    """One figure of the report (one or more pages), drawn and saved by :func:`_draw_figure` (picklable)."""
+
+    make: Callable[[], Any]  # -> a Figure, a list of pages, or (pages, *extra) (functools.partial: picklable)
+    name: str  # file stem
+    label: str  # names the figure in "Figures not drawn"
+    caption: str = ""
+    analysis: Any = "n/a"
+    pages: str = "_p"  # suffix of page k when there are several ("": always one page)
+    catch: tuple = (UsageError,)  # reported as not drawn; anything else stops the report
+
+    def page_name(self, k: int, n: int) -> str:
+        if self.pages == "_p":
+            suffix = f"_p{k}" if n > 1 else ""
+            return _short(self.name, ".png" + suffix) + suffix  # the page number is never cut off
+        return self.name + (f"{self.pages}{k}" if n > 1 else "")
+
+
+def _draw_figure(task: _FigureTask, folder: Path, formats: tuple[str, ...], overwrite: bool) -> dict:
+    """Draw one figure and save its pages into ``folder``: the same in a worker process and in this one.
+
+    Returns the pages (file stem, files written, width in mm), what ``make`` returned beside the pages, the
+    message of an expected failure (``task.catch``) and the warnings raised (category, message, file, line),
+    which the caller raises again in order.
+    """
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
+        error, extra, saved = None, None, []
+        try:
+            made = task.make()
+        except task.catch as exc:
+            error = str(exc)
+        else:
+            if isinstance(made, tuple):
+                made, extra = made[0], made[1:]
+            pages = made if isinstance(made, list) else [made]
+            for k, fig in enumerate(pages, start=1):
+                name = task.page_name(k, len(pages))
+                paths = save_figure(fig, folder / name, width=None, formats=formats, overwrite=overwrite)
+                saved.append({"name": name, "files": [p.name for p in paths],
+                              "width_mm": float(fig.get_size_inches()[0] * 25.4)})
+    found = []
+    for w in caught:
+        message = w.message if isinstance(w.message, Warning) else w.category(str(w.message))
+        try:
+            pickle.loads(pickle.dumps(message))
+        except Exception:  # a warning that cannot travel between processes goes as a plain UserWarning
+            message = UserWarning(f"{w.category.__name__}: {w.message}")
+        found.append((type(message), message, w.filename, w.lineno))
+    return {"pages": saved, "extra": extra, "error": error, "warnings": found}
+
+
+def _functional_figure(regions, values_prov: dict, functional: dict):
+    from .region_figure import functional_overlap_figure, regions_from_provenance
+
+    return functional_overlap_figure(regions if regions is not None else regions_from_provenance(values_prov),
+                                     functional)
 
 
 def _region_figures(values: pd.DataFrame, values_prov: dict, regions, background) -> tuple[list, Any, str]:
@@ -424,6 +496,7 @@ def write_report(
     regions: Any = None,
     region_background: Any = "maps",
     column_labels: dict[str, str] | None = None,
+    n_jobs: int | None = None,
     _staged: bool = False,
 ) -> dict[str, Any]:
     """Write tables, figures, methods and results text (Markdown and Word), references, an index, a
@@ -476,6 +549,10 @@ def write_report(
     labels : dict, optional
         BIDS sidecar(s) describing participants.tsv / contrasts.tsv columns (``{"group": {"LongName": ...,
         "Levels": {...}}}``); merged over the participants sidecar.
+    n_jobs : int, optional
+        Worker processes that draw the figures, each figure in one, while this process writes the tables
+        (default: one per usable core, at most one per figure); 1 draws them here, one after the other. The
+        files are the same either way.
 
     Returns
     -------
@@ -499,7 +576,7 @@ def write_report(
         options = dict(participants=participants, provenance=provenance, title=title, circular=circular,
                        figures=figures, figure_formats=figure_formats, correct=correct, labels=labels,
                        value_label=value_label, regions=regions, region_background=region_background,
-                       column_labels=column_labels)
+                       column_labels=column_labels, n_jobs=n_jobs)
         with FolderOutputs(out, writer=REPORT_WRITER, overwrite=overwrite) as tx, \
                 warnings.catch_warnings(record=True) as caught:
             warnings.simplefilter("always")
@@ -536,6 +613,10 @@ def write_report(
     out.mkdir(parents=True, exist_ok=True)
     extra = dict(provenance or {})
     values_prov = values.attrs.get("roikit") or extra.get("values") or {}
+    # pandas deep-copies ``attrs`` on every operation; the provenance (every map's path and hash) is read once
+    # here, so the tables the report works on carry none (with it, copying took most of the report's time)
+    values, results = _without_attrs(values), _without_attrs(results)
+    participants = _without_attrs(participants)
     index: list[dict] = []
 
     def listed(path: Path, analysis, kind: str, caption: str) -> Path:
@@ -543,39 +624,7 @@ def write_report(
                       "caption": _plain(caption)})
         return path
 
-    # ---------------------------------------------------------------- tables
-    tables = results_tables(results, correct=correct, labels=names, participants=participants)
-    from .text import circular_regions
-
-    circ_tested = [n for n in circular_regions(values_prov, circular) if n in set(results["region"].map(text))]
-    if circ_tested:  # the circularity caution travels with every results table (its note)
-        for t in tables:
-            t.note.append(f"Circular region definition: {escape_markup(', '.join(circ_tested))} "
-                          f"{'was' if len(circ_tested) == 1 else 'were'} defined from the same data that are tested; "
-                          "read these rows as descriptive (Kriegeskorte et al., 2009).")
-    group_cols = [g for g in ordered_unique(text(v) for v in col(results, "group_column") if text(v))
-                  if g in values.columns or (participants is not None and g in participants.columns)]
-    desc = descriptives_table(values, participants=participants, group=group_cols[0] if group_cols else None,
-                              number=len(tables) + 1, contrasts=_analysed_contrasts(results), labels=names)
-    all_tables: list[ReportTable] = tables + [desc]
-    table_paths: list[Path] = []
-    document = word_document()
-    for t in all_tables:
-        analysis = t.name.split("-", 1)[0][1:] if t.name.startswith("a") and t.name[1:2].isdigit() else "n/a"
-        for path in t.write(out / "tables", overwrite=overwrite):
-            table_paths.append(listed(path, analysis, f"table ({path.suffix[1:]})", f"Table {t.number}. {t.title}"))
-        t.to_docx(document=document)
-        document.add_paragraph()
-    table_paths.append(listed(write_latex_preamble(out / "tables", all_tables, overwrite=overwrite), "n/a",
-                              "LaTeX preamble", "The LaTeX packages the tables need (input it in the preamble)"))
-    import io
-
-    buf = io.BytesIO()
-    document.save(buf)
-    path = atomic_write_bytes(out / "tables" / "all_tables.docx", buf.getvalue(), overwrite=overwrite)
-    table_paths.append(listed(path, "all", "tables (docx)", "Every table in one Word document"))
-
-    # ---------------------------------------------------------------- figures
+    # ---------------------------------------------------------------- figures (drawn while the tables are written)
     figure_items: list[ReportFigure] = []
     figure_paths: list[Path] = []
     figure_errors: list[str] = []
@@ -583,67 +632,100 @@ def write_report(
     drawn_regions = None
     region_note = ""
     formats = tuple(dict.fromkeys(tuple(figure_formats) + ("png",)))
-
-    def add_figure(fig, name: str, caption: str, alt: str, analysis) -> ReportFigure:
-        paths = save_figure(fig, out / "figures" / name, width=None, formats=formats, overwrite=overwrite)
-        number_ = len(figure_items) + 1
-        for p in paths:
-            figure_paths.append(listed(p, analysis, f"figure ({p.suffix[1:]})", f"Figure {number_}. {caption}"))
-        png_path = next(p for p in paths if p.suffix == ".png")
-        item = ReportFigure(png=png_path.read_bytes(), alt=alt, caption=caption, number=number_, name=name,
-                            width_mm=float(fig.get_size_inches()[0] * 25.4), file=png_path.relative_to(out).as_posix())
-        figure_items.append(item)
-        return item
-
+    tasks: list[_FigureTask] = []
     if figures and regions is None and not values_prov.get("region_sources"):
         region_note = ("The values carry no description of the regions (no extraction provenance), so the regions "
                        "are not drawn; pass the realised regions (regions=...) to draw them.")
     elif figures:
         # where the regions are (the manuscript's first region figure), then the analyses' figures
-        try:
-            pages, drawn_regions, background_text = _region_figures(values, values_prov, regions, region_background)
-        except (UsageError, OSError, ValueError) as exc:  # roikit's errors subclass these too
-            figure_errors.append(f"regions: {exc}")
-            pages = []
-        for k, fig in enumerate(pages, start=1):
-            name = "regions" + (f"_page{k}" if len(pages) > 1 else "")
-            caption = (f"The regions of interest, each on a sagittal, a coronal and an axial slice through its centre "
-                       f"(world coordinates in mm; L, left; R, right) over the {escape_markup(background_text)}; "
-                       "one colour per region (Okabe–Ito palette, repeating after seven)."
-                       + (f" (Page {k} of {len(pages)}.)" if len(pages) > 1 else ""))
-            region_items.append(add_figure(fig, name, caption, f"Regions of interest on orthogonal slices, page {k} "
-                                                               f"of {len(pages)}", "all"))
+        tasks.append(_FigureTask(partial(_region_figures, values, values_prov, regions, region_background),
+                                 "regions", "regions", pages="_page", catch=(UsageError, OSError, ValueError)))
         functional = values_prov.get("functional") if isinstance(values_prov.get("functional"), dict) else None
         if functional and functional.get("selections"):
-            from .region_figure import functional_overlap_figure, regions_from_provenance
+            tasks.append(_FigureTask(partial(_functional_figure, regions, values_prov, functional),
+                                     "functional_regions", "functional regions", pages="",
+                                     catch=(UsageError, OSError, ValueError, KeyError, TypeError)))
+    if figures:
+        for item in _figure_plan(values, results, participants, correct=correct, labels=names,
+                                 value_label=value_label, column_labels=column_labels):
+            tasks.append(_FigureTask(item["make"], item["name"], item["name"], caption=item["caption"],
+                                     analysis=item.get("analysis", "n/a")))
 
-            try:
-                fig = functional_overlap_figure(regions if regions is not None
-                                                else regions_from_provenance(values_prov), functional)
-            except (UsageError, OSError, ValueError, KeyError, TypeError) as exc:
-                figure_errors.append(f"functional regions: {exc}")
-            else:
+    def add_figure(page: dict, caption: str, alt: str, analysis) -> ReportFigure:
+        paths = [out / "figures" / file for file in page["files"]]
+        number_ = len(figure_items) + 1
+        for p in paths:
+            figure_paths.append(listed(p, analysis, f"figure ({p.suffix[1:]})", f"Figure {number_}. {caption}"))
+        png_path = next(p for p in paths if p.suffix == ".png")
+        item = ReportFigure(png=png_path.read_bytes(), alt=alt, caption=caption, number=number_, name=page["name"],
+                            width_mm=page["width_mm"], file=png_path.relative_to(out).as_posix())
+        figure_items.append(item)
+        return item
+
+    # worker processes draw and save the figures (one task per figure, in order) while this one writes the tables
+    folder = (out / "figures").absolute()
+    with OrderedTasks(_draw_figure, tasks, (folder, formats, overwrite), n_jobs=n_jobs) as drawn:
+        # ------------------------------------------------------------ tables
+        tables = results_tables(results, correct=correct, labels=names, participants=participants)
+        from .text import circular_regions
+
+        circ_tested = [n for n in circular_regions(values_prov, circular) if n in set(results["region"].map(text))]
+        if circ_tested:  # the circularity caution travels with every results table (its note)
+            for t in tables:
+                t.note.append(f"Circular region definition: {escape_markup(', '.join(circ_tested))} "
+                              f"{'was' if len(circ_tested) == 1 else 'were'} defined from the same data that are tested; "
+                              "read these rows as descriptive (Kriegeskorte et al., 2009).")
+        group_cols = [g for g in ordered_unique(text(v) for v in col(results, "group_column") if text(v))
+                      if g in values.columns or (participants is not None and g in participants.columns)]
+        desc = descriptives_table(values, participants=participants, group=group_cols[0] if group_cols else None,
+                                  number=len(tables) + 1, contrasts=_analysed_contrasts(results), labels=names)
+        all_tables: list[ReportTable] = tables + [desc]
+        table_paths: list[Path] = []
+        document = word_document()
+        for t in all_tables:
+            analysis = t.name.split("-", 1)[0][1:] if t.name.startswith("a") and t.name[1:2].isdigit() else "n/a"
+            for path in t.write(out / "tables", overwrite=overwrite):
+                table_paths.append(listed(path, analysis, f"table ({path.suffix[1:]})", f"Table {t.number}. {t.title}"))
+            t.to_docx(document=document)
+            document.add_paragraph()
+        table_paths.append(listed(write_latex_preamble(out / "tables", all_tables, overwrite=overwrite), "n/a",
+                                  "LaTeX preamble", "The LaTeX packages the tables need (input it in the preamble)"))
+        import io
+
+        buf = io.BytesIO()
+        document.save(buf)
+        path = atomic_write_bytes(out / "tables" / "all_tables.docx", buf.getvalue(), overwrite=overwrite)
+        table_paths.append(listed(path, "all", "tables (docx)", "Every table in one Word document"))
+
+        # ------------------------------------------------------------ figures
+        for task, done in zip(tasks, drawn.results()):
+            for category, message, filename, lineno in done["warnings"]:  # raised where the figure was drawn
+                warnings.warn_explicit(message, category, filename, lineno)
+            if done["error"] is not None:  # a figure that cannot be drawn is reported, never silently skipped
+                figure_errors.append(f"{task.label}: {done['error']}")
+                continue
+            pages = done["pages"]
+            if task.name == "regions":
+                drawn_regions, background_text = done["extra"]
+                for k, page in enumerate(pages, start=1):
+                    caption = (f"The regions of interest, each on a sagittal, a coronal and an axial slice through its "
+                               f"centre (world coordinates in mm; L, left; R, right) over the "
+                               f"{escape_markup(background_text)}; one colour per region (Okabe–Ito palette, repeating "
+                               "after seven)." + (f" (Page {k} of {len(pages)}.)" if len(pages) > 1 else ""))
+                    region_items.append(add_figure(page, caption, f"Regions of interest on orthogonal slices, page "
+                                                                  f"{k} of {len(pages)}", "all"))
+            elif task.name == "functional_regions":
                 caption = ("Each functional region's selected voxels: the share of participants whose selection "
                            "(from their own localiser maps; averaged over folds with a leave-one-run-out split) holds "
                            "each voxel of the search space (grey), on a sagittal, a coronal and an axial slice "
                            "through the voxel selected most often (world coordinates in mm; L, left; R, right).")
-                region_items.append(add_figure(fig, "functional_regions", caption,
+                region_items.append(add_figure(pages[0], caption,
                                                "Overlap of the participants' functional-region voxels", "all"))
-    if figures:
-        for item in _figure_plan(values, results, participants, correct=correct, labels=names,
-                                 value_label=value_label, column_labels=column_labels):
-            try:
-                made = item["make"]()
-            except UsageError as exc:  # a figure that cannot be drawn is reported, never silently skipped
-                figure_errors.append(f"{item['name']}: {exc}")
-                continue
-            pages = made if isinstance(made, list) else [made]  # regions beyond one page go onto further figures
-            for k, fig in enumerate(pages, start=1):
-                suffix = f"_p{k}" if len(pages) > 1 else ""
-                name = _short(item["name"], ".png" + suffix) + suffix  # the page number is never cut off
-                caption = item["caption"] + (f" (Page {k} of {len(pages)}.)" if len(pages) > 1 else "")
-                alt = render(caption, "plain").split(". ")[0]  # markup rendered: underscores in names stay
-                add_figure(fig, name, caption, alt, item.get("analysis", "n/a"))
+            else:
+                for k, page in enumerate(pages, start=1):
+                    caption = task.caption + (f" (Page {k} of {len(pages)}.)" if len(pages) > 1 else "")
+                    alt = render(caption, "plain").split(". ")[0]  # markup rendered: underscores in names stay
+                    add_figure(page, caption, alt, task.analysis)
 
     # ---------------------------------------------------------------- text
     found = cautions(results, provenance=values_prov, circular=circular)

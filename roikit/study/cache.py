@@ -225,6 +225,7 @@ def _extract_with_cache(study: Study, out: Path, *, progress: bool | None, analy
                                             f"cache, {cache_path}") from exc
             raise
         prov = dict(fresh.attrs.get("roikit", {}))
+        fresh.attrs = {}  # slicing below would deep-copy the provenance (every map's record) once per map
         fresh_inputs = prov.pop("inputs", [])
         base = prov
         for j, i in enumerate(todo):

@@ -16,7 +16,8 @@ from .._options import plural
 from .._outputs import FolderOutputs
 from .._tables import sha256_file, sidecar_path, write_json, write_table
 from .._typing import PathLike
-from ..errors import WARNING_COLUMNS, RoikitError, RoikitWarning, summarise_warnings, summarised, warning_records
+from ..errors import (WARNING_COLUMNS, RoikitError, RoikitWarning, UsageError, summarise_warnings, summarised,
+                      warning_records)
 from ..extraction import VALUE_COLUMNS
 from ..functional import FUNCTIONAL_COLUMNS
 from ..stats import COLUMN_DESCRIPTIONS
@@ -83,8 +84,9 @@ class StudyRun:
                          "listed in warnings.tsv and the report)")
         else:
             lines.append("  warnings: none")
+        ext = ".parquet" if "group_results.parquet" in self.outputs else ".tsv"
         lines.append(f"  outputs: {self.out}{os.sep} (report.html, methods.md/.docx, results.md/.docx, "
-                     "references.bib, group_results.tsv, region_values.tsv, tables/, figures/, index.tsv, "
+                     f"references.bib, group_results{ext}, region_values{ext}, tables/, figures/, index.tsv, "
                      "warnings.tsv, provenance.json)")
         return "\n".join(lines)
 
@@ -155,6 +157,8 @@ def run_study(
     figures: bool = True,
     figure_formats: Sequence[str] = ("pdf", "svg", "png"),
     client=None,
+    table_format: str | None = None,
+    figure_jobs: int | None = None,
 ) -> StudyRun:
     """Run a study file: extraction (with a cache), every analysis, the report, provenance.
 
@@ -180,6 +184,11 @@ def run_study(
     client : distributed.Client, optional
         Run extraction (the maps the cache lacks) and every analysis's per-region fits on a Dask cluster (optional
         ``distributed`` extra); the outputs are the same bytes as without it. The report is drawn here.
+    table_format : {"tsv", "parquet"}, optional
+        File format of ``region_values`` and ``group_results`` (default: the study file's ``[study] table_format``,
+        else ``tsv``); Parquet tables have the same JSON sidecar.
+    figure_jobs : int, optional
+        Worker processes drawing the figures (see :func:`roikit.reporting.write_report`, ``n_jobs``).
 
     Returns
     -------
@@ -208,6 +217,7 @@ def run_study(
     if not isinstance(study, Study):
         study = load_study(study)
     out = Path(out) if out is not None else study.default_out
+    ext = _table_suffix(table_format or study.table_format)
     from ..reporting import write_report
     from ..reporting.report import labels_from_sidecar
 
@@ -239,11 +249,11 @@ def run_study(
         t0 = time.perf_counter()
         tmp = tx.staging
         written = [
-            write_table(tmp / "region_values.tsv", values,
+            write_table(tmp / f"region_values{ext}", values,
                         sidecar={"columns": {c: {**VALUE_COLUMNS, **FUNCTIONAL_COLUMNS}.get(c, "")
                                              for c in values.columns},
                                  "provenance": values.attrs.get("roikit", {})}),
-            write_table(tmp / "group_results.tsv", results,
+            write_table(tmp / f"group_results{ext}", results,
                         sidecar=_results_sidecar(study, results, per_analysis)),
         ]
         written += [sidecar_path(p) for p in written]
@@ -262,7 +272,7 @@ def run_study(
                                  "warnings": summarise_warnings(so_far)},
                      title=study.title, circular=study.circular, figures=figures,
                      figure_formats=tuple(figure_formats), value_label=study.value_label, regions=study.realised,
-                     column_labels=labels_from_sidecar(study.participants_path))
+                     column_labels=labels_from_sidecar(study.participants_path), n_jobs=figure_jobs)
         seconds["report"] = time.perf_counter() - t0
         for w in caught:  # messages naming the temporary folder name the output folder instead
             if str(tmp) in str(w.message):
@@ -285,6 +295,15 @@ def run_study(
     return StudyRun(study=study, out=out, values=values, results=results, per_analysis=per_analysis,
                     outputs=outputs, extracted=cache_info["extracted"], reused=cache_info["reused"],
                     warnings=recorded, seconds=seconds)
+
+def _table_suffix(table_format: str) -> str:
+    from .._options import check_value, option, spell
+
+    problem = check_value(option("table_format", "study"), table_format)
+    if problem:
+        raise UsageError(f"{spell('table_format')} {problem}")
+    return ".parquet" if table_format == "parquet" else ".tsv"
+
 
 def _results_sidecar(study: Study, results: pd.DataFrame, per_analysis: list) -> dict:
     extra: dict = {}

@@ -68,7 +68,8 @@ FORMULA_TRANSFORMS = TRANSFORMS
 #: What ``run_study`` writes into the output folder (besides the cache).
 OUTPUTS = ("region_values.tsv", "region_values.json", "group_results.tsv", "group_results.json", "tables",
            "figures", "report.html", "methods.md", "provenance.json", "methods.docx", "results.md", "results.docx",
-           "references.bib", "index.tsv", "warnings.tsv", "warnings.json")
+           "references.bib", "index.tsv", "warnings.tsv", "warnings.json", "region_values.parquet",
+           "group_results.parquet")
 
 #: Folder (inside the output folder) holding the extraction cache.
 CACHE_FOLDER = ".cache"
@@ -230,6 +231,8 @@ class Study:
         The parsed TOML.
     value_label : str or None
         Axis label of the region values with their unit in the figures (``[study] value_label``).
+    table_format : {"tsv", "parquet"}
+        File format of the region values and group results tables ``run_study`` writes (``[study] table_format``).
     load_warnings : list
         Warnings raised while realising the regions (overlaps, resampling, label tables); ``run_study`` lists them
         in ``warnings.tsv``.
@@ -254,6 +257,7 @@ class Study:
     analyses: list[Analysis]
     raw: dict = field(repr=False, default_factory=dict)
     value_label: str | None = None
+    table_format: str = "tsv"
     load_warnings: list = field(repr=False, default_factory=list)
     functional: list = field(default_factory=list)
     run_maps: pd.DataFrame | None = None
@@ -400,6 +404,11 @@ def load_study(path: PathLike) -> Study:
     c.keys(section, "study", "study")
     title = c.string(section, "title", "study") or path.stem
     value_label = c.string(section, "value_label", "study")
+    table_format = section.get("table_format", "tsv")
+    problem = check_value(option("table_format", "study"), table_format)
+    if problem:
+        c.add("study.table_format", problem)
+        table_format = "tsv"
     participants_path = c.file(section, "participants", "study", what="participants table")
     participants = None
     if participants_path is not None:
@@ -485,7 +494,7 @@ def load_study(path: PathLike) -> Study:
         raise StudyError(path, c.problems)
     study = Study(path=path, title=title, participants_path=participants_path, participants=participants, maps=maps,
                   regions=regions, realised=realised, circular=circular, statistic=statistic, keep_zeros=keep_zeros,
-                  jobs=jobs, analyses=analyses, raw=raw, value_label=value_label,
+                  jobs=jobs, analyses=analyses, raw=raw, value_label=value_label, table_format=table_format,
                   load_warnings=list(load_warnings), functional=functional, run_maps=run_maps)
     if functional:
         # the circularity guard: before any map is read

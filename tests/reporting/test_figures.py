@@ -633,6 +633,8 @@ def test_report_command_takes_a_value_label(values, results_by_design, participa
         return real(data, **kwargs)
 
     monkeypatch.setattr(report_module, "participant_pages", spy)
+    # the spy records in this process: draw the figures here, not in worker processes
+    monkeypatch.setattr("roikit.reporting._parallel.usable_cores", lambda: 1)
 
     write_table(tmp_path / "values.tsv", values)
     write_table(tmp_path / "results.tsv", results_by_design["glm"])

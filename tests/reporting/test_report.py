@@ -265,5 +265,6 @@ def test_stimulus_figure_shows_only_the_contrasts_of_the_mixed_model(tmp_path, v
     monkeypatch.setattr(report_module, "participant_pages", spy)
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
-        write_report(both, mixed, participants=participants, out=tmp_path / "r", figure_formats=("png",))
+        # n_jobs=1: the spy records in this process
+        write_report(both, mixed, participants=participants, out=tmp_path / "r", figure_formats=("png",), n_jobs=1)
     assert seen == [["town1", "town2"]]
