@@ -484,10 +484,7 @@ def extract_functional(
         region = next((f.name for f in functional if text.startswith(f"functional region {f.name!r}")), None)
         warnings.warn(CautionWarning(text, findings=[{"problem": "functional region selected on shared data",
                                                       **({"region": region} if region else {})}]), stacklevel=2)
-    table = pd.DataFrame(rows)
-    for c in ("n_voxels", "n_valid", "n_search", "n_folds"):
-        if c in table.columns:  # nullable integers: beside other regions' rows (n/a) they stay whole numbers
-            table[c] = table[c].astype(np.int64 if c in ("n_voxels", "n_valid") else "Int64")
+    table = integer_counts(pd.DataFrame(rows))
     table.attrs["roikit"] = {
         "kind": "functional region values",
         "statistic": statistic,
@@ -500,6 +497,15 @@ def extract_functional(
                        "selections": records},
         "circular_regions": [f.name for f in functional if f.circular_ok and f.split != "run"],
     }
+    return table
+
+
+def integer_counts(table: pd.DataFrame) -> pd.DataFrame:
+    """Voxel counts as integers: ``n_voxels``, ``n_valid`` as int64, ``n_search``, ``n_folds`` as nullable integers
+    (beside other regions' rows, n/a, they stay whole numbers), whether the rows were computed or cached."""
+    for c in ("n_voxels", "n_valid", "n_search", "n_folds"):
+        if c in table.columns:
+            table[c] = table[c].astype(np.int64 if c in ("n_voxels", "n_valid") else "Int64")
     return table
 
 

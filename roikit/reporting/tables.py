@@ -643,10 +643,17 @@ def write_latex_preamble(directory: os.PathLike | str, tables: Iterable["ReportT
 
 # ---------------------------------------------------------------------------------------------- results
 def _format_bf(value: Any) -> str:
-    """A Bayes factor: three decimals below .1, two below 100, one below 1,000, then whole numbers."""
+    """A Bayes factor: three decimals below .1, two below 100, one below 1,000, then whole numbers.
+
+    Beyond 100,000 and below .001, three significant digits times a power of ten (``4.32 × 10^{15}``): sixteen
+    digits of a whole number claim a precision the prior's choice does not have (common practice, no source).
+    """
     bf = number(value)
     if not np.isfinite(bf):
         return MISSING
+    if bf >= 1e5 or 0 < bf < 1e-3:
+        mantissa, exponent = f"{bf:.2e}".split("e")
+        return f"{mantissa} × 10^{{{int(exponent)}}}"
     if bf >= 1000:
         return f"{bf:,.0f}"
     return format_number(bf, 3 if bf < 0.1 else 2 if bf < 100 else 1)

@@ -301,7 +301,6 @@ def _functional_key(study: Study, tested: list) -> str:
     return h.hexdigest()
 
 
-_FUNCTIONAL_INTS = ("n_voxels", "n_valid", "n_search", "n_folds")
 _FUNCTIONAL_FLOATS = ("value", "variance", "selected_share")
 
 
@@ -311,7 +310,7 @@ def _functional_with_cache(study: Study, tested: list, gathered: dict, entry) ->
 
     Returns the rows, the cache entry to store and whether it was reused.
     """
-    from ..functional import extract_functional
+    from ..functional import extract_functional, integer_counts
 
     key = _functional_key(study, tested)
     if isinstance(entry, dict) and entry.get("key") == key and isinstance(entry.get("columns"), list) \
@@ -321,9 +320,7 @@ def _functional_with_cache(study: Study, tested: list, gathered: dict, entry) ->
             for c in _FUNCTIONAL_FLOATS:
                 if c in table.columns:
                     table[c] = pd.to_numeric(table[c]).astype(np.float64)
-            for c in _FUNCTIONAL_INTS:
-                if c in table.columns:
-                    table[c] = table[c].astype(np.int64)
+            table = integer_counts(table)
             caught = [getattr(_errors, w["category"])(w["message"], findings=w.get("findings"))
                       for w in entry.get("warnings", [])]
         except (TypeError, ValueError, KeyError, AttributeError):

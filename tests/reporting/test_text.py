@@ -142,3 +142,18 @@ def test_methods_sentences_for_round_two_columns(values, results_by_design, part
     assert "tested route × group in a repeated-measures analysis of variance of the novel and familiar values" in text
     assert "Mauchly's test (Mauchly, 1940)" in text and "Greenhouse–Geisser (Greenhouse & Geisser, 1959)" in text
     assert "BF_10 = Bayes factor" in text
+
+
+def test_large_and_tiny_bayes_factors_are_written_with_a_power_of_ten():
+    """A Bayes factor of 4.3e15 is not written with sixteen digits; the markup renders per format."""
+    from roikit.reporting.format import render
+    from roikit.reporting.tables import _format_bf
+
+    assert _format_bf(4320086568325880.0) == "4.32 × 10^{15}"
+    assert _format_bf(2.1e-5) == "2.10 × 10^{-5}"
+    assert _format_bf(12345.6) == "12,346"
+    assert _format_bf(0.05) == "0.050"
+    assert render(_format_bf(4.32e15), "plain") == "4.32 × 10^15"
+    assert render(_format_bf(4.32e15), "html") == "4.32 × 10<sup>15</sup>"
+    assert render(_format_bf(4.32e15), "markdown") == "4.32 × 10¹⁵"
+    assert "\\textsuperscript{15}" in render(_format_bf(4.32e15), "latex")

@@ -76,16 +76,16 @@ def _write(root, top='"20%"'):
 
 @pytest.fixture
 def reads(monkeypatch):
-    """Count the maps whose voxels are read (the region extraction's and the functional pass's reader)."""
+    """Count the maps whose voxels are read: every read, the region extraction's and the functional pass's, goes
+    through extraction._fetch_flat (effect and variance maps alike)."""
     count = {"n": 0}
-    for module in (roikit.extraction, roikit.functional):
-        original = module._read_gathered
+    original = roikit.extraction._fetch_flat
 
-        def counting(*args, _original=original, **kwargs):
-            count["n"] += 1
-            return _original(*args, **kwargs)
+    def counting(*args, **kwargs):
+        count["n"] += 1
+        return original(*args, **kwargs)
 
-        monkeypatch.setattr(module, "_read_gathered", counting)
+    monkeypatch.setattr(roikit.extraction, "_fetch_flat", counting)
     return count
 
 
