@@ -463,7 +463,12 @@ def _functional_sentences(prov: dict, values: pd.DataFrame | None, cite: Citatio
         if rec.get("split") == "run":
             combined = "precision-weighted mean" if str(info.get("localiser_runs_combined_by", "")).startswith(
                 "precision") else "mean"
-            s += (f". Voxels were selected on the {combined} localiser map of all runs but one and the tested contrast was "
+            trained = {len(fold.get("train_runs") or []) for sel in info.get("selections", []) or []
+                       if isinstance(sel, dict) and sel.get("region") == name
+                       for fold in sel.get("folds", []) or [] if isinstance(fold, dict)}
+            source = (f"the {combined} localiser map of all runs but one" if trained != {1}
+                      else "the localiser map of the other run")  # two runs: one run trains, the other is measured
+            s += (f". Voxels were selected on {source} and the tested contrast was "
                   "measured on the held-out run; each participant's value was the mean over the held-out runs, so "
                   f"selection and measurement used independent data ({cite.cite('kriegeskorte2009')}).")
         else:

@@ -123,6 +123,8 @@ def test_split_study_runs_end_to_end(run_study_dir):
     methods = (run.out / "methods.md").read_text(encoding="utf-8")
     assert ("The functional region novelty fROI was defined for each participant within right caudate" in methods
             and "held-out run" in methods and "(range 16–16)" in methods)
+    # two runs: each fold selects on the one other run (not "the mean of all runs but one")
+    assert "selected on the localiser map of the other run" in methods and "all runs but one" not in methods
     # the values agree with a selection computed here by hand with nibabel (top 16 of run A, measured on run B)
     import nibabel as nib
 
