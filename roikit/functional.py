@@ -34,7 +34,7 @@ from typing import Sequence
 import numpy as np
 import pandas as pd
 
-from ._options import _ENTRY, noun
+from ._options import _ENTRY, noun, suggest
 from .errors import CautionWarning, CircularAnalysisError, CoverageWarning, UsageError
 from .extraction import STATISTICS, TRIM, _headers, _read_gathered, _validate_maps
 from .images import DEFAULT_ATOL
@@ -327,10 +327,11 @@ def _check_definitions(maps: pd.DataFrame, functional: Sequence[FunctionalRegion
         seen.add(f.name)
         if names is not None and f.within not in names:
             raise UsageError(f"functional region {f.name!r}: search space within={f.within!r} is not a region of "
-                             f"the set ({', '.join(names[:8])}{' ...' if len(names) > 8 else ''})")
+                             f"the set{suggest(f.within, names)} (regions: {', '.join(names[:8])}"
+                             f"{' ...' if len(names) > 8 else ''})")
         if f.localiser not in all_contrasts:
-            raise UsageError(f"functional region {f.name!r}: localiser {f.localiser!r} has no maps (contrasts "
-                             f"found: {', '.join(all_contrasts)})")
+            raise UsageError(f"functional region {f.name!r}: localiser {f.localiser!r} has no maps"
+                             f"{suggest(f.localiser, all_contrasts)} (contrasts found: {', '.join(all_contrasts)})")
         if f.split == "run" and not has_runs:
             raise UsageError(f"functional region {f.name!r}: split=" + ("run" if cli else "\"run\"") + " needs maps "
                              "with runs (a {run} placeholder in " + ("--maps" if cli else "the map pattern") + ", "
@@ -338,7 +339,9 @@ def _check_definitions(maps: pd.DataFrame, functional: Sequence[FunctionalRegion
     missing = [c for c in tested if c not in all_contrasts]
     if missing:
         what = "--functional-contrasts" if cli else "tested contrasts"
-        raise UsageError(f"{what} {missing} have no maps (found: {', '.join(all_contrasts)})")
+        raise UsageError(f"{what}: {noun(missing, 'contrast')} {', '.join(repr(m) for m in missing)} "
+                         f"{'has' if len(missing) == 1 else 'have'} no maps{suggest(missing[0], all_contrasts)} "
+                         f"(found: {', '.join(all_contrasts)})")
     cautions = check_circularity(functional, tested, has_runs=has_runs, entry=entry)
     return tested, cautions
 
