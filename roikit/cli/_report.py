@@ -60,14 +60,43 @@ def _names(text: str) -> list[str]:
     return [t.strip() for t in text.split(",") if t.strip()]
 
 
+def _regions_used(results) -> dict[str, list[str]]:
+    """For results rows about several regions: their region label -> the regions of the values table they use.
+
+    From ``regions_compared`` (region-difference) or the ``cells`` of a repeated-measures row (JSON list of
+    ``[contrast, region, levels]``); a label "A - B" without those columns names its two regions.
+    """
+    import json
+
+    used: dict[str, list[str]] = {}
+    for row in results.to_dict("records"):
+        label = str(row.get("region"))
+        found: list[str] = []
+        compared, cells = row.get("regions_compared"), row.get("cells")
+        if isinstance(compared, str) and compared:
+            found = compared.split(",")
+        elif isinstance(cells, str) and cells.startswith("["):
+            try:
+                found = [str(c[1]) for c in json.loads(cells) if isinstance(c, list) and len(c) > 1]
+            except ValueError:
+                found = []
+        elif " - " in label:
+            found = label.split(" - ")
+        if found:
+            used[label] = list(dict.fromkeys(used.get(label, []) + found))
+    return used
+
+
 def _same_regions(values, results, args):
     """Keep only ``--regions`` (when given); refuse values and results that do not cover the same regions."""
     from .._options import suggest
 
     in_values = list(dict.fromkeys(values["region"].astype(str)))
     in_results = list(dict.fromkeys(results["region"].astype(str))) if "region" in results.columns else []
-    # rows about a pair of regions ("A - B") are fine when both are in the values table
-    pairs = {r for r in in_results if " - " in r and all(x in in_values for x in r.split(" - "))}
+    # rows about several regions (a region difference "A - B", a repeated-measures row over a within-region factor
+    # such as "hippocampus (left, right)") are fine when every region they use is in the values table
+    parts_of = _regions_used(results)
+    pairs = {r for r in in_results if r in parts_of and all(x in in_values for x in parts_of[r])}
     if args.regions is not None:
         wanted = _names(args.regions)
         unknown = [r for r in wanted if r not in in_values]
@@ -77,10 +106,11 @@ def _same_regions(values, results, args):
                              f"{', '.join(in_values)}")
         values = values[values["region"].astype(str).isin(wanted)]
         keep = results["region"].astype(str).isin(wanted) | results["region"].astype(str).map(
-            lambda r: " - " in r and all(x in wanted for x in r.split(" - ")))
+            lambda r: r in parts_of and all(x in wanted for x in parts_of[r]))
         results = results[keep]
         in_values, in_results = wanted, [r for r in in_results if r in wanted or r in pairs]
-    only_values = [r for r in in_values if r not in in_results]
+    used = {x for r in in_results if r in pairs for x in parts_of[r]}
+    only_values = [r for r in in_values if r not in in_results and r not in used]
     only_results = [r for r in in_results if r not in in_values and r not in pairs]
     if only_values or only_results:
         parts = []

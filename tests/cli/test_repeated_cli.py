@@ -230,3 +230,32 @@ def test_study_file_refuses_evidence_options_for_other_designs(study, capsys):
     (study / "study.toml").write_text(text, encoding="utf-8")
     assert main(["run", str(study / "study.toml"), "--out", str(study / "results"), "--quiet"]) == 2
     assert "analysis[3].bayes_factor" in capsys.readouterr().err
+
+
+def test_report_takes_results_about_several_regions(files, capsys):
+    """Rows over a within-region factor ("hippocampus (left, right)") and region differences ("A - B") name no
+    region of the values table, yet use only its regions: roikit report takes them, and --regions keeps the rows
+    whose regions are all chosen."""
+    assert _stats(files, "--design", "repeated-measures", "--within", "route,hemisphere", "--contrasts",
+                  str(files / "contrasts.tsv"), "--region-table", str(files / "regions.tsv")) == 0
+    rm = read_table(files / "out.tsv")
+    assert main(["stats", str(files / "values.tsv"), "--out", str(files / "diff.tsv"), "--design",
+                 "region-difference", "--regions", "left hippocampus,right hippocampus", "--contrast", "novel"]) == 0
+    both = pd.concat([rm, read_table(files / "diff.tsv")], ignore_index=True, sort=False)
+    both.to_csv(files / "both.tsv", sep="\t", index=False, na_rep="n/a")
+    capsys.readouterr()
+    # the midline region is in no hemisphere pair, so no result uses it: still refused
+    assert main(["report", "--values", str(files / "values.tsv"), "--results", str(files / "both.tsv"), "--out",
+                 str(files / "report"), "--quiet"]) == 2
+    assert "only in --values: visual cortex)" in capsys.readouterr().err
+    values = read_table(files / "values.tsv")
+    values[values["region"] != "visual cortex"].to_csv(files / "paired.tsv", sep="\t", index=False)
+    assert main(["report", "--values", str(files / "paired.tsv"), "--results", str(files / "both.tsv"), "--out",
+                 str(files / "report"), "--quiet"]) == 0, capsys.readouterr().err
+    html = (files / "report" / "report.html").read_text(encoding="utf-8")
+    assert "hippocampus (left, right)" in html and "caudate (left, right)" in html
+    assert main(["report", "--values", str(files / "values.tsv"), "--results", str(files / "both.tsv"), "--out",
+                 str(files / "report2"), "--regions", "left hippocampus,right hippocampus", "--quiet"]) == 0
+    html = (files / "report2" / "report.html").read_text(encoding="utf-8")
+    assert "hippocampus (left, right)" in html and "left hippocampus - right hippocampus" in html
+    assert "caudate (left, right)" not in html
