@@ -92,7 +92,17 @@ def ordered_unique(values: Iterable[Any]) -> list:
 def split_analyses(results: pd.DataFrame) -> list[tuple[dict, pd.DataFrame]]:
     """Split a results table into analyses (one run of a design), in order of first appearance."""
     keys = [k for k in ANALYSIS_KEYS if k in results.columns]
-    labels = results[keys].apply(lambda r: tuple(text(v) for v in r), axis=1) if len(results) else []
+    labels = list(results[keys].apply(lambda r: tuple(text(v) for v in r), axis=1)) if len(results) else []
+    if "p_posthoc" in results.columns and len(results):
+        # post-hoc pairs (their own contrasts) belong to the repeated-measures analysis whose rows precede them
+        posthoc = [not is_missing(v) for v in results["p_posthoc"]]
+        design = [text(v) for v in col(results, "design")]
+        last: dict = {}
+        for i, label in enumerate(labels):
+            if not posthoc[i]:
+                last[design[i]] = label
+            elif design[i] in last:
+                labels[i] = last[design[i]]
     out: list[tuple[dict, pd.DataFrame]] = []
     for label in ordered_unique(list(labels)):
         mask = np.array([lab == label for lab in labels])
@@ -364,6 +374,10 @@ def term_label(term: str, key: dict, labels: "Labels | None" = None,
         a, b = term.split(" - ", 1)
         g = key["group_column"]
         return f"{labels.level(g, a)} − {labels.level(g, b)}"
+    if design == "repeated-measures" and ": " in term and " - " in term:  # a post-hoc pair: "route: novel - mixed"
+        factor, _, pair = term.partition(": ")
+        a, b = pair.split(" - ", 1)
+        return f"{labels.variable(factor)}: {labels.level(factor, a)} − {labels.level(factor, b)}"
     if " - " in term and ":" not in term and "[" not in term:
         a, b = term.split(" - ", 1)
         return f"{labels.level('contrast', a)} − {labels.level('contrast', b)}"

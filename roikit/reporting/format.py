@@ -291,6 +291,8 @@ def estimate_symbol(design: Any, term: Any = None) -> str:
         return "*M*"
     if design in ("paired", "two-group", "region-difference"):
         return "*M*_{diff}"
+    if design == "repeated-measures" and ": " in term and " - " in term:  # a post-hoc pair, "route: novel - familiar"
+        return "*M*_{diff}"
     return "*b*"
 
 

@@ -51,6 +51,7 @@ from .format import (
     BOUNDED_EFFECTS,
     MISSING,
     corrected_p_symbol,
+    correction_name,
     effect_symbol,
     escape_markup,
     estimate_symbol,
@@ -678,6 +679,7 @@ def cell_formatters() -> dict[str, Any]:
         "statistic": lambda r: format_number(r.get("statistic")),
         "p": lambda r: format_p(r.get("p")),
         "p_holm": lambda r: format_p(r.get("p_holm")),
+        "p_posthoc": lambda r: format_p(r.get("p_posthoc")),
         "p_fdr": lambda r: format_p(r.get("p_fdr")),
         "p_fwe": lambda r: format_p(r.get("p_fwe")),
         "p_bonferroni": lambda r: format_p(r.get("p_bonferroni")),
@@ -761,6 +763,9 @@ def _estimate_sentence(key: dict, rows: pd.DataFrame) -> str:
         what = f"({contrast} − {escape_markup(versus)})" if versus else contrast
         return (f"*M*_{{diff}} = mean within-participant difference between the two regions (first − second) in "
                 f"the {what} values; a paired *t*-test of the differences.")
+    if design == "repeated-measures" and has_values(rows, "p_posthoc"):
+        return ("*M*_{diff} = mean within-participant difference between the two levels of the pair (first − "
+                "second); a paired *t*-test of the differences.")
     if design == "precision-weighted":
         return ("Estimates are precision-weighted (inverse-variance) with a between-participant variance "
                 "*τ*^{2}; *I*^{2} = share of the total variance due to between-participant heterogeneity.")
@@ -838,7 +843,8 @@ def _build(key: dict, rows: pd.DataFrame, stat: str, number_: int, suffix: str =
         columns.append(Column("term", "Term", "l"))
     columns.append(Column("n", "*n*"))
     if stat != "F":
-        columns.append(Column("estimate", estimate_symbol(design, terms[0] if len(terms) == 1 else "x")))
+        posthoc = has_values(rows, "p_posthoc")
+        columns.append(Column("estimate", estimate_symbol(design, terms[0] if len(terms) == 1 or posthoc else "x")))
         if has_values(rows, "ci_low"):
             columns.append(Column("ci", f"{level} CI", "c"))
         if stat == "t" and has_values(rows, "df"):
@@ -853,6 +859,10 @@ def _build(key: dict, rows: pd.DataFrame, stat: str, number_: int, suffix: str =
         columns.append(Column("epsilon_gg", "*ε*_{GG}"))
     columns.append(Column("statistic", statistic_symbol(stat)))
     columns.append(Column("p", "*p*_{GG}" if corrected_df else "*p*"))
+    posthoc_method = text(ordered_unique(col(rows, "posthoc_correction"))[0]) if has_values(
+        rows, "p_posthoc") and has_values(rows, "posthoc_correction") else ""
+    if has_values(rows, "p_posthoc"):  # post-hoc pairs: corrected across the factor's pairs within each region
+        columns.append(Column("p_posthoc", "*p*_{pairs}"))
     corrected = [m for m in ("holm", "fdr", "fwe", "bonferroni") if has_values(rows, f"p_{m}")]
     corrected = ([primary] if primary in corrected else []) + [m for m in corrected if m != primary]
     for m in corrected:
@@ -906,6 +916,12 @@ def _build(key: dict, rows: pd.DataFrame, stat: str, number_: int, suffix: str =
     note.append("*n* = participants in the test" + (f"; CI = confidence interval ({level})." if has_ci else "."))
     if stat != "F":
         note.append(_estimate_sentence(key, rows))
+    if has_values(rows, "p_posthoc"):
+        pairs = ordered_unique(int(number(v)) for v in col(rows, "posthoc_family") if np.isfinite(number(v)))
+        name = escape_markup(correction_name(posthoc_method or "holm"))
+        note.append(f"*p*_{{pairs}} = *p* of the post-hoc paired *t*-test adjusted with the {name} "
+                    f"method across the {' or '.join(map(str, pairs))} pairs of the factor's levels within each "
+                    "region; the other adjusted *p* values correct each pair across regions.")
     if stat != "F":
         note.append("*p* values are two-sided.")
     if corrected_df:

@@ -788,7 +788,8 @@ def _symbols_sentence(results: pd.DataFrame, cite: Citations, primaries: list[st
     symbols = []
     if designs & {"one-sample", "fixed-effects", "precision-weighted"}:
         symbols.append("*M* = mean")
-    if designs & {"paired", "two-group"}:
+    posthoc = has_values(results, "p_posthoc")
+    if designs & {"paired", "two-group", "region-difference"} or posthoc:
         symbols.append("*M*_{diff} = mean difference")
     if designs & {"glm", "mixed", "precision-weighted"} and any(
             not is_intercept(t) and t != "mean" for t in results["term"].map(text)):
@@ -797,6 +798,8 @@ def _symbols_sentence(results: pd.DataFrame, cite: Citations, primaries: list[st
         if m != "none":
             symbols.append(f"{corrected_p_symbol(m)} = *p* adjusted by the {correction_name(m, long=True)} method"
                            .replace("by the no method", "uncorrected"))
+    if posthoc:
+        symbols.append("*p*_{pairs} = post-hoc *p* adjusted across a factor's pairs of levels within each region")
     if has_values(results, "bf10"):
         symbols.append("*BF*_{10} = Bayes factor of an effect against none")
     symbols.append("CI = confidence interval")
@@ -956,6 +959,33 @@ def _join(paragraphs: Sequence[str], style: Style) -> str:
 
 
 # --------------------------------------------------------------------------------------------- results
+def _posthoc_sentences(term: str, part: pd.DataFrame, alpha: float, labels: Labels) -> str:
+    """A post-hoc pair of a repeated-measures factor: its paired test in each region, *p* adjusted across the
+    factor's pairs within the region (``p_posthoc``, ``posthoc_correction``, ``posthoc_family``)."""
+    factor, _, pair = term.partition(": ")
+    first, _, second = pair.partition(" - ")
+    what = (f"{escape_markup(labels.level(factor, first))} − {escape_markup(labels.level(factor, second))}"
+            if second else escape_markup(pair))
+    method = text(part["posthoc_correction"].iloc[0]) if "posthoc_correction" in part.columns else "holm"
+    pairs = int(number(part["posthoc_family"].iloc[0])) if "posthoc_family" in part.columns else 0
+    name = {"holm": "with the Holm method", "fdr": "for the Benjamini–Hochberg false discovery rate",
+            "bonferroni": "with the Bonferroni method"}.get(method, escape_markup(method))
+    lead = (f"Post-hoc pair {what} ({escape_markup(labels.variable(factor))}), paired *t*-tests in each region: "
+            f"*p* values were adjusted {name} across the {count(pairs, 'pair')} of "
+            f"{escape_markup(labels.variable(factor))} within each region (*p*_{{pairs}}).")
+    sentences = [lead]
+    for _, r in part.iterrows():
+        row = r.copy()
+        row[f"p_{method}"] = row["p_posthoc"]
+        body = _row_body(row, method, alpha).replace(corrected_p_symbol(method) + " ", "*p*_{pairs} ", 1)
+        sentences.append(f"{_cap(escape_markup(text(r['region'])))}: {body}.")
+    surv = [text(r["region"]) for _, r in part.iterrows() if number(r["p_posthoc"]) < alpha]
+    a_txt = format_number(alpha, 3 if alpha * 100 % 1 else 2, leading_zero=False)
+    sentences.append(f"The pair differs after correction (α = {a_txt}) in {escape_markup(join_words(surv))}."
+                     if surv else f"The pair differs after correction (α = {a_txt}) in no region.")
+    return " ".join(sentences)
+
+
 def _family_lead(method: str, size: int, term: str | None) -> str:
     where = (f"For {'the ' if term == 'intercept' else ''}{escape_markup(term)}, across" if term else "Across")
     regions = count(size, "region")
@@ -1037,6 +1067,9 @@ def results_parts(
         parts = []
         for term in terms:
             part = rows[rows["term"].map(text) == term]
+            if "p_posthoc" in part.columns and part["p_posthoc"].map(lambda v: not is_missing(v)).all():
+                parts.append(_posthoc_sentences(term, part, alpha, labels))
+                continue
             corr = primary_correction(part, correct)
             size = family_size(part)
             label = term_label(term, key, labels, participants, terms) if len(terms) > 1 else None

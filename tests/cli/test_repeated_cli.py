@@ -259,3 +259,26 @@ def test_report_takes_results_about_several_regions(files, capsys):
     html = (files / "report2" / "report.html").read_text(encoding="utf-8")
     assert "hippocampus (left, right)" in html and "left hippocampus - right hippocampus" in html
     assert "caudate (left, right)" not in html
+
+
+def test_posthoc_pairs_are_reported_with_their_own_correction(files, capsys):
+    """Post-hoc rows stay in their analysis; text and table give p adjusted across the pairs (p_posthoc) as
+    *p*_pairs beside the across-region correction, with M_diff and the pair in words."""
+    assert _stats(files, "--design", "repeated-measures", "--within", "route", "--contrasts",
+                  str(files / "contrasts.tsv"), "--posthoc") == 0, capsys.readouterr().err
+    out = read_table(files / "out.tsv")
+    pair = out[(out["region"] == "left hippocampus") & (out["term"] == "route: novel - familiar")].iloc[0]
+    assert main(["report", "--values", str(files / "values.tsv"), "--results", str(files / "out.tsv"), "--out",
+                 str(files / "report"), "--quiet"]) == 0, capsys.readouterr().err
+    results = (files / "report" / "results.md").read_text(encoding="utf-8")
+    assert "*Analysis 2" not in results  # the pairs belong to analysis 1
+    assert ("Post-hoc pair novel − familiar (route), paired *t*-tests in each region: *p* values were adjusted "
+            "with the Holm method across the 3 pairs of route within each region (*p*_pairs)") in results
+    from roikit.reporting.format import format_p
+
+    sentence = results.split("Post-hoc pair novel − familiar")[1].split("Right hippocampus")[0]
+    sentence = sentence.replace("\u00a0", " ")  # the text keeps "= value" together with no-break spaces
+    assert f"*p*_pairs = {format_p(pair['p_posthoc'])}" in sentence and "*M*_diff = " in sentence
+    table = next((files / "report" / "tables").glob("a1-repeated-measures.md")).read_text(encoding="utf-8")
+    assert "| left hippocampus | route: novel − familiar |" in table and "*p*_pairs" in table
+    assert "*p*_pairs = *p* of the post-hoc paired *t*-test adjusted with the Holm method across the 3 pairs" in table
