@@ -621,6 +621,23 @@ def _init_worker(index, names, statistic, keep_zeros, parent=None, n_processes=N
                          helper=None if n_processes is None else _helper_thread(n_processes))
 
 
+def stop_pool(pool: cf.ProcessPoolExecutor) -> None:
+    """Stop a process pool now: cancel what waits, terminate the workers, SIGKILL any that outlive SIGTERM.
+
+    The processes are taken before ``shutdown()``, which forgets them.
+    """
+    processes = list((getattr(pool, "_processes", None) or {}).values())
+    pool.shutdown(wait=False, cancel_futures=True)
+    for proc in processes:
+        with contextlib.suppress(Exception):
+            proc.terminate()
+    for proc in processes:  # a worker that outlives SIGTERM (handled or blocked there) gets SIGKILL
+        with contextlib.suppress(Exception):
+            proc.join(timeout=1.0)
+            if proc.is_alive():
+                proc.kill()
+
+
 def _watch_parent(parent: int | None, *, every: float = 0.5) -> None:
     """Make a pool worker leave when the process that started it dies (even by SIGKILL), and ignore Ctrl-C.
 
@@ -898,10 +915,7 @@ def extract(
                         _stream(lambda batch: pool.submit(_run_tasks_in_worker, batch), batches, collect, bar,
                                 max_in_flight=2 * n_jobs)
                     except BaseException:  # an interrupt: stop the workers now instead of finishing their batches
-                        pool.shutdown(wait=False, cancel_futures=True)
-                        for proc in list((getattr(pool, "_processes", None) or {}).values()):
-                            with contextlib.suppress(Exception):
-                                proc.terminate()
+                        stop_pool(pool)
                         raise
             else:
                 _stream(lambda batch: executor.submit(_run_tasks, batch, index, names, statistic, keep_zeros),

@@ -367,3 +367,33 @@ def test_read_ahead_thread_gives_the_same_table_provenance_and_failures(tiny_stu
     n_regions = runs[True]["region"].nunique()
     good = ~partial.index.isin(list(range(3 * n_regions, 4 * n_regions)) + list(range(7 * n_regions, 8 * n_regions)))
     pd.testing.assert_series_equal(partial["value"][good], runs[True]["value"][good])
+
+
+def _sleep_long(seconds):
+    import time
+
+    time.sleep(seconds)
+    return seconds
+
+
+def test_stop_pool_ends_busy_workers_at_once():
+    """An interrupted extraction stops its workers now (taken before shutdown(), which forgets them), and a worker
+    that ignores SIGTERM still ends (SIGKILL)."""
+    import concurrent.futures as cf
+    import multiprocessing as mp
+    import signal
+    import time
+
+    from roikit.extraction import stop_pool
+
+    pool = cf.ProcessPoolExecutor(2, mp_context=mp.get_context("fork"),
+                                  initializer=signal.signal, initargs=(signal.SIGTERM, signal.SIG_IGN))
+    futures = [pool.submit(_sleep_long, 60) for _ in range(4)]
+    time.sleep(0.5)  # the workers are busy
+    processes = list(pool._processes.values())
+    assert len(processes) == 2
+    stop_pool(pool)
+    for proc in processes:  # without SIGKILL they would sleep their minute (SIGTERM is ignored there)
+        proc.join(timeout=10)
+        assert not proc.is_alive()
+    assert all(f.done() for f in futures)  # cancelled, or failed with the pool broken

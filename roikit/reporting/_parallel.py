@@ -25,7 +25,6 @@ Workers leave when the parent dies, even by SIGKILL, and ignore Ctrl-C (the pare
 from __future__ import annotations
 
 import concurrent.futures as cf
-import contextlib
 import gc
 import multiprocessing as mp
 import os
@@ -194,11 +193,9 @@ class OrderedTasks:
     def _stop(self) -> None:
         pool, self._pool = self._pool, None
         if pool is not None:
-            processes = list((getattr(pool, "_processes", None) or {}).values())  # shutdown() forgets them
-            pool.shutdown(wait=False, cancel_futures=True)
-            for proc in processes:
-                with contextlib.suppress(Exception):
-                    proc.terminate()
+            from ..extraction import stop_pool
+
+            stop_pool(pool)
         self._forget()
 
     def _forget(self) -> None:

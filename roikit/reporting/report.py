@@ -603,6 +603,12 @@ def write_report(
     participants = _as_table(participants, "participants", ("participant_id",))
     check_columns(values, REQUIRED_VALUES, "region values table")
     check_columns(results, REQUIRED_RESULTS, "results table")
+    if "run_id" in values.columns:
+        # per-run values (maps with runs): one value per participant, the mean over runs, as the analyses used
+        # (roikit run and roikit stats average runs the same way); descriptives and dots then count participants
+        from ..functional import collapse_runs
+
+        values = collapse_runs(values)
     if participants is not None:
         check_columns(participants, ("participant_id",), "participants table")
         participants = participants.copy()

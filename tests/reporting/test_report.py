@@ -268,3 +268,21 @@ def test_stimulus_figure_shows_only_the_contrasts_of_the_mixed_model(tmp_path, v
         # n_jobs=1: the spy records in this process
         write_report(both, mixed, participants=participants, out=tmp_path / "r", figure_formats=("png",), n_jobs=1)
     assert seen == [["town1", "town2"]]
+
+
+def test_a_per_run_values_table_is_described_per_participant(tmp_path, values, results, participants):
+    """Values with run_id (maps with runs) are averaged over runs before the report describes or draws them, as the
+    analyses average them: descriptives equal those of the per-participant table, not of the runs pooled."""
+    import numpy as np
+
+    rng = np.random.default_rng(11)
+    shift = rng.normal(0, 0.5, len(values))  # run 1 = value + shift, run 2 = value - shift: their mean is value
+    runs = pd.concat([values.assign(run_id="run-1", value=values["value"] + shift),
+                      values.assign(run_id="run-2", value=values["value"] - shift)], ignore_index=True)
+    per_run = write_report(runs, results, participants=participants, out=tmp_path / "runs", figures=False)
+    plain = write_report(values, results, participants=participants, out=tmp_path / "plain", figures=False)
+    got = pd.read_csv(tmp_path / "runs" / "tables" / "descriptives.tsv", sep="\t")
+    expected = pd.read_csv(tmp_path / "plain" / "tables" / "descriptives.tsv", sep="\t")
+    pd.testing.assert_frame_equal(got, expected)
+    pooled_sd = runs.groupby("region")["value"].std().iloc[0]
+    assert per_run["html"].is_file() and pooled_sd > values.groupby("region")["value"].std().iloc[0]
