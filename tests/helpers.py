@@ -19,3 +19,25 @@ def save_nifti(path, data, affine=SMALL_AFFINE, dtype=np.float32):
     img.header.set_data_dtype(dtype)
     nib.save(img, str(path))
     return path
+
+
+def process_ended(pid: int, *, within: float = 10.0) -> bool:
+    """Whether process ``pid`` has ended (gone, or a zombie awaiting its parent) within ``within`` seconds.
+
+    Read from /proc, not from ``multiprocessing.Process.is_alive()``: a process pool's own management thread may
+    reap the worker first, and ``is_alive()`` then keeps answering True.
+    """
+    import time
+
+    deadline = time.monotonic() + within
+    while True:
+        try:
+            with open(f"/proc/{pid}/status", encoding="ascii") as fh:
+                state = next((line.split()[1] for line in fh if line.startswith("State:")), "")
+        except OSError:
+            return True
+        if state in ("Z", "X"):
+            return True
+        if time.monotonic() > deadline:
+            return False
+        time.sleep(0.05)
