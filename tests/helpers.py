@@ -41,3 +41,33 @@ def process_ended(pid: int, *, within: float = 10.0) -> bool:
         if time.monotonic() > deadline:
             return False
         time.sleep(0.05)
+
+
+def write_caudate_atlas(root) -> None:
+    """The functional-region tests' atlas: right caudate (80 voxels) and left caudate, with atlas.tsv."""
+    import pandas as pd
+
+    atlas = np.zeros(SMALL_SHAPE, dtype=np.int16)
+    atlas[2:6, 3:8, 4:8] = 1  # 80 voxels
+    atlas[12:18, 10:14, 6:10] = 2
+    save_nifti(root / "atlas.nii.gz", atlas, dtype=np.int16)
+    pd.DataFrame({"index": [1, 2], "name": ["right caudate", "left caudate"]}).to_csv(
+        root / "atlas.tsv", sep="\t", index=False)
+
+
+def write_map_pair(folder, rng, stem: str, mean: float) -> None:
+    """``<stem>_effect.nii.gz`` (normal noise around ``mean``, SD 1) and ``<stem>_variance.nii.gz`` (uniform 0.5-2)."""
+    save_nifti(folder / f"{stem}_effect.nii.gz", rng.normal(mean, 1.0, SMALL_SHAPE).astype(np.float32))
+    save_nifti(folder / f"{stem}_variance.nii.gz", rng.uniform(0.5, 2.0, SMALL_SHAPE).astype(np.float32))
+
+
+def write_run_study(root, labels, seed: int, *, novel: float = 0.5, familiar: float = 0.1):
+    """A study folder with the caudate atlas and two runs of novel and familiar per participant (maps/)."""
+    (root / "maps").mkdir(parents=True)
+    write_caudate_atlas(root)
+    rng = np.random.default_rng(seed)
+    for label in labels:
+        for run in (1, 2):
+            for contrast, mean in (("novel", novel), ("familiar", familiar)):
+                write_map_pair(root / "maps", rng, f"sub-{label}_run-{run}_contrast-{contrast}", mean)
+    return root

@@ -14,7 +14,7 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from helpers import SMALL_SHAPE, save_nifti
+from helpers import write_run_study
 from roikit._tables import read_table
 from roikit.cli import main
 from roikit.cli._extract import functional_from_args
@@ -61,21 +61,7 @@ versus = "familiar"
 
 @pytest.fixture
 def runs_dir(tmp_path):
-    root = tmp_path / "study"
-    (root / "maps").mkdir(parents=True)
-    rng = np.random.default_rng(1616)
-    atlas = np.zeros(SMALL_SHAPE, dtype=np.int16)
-    atlas[2:6, 3:8, 4:8] = 1      # 80 voxels
-    atlas[12:18, 10:14, 6:10] = 2
-    save_nifti(root / "atlas.nii.gz", atlas, dtype=np.int16)
-    pd.DataFrame({"index": [1, 2], "name": ["right caudate", "left caudate"]}).to_csv(
-        root / "atlas.tsv", sep="\t", index=False)
-    for label in LABELS:
-        for run in (1, 2):
-            for contrast, mean in (("novel", 0.4), ("familiar", 0.1)):
-                stem = f"sub-{label}_run-{run}_contrast-{contrast}"
-                save_nifti(root / "maps" / f"{stem}_effect.nii.gz", rng.normal(mean, 1.0, SMALL_SHAPE))
-                save_nifti(root / "maps" / f"{stem}_variance.nii.gz", rng.uniform(0.5, 2.0, SMALL_SHAPE))
+    root = write_run_study(tmp_path / "study", LABELS, 1616, novel=0.4)
     (root / "study.toml").write_text(STUDY, encoding="utf-8")
     return root
 

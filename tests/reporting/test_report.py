@@ -280,7 +280,7 @@ def test_a_per_run_values_table_is_described_per_participant(tmp_path, values, r
     runs = pd.concat([values.assign(run_id="run-1", value=values["value"] + shift),
                       values.assign(run_id="run-2", value=values["value"] - shift)], ignore_index=True)
     per_run = write_report(runs, results, participants=participants, out=tmp_path / "runs", figures=False)
-    plain = write_report(values, results, participants=participants, out=tmp_path / "plain", figures=False)
+    write_report(values, results, participants=participants, out=tmp_path / "plain", figures=False)
     got = pd.read_csv(tmp_path / "runs" / "tables" / "descriptives.tsv", sep="\t")
     expected = pd.read_csv(tmp_path / "plain" / "tables" / "descriptives.tsv", sep="\t")
     pd.testing.assert_frame_equal(got, expected)

@@ -8,7 +8,7 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from helpers import SMALL_SHAPE, save_nifti
+from helpers import write_run_study
 from roikit.study import load_study, run_study
 from roikit.study.schema import StudyError
 
@@ -42,24 +42,7 @@ contrast = "novel"
 
 @pytest.fixture
 def run_study_dir(tmp_path):
-    root = tmp_path / "study"
-    (root / "maps").mkdir(parents=True)
-    rng = np.random.default_rng(16)
-    atlas = np.zeros(SMALL_SHAPE, dtype=np.int16)
-    atlas[2:6, 3:8, 4:8] = 1
-    atlas[12:18, 10:14, 6:10] = 2
-    save_nifti(root / "atlas.nii.gz", atlas, dtype=np.int16)
-    pd.DataFrame({"index": [1, 2], "name": ["right caudate", "left caudate"]}).to_csv(
-        root / "atlas.tsv", sep="\t", index=False)
-    for label in LABELS:
-        for run in (1, 2):
-            for contrast, mean in (("novel", 0.5), ("familiar", 0.1)):
-                data = rng.normal(mean, 1.0, SMALL_SHAPE).astype(np.float32)
-                var = rng.uniform(0.5, 2.0, SMALL_SHAPE).astype(np.float32)
-                stem = f"sub-{label}_run-{run}_contrast-{contrast}"
-                save_nifti(root / "maps" / f"{stem}_effect.nii.gz", data)
-                save_nifti(root / "maps" / f"{stem}_variance.nii.gz", var)
-    return root
+    return write_run_study(tmp_path / "study", LABELS, 16)
 
 
 def _write(root, extra: str = "", analysis: str = ANALYSIS):

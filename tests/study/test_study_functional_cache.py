@@ -9,7 +9,7 @@ import pytest
 
 import roikit.extraction
 import roikit.functional
-from helpers import SMALL_SHAPE, save_nifti
+from helpers import write_caudate_atlas, write_map_pair, write_run_study
 from roikit.study import load_study, run_study
 from roikit.study.schema import StudyError
 
@@ -40,33 +40,9 @@ contrast = "novel"
 """
 
 
-def _atlas(root):
-    atlas = np.zeros(SMALL_SHAPE, dtype=np.int16)
-    atlas[2:6, 3:8, 4:8] = 1
-    atlas[12:18, 10:14, 6:10] = 2
-    save_nifti(root / "atlas.nii.gz", atlas, dtype=np.int16)
-    pd.DataFrame({"index": [1, 2], "name": ["right caudate", "left caudate"]}).to_csv(
-        root / "atlas.tsv", sep="\t", index=False)
-
-
-def _maps(root, rng, stem, mean):
-    data = rng.normal(mean, 1.0, SMALL_SHAPE).astype(np.float32)
-    var = rng.uniform(0.5, 2.0, SMALL_SHAPE).astype(np.float32)
-    save_nifti(root / f"{stem}_effect.nii.gz", data)
-    save_nifti(root / f"{stem}_variance.nii.gz", var)
-
-
 @pytest.fixture
 def split_study(tmp_path):
-    root = tmp_path / "study"
-    (root / "maps").mkdir(parents=True)
-    _atlas(root)
-    rng = np.random.default_rng(161)
-    for label in LABELS:
-        for run in (1, 2):
-            for contrast, mean in (("novel", 0.5), ("familiar", 0.1)):
-                _maps(root / "maps", rng, f"sub-{label}_run-{run}_contrast-{contrast}", mean)
-    return root
+    return write_run_study(tmp_path / "study", LABELS, 161)
 
 
 def _write(root, top='"20%"'):
@@ -126,7 +102,7 @@ def test_a_changed_definition_or_map_recomputes(split_study, reads):
     pd.testing.assert_frame_equal(back.values.reset_index(drop=True), changed.values.reset_index(drop=True))
     # a changed map (new bytes): recomputed, and the participant's value changes
     stem = split_study / "maps" / "sub-03_run-2_contrast-novel"
-    _maps(split_study / "maps", np.random.default_rng(5), stem.name, 3.0)
+    write_map_pair(split_study / "maps", np.random.default_rng(5), stem.name, 3.0)
     reads["n"] = 0
     fresh = run_study(split_study / "study.toml", out=out, figures=False)
     assert fresh.values.attrs["roikit"]["cache"]["functional"] == "computed" and reads["n"] > 0
@@ -171,13 +147,13 @@ def session_and_runs(tmp_path):
     """Session maps of novel and familiar; per-run maps of novel only (maps/runs/)."""
     root = tmp_path / "study"
     (root / "maps" / "runs").mkdir(parents=True)
-    _atlas(root)
+    write_caudate_atlas(root)
     rng = np.random.default_rng(162)
     for label in LABELS:
         for contrast, mean in (("novel", 0.5), ("familiar", 0.1)):
-            _maps(root / "maps", rng, f"sub-{label}_contrast-{contrast}", mean)
+            write_map_pair(root / "maps", rng, f"sub-{label}_contrast-{contrast}", mean)
         for run in (1, 2):
-            _maps(root / "maps" / "runs", rng, f"sub-{label}_run-{run}_contrast-novel", 0.5)
+            write_map_pair(root / "maps" / "runs", rng, f"sub-{label}_run-{run}_contrast-novel", 0.5)
     (root / "study.toml").write_text(RUN_EFFECT, encoding="utf-8")
     return root
 
